@@ -1,0 +1,87 @@
+package limits
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+)
+
+// Benchmark units: plausible parameters of the demo kind, not check values.
+func benchRound(tb testing.TB) *Unit {
+	tb.Helper()
+	u, err := New(Params{Rotor: Round, Xd: 2.1, Xq: 2.1, Xl: 0.16, Xp: 0.18, Ra: 0.002,
+		XdTransient: 0.25, InertiaHS: 4.5, S10: 0.09, S12: 0.32, PowerFactor: 0.85,
+		FrequencyHz: 50, PMax: 0.85, PMin: 0.24, Xe: 0.22, MarginFraction: 0.1,
+		EndRegion: &EndRegion{P: []float64{0, 0.4, 0.85}, Q: []float64{-0.5, -0.4, -0.25}},
+		Coolant:   &Coolant{At: []float64{200, 414}, Armature: []float64{0.86, 1}, Field: []float64{0.88, 1}}})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return u
+}
+
+func benchSalient(tb testing.TB) *Unit {
+	tb.Helper()
+	u, err := New(Params{Rotor: Salient, Xd: 1.05, Xq: 0.68, Xl: 0.15, Xp: 0.2, Ra: 0.003,
+		XdTransient: 0.3, InertiaHS: 3.2, S10: 0.12, S12: 0.38, PowerFactor: 0.9,
+		FrequencyHz: 50, PMax: 0.9, PMin: 0.1, Xe: 0.18, MarginFraction: 0.1})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return u
+}
+
+// spread returns n independent operating points over the whole chart.
+func spread(u *Unit, n int) []Point {
+	rng := rand.New(rand.NewPCG(1, 2))
+	pts := make([]Point, n)
+	for i := range pts {
+		v := 0.92 + 0.16*rng.Float64()
+		p := u.p.PMax * rng.Float64()
+		q := -0.6 + 1.3*rng.Float64()
+		pts[i] = Point{P: p, Q: q, V: v, F: 1, HasCoolant: true, Coolant: 200 + 250*rng.Float64()}
+	}
+	return pts
+}
+
+var sink Result
+
+func benchmarkSpread(b *testing.B, u *Unit) {
+	pts := spread(u, 4096)
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := range b.N {
+		sink = u.Evaluate(pts[i&4095], nil)
+	}
+}
+
+func BenchmarkEvaluateRound(b *testing.B)   { benchmarkSpread(b, benchRound(b)) }
+func BenchmarkEvaluateSalient(b *testing.B) { benchmarkSpread(b, benchSalient(b)) }
+
+// tracking returns one unit's slowly moving telemetry: a load ramp with
+// small reactive and voltage noise, one sample a second.
+func tracking(n int) []Point {
+	rng := rand.New(rand.NewPCG(3, 4))
+	pts := make([]Point, n)
+	p, q, v := 0.5, 0.1, 1.0
+	for i := range pts {
+		p = math.Min(0.84, math.Max(0.25, p+0.001*rng.NormFloat64()))
+		q = math.Min(0.4, math.Max(-0.2, q+0.002*rng.NormFloat64()))
+		v = math.Min(1.05, math.Max(0.95, v+0.0005*rng.NormFloat64()))
+		pts[i] = Point{P: p, Q: q, V: v, F: 1, HasCoolant: true, Coolant: 400}
+	}
+	return pts
+}
+
+func benchmarkTracking(b *testing.B, u *Unit) {
+	pts := tracking(4096)
+	var h Hint
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := range b.N {
+		sink = u.Evaluate(pts[i&4095], &h)
+	}
+}
+
+func BenchmarkEvaluateTracking(b *testing.B)        { benchmarkTracking(b, benchRound(b)) }
+func BenchmarkEvaluateTrackingSalient(b *testing.B) { benchmarkTracking(b, benchSalient(b)) }

@@ -1,0 +1,345 @@
+package limits
+
+import "math"
+
+// Hint carries one unit's previous solution of the iterative limit
+// curves, so that the next sample, usually a small step away, starts
+// there: a warm-started Newton step on the field limit, a narrow bracket
+// on the stability limits. The zero Hint is valid and means "no previous
+// solution". A Hint belongs to one unit and one goroutine at a time; it
+// changes only the work done, never the result beyond the root tolerance.
+type Hint struct {
+	field, stab, prac float64
+	stabSlope         float64 // d/dq of the stability functions at the last roots
+	pracSlope         float64
+	has               uint8 // bit set of hintField, hintStab, hintPrac, hintCoolant
+
+	// The coolant factors of the last coolant value: coolant quantities
+	// change slowly, so most samples repeat the last value.
+	coolant, armF, fieldF float64
+	coolInside            bool
+}
+
+const (
+	hintField = 1 << iota
+	hintStab
+	hintPrac
+	hintCoolant
+)
+
+func (h *Hint) get(bit uint8) (float64, bool) {
+	if h == nil || h.has&bit == 0 {
+		return 0, false
+	}
+	switch bit {
+	case hintField:
+		return h.field, true
+	case hintStab:
+		return h.stab, true
+	}
+	return h.prac, true
+}
+
+func (h *Hint) set(bit uint8, b Bound) {
+	if h == nil {
+		return
+	}
+	if !b.OK {
+		h.has &^= bit
+		return
+	}
+	h.has |= bit
+	switch bit {
+	case hintField:
+		h.field = b.V
+	case hintStab:
+		h.stab = b.V
+	default:
+		h.prac = b.V
+	}
+}
+
+// Bounds returns the limit curves at active power p and terminal voltage
+// v (pu), with the armature and field ratings multiplied by the coolant
+// factors armF and fieldF. h may be nil.
+func (u *Unit) Bounds(p, v, armF, fieldF float64, h *Hint) Bounds {
+	var b Bounds
+	iMax := armF
+	r := v * iMax
+	if math.Abs(p) <= r {
+		a := math.Sqrt(r*r - p*p)
+		b.ArmatureUp, b.ArmatureDown = some(a), some(-a)
+	}
+	b.Field = u.fieldLimit(p, v, u.ifdRated*fieldF, h)
+
+	// Upper bound: q_max = min(armature, field).
+	switch {
+	case !b.ArmatureUp.OK:
+		b.QMaxLimit = LimitArmature
+	case !b.Field.OK:
+		b.QMaxLimit = LimitField
+	case b.Field.V < b.ArmatureUp.V:
+		b.QMax, b.QMaxLimit = b.Field, LimitField
+	default:
+		b.QMax, b.QMaxLimit = b.ArmatureUp, LimitArmature
+	}
+
+	if b.QMax.OK {
+		b.Stability, b.Practical = u.stabilityLimits(math.Abs(p), v, b.QMax.V, h)
+	}
+	if u.hasEnd {
+		q := u.endRegion.Predict(p)
+		if k := u.p.EndRegion.VoltageExponent; k != 0 {
+			q *= math.Pow(v, k)
+		}
+		b.EndRegion = some(q)
+	}
+
+	// Lower bound: q_min = max(armature, practical stability, end region).
+	switch {
+	case !b.ArmatureDown.OK:
+		b.QMinLimit = LimitArmature
+	case !b.Practical.OK:
+		b.QMinLimit = LimitStability
+	default:
+		b.QMin, b.QMinLimit = b.ArmatureDown, LimitArmature
+		if b.Practical.V > b.QMin.V {
+			b.QMin, b.QMinLimit = b.Practical, LimitStability
+		}
+		if b.EndRegion.OK && b.EndRegion.V > b.QMin.V {
+			b.QMin, b.QMinLimit = b.EndRegion, LimitEndRegion
+		}
+	}
+	return b
+}
+
+// fieldLimit solves i_fd(p, q, v) = ifdMax for q on the branch where the
+// field current rises with q, above q = -v^2/Xq. Safeguarded Newton:
+// i_fd is increasing and convex in q there, so the iteration converges
+// from either side; a bracket is kept, and a step that leaves it
+// bisects (or, before an upper end is known, doubles). The cold start is
+// the unsaturated round-rotor circle q = -v^2/Xd + sqrt((v E/Xd)^2 - p^2)
+// with E = ifdMax, which lies above the root since saturation only adds
+// to the field current.
+func (u *Unit) fieldLimit(p, v, ifdMax float64, h *Hint) Bound {
+	lo := -v * v / u.p.Xq
+	loChecked := false // f(lo) < 0 is known: a root exists above lo
+	hi := math.Inf(1)
+	x, ok := h.get(hintField)
+	if !ok || x <= lo {
+		x = lo + 1
+		r := v * ifdMax / u.p.Xd
+		if d := r*r - p*p; d > 0 {
+			x = -v*v/u.p.Xd + math.Sqrt(d)
+		}
+	}
+	for range 100 {
+		s := u.field(p, x, v, true)
+		f := s.ifd - ifdMax
+		if f == 0 {
+			break
+		}
+		if f > 0 {
+			hi = x
+		} else {
+			lo, loChecked = x, true
+		}
+		xn := math.NaN()
+		if s.dIfd > 0 {
+			xn = x - f/s.dIfd
+		}
+		if !(xn > lo && xn < hi) {
+			if !loChecked {
+				// The step leaves the rising branch: is there a root on it at all?
+				// i_fd rises with q above lo, so none when f(lo) >= 0.
+				if u.field(p, lo, v, false).ifd >= ifdMax {
+					h.set(hintField, Bound{})
+					return Bound{}
+				}
+				loChecked = true
+			}
+			if math.IsInf(hi, 1) {
+				xn = x + 2*math.Max(1, x-lo)
+			} else {
+				xn = 0.5 * (lo + hi)
+			}
+		}
+		// Newton converges quadratically near the root: after a step
+		// of size d the error is about (f''/2f') d^2, under 1e-12 pu for
+		// d <= 1e-6 on this smooth, gently curved function.
+		if math.Abs(xn-x) <= 1e-6 {
+			x = xn
+			break
+		}
+		x = xn
+	}
+	b := some(x)
+	h.set(hintField, b)
+	return b
+}
+
+// stabilityLimits returns the theoretical and the practical steady-state
+// stability limits at active power p >= 0 and voltage v, below qTop (the
+// upper bound q_max). The machine is seen through Xe from the infinite
+// bus with ra = 0 and unsaturated reactances (see stab).
+//
+// Theoretical limit: the highest q below qTop at which the point is
+// unstable, K_s <= 0 or E_f <= 0. The search is bracketed: at the point
+// where E_Q = V + jXq I is perpendicular to V_s (delta = 90 degrees),
+// K_s = -2b <= 0, so that point is unstable; qTop bounds from above.
+//
+// Practical limit: the lowest q above the theoretical limit at which the
+// peak of P(delta) at the point's own E_f and V_s exceeds p by the margin
+// m = margin_fraction x rated MW.
+//
+// On a round rotor (Xq = Xd) both curves have closed forms, below.
+func (u *Unit) stabilityLimits(p, v, qTop float64, h *Hint) (theo, prac Bound) {
+	if u.roundStab {
+		return u.roundStability(p, v, qTop)
+	}
+	g := func(q float64) float64 {
+		s := u.stab(p, q, v)
+		if s.degen {
+			return -1
+		}
+		return math.Min(s.ks, s.ef)
+	}
+	if hint, ok := h.get(hintStab); ok {
+		if q, slope, ok := warmRoot(g, hint, h.stabSlope, qTop); ok {
+			theo = some(q)
+			h.stabSlope = slope
+			h.set(hintStab, theo)
+			return theo, u.practicalLimit(p, v, q, qTop, h)
+		}
+	}
+	gTop := g(qTop)
+	if gTop <= 0 {
+		theo = some(qTop)
+		h.set(hintStab, theo)
+		h.set(hintPrac, Bound{})
+		return theo, Bound{}
+	}
+	lo, ok := u.perpendicular(p, v)
+	if ok && lo > qTop {
+		ok = false
+	}
+	var gLo float64
+	if ok {
+		gLo = g(lo)
+		for i := 0; gLo > 0 && i < 8; i++ {
+			// Rounding can leave K_s a hair above zero at the
+			// perpendicular point itself; step just below it.
+			lo -= 1e-9 * (1 + math.Abs(lo))
+			gLo = g(lo)
+		}
+		ok = gLo <= 0
+	}
+	if !ok {
+		// No perpendicular point at this p: search downward from qTop in
+		// growing steps until the point is unstable.
+		step := 0.05
+		lo = qTop
+		for lo > qTop-1e3 {
+			lo -= step
+			step *= 2
+			if gLo = g(lo); gLo <= 0 {
+				ok = true
+				break
+			}
+		}
+		if !ok {
+			// Stable all the way down: no theoretical limit exists, and the
+			// practical one is searched from that depth.
+			lo = qTop - 1e3
+		}
+	}
+	if ok {
+		q, _ := brent(g, lo, qTop, gLo, gTop, stabTol)
+		theo = some(q)
+		lo = q
+	}
+	h.set(hintStab, theo)
+	return theo, u.practicalLimit(p, v, lo, qTop, h)
+}
+
+// practicalLimit returns the lowest q in [qs, qTop] at which the peak of
+// P(delta) at the point's own E_f and V_s is at least p + m.
+func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
+	pm := p + u.marginPU
+	hf := func(q float64) float64 {
+		s := u.stab(p, q, v)
+		if s.degen {
+			return -pm
+		}
+		return peakPower(s.a, s.b) - pm
+	}
+	if hint, ok := h.get(hintPrac); ok && hint > qs {
+		if q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop); ok && q > qs {
+			h.pracSlope = slope
+			h.set(hintPrac, some(q))
+			return some(q)
+		}
+	}
+	hLo := hf(qs)
+	if hLo >= 0 {
+		h.set(hintPrac, some(qs))
+		return some(qs)
+	}
+	hTop := hf(qTop)
+	if hTop < 0 {
+		h.set(hintPrac, Bound{})
+		return Bound{}
+	}
+	q, _ := brent(hf, qs, qTop, hLo, hTop, stabTol)
+	h.set(hintPrac, some(q))
+	return some(q)
+}
+
+// perpendicular returns the q at which E_Q = V + jXq I and V_s = V - jXe I
+// are perpendicular (total angle 90 degrees) on the underexcited side:
+// Re(E_Q conj(V_s)) = 0 is
+//
+//	Xq Xe q^2 - v^2 (Xq - Xe) q + Xq Xe p^2 - v^4 = 0,
+//
+// the lower root. With Xq = Xd this is the textbook steady-state stability
+// circle, centre (0, (v^2/2)(1/Xe - 1/Xd)), radius (v^2/2)(1/Xe + 1/Xd);
+// with Xe = 0 it is the line q = -v^2/Xq.
+func (u *Unit) perpendicular(p, v float64) (float64, bool) {
+	xq, xe := u.p.Xq, u.p.Xe
+	v2 := v * v
+	return quadLower(xq*xe, -v2*(xq-xe), xq*xe*p*p-v2*v2)
+}
+
+// roundStability is the closed form of both stability limits for a
+// round rotor (Xq = Xd = X). The total angle delta between E and V_s
+// satisfies Im(E conj V_s) = p (X + Xe) and
+//
+//	Re(E conj V_s) = v^2 + (X - Xe) q - X Xe (q^2 + p^2)/v^2,
+//
+// and P(delta) = P_max sin(delta) with P_max = E_f V_s/(X + Xe). The
+// theoretical limit is delta = 90 degrees, Re = 0 (see perpendicular).
+// The practical margin P_max - p = m holds where sin(delta) = p/(p + m),
+// that is Re = (X + Xe) sqrt(m^2 + 2pm): the same quadratic with its
+// constant term raised by v^2 (X + Xe) sqrt(m^2 + 2pm), lower root.
+func (u *Unit) roundStability(p, v, qTop float64) (theo, prac Bound) {
+	x, xe := u.p.Xd, u.p.Xe
+	v2 := v * v
+	a, b, c := x*xe, -v2*(x-xe), x*xe*p*p-v2*v2
+	qs, ok := quadLower(a, b, c)
+	if !ok {
+		// Re(E conj V_s) < 0 for every q: the angle exceeds 90 degrees
+		// whatever the excitation, so the unit cannot carry p through Xe.
+		return some(qTop), Bound{}
+	}
+	if qs >= qTop {
+		return some(qTop), Bound{}
+	}
+	theo = some(qs)
+	m := u.marginPU
+	rr := (x + xe) * math.Sqrt(m*m+2*p*m)
+	qp, ok := quadLower(a, b, c+v2*rr)
+	if !ok || qp > qTop {
+		return theo, Bound{}
+	}
+	return theo, some(math.Max(qp, qs))
+}

@@ -1,0 +1,134 @@
+package limits
+
+import "math"
+
+// Evaluate places one operating point against the unit's envelope at the
+// point's own voltage, frequency and coolant. h carries the previous
+// solution of the same unit (see Hint) and may be nil. Evaluate does not
+// allocate.
+//
+// Margins, all ratios, positive inside the envelope:
+//
+//	armature         1 - i/i_max
+//	field            1 - i_fd/i_fd_max (the measured field current when the point has one, else the model)
+//	stability        (q - q_practical) / 1 pu
+//	end_region       (q - q_end) / 1 pu (only with an end-region curve)
+//	prime_mover      (p_max - p) / p_rated, p_max the prime mover's
+//	volts_per_hertz  1 - (v/f)/1.05
+func (u *Unit) Evaluate(pt Point, h *Hint) Result {
+	p, q, v := pt.P, pt.Q, pt.V
+	f := pt.F
+	if f == 0 {
+		f = 1
+	}
+	var r Result
+	armF, fieldF := 1.0, 1.0
+	if pt.HasCoolant && u.hasCoolant {
+		var inside bool
+		if h != nil && h.has&hintCoolant != 0 && h.coolant == pt.Coolant {
+			armF, fieldF, inside = h.armF, h.fieldF, h.coolInside
+		} else {
+			armF, fieldF, inside = u.CoolantFactors(pt.Coolant)
+			if h != nil {
+				h.coolant, h.armF, h.fieldF, h.coolInside = pt.Coolant, armF, fieldF, inside
+				h.has |= hintCoolant
+			}
+		}
+		r.CoolantOutside = !inside
+	}
+	r.IMax, r.IfdMax = armF, u.ifdRated*fieldF
+	r.Bounds = u.Bounds(p, v, armF, fieldF, h)
+
+	fs := u.field(p, q, v, false)
+	r.IfdModel, r.Ef = fs.ifd, fs.ef
+	r.LoadAngle = math.Atan2(fs.eqI, fs.eqR)
+	r.I = math.Sqrt(p*p+q*q) / v
+
+	r.PMax = Bound{V: u.p.PMax, OK: true}
+	if a := v*r.IMax*v*r.IMax - q*q; a >= 0 {
+		r.PMax.V = math.Min(r.PMax.V, math.Sqrt(a))
+	} else {
+		r.PMax = Bound{}
+	}
+
+	r.Margins[LimitArmature] = some(1 - r.I/r.IMax)
+	ifd := r.IfdModel
+	if pt.IfdMeasured {
+		ifd = pt.Ifd
+	}
+	r.Margins[LimitField] = some(1 - ifd/r.IfdMax)
+	if r.Practical.OK {
+		r.Margins[LimitStability] = some(q - r.Practical.V)
+	}
+	if r.EndRegion.OK {
+		r.Margins[LimitEndRegion] = some(q - r.EndRegion.V)
+	}
+	r.Margins[LimitPrimeMover] = some((u.p.PMax - p) * u.invPRated)
+	r.VPerHz = v / f
+	r.Margins[LimitVoltsPerHertz] = some(1 - r.VPerHz*(1/VoltsPerHertzLimit))
+	r.Zone = VoltageFrequencyZone(v, f)
+
+	r.Feasible = r.QMax.OK && r.QMin.OK && r.QMin.V <= r.QMax.V
+	switch {
+	case !r.QMax.OK:
+		r.Infeasible = r.QMaxLimit
+	case !r.QMin.OK:
+		r.Infeasible = r.QMinLimit
+	case !r.Feasible:
+		r.Infeasible = r.QMinLimit
+	}
+	if r.Feasible {
+		// Binding is the nearest of the limits drawn on the capability
+		// chart; volts per hertz bounds the excitation, not P and Q, and
+		// keeps its own margin and zone.
+		best := math.Inf(1)
+		for l := LimitArmature; l <= LimitPrimeMover; l++ {
+			if m := r.Margins[l]; m.OK && m.V < best {
+				best, r.Binding = m.V, l
+			}
+		}
+	} else {
+		r.Binding = r.Infeasible
+	}
+	r.CCT = u.CriticalClearingTime(p, q, v)
+	return r
+}
+
+// Headroom returns the reactive headroom at q against the result's
+// bounds, in pu: up = q_max - q, down = q - q_min.
+func (r *Result) Headroom(q float64) (up, down Bound) {
+	if r.QMax.OK {
+		up = some(r.QMax.V - q)
+	}
+	if r.QMin.OK {
+		down = some(q - r.QMin.V)
+	}
+	return up, down
+}
+
+// EnvelopePoint is the envelope at one active power.
+type EnvelopePoint struct {
+	P float64 // pu
+	Bounds
+}
+
+// Envelope returns the limit curves at n active powers spaced evenly
+// from 0 to the active-power bound, min(prime-mover p_max, v i_max), at
+// voltage v (pu) and, when hasCoolant, coolant value c. n < 2 is taken as 2.
+func (u *Unit) Envelope(v, c float64, hasCoolant bool, n int) []EnvelopePoint {
+	if n < 2 {
+		n = 2
+	}
+	armF, fieldF := 1.0, 1.0
+	if hasCoolant {
+		armF, fieldF, _ = u.CoolantFactors(c)
+	}
+	pTop := math.Min(u.p.PMax, v*armF)
+	pts := make([]EnvelopePoint, n)
+	var h Hint
+	for i := range pts {
+		p := pTop * float64(i) / float64(n-1)
+		pts[i] = EnvelopePoint{P: p, Bounds: u.Bounds(p, v, armF, fieldF, &h)}
+	}
+	return pts
+}

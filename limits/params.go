@@ -1,0 +1,272 @@
+package limits
+
+import (
+	"fmt"
+	"math"
+
+	"gonum.org/v1/gonum/interp"
+)
+
+// Rotor is the construction of the rotor, which decides whether the
+// machine has one synchronous reactance or two.
+type Rotor uint8
+
+const (
+	// Round is a cylindrical (non-salient) rotor: turbine generators.
+	Round Rotor = iota
+	// Salient is a salient-pole rotor: hydro and low-speed machines.
+	Salient
+)
+
+// String returns the fleet-file spelling of the rotor kind.
+func (r Rotor) String() string {
+	switch r {
+	case Round:
+		return "round"
+	case Salient:
+		return "salient"
+	}
+	return fmt.Sprintf("Rotor(%d)", uint8(r))
+}
+
+// Params are the steady-state parameters of one generator, all in per
+// unit on the machine's own base (S_base = rated MVA, V_base = rated
+// line-line kV) and field current in per unit of IFag. The fleet loader
+// converts engineering units and fills defaults; New checks consistency.
+type Params struct {
+	Rotor Rotor
+
+	Xd float64 // unsaturated direct-axis synchronous reactance, pu
+	Xq float64 // unsaturated quadrature-axis synchronous reactance, pu (= Xd on a round rotor unless given)
+	Xl float64 // armature leakage reactance, pu
+	Xp float64 // Potier reactance, pu (= Xl unless given)
+	Ra float64 // armature resistance, pu
+
+	XdTransient float64 // direct-axis transient reactance Xd', pu; 0 when not known
+	InertiaHS   float64 // inertia constant H on machine base, s; 0 when not known
+
+	S10, S12 float64 // open-circuit saturation factors S(1.0), S(1.2); both 0 for no saturation
+
+	// IfdRated is the continuous rated field current in pu of IFag.
+	// 0 means "take the model's field current at the rated point".
+	IfdRated float64
+
+	PowerFactor float64 // rated power factor, (0, 1]
+	FrequencyHz float64 // rated frequency, Hz
+
+	PMax, PMin float64 // prime-mover active-power bounds, pu of rated MVA
+
+	Xe             float64 // external reactance to the infinite bus (step-up plus system), pu on machine base
+	MarginFraction float64 // practical stability margin as a fraction of rated MW
+
+	EndRegion *EndRegion // optional stator end-region curve
+	Coolant   *Coolant   // optional coolant capability table
+}
+
+// EndRegion is a maker's stator end-region heating curve: the lowest
+// admissible reactive power at each active power, in pu, at rated voltage.
+type EndRegion struct {
+	P, Q            []float64 // strictly increasing P; at least two points
+	VoltageExponent float64   // the curve scales with v^k
+}
+
+// Coolant is a capability table against a coolant quantity (hydrogen
+// pressure, cold-gas or ambient temperature, in the fleet file's unit).
+// Each factor multiplies the continuous rating of its winding.
+type Coolant struct {
+	At       []float64 // strictly increasing coolant values; at least two points
+	Armature []float64 // armature current factor at each value
+	Field    []float64 // field current factor at each value
+}
+
+// A ParamError names the parameter that is wrong and why.
+type ParamError struct {
+	Field  string // fleet-file spelling, e.g. "machine.xq"
+	Reason string
+}
+
+func (e *ParamError) Error() string { return e.Field + ": " + e.Reason }
+
+// Unit is a generator ready to be evaluated: its parameters checked, its
+// derived constants computed once. A Unit is immutable and safe for
+// concurrent use.
+type Unit struct {
+	p Params
+
+	satA, satB   float64 // saturation S(E)·E = B (E - A)^2 for E > A
+	ifdRated     float64 // rated field current, pu IFag (nameplate or model)
+	ifdModel     float64 // model field current at the rated point, pu IFag
+	pRated       float64 // rated active power, pu = power factor
+	invPRated    float64
+	marginPU     float64 // practical stability margin m, pu
+	roundStab    bool    // Xq == Xd: closed-form stability bounds apply
+	endRegion    interp.PiecewiseLinear
+	hasEnd       bool
+	coolArm      interp.PiecewiseLinear
+	coolField    interp.PiecewiseLinear
+	hasCoolant   bool
+	coolLo       float64
+	coolHi       float64
+	hasTransient bool
+}
+
+// New checks p and prepares a Unit. The first inconsistency found is
+// returned as a *ParamError naming the parameter.
+func New(p Params) (*Unit, error) {
+	bad := func(field, format string, args ...any) (*Unit, error) {
+		return nil, &ParamError{Field: field, Reason: fmt.Sprintf(format, args...)}
+	}
+	pos := func(name string, x float64) bool { return x > 0 && !math.IsInf(x, 0) }
+	fin := func(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+	switch {
+	case p.Rotor != Round && p.Rotor != Salient:
+		return bad("machine.rotor", "must be round or salient")
+	case !pos("xd", p.Xd):
+		return bad("machine.xd", "must be a positive finite reactance in pu, got %v", p.Xd)
+	case !pos("xq", p.Xq):
+		return bad("machine.xq", "must be a positive finite reactance in pu, got %v", p.Xq)
+	case p.Xq > p.Xd:
+		return bad("machine.xq", "xq (%v) must not exceed xd (%v)", p.Xq, p.Xd)
+	case p.Rotor == Salient && p.Xq >= p.Xd:
+		return bad("machine.xq", "a salient-pole rotor needs xq < xd, got xq %v, xd %v", p.Xq, p.Xd)
+	case !fin(p.Xl) || p.Xl < 0 || p.Xl >= p.Xd:
+		return bad("machine.xl", "must be in [0, xd), got %v", p.Xl)
+	case !fin(p.Xp) || p.Xp < 0 || p.Xp >= p.Xd:
+		return bad("machine.xp", "must be in [0, xd), got %v", p.Xp)
+	case !fin(p.Ra) || p.Ra < 0 || p.Ra > 0.1:
+		return bad("machine.ra", "must be in [0, 0.1] pu, got %v", p.Ra)
+	case !fin(p.XdTransient) || p.XdTransient < 0 || p.XdTransient >= p.Xd:
+		return bad("machine.xd_transient", "must be in (0, xd) when given, got %v", p.XdTransient)
+	case !fin(p.InertiaHS) || p.InertiaHS < 0:
+		return bad("machine.inertia_h_s", "must be a positive time in s when given, got %v", p.InertiaHS)
+	case !fin(p.S10) || !fin(p.S12) || p.S10 < 0 || p.S12 < 0:
+		return bad("machine.saturation", "s10 and s12 must be finite and non-negative, got %v and %v", p.S10, p.S12)
+	case (p.S10 == 0) != (p.S12 == 0):
+		return bad("machine.saturation", "give both s10 and s12 positive, or neither, got %v and %v", p.S10, p.S12)
+	case p.S10 > 0 && p.S12 <= p.S10:
+		return bad("machine.saturation.s12", "s12 (%v) must be greater than s10 (%v)", p.S12, p.S10)
+	case !fin(p.IfdRated) || p.IfdRated < 0:
+		return bad("field.rated_a", "must be a positive current when given, got %v pu of IFag", p.IfdRated)
+	case !(p.PowerFactor > 0 && p.PowerFactor <= 1):
+		return bad("rating.power_factor", "must be in (0, 1], got %v", p.PowerFactor)
+	case !pos("frequency", p.FrequencyHz):
+		return bad("rating.frequency_hz", "must be a positive frequency, got %v", p.FrequencyHz)
+	case !pos("pmax", p.PMax):
+		return bad("prime_mover.p_max_mw", "must be positive, got %v pu", p.PMax)
+	case !fin(p.PMin) || p.PMin < 0 || p.PMin >= p.PMax:
+		return bad("prime_mover.p_min_mw", "must be in [0, p_max_mw), got %v pu against p_max %v pu", p.PMin, p.PMax)
+	case !fin(p.Xe) || p.Xe < 0:
+		return bad("grid.x_external_pu", "must be a non-negative reactance in pu, got %v", p.Xe)
+	case !fin(p.MarginFraction) || p.MarginFraction < 0 || p.MarginFraction >= 1:
+		return bad("stability.margin_fraction", "must be in [0, 1), got %v", p.MarginFraction)
+	}
+	u := &Unit{p: p, pRated: p.PowerFactor, invPRated: 1 / p.PowerFactor, marginPU: p.MarginFraction * p.PowerFactor}
+	u.roundStab = p.Xq == p.Xd
+	u.hasTransient = p.XdTransient > 0 && p.InertiaHS > 0
+	if p.S10 > 0 {
+		u.satA, u.satB = SaturationAB(p.S10, p.S12)
+	}
+	if e := p.EndRegion; e != nil {
+		if len(e.P) < 2 || len(e.P) != len(e.Q) {
+			return bad("end_region.points", "need at least two points with p_mw and q_mvar, got %d", len(e.P))
+		}
+		for i := range e.P {
+			if !fin(e.P[i]) || !fin(e.Q[i]) {
+				return bad("end_region.points", "point %d is not finite", i+1)
+			}
+			if i > 0 && e.P[i] <= e.P[i-1] {
+				return bad("end_region.points", "p_mw must be strictly increasing; point %d is not above point %d", i+1, i)
+			}
+		}
+		if !fin(e.VoltageExponent) || math.Abs(e.VoltageExponent) > 10 {
+			return bad("end_region.voltage_exponent", "must be in [-10, 10], got %v", e.VoltageExponent)
+		}
+		if err := u.endRegion.Fit(e.P, e.Q); err != nil {
+			return bad("end_region.points", "%v", err)
+		}
+		u.hasEnd = true
+	}
+	if c := p.Coolant; c != nil {
+		if len(c.At) < 2 || len(c.At) != len(c.Armature) || len(c.At) != len(c.Field) {
+			return bad("coolant.points", "need at least two points, each with at, armature and field; got %d", len(c.At))
+		}
+		for i := range c.At {
+			if !fin(c.At[i]) {
+				return bad("coolant.points", "point %d: at is not finite", i+1)
+			}
+			if !(c.Armature[i] > 0 && c.Armature[i] <= 2) || !(c.Field[i] > 0 && c.Field[i] <= 2) {
+				return bad("coolant.points", "point %d: factors must be in (0, 2], got armature %v, field %v", i+1, c.Armature[i], c.Field[i])
+			}
+			if i > 0 && c.At[i] <= c.At[i-1] {
+				return bad("coolant.points", "at must be strictly increasing; point %d is not above point %d", i+1, i)
+			}
+		}
+		if err := u.coolArm.Fit(c.At, c.Armature); err != nil {
+			return bad("coolant.points", "%v", err)
+		}
+		if err := u.coolField.Fit(c.At, c.Field); err != nil {
+			return bad("coolant.points", "%v", err)
+		}
+		u.hasCoolant = true
+		u.coolLo, u.coolHi = c.At[0], c.At[len(c.At)-1]
+	}
+	u.ifdModel = u.FieldCurrent(p.PowerFactor, math.Sqrt(1-p.PowerFactor*p.PowerFactor), 1)
+	u.ifdRated = p.IfdRated
+	if u.ifdRated == 0 {
+		u.ifdRated = u.ifdModel
+	}
+	return u, nil
+}
+
+// Params returns the parameters the unit was built from.
+func (u *Unit) Params() Params { return u.p }
+
+// RatedFieldCurrent returns the continuous rated field current in pu of
+// IFag: the nameplate value when one was given, else the model's.
+func (u *Unit) RatedFieldCurrent() float64 { return u.ifdRated }
+
+// ModelRatedFieldCurrent returns the model's field current at the rated
+// point (p = power factor, q = sqrt(1 - pf^2), v = 1), in pu of IFag.
+func (u *Unit) ModelRatedFieldCurrent() float64 { return u.ifdModel }
+
+// RatedP returns rated active power in pu of rated MVA (the power factor).
+func (u *Unit) RatedP() float64 { return u.pRated }
+
+// SaturationAB returns the constants of the quadratic open-circuit
+// saturation function S(E) = B (E - A)^2 / E for E > A, from the two
+// saturation factors S(1.0) and S(1.2):
+//
+//	r = sqrt(1.2 S(1.2) / S(1.0)), A = (r - 1.2)/(r - 1), B = S(1.0)/(1 - A)^2.
+//
+// Source: IEEE Std 1110 and IEEE Std 421.5 (from memory). It needs
+// 0 < s10 and 1.2 s12 > s10.
+func SaturationAB(s10, s12 float64) (a, b float64) {
+	r := math.Sqrt(1.2 * s12 / s10)
+	a = (r - 1.2) / (r - 1)
+	b = s10 / ((1 - a) * (1 - a))
+	return a, b
+}
+
+// Saturation returns S(E), the per-unit saturation factor at air-gap
+// voltage e (pu), for this unit's saturation constants; 0 without saturation.
+func (u *Unit) Saturation(e float64) float64 {
+	if u.satB == 0 || e <= u.satA {
+		return 0
+	}
+	d := e - u.satA
+	return u.satB * d * d / e
+}
+
+// CoolantFactors returns the armature and field capability factors at
+// coolant value c, interpolated linearly and clamped at the table's ends.
+// inside is false when c lies outside the table. Without a table both
+// factors are 1.
+func (u *Unit) CoolantFactors(c float64) (armature, field float64, inside bool) {
+	if !u.hasCoolant {
+		return 1, 1, true
+	}
+	return u.coolArm.Predict(c), u.coolField.Predict(c), c >= u.coolLo && c <= u.coolHi
+}
+
+// HasCoolantTable reports whether the unit has a coolant capability table.
+func (u *Unit) HasCoolantTable() bool { return u.hasCoolant }

@@ -1,0 +1,125 @@
+package limits
+
+import "fmt"
+
+// Limit names one of the limits that bound a generator's operation.
+type Limit uint8
+
+// The limits, in the order of Result.Margins. Their String values are the
+// names used in the fleet file, the API and the metrics.
+const (
+	NoLimit            Limit = iota
+	LimitArmature            // armature (stator) winding heating
+	LimitField               // field (rotor) winding heating
+	LimitStability           // practical steady-state stability limit
+	LimitEndRegion           // stator end-region heating
+	LimitPrimeMover          // prime-mover (turbine) active-power capability
+	LimitVoltsPerHertz       // generator volts per hertz, 1.05 pu continuous
+	numLimits
+)
+
+// NumLimits is the length of Result.Margins.
+const NumLimits = int(numLimits)
+
+var limitNames = [...]string{"none", "armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz"}
+
+// String returns the limit's name: "armature", "field", "stability",
+// "end_region", "prime_mover", "volts_per_hertz" or "none".
+func (l Limit) String() string {
+	if int(l) < len(limitNames) {
+		return limitNames[l]
+	}
+	return fmt.Sprintf("Limit(%d)", uint8(l))
+}
+
+// Limits returns every limit that has a margin, in Margins order.
+func Limits() []Limit {
+	return []Limit{LimitArmature, LimitField, LimitStability, LimitEndRegion, LimitPrimeMover, LimitVoltsPerHertz}
+}
+
+// Zone is the IEC 60034-1 voltage and frequency operating zone.
+type Zone uint8
+
+const (
+	ZoneA       Zone = iota // continuous operation at rated output
+	ZoneB                   // permitted, with extra heating; limit the time spent
+	ZoneOutside             // outside both zones
+)
+
+// String returns "A", "B" or "outside".
+func (z Zone) String() string {
+	switch z {
+	case ZoneA:
+		return "A"
+	case ZoneB:
+		return "B"
+	}
+	return "outside"
+}
+
+// Bound is a value that may not exist at an operating point: a limit
+// curve that has no solution at this active power, or a quantity that
+// needs a parameter the unit lacks. V is meaningless when OK is false.
+type Bound struct {
+	V  float64
+	OK bool
+}
+
+func some(v float64) Bound { return Bound{V: v, OK: true} }
+
+// Point is one operating point, in per unit on the machine base.
+type Point struct {
+	P, Q, V float64 // active power, reactive power (pu of rated MVA), terminal voltage (pu)
+
+	F float64 // frequency, pu of rated; 0 means rated
+
+	Ifd         float64 // measured field current, pu of IFag
+	IfdMeasured bool    // Ifd holds a good measurement
+
+	Coolant    float64 // coolant quantity in the table's unit
+	HasCoolant bool    // Coolant holds a value
+}
+
+// Bounds are the limit curves at one active power and terminal voltage,
+// in pu. They do not depend on the reactive power of the point.
+type Bounds struct {
+	ArmatureUp   Bound // +sqrt((v i_max)^2 - p^2)
+	ArmatureDown Bound // -sqrt((v i_max)^2 - p^2)
+	Field        Bound // q at which the field current reaches its limit
+	Stability    Bound // theoretical steady-state stability limit (manual excitation)
+	Practical    Bound // practical stability limit (with the margin)
+	EndRegion    Bound // stator end-region curve at this voltage
+
+	QMax, QMin           Bound
+	QMaxLimit, QMinLimit Limit // which limit binds; when the bound is absent, which limit makes it so
+}
+
+// Result is the full evaluation of one operating point, in per unit.
+type Result struct {
+	Bounds
+
+	I         float64 // armature current, pu
+	IfdModel  float64 // model field current, pu of IFag
+	Ef        float64 // internal EMF behind Xd (unsaturated), pu
+	LoadAngle float64 // internal load angle, rad (q-axis ahead of the terminal voltage)
+
+	IMax, IfdMax   float64 // continuous ratings at the present coolant: armature pu, field pu IFag
+	CoolantOutside bool    // the sample's coolant value lies outside the table (clamped)
+
+	PMax Bound // min(prime-mover p_max, sqrt((v i_max)^2 - q^2)), pu
+
+	// Margins are ratios, positive inside the envelope, indexed by Limit.
+	Margins [numLimits]Bound
+
+	Binding    Limit // the capability-chart limit (armature to prime mover) with the smallest margin
+	Feasible   bool  // every bound exists at this active power
+	Infeasible Limit // when not feasible, the limit whose bound is missing
+
+	VPerHz float64 // v / f, pu
+	Zone   Zone
+
+	CCT Bound // classical-model critical clearing time, s
+}
+
+// Margin returns the margin of limit l.
+func (r *Result) Margin(l Limit) Bound { return r.Margins[l] }
