@@ -79,7 +79,7 @@ func TestInfeasibleBounds(t *testing.T) {
 		t.Errorf("weak grid at full load: feasible %v, q_min %+v, infeasible %v", r.Feasible, r.QMin, r.Infeasible)
 	}
 	for _, res := range []Result{r, u.Evaluate(Point{P: 1.2, Q: 0, V: 1}, nil)} {
-		for _, b := range []Bound{res.QMax, res.QMin, res.Field, res.Stability, res.Practical, res.PMax, res.CCT} {
+		for _, b := range []Bound{res.QMax, res.QMin, res.Field, res.Stability, res.Practical, res.PMax} {
 			if math.IsNaN(b.V) {
 				t.Errorf("NaN in a bound: %+v", b)
 			}

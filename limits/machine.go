@@ -87,6 +87,14 @@ func (u *Unit) FieldCurrent(p, q, v float64) float64 {
 	return u.field(p, q, v, false).ifd
 }
 
+// LoadAngle returns the internal load angle at (p, q, v), in radians:
+// the angle of the q axis, E_Q = V + (ra + jXq) I, ahead of the terminal
+// voltage (two-reaction theory).
+func (u *Unit) LoadAngle(p, q, v float64) float64 {
+	s := u.field(p, q, v, false)
+	return math.Atan2(s.eqI, s.eqR)
+}
+
 // stabState is the machine seen from the infinite bus, with ra = 0 and
 // unsaturated reactances, at one operating point.
 type stabState struct {

@@ -98,10 +98,9 @@ type Bounds struct {
 type Result struct {
 	Bounds
 
-	I         float64 // armature current, pu
-	IfdModel  float64 // model field current, pu of IFag
-	Ef        float64 // internal EMF behind Xd (unsaturated), pu
-	LoadAngle float64 // internal load angle, rad (q-axis ahead of the terminal voltage)
+	I        float64 // armature current, pu
+	IfdModel float64 // model field current, pu of IFag
+	Ef       float64 // internal EMF behind Xd (unsaturated), pu
 
 	IMax, IfdMax   float64 // continuous ratings at the present coolant: armature pu, field pu IFag
 	CoolantOutside bool    // the sample's coolant value lies outside the table (clamped)
@@ -117,8 +116,6 @@ type Result struct {
 
 	VPerHz float64 // v / f, pu
 	Zone   Zone
-
-	CCT Bound // classical-model critical clearing time, s
 }
 
 // Margin returns the margin of limit l.

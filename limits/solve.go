@@ -2,11 +2,6 @@ package limits
 
 import "math"
 
-// rootTol is the absolute tolerance, in pu of reactive power, to which
-// every limit curve is solved: far below the 0.1 % agreement the envelope
-// contract asks for, and cheap because the iterations converge fast.
-const rootTol = 1e-10
-
 // brent returns a root of f in the bracket [a, b], where fa = f(a) and
 // fb = f(b) have opposite signs or one is zero. It is Brent's method
 // (inverse quadratic interpolation and secant steps, safeguarded by
@@ -79,8 +74,10 @@ func brent(f func(float64) float64, a, b, fa, fb, tol float64) (root float64, ok
 	return b, true
 }
 
-// stabTol is the tolerance, pu of reactive power, of the stability
-// limits, which are found by bracketing rather than Newton steps.
+// stabTol is the tolerance, in pu of reactive power, of the stability
+// limits, which are found by bracketing rather than Newton steps: far
+// below the 0.1 % agreement the envelope contract asks for (the field
+// limit's Newton iteration stops nearer still, see fieldLimit).
 const stabTol = 1e-9
 
 // warmRoot looks for the root of an increasing function f near hint, the

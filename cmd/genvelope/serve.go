@@ -1,0 +1,86 @@
+package main
+
+import (
+	"context"
+	"flag"
+	"log/slog"
+	"os"
+	"os/signal"
+	"syscall"
+	"time"
+
+	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/server"
+)
+
+// Default listen addresses: loopback, so that a first run exposes
+// nothing; set them to reach the service from elsewhere.
+const (
+	defaultGRPCListen = "127.0.0.1:9470"
+	defaultHTTPListen = "127.0.0.1:9471"
+)
+
+func serveCommand() command {
+	return command{
+		name:    "serve",
+		summary: "run the service: telemetry over gRPC, metrics and health over HTTP",
+		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR]",
+		about: `Serves TelemetryService and FleetService (with the gRPC health protocol and
+server reflection) on --grpc-listen, and /metrics, /healthz, /readyz and
+POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
+file again; a file with errors is refused and the running fleet kept.
+SIGTERM or SIGINT stops: in-flight batches are finished and answered.`,
+		advises: true,
+		flags: func(fs *flag.FlagSet) func(e env) int {
+			fleetPath := fs.String("fleet", "", "fleet file (YAML)")
+			grpcListen := fs.String("grpc-listen", defaultGRPCListen, "gRPC listen address")
+			httpListen := fs.String("http-listen", defaultHTTPListen, "HTTP listen address (metrics, health, reload)")
+			maxBatch := fs.Int("max-batch", 10000, "most samples one request may carry")
+			maxFuture := fs.Duration("max-future", 5*time.Minute, "how far ahead of the server clock a sample may be stamped")
+			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
+			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
+			fs.Var(logFormat, "log-format", "log format: text or json")
+			return func(e env) int {
+				c := serveCommand()
+				if *fleetPath == "" {
+					return usageError(e, c, "--fleet is required")
+				}
+				var h slog.Handler = slog.NewTextHandler(e.stderr, nil)
+				if logFormat.v == "json" {
+					h = slog.NewJSONHandler(e.stderr, nil)
+				}
+				log := slog.New(h)
+				srv, err := server.New(server.Config{
+					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
+					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
+				})
+				if err != nil {
+					log.Error("cannot start", "err", err)
+					return exitUsage
+				}
+				log.Warn(fleet.Caution)
+				ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
+				defer stop()
+				hup := make(chan os.Signal, 1)
+				signal.Notify(hup, syscall.SIGHUP)
+				defer signal.Stop(hup)
+				go func() {
+					for {
+						select {
+						case <-hup:
+							_ = srv.Reload() // logged and counted by Reload
+						case <-ctx.Done():
+							return
+						}
+					}
+				}()
+				if err := srv.Run(ctx); err != nil {
+					log.Error("serve", "err", err)
+					return exitFailure
+				}
+				return exitOK
+			}
+		},
+	}
+}

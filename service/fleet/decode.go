@@ -1,0 +1,822 @@
+package fleet
+
+import (
+	"bytes"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"strconv"
+	"strings"
+
+	"go.yaml.in/yaml/v3"
+
+	"github.com/genvelope/genvelope/limits"
+)
+
+// The decoder walks the yaml.Node tree itself, so that every problem gets
+// the line it is on, and goes on after a problem so that all of them are
+// reported at once.
+//
+// Adding a block: a top-level block (alarms:, ...) is an entry in
+// topLevelKeys with a function that decodes it; a block inside a unit is an
+// entry in unitKeys. Each decoding function opens its mapping with the keys
+// it allows and reads them with the number, text and list helpers, which
+// report what is missing or wrong.
+
+type decoder struct {
+	file  string
+	diags Diagnostics
+	units []*unitCtx
+	fleet *Fleet
+}
+
+// unitCtx is the state of decoding one unit.
+type unitCtx struct {
+	d     *decoder
+	u     *Unit
+	label string          // the unit's id, or "#n" when it has none
+	bad   bool            // an error was reported for this unit
+	ok    map[string]bool // dotted paths of the values read without problems
+}
+
+// topKey is one key allowed at the top of the fleet file.
+type topKey struct {
+	name     string
+	required bool
+	decode   func(d *decoder, v *yaml.Node, line int)
+}
+
+// topLevelKeys lists the top-level blocks of a fleet file.
+func topLevelKeys() []topKey {
+	return []topKey{
+		{name: "units", required: true, decode: (*decoder).decodeUnits},
+	}
+}
+
+// unitKey is one key allowed in a unit.
+type unitKey struct {
+	name     string
+	required bool
+	decode   func(c *unitCtx, v *yaml.Node, path string, line int)
+}
+
+// unitKeys lists the keys of a unit, in the order they are decoded. The id
+// is decoded before these.
+func unitKeys() []unitKey {
+	return []unitKey{
+		{name: "id", required: true, decode: nil},
+		{name: "name", required: false, decode: (*unitCtx).decodeName},
+		{name: "site", required: false, decode: (*unitCtx).decodeSite},
+		{name: "rating", required: true, decode: (*unitCtx).decodeRating},
+		{name: "machine", required: true, decode: (*unitCtx).decodeMachine},
+		{name: "field", required: true, decode: (*unitCtx).decodeField},
+		{name: "prime_mover", required: true, decode: (*unitCtx).decodePrimeMover},
+		{name: "grid", required: false, decode: (*unitCtx).decodeGrid},
+		{name: "stability", required: false, decode: (*unitCtx).decodeStability},
+		{name: "end_region", required: false, decode: (*unitCtx).decodeEndRegion},
+		{name: "coolant", required: false, decode: (*unitCtx).decodeCoolant},
+	}
+}
+
+// maxIDLen is the longest unit id allowed.
+const maxIDLen = 64
+
+// maxNodes bounds the work of reading the units: the number of YAML
+// nodes they hold, counting an alias's target each time it is used.
+const maxNodes = 1_000_000
+
+// countNodes counts the nodes under n, aliases expanded, stopping once the
+// count exceeds limit.
+func countNodes(n *yaml.Node, limit int) int {
+	count := 0
+	var walk func(n *yaml.Node, depth int)
+	walk = func(n *yaml.Node, depth int) {
+		if count > limit || n == nil || depth > 100 {
+			return
+		}
+		count++
+		if n.Kind == yaml.AliasNode {
+			walk(n.Alias, depth+1)
+			return
+		}
+		for _, c := range n.Content {
+			walk(c, depth+1)
+		}
+	}
+	walk(n, 0)
+	return count
+}
+
+// maxPoles is the largest number of poles allowed.
+const maxPoles = 1000
+
+func (d *decoder) add(sev Severity, line int, unitID, field, format string, args ...any) {
+	d.diags = append(d.diags, Diagnostic{
+		File: d.file, Line: line, UnitID: unitID, Field: field,
+		Message: fmt.Sprintf(format, args...), Severity: sev,
+	})
+}
+
+func (d *decoder) errorf(line int, field, format string, args ...any) {
+	d.add(Error, line, "", field, format, args...)
+}
+
+func (c *unitCtx) errorf(line int, field, format string, args ...any) {
+	c.bad = true
+	c.d.add(Error, line, c.label, field, format, args...)
+}
+
+func (c *unitCtx) warnf(line int, field, format string, args ...any) {
+	c.d.add(Warning, line, c.label, field, format, args...)
+}
+
+// document decodes the whole file into f.
+func (d *decoder) document(data []byte, f *Fleet) {
+	d.fleet = f
+	dec := yaml.NewDecoder(bytes.NewReader(data))
+	var doc yaml.Node
+	err := dec.Decode(&doc)
+	if errors.Is(err, io.EOF) {
+		d.errorf(0, "", "the file is empty; it needs a units: list")
+		return
+	}
+	if err != nil {
+		line, msg := yamlError(err)
+		d.errorf(line, "", "not valid YAML (at or near this line): %s", msg)
+		return
+	}
+	var extra yaml.Node
+	if err := dec.Decode(&extra); err == nil {
+		d.errorf(extra.Line, "", "a fleet file holds one YAML document; a second one starts here (remove the '---')")
+	} else if !errors.Is(err, io.EOF) {
+		line, msg := yamlError(err)
+		d.errorf(line, "", "not valid YAML after the first document: %s", msg)
+	}
+	if doc.Kind != yaml.DocumentNode || len(doc.Content) != 1 {
+		d.errorf(doc.Line, "", "the file must hold a mapping with a units: list")
+		return
+	}
+	root := resolve(doc.Content[0])
+	if root.Kind == yaml.ScalarNode && root.Tag == "!!null" {
+		d.errorf(0, "", "the file is empty; it needs a units: list")
+		return
+	}
+	keys := topLevelKeys()
+	allowed := make([]string, len(keys))
+	for i, k := range keys {
+		allowed[i] = k.name
+	}
+	m, ok := openMapping(root, root.Line, "", allowed, d.errorf, nil)
+	if !ok {
+		return
+	}
+	for _, k := range keys {
+		v, line, present := m.get(k.name)
+		if !present {
+			if k.required {
+				d.errorf(m.line, k.name, "missing; a fleet file needs a %s: list", k.name)
+			}
+			continue
+		}
+		k.decode(d, v, line)
+	}
+}
+
+// yamlError splits a yaml parser error into a line and a message.
+func yamlError(err error) (int, string) {
+	msg := strings.TrimPrefix(err.Error(), "yaml: ")
+	var line int
+	if _, e := fmt.Sscanf(msg, "line %d:", &line); e == nil {
+		if i := strings.Index(msg, ": "); i >= 0 {
+			msg = msg[i+2:]
+		}
+	}
+	return line, msg
+}
+
+// resolve follows aliases to the node they name.
+func resolve(n *yaml.Node) *yaml.Node {
+	for i := 0; n != nil && n.Kind == yaml.AliasNode && i < 100; i++ {
+		n = n.Alias
+	}
+	if n == nil {
+		return &yaml.Node{Kind: yaml.ScalarNode, Tag: "!!null"}
+	}
+	return n
+}
+
+// describe names what a node holds, for messages.
+func describe(n *yaml.Node) string {
+	switch n.Kind {
+	case yaml.MappingNode:
+		return "a mapping"
+	case yaml.SequenceNode:
+		return "a list"
+	case yaml.ScalarNode:
+		switch n.Tag {
+		case "!!null":
+			return "nothing"
+		case "!!str":
+			return strconv.Quote(clip(n.Value))
+		case "!!bool":
+			return "the boolean " + n.Value
+		}
+		return clip(n.Value)
+	}
+	return "something else"
+}
+
+// clip shortens long text for messages.
+func clip(s string) string {
+	const maxLen = 40
+	if len(s) <= maxLen {
+		return s
+	}
+	return strings.ToValidUTF8(s[:maxLen], "") + "..."
+}
+
+// join appends key to a dotted path.
+func join(path, key string) string {
+	if path == "" {
+		return key
+	}
+	return path + "." + key
+}
+
+// mapping is an opened YAML mapping whose keys have been checked.
+type mapping struct {
+	path  string // dotted path of the mapping ("" at the top of the file or of a unit)
+	line  int    // line of the key holding the mapping
+	vals  map[string]*yaml.Node
+	keyLn map[string]int
+}
+
+// get returns the value of key, the line of the key, and whether it is present.
+func (m *mapping) get(key string) (*yaml.Node, int, bool) {
+	v, ok := m.vals[key]
+	if !ok {
+		return nil, m.line, false
+	}
+	return v, m.keyLn[key], true
+}
+
+// openMapping checks that n is a mapping whose keys are all in allowed and
+// appear once, reporting through errf. lines, when not nil, receives the
+// line of every key by dotted path.
+func openMapping(n *yaml.Node, line int, path string, allowed []string, errf func(int, string, string, ...any), lines map[string]int) (*mapping, bool) {
+	n = resolve(n)
+	if n.Kind != yaml.MappingNode {
+		what := "the file"
+		if path != "" {
+			what = "it"
+		}
+		errf(line, path, "%s must be a mapping with the keys %s; got %s", what, strings.Join(allowed, ", "), describe(n))
+		return nil, false
+	}
+	m := &mapping{path: path, line: line, vals: map[string]*yaml.Node{}, keyLn: map[string]int{}}
+	for i := 0; i+1 < len(n.Content); i += 2 {
+		kn, vn := resolve(n.Content[i]), n.Content[i+1]
+		if kn.Kind != yaml.ScalarNode || kn.Tag == "!!null" {
+			errf(kn.Line, path, "keys must be plain names; got %s (allowed keys: %s)", describe(kn), strings.Join(allowed, ", "))
+			continue
+		}
+		key := kn.Value
+		field := join(path, key)
+		if !contains(allowed, key) {
+			if key == "<<" {
+				errf(kn.Line, path, "merge keys (<<) are not supported; write the keys out (allowed keys: %s)", strings.Join(allowed, ", "))
+			} else {
+				errf(kn.Line, field, "unknown key; allowed keys here: %s", strings.Join(allowed, ", "))
+			}
+			continue
+		}
+		if first, dup := m.keyLn[key]; dup {
+			errf(kn.Line, field, "given twice; it was already given on line %d", first)
+			continue
+		}
+		m.vals[key] = vn
+		m.keyLn[key] = kn.Line
+		if lines != nil {
+			lines[field] = kn.Line
+		}
+	}
+	// An unknown or repeated key is reported; the known keys are still read.
+	return m, true
+}
+
+func contains(list []string, s string) bool {
+	for _, x := range list {
+		if x == s {
+			return true
+		}
+	}
+	return false
+}
+
+// open opens the mapping of a unit block, recording key lines.
+func (c *unitCtx) open(v *yaml.Node, path string, line int, allowed ...string) (*mapping, bool) {
+	return openMapping(v, line, path, allowed, c.errorf, c.u.lines)
+}
+
+// number reads the number at key. rule checks the value and returns ""
+// when it is allowed, else what is allowed. what says what the number is,
+// for the message when a required number is missing. ok is false when the
+// key is absent or its value wrong (which is reported).
+func (c *unitCtx) number(m *mapping, key string, required bool, what string, rule func(float64) string) (float64, bool) {
+	field := join(m.path, key)
+	v, line, present := m.get(key)
+	if !present {
+		if required {
+			c.errorf(line, field, "missing; give %s", what)
+		}
+		return 0, false
+	}
+	x, ok := c.scalarNumber(v, line, field, what)
+	if !ok {
+		return 0, false
+	}
+	if rule != nil {
+		if msg := rule(x); msg != "" {
+			c.errorf(line, field, "%s, got %s", msg, clip(resolve(v).Value))
+			return 0, false
+		}
+	}
+	c.ok[field] = true
+	return x, true
+}
+
+// scalarNumber converts a YAML scalar to a finite float64.
+func (c *unitCtx) scalarNumber(v *yaml.Node, line int, field, what string) (float64, bool) {
+	n := resolve(v)
+	if n.Kind == yaml.ScalarNode && (n.Tag == "!!int" || n.Tag == "!!float") {
+		var x float64
+		if err := n.Decode(&x); err != nil {
+			c.errorf(line, field, "must be a number (%s); got %s", what, describe(n))
+			return 0, false
+		}
+		if math.IsNaN(x) || math.IsInf(x, 0) {
+			c.errorf(line, field, "must be a finite number (%s); got %s", what, clip(n.Value))
+			return 0, false
+		}
+		return x, true
+	}
+	if n.Kind == yaml.ScalarNode && n.Tag == "!!str" && n.Style == 0 {
+		if _, err := strconv.ParseFloat(n.Value, 64); err != nil && errors.Is(err, strconv.ErrRange) {
+			c.errorf(line, field, "must be a finite number (%s); %s is out of range", what, clip(n.Value))
+			return 0, false
+		}
+	}
+	hint := ""
+	if n.Kind == yaml.ScalarNode && n.Tag == "!!str" && n.Style != 0 {
+		if _, err := strconv.ParseFloat(n.Value, 64); err == nil {
+			hint = " (remove the quotes)"
+		}
+	}
+	c.errorf(line, field, "must be a number (%s); got %s%s", what, describe(n), hint)
+	return 0, false
+}
+
+// text reads a plain scalar at key as text.
+func (c *unitCtx) text(m *mapping, key string, required bool, what string) (string, bool) {
+	field := join(m.path, key)
+	v, line, present := m.get(key)
+	if !present {
+		if required {
+			c.errorf(line, field, "missing; give %s", what)
+		}
+		return "", false
+	}
+	n := resolve(v)
+	if n.Kind != yaml.ScalarNode || n.Tag == "!!null" {
+		c.errorf(line, field, "must be text (%s); got %s", what, describe(n))
+		return "", false
+	}
+	c.ok[field] = true
+	return n.Value, true
+}
+
+// list reads the list at key.
+func (c *unitCtx) list(m *mapping, key string, required bool, what string) ([]*yaml.Node, int, bool) {
+	field := join(m.path, key)
+	v, line, present := m.get(key)
+	if !present {
+		if required {
+			c.errorf(line, field, "missing; give %s", what)
+		}
+		return nil, line, false
+	}
+	n := resolve(v)
+	if n.Kind != yaml.SequenceNode {
+		c.errorf(line, field, "must be a list (%s); got %s", what, describe(n))
+		return nil, line, false
+	}
+	return n.Content, line, true
+}
+
+// Rules for numbers; each returns "" when x is allowed.
+
+func positive(x float64) string {
+	if x > 0 {
+		return ""
+	}
+	return "must be positive"
+}
+
+func nonNegative(x float64) string {
+	if x >= 0 {
+		return ""
+	}
+	return "must not be negative"
+}
+
+func between(lo, hi float64, loOpen, hiOpen bool) func(float64) string {
+	return func(x float64) string {
+		okLo := x > lo || (!loOpen && x == lo)
+		okHi := x < hi || (!hiOpen && x == hi)
+		if okLo && okHi {
+			return ""
+		}
+		l, r := "[", "]"
+		if loOpen {
+			l = "("
+		}
+		if hiOpen {
+			r = ")"
+		}
+		return fmt.Sprintf("must be in %s%s, %s%s", l, fmtNum(lo), fmtNum(hi), r)
+	}
+}
+
+func fmtNum(x float64) string { return strconv.FormatFloat(x, 'g', -1, 64) }
+
+// decodeUnits decodes the units: list.
+func (d *decoder) decodeUnits(v *yaml.Node, line int) {
+	n := resolve(v)
+	if n.Kind != yaml.SequenceNode {
+		d.errorf(line, "units", "must be a list of units; got %s", describe(n))
+		return
+	}
+	if len(n.Content) == 0 {
+		d.errorf(line, "units", "the list is empty; a fleet file needs at least one unit")
+		return
+	}
+	firstLine := map[string]int{}
+	budget := maxNodes
+	for i, item := range n.Content {
+		if budget -= countNodes(item, budget); budget < 0 {
+			d.errorf(item.Line, "units", "the units expand to more than %d YAML nodes (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
+			return
+		}
+		c := d.decodeUnit(i, item)
+		if c == nil {
+			continue
+		}
+		d.units = append(d.units, c)
+		if c.u.ID == "" {
+			continue
+		}
+		if first, dup := firstLine[c.u.ID]; dup {
+			c.errorf(c.u.Line("id"), "id", "duplicate id; it is already used by the unit on line %d (ids must be unique)", first)
+			continue
+		}
+		firstLine[c.u.ID] = c.u.Line("id")
+		d.fleet.Units = append(d.fleet.Units, c.u)
+		d.fleet.byID[c.u.ID] = c.u
+	}
+}
+
+// decodeUnit decodes the i-th unit of the list.
+func (d *decoder) decodeUnit(i int, item *yaml.Node) *unitCtx {
+	n := resolve(item)
+	label := fmt.Sprintf("#%d", i+1)
+	if n.Kind != yaml.MappingNode {
+		d.add(Error, item.Line, label, "", "each entry of units: must be a mapping with the keys of a unit; got %s", describe(n))
+		return nil
+	}
+	u := &Unit{
+		Stability: Stability{MarginFraction: 0.10},
+		line:      item.Line,
+		lines:     map[string]int{},
+	}
+	c := &unitCtx{d: d, u: u, label: label, ok: map[string]bool{}}
+	keys := unitKeys()
+	allowed := make([]string, len(keys))
+	for i, k := range keys {
+		allowed[i] = k.name
+	}
+
+	// The id first, so that every later diagnostic names the unit. Keys
+	// are checked by a first, silent pass that only looks for it.
+	for j := 0; j+1 < len(n.Content); j += 2 {
+		if k := resolve(n.Content[j]); k.Kind == yaml.ScalarNode && k.Value == "id" {
+			if v := resolve(n.Content[j+1]); v.Kind == yaml.ScalarNode && v.Tag != "!!null" && v.Value != "" {
+				c.label = v.Value
+			}
+			break
+		}
+	}
+	m, _ := c.open(n, "", item.Line, allowed...)
+	if m == nil {
+		return c
+	}
+	if id, ok := c.text(m, "id", true, "a unique id of letters, digits, '-', '_' and '.'"); ok {
+		if msg := checkID(id); msg != "" {
+			c.errorf(u.Line("id"), "id", "%s", msg)
+		}
+		u.ID = id
+	}
+	for _, k := range keys {
+		if k.decode == nil {
+			continue
+		}
+		v, line, present := m.get(k.name)
+		if !present {
+			if k.required {
+				c.errorf(line, k.name, "missing; every unit needs %s:", k.name)
+			}
+			continue
+		}
+		k.decode(c, v, k.name, line)
+	}
+	c.crossChecks()
+	return c
+}
+
+// checkID returns "" for a valid unit id, else what is wrong.
+func checkID(id string) string {
+	if id == "" {
+		return "must not be empty; use letters, digits, '-', '_' and '.'"
+	}
+	if len(id) > maxIDLen {
+		return fmt.Sprintf("is %d characters long; at most %d are allowed", len(id), maxIDLen)
+	}
+	for _, r := range id {
+		if !(r >= 'a' && r <= 'z' || r >= 'A' && r <= 'Z' || r >= '0' && r <= '9' || r == '-' || r == '_' || r == '.') {
+			return fmt.Sprintf("contains %q; only letters, digits, '-', '_' and '.' are allowed", r)
+		}
+	}
+	return ""
+}
+
+func (c *unitCtx) decodeName(v *yaml.Node, path string, line int) {
+	m := &mapping{vals: map[string]*yaml.Node{path: v}, keyLn: map[string]int{path: line}, line: line}
+	if s, ok := c.text(m, path, false, "a display name"); ok {
+		c.u.Name = s
+	}
+}
+
+func (c *unitCtx) decodeSite(v *yaml.Node, path string, line int) {
+	m := &mapping{vals: map[string]*yaml.Node{path: v}, keyLn: map[string]int{path: line}, line: line}
+	if s, ok := c.text(m, path, false, "the site name"); ok {
+		c.u.Site = s
+	}
+}
+
+func (c *unitCtx) decodeRating(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "mva", "kv", "power_factor", "frequency_hz", "poles")
+	if !ok {
+		return
+	}
+	r := &c.u.Rating
+	r.MVA, _ = c.number(m, "mva", true, "the rated apparent power in MVA", positive)
+	r.KV, _ = c.number(m, "kv", true, "the rated line-line voltage in kV", positive)
+	r.PowerFactor, _ = c.number(m, "power_factor", true, "the rated power factor", between(0, 1, true, false))
+	r.FrequencyHz, _ = c.number(m, "frequency_hz", true, "the rated frequency in Hz", positive)
+	poles, _ := c.number(m, "poles", true, "the number of poles, a positive even integer", func(x float64) string {
+		if x > 0 && x <= maxPoles && x == math.Trunc(x) && math.Mod(x, 2) == 0 {
+			return ""
+		}
+		return fmt.Sprintf("must be a positive even integer (2 to %d)", maxPoles)
+	})
+	r.Poles = int(poles)
+}
+
+func (c *unitCtx) decodeMachine(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "rotor", "xd", "xq", "xl", "xp", "ra", "xd_transient", "inertia_h_s", "saturation")
+	if !ok {
+		return
+	}
+	mc := &c.u.Machine
+	if rotor, ok := c.text(m, "rotor", true, "the rotor kind, round or salient"); ok {
+		switch rotor {
+		case "round":
+			mc.Rotor = limits.Round
+		case "salient":
+			mc.Rotor = limits.Salient
+		default:
+			c.errorf(c.u.Line("machine.rotor"), "machine.rotor", "must be round or salient; got %q", clip(rotor))
+			delete(c.ok, "machine.rotor")
+		}
+	}
+	const pu = " in pu on the machine base"
+	mc.Xd, _ = c.number(m, "xd", true, "the unsaturated direct-axis synchronous reactance"+pu, positive)
+	mc.Xq, _ = c.number(m, "xq", false, "the quadrature-axis synchronous reactance"+pu, positive)
+	mc.Xl, _ = c.number(m, "xl", true, "the armature leakage reactance"+pu, positive)
+	mc.Xp, _ = c.number(m, "xp", false, "the Potier reactance"+pu, positive)
+	mc.Ra, _ = c.number(m, "ra", false, "the armature resistance"+pu, between(0, 0.1, false, false))
+	mc.XdTransient, _ = c.number(m, "xd_transient", false, "the direct-axis transient reactance"+pu, positive)
+	mc.InertiaHS, _ = c.number(m, "inertia_h_s", false, "the inertia constant H in s on the machine base", positive)
+	if sv, sl, present := m.get("saturation"); present {
+		sm, ok := c.open(sv, "machine.saturation", sl, "s10", "s12")
+		if ok {
+			s10, ok10 := c.number(sm, "s10", true, "the saturation factor S(1.0)", positive)
+			s12, ok12 := c.number(sm, "s12", true, "the saturation factor S(1.2)", positive)
+			if ok10 && ok12 {
+				mc.Saturation = &Saturation{S10: s10, S12: s12}
+			}
+		}
+	}
+}
+
+func (c *unitCtx) decodeField(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "air_gap_a", "rated_a")
+	if !ok {
+		return
+	}
+	c.u.Field.AirGapA, _ = c.number(m, "air_gap_a", true, "IFag, the field current in A on the air-gap line at rated voltage", positive)
+	c.u.Field.RatedA, _ = c.number(m, "rated_a", false, "the continuous rated field current in A", positive)
+}
+
+func (c *unitCtx) decodePrimeMover(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "p_max_mw", "p_min_mw")
+	if !ok {
+		return
+	}
+	c.u.PrimeMover.PMaxMW, _ = c.number(m, "p_max_mw", true, "the prime mover's largest active power in MW", positive)
+	c.u.PrimeMover.PMinMW, _ = c.number(m, "p_min_mw", true, "the prime mover's smallest continuous active power in MW", nonNegative)
+}
+
+func (c *unitCtx) decodeGrid(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "x_external_pu")
+	if !ok {
+		return
+	}
+	c.u.Grid.XExternalPU, _ = c.number(m, "x_external_pu", false, "the reactance to the infinite bus in pu on the machine base", nonNegative)
+}
+
+func (c *unitCtx) decodeStability(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "margin_fraction")
+	if !ok {
+		return
+	}
+	if x, ok := c.number(m, "margin_fraction", false, "the practical stability margin as a fraction of rated MW", between(0, 1, false, true)); ok {
+		c.u.Stability.MarginFraction = x
+	}
+}
+
+func (c *unitCtx) decodeEndRegion(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "voltage_exponent", "points")
+	if !ok {
+		return
+	}
+	e := &EndRegion{}
+	e.VoltageExponent, _ = c.number(m, "voltage_exponent", false, "the exponent k of the voltage scaling v^k", between(-10, 10, false, false))
+	items, pl, ok := c.list(m, "points", true, "at least two points {p_mw, q_mvar} with increasing p_mw")
+	if !ok {
+		return
+	}
+	field := join(path, "points")
+	good := true
+	for i, item := range items {
+		pp := fmt.Sprintf("%s[%d]", field, i+1)
+		c.u.lines[pp] = item.Line
+		pm, ok := c.open(item, pp, item.Line, "p_mw", "q_mvar")
+		if !ok {
+			good = false
+			continue
+		}
+		p, okP := c.number(pm, "p_mw", true, "the active power of the point in MW", nil)
+		q, okQ := c.number(pm, "q_mvar", true, "the lowest admissible reactive power at p_mw, in Mvar", nil)
+		if !okP || !okQ {
+			good = false
+			continue
+		}
+		e.Points = append(e.Points, EndRegionPoint{PMW: p, QMvar: q, Line: item.Line})
+	}
+	if !good {
+		return
+	}
+	if len(e.Points) < 2 {
+		c.errorf(pl, field, "has %d point(s); give at least two, with strictly increasing p_mw", len(e.Points))
+		return
+	}
+	for i := 1; i < len(e.Points); i++ {
+		if e.Points[i].PMW <= e.Points[i-1].PMW {
+			c.errorf(e.Points[i].Line, field, "point %d: p_mw %s is not above %s of point %d; p_mw must be strictly increasing",
+				i+1, fmtNum(e.Points[i].PMW), fmtNum(e.Points[i-1].PMW), i)
+			return
+		}
+	}
+	c.u.EndRegion = e
+}
+
+func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "quantity", "points")
+	if !ok {
+		return
+	}
+	co := &Coolant{}
+	var names []string
+	for _, q := range CoolantQuantities() {
+		names = append(names, string(q))
+	}
+	allowed := strings.Join(names, ", ")
+	if q, ok := c.text(m, "quantity", true, "what the table is indexed by: "+allowed); ok {
+		if !contains(names, q) {
+			c.errorf(c.u.Line("coolant.quantity"), "coolant.quantity", "unknown quantity %q; allowed: %s", clip(q), allowed)
+			delete(c.ok, "coolant.quantity")
+		}
+		co.Quantity = CoolantQuantity(q)
+	}
+	items, pl, ok := c.list(m, "points", true, "at least two points {at, armature, field} with increasing at")
+	if !ok {
+		return
+	}
+	field := join(path, "points")
+	factor := between(0, 2, true, false)
+	good := true
+	for i, item := range items {
+		pp := fmt.Sprintf("%s[%d]", field, i+1)
+		c.u.lines[pp] = item.Line
+		pm, ok := c.open(item, pp, item.Line, "at", "armature", "field")
+		if !ok {
+			good = false
+			continue
+		}
+		at, okA := c.number(pm, "at", true, "the coolant value of the point", nil)
+		arm, okR := c.number(pm, "armature", true, "the armature current factor at this coolant value", factor)
+		fld, okF := c.number(pm, "field", true, "the field current factor at this coolant value", factor)
+		if !okA || !okR || !okF {
+			good = false
+			continue
+		}
+		co.Points = append(co.Points, CoolantPoint{At: at, Armature: arm, Field: fld, Line: item.Line})
+	}
+	if !good {
+		return
+	}
+	if len(co.Points) < 2 {
+		c.errorf(pl, field, "has %d point(s); give at least two, with strictly increasing at", len(co.Points))
+		return
+	}
+	for i := 1; i < len(co.Points); i++ {
+		if co.Points[i].At <= co.Points[i-1].At {
+			c.errorf(co.Points[i].Line, field, "point %d: at %s is not above %s of point %d; at must be strictly increasing",
+				i+1, fmtNum(co.Points[i].At), fmtNum(co.Points[i-1].At), i)
+			return
+		}
+	}
+	if c.ok["coolant.quantity"] {
+		c.u.Coolant = co
+	}
+}
+
+// crossChecks checks values against each other and fills the defaults
+// that depend on other values.
+func (c *unitCtx) crossChecks() {
+	u, ok := c.u, c.ok
+	mc := &u.Machine
+	line := u.Line
+	if ok["machine.rotor"] && mc.Rotor == limits.Salient && !u.Has("machine.xq") {
+		c.errorf(line("machine"), "machine.xq", "missing; a salient-pole rotor needs xq, the quadrature-axis synchronous reactance in pu (below xd)")
+	}
+	if ok["machine.xd"] && ok["machine.xq"] {
+		switch {
+		case mc.Xq > mc.Xd:
+			c.errorf(line("machine.xq"), "machine.xq", "xq %s exceeds xd %s; xq must not be above xd", fmtNum(mc.Xq), fmtNum(mc.Xd))
+		case ok["machine.rotor"] && mc.Rotor == limits.Salient && mc.Xq >= mc.Xd:
+			c.errorf(line("machine.xq"), "machine.xq", "xq %s equals xd; a salient-pole rotor needs xq below xd", fmtNum(mc.Xq))
+		}
+	}
+	if !u.Has("machine.xq") && ok["machine.xd"] {
+		mc.Xq = mc.Xd
+	}
+	if !u.Has("machine.xp") && ok["machine.xl"] {
+		mc.Xp = mc.Xl
+	}
+	if ok["machine.xd"] {
+		for _, k := range []struct {
+			key string
+			x   float64
+		}{{"xl", mc.Xl}, {"xp", mc.Xp}, {"xd_transient", mc.XdTransient}} {
+			if f := "machine." + k.key; ok[f] && k.x >= mc.Xd {
+				c.errorf(line(f), f, "%s %s is not below xd %s; it must be smaller than xd", k.key, fmtNum(k.x), fmtNum(mc.Xd))
+			}
+		}
+	}
+	if s := mc.Saturation; s != nil && s.S12 <= s.S10 {
+		c.errorf(line("machine.saturation.s12"), "machine.saturation.s12", "s12 %s is not above s10 %s; saturation grows with voltage, so s12 must exceed s10",
+			fmtNum(s.S12), fmtNum(s.S10))
+	}
+	pm := u.PrimeMover
+	if ok["prime_mover.p_max_mw"] && ok["prime_mover.p_min_mw"] && pm.PMinMW >= pm.PMaxMW {
+		c.errorf(line("prime_mover.p_min_mw"), "prime_mover.p_min_mw", "p_min_mw %s is not below p_max_mw %s; it must be smaller",
+			fmtNum(pm.PMinMW), fmtNum(pm.PMaxMW))
+	}
+	if ok["prime_mover.p_max_mw"] && ok["rating.mva"] && pm.PMaxMW > u.Rating.MVA {
+		c.errorf(line("prime_mover.p_max_mw"), "prime_mover.p_max_mw", "p_max_mw %s is above the rated %s MVA; the prime mover cannot exceed the generator's apparent-power rating",
+			fmtNum(pm.PMaxMW), fmtNum(u.Rating.MVA))
+	}
+	u.Base = limits.Base{MVA: u.Rating.MVA, KV: u.Rating.KV, FrequencyHz: u.Rating.FrequencyHz, IFagA: u.Field.AirGapA}
+}

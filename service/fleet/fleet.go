@@ -1,0 +1,238 @@
+// Package fleet reads the fleet file: the YAML description of every
+// generator genvelope watches. It keeps each unit's values in the
+// engineering units of the file (MVA, kV, MW, Mvar, A), builds the per-unit
+// engine model of package limits for it, and reports every problem it finds
+// with the file line it comes from.
+//
+// A fleet file has one top-level key, units:, a list of units. Each unit
+// has the keys id, name, site, rating, machine, field, prime_mover, grid,
+// stability, end_region and coolant; see deploy/examples/fleet.yaml.
+package fleet
+
+import (
+	"fmt"
+	"os"
+	"strings"
+
+	"github.com/genvelope/genvelope/limits"
+)
+
+// Caution is the sentence every output that gives numbers about operating
+// a machine carries: command-line reports, charts and web pages.
+const Caution = "genvelope advises only: the manufacturer's data, local grid codes and licensed engineers decide how a machine is operated and protected."
+
+// Fleet is every unit of one fleet file.
+type Fleet struct {
+	File  string  // the name the fleet was parsed under
+	Units []*Unit // in file order
+
+	byID map[string]*Unit
+}
+
+// Unit returns the unit with the given id, or nil.
+func (f *Fleet) Unit(id string) *Unit {
+	if f == nil {
+		return nil
+	}
+	return f.byID[id]
+}
+
+// IDs returns the ids of the units in file order.
+func (f *Fleet) IDs() []string {
+	if f == nil {
+		return nil
+	}
+	ids := make([]string, 0, len(f.Units))
+	for _, u := range f.Units {
+		ids = append(ids, u.ID)
+	}
+	return ids
+}
+
+// Unit is one generator of the fleet file. The values are those of the
+// file in engineering units, with the defaults filled in. Model is the
+// engine model in per unit on the machine base; it is nil when the unit has
+// errors.
+type Unit struct {
+	ID   string
+	Name string // display name; "" when not given (see DisplayName)
+	Site string // "" when not given
+
+	Rating     Rating
+	Machine    Machine
+	Field      Field
+	PrimeMover PrimeMover
+	Grid       Grid
+	Stability  Stability
+	EndRegion  *EndRegion // nil when not given
+	Coolant    *Coolant   // nil when not given
+
+	Base  limits.Base  // converts between the units of the file and per unit
+	Model *limits.Unit // the engine model; nil when the unit has errors
+
+	line  int            // line of the unit's list entry
+	lines map[string]int // dotted key path -> line of the key
+}
+
+// DisplayName returns the name, or the id when no name is given.
+func (u *Unit) DisplayName() string {
+	if u.Name != "" {
+		return u.Name
+	}
+	return u.ID
+}
+
+// Line returns the line of the key at the dotted path field (for example
+// "rating.mva" or "end_region.points[2].p_mw", points counted from 1). For
+// a key that is absent it returns the line of the nearest enclosing key
+// that is present, and at worst the line where the unit starts.
+func (u *Unit) Line(field string) int {
+	for field != "" {
+		if l, ok := u.lines[field]; ok {
+			return l
+		}
+		i := strings.LastIndexAny(field, ".[")
+		if i < 0 {
+			break
+		}
+		field = field[:i]
+	}
+	return u.line
+}
+
+// Has reports whether the key at the dotted path field is in the file (as
+// opposed to taking its default).
+func (u *Unit) Has(field string) bool {
+	_, ok := u.lines[field]
+	return ok
+}
+
+// Rating is the nameplate rating.
+type Rating struct {
+	MVA         float64 // rated apparent power
+	KV          float64 // rated line-line terminal voltage
+	PowerFactor float64 // rated power factor, (0, 1]
+	FrequencyHz float64 // rated frequency
+	Poles       int     // number of poles, positive and even
+}
+
+// RatedMW returns the rated active power, MVA times power factor.
+func (r Rating) RatedMW() float64 { return r.MVA * r.PowerFactor }
+
+// SpeedRPM returns the synchronous speed, 120 f / poles.
+func (r Rating) SpeedRPM() float64 { return 120 * r.FrequencyHz / float64(r.Poles) }
+
+// Machine holds the reactances and constants, in pu on the machine base.
+type Machine struct {
+	Rotor       limits.Rotor
+	Xd          float64 // unsaturated direct-axis synchronous reactance
+	Xq          float64 // quadrature-axis synchronous reactance (xd when not given on a round rotor)
+	Xl          float64 // armature leakage reactance
+	Xp          float64 // Potier reactance (xl when not given)
+	Ra          float64 // armature resistance (0 when not given)
+	XdTransient float64 // direct-axis transient reactance; 0 when not given
+	InertiaHS   float64 // inertia constant H on machine base, s; 0 when not given
+	Saturation  *Saturation
+}
+
+// Saturation holds the open-circuit saturation factors S(1.0) and S(1.2).
+type Saturation struct {
+	S10, S12 float64
+}
+
+// Field describes the field winding in amperes.
+type Field struct {
+	AirGapA float64 // IFag: field current on the air-gap line at rated voltage
+	RatedA  float64 // continuous rated field current; 0 when not given
+}
+
+// PrimeMover holds the turbine's active-power range.
+type PrimeMover struct {
+	PMaxMW, PMinMW float64
+}
+
+// Grid describes the connection to the system.
+type Grid struct {
+	XExternalPU float64 // reactance to the infinite bus, pu on machine base; 0 when not given
+}
+
+// Stability holds the settings of the practical stability limit.
+type Stability struct {
+	MarginFraction float64 // margin as a fraction of rated MW; 0.10 when not given
+}
+
+// EndRegion is the maker's stator end-region curve.
+type EndRegion struct {
+	VoltageExponent float64 // the curve scales with v^k; 0 when not given
+	Points          []EndRegionPoint
+}
+
+// EndRegionPoint is one point of the end-region curve.
+type EndRegionPoint struct {
+	PMW, QMvar float64
+	Line       int
+}
+
+// CoolantQuantity names what a coolant table is indexed by.
+type CoolantQuantity string
+
+// The coolant quantities a fleet file may name.
+const (
+	HydrogenPressureKPa CoolantQuantity = "hydrogen_pressure_kpa"
+	ColdGasC            CoolantQuantity = "cold_gas_c"
+	AmbientC            CoolantQuantity = "ambient_c"
+)
+
+// CoolantQuantities returns the allowed coolant quantities.
+func CoolantQuantities() []CoolantQuantity {
+	return []CoolantQuantity{HydrogenPressureKPa, ColdGasC, AmbientC}
+}
+
+// Unit returns the engineering unit of the quantity: "kPa" or "°C".
+func (q CoolantQuantity) Unit() string {
+	if q == HydrogenPressureKPa {
+		return "kPa"
+	}
+	return "°C"
+}
+
+// Coolant is a capability table against a coolant quantity.
+type Coolant struct {
+	Quantity CoolantQuantity
+	Points   []CoolantPoint
+}
+
+// CoolantPoint is one row of the coolant table: the factors multiplying
+// the armature and field continuous ratings at coolant value At.
+type CoolantPoint struct {
+	At, Armature, Field float64
+	Line                int
+}
+
+// Load reads and parses the fleet file at path. The error is for a file
+// that cannot be read; problems in its content are in the Diagnostics.
+func Load(path string) (*Fleet, Diagnostics, error) {
+	data, err := os.ReadFile(path)
+	if err != nil {
+		return nil, nil, fmt.Errorf("fleet file: %w", err)
+	}
+	f, ds := Parse(path, data)
+	return f, ds, nil
+}
+
+// Parse parses a fleet file's content; name is used in the diagnostics.
+// It collects every problem it finds, in line order. The Fleet is never
+// nil: it holds every unit that could be read, and a unit with errors has
+// a nil Model. Use the fleet only when the Diagnostics have no errors.
+func Parse(name string, data []byte) (*Fleet, Diagnostics) {
+	d := &decoder{file: name}
+	f := &Fleet{File: name, byID: map[string]*Unit{}}
+	d.document(data, f)
+	for _, c := range d.units {
+		if !c.bad {
+			d.build(c)
+		}
+	}
+	d.diags.sortByLine()
+	return f, d.diags
+}

@@ -1,0 +1,432 @@
+package fleet
+
+import (
+	"fmt"
+	"math"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+	"testing"
+
+	"github.com/genvelope/genvelope/limits"
+)
+
+func readGood(t testing.TB) string {
+	t.Helper()
+	data, err := os.ReadFile(filepath.Join("testdata", "good.yaml"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	return string(data)
+}
+
+// want is one expected diagnostic.
+type want struct {
+	line  int
+	field string
+	sev   Severity
+	text  string // a part of the message
+}
+
+// edit replaces the only occurrence of old in s with new.
+func edit(t *testing.T, s, old, new string) string {
+	t.Helper()
+	if n := strings.Count(s, old); n != 1 {
+		t.Fatalf("edit: %q occurs %d times in the base file", old, n)
+	}
+	return strings.Replace(s, old, new, 1)
+}
+
+func TestParseGood(t *testing.T) {
+	f, ds := Parse("good.yaml", []byte(readGood(t)))
+	if len(ds) != 0 {
+		t.Fatalf("good file: want no diagnostics, got\n%s", ds)
+	}
+	if got := f.IDs(); strings.Join(got, ",") != "ridge-2,hydro-1" {
+		t.Fatalf("ids = %v", got)
+	}
+	r := f.Unit("ridge-2")
+	h := f.Unit("hydro-1")
+	if r == nil || h == nil || f.Unit("nope") != nil {
+		t.Fatal("lookup by id is wrong")
+	}
+	if r.Model == nil || h.Model == nil {
+		t.Fatal("units without errors must have a model")
+	}
+	tests := []struct {
+		name      string
+		got, want float64
+	}{
+		{"ridge mva", r.Rating.MVA, 247},
+		{"ridge base kv", r.Base.KV, 15.75},
+		{"ridge base IFag", r.Base.IFagA, 620},
+		{"ridge base frequency", r.Base.FrequencyHz, 50},
+		{"ridge xq given", r.Machine.Xq, 2.0},
+		{"ridge xp given", r.Machine.Xp, 0.18},
+		{"ridge pmax pu", r.Model.Params().PMax, 210.0 / 247},
+		{"ridge pmin pu", r.Model.Params().PMin, 60.0 / 247},
+		{"ridge rated field pu", r.Model.RatedFieldCurrent(), 1860.0 / 620},
+		{"ridge end-region q pu", r.Model.Params().EndRegion.Q[0], -120.0 / 247},
+		{"ridge coolant at", r.Model.Params().Coolant.At[1], 414},
+		{"ridge xe", r.Model.Params().Xe, 0.22},
+		{"hydro xp defaults to xl", h.Machine.Xp, 0.15},
+		{"hydro ra defaults to 0", h.Machine.Ra, 0},
+		{"hydro margin defaults to 0.10", h.Model.Params().MarginFraction, 0.10},
+		{"hydro xe defaults to 0", h.Model.Params().Xe, 0},
+		{"hydro rated field from model", h.Model.RatedFieldCurrent(), h.Model.ModelRatedFieldCurrent()},
+		{"hydro poles", float64(h.Rating.Poles), 36},
+		{"hydro speed rpm", h.Rating.SpeedRPM(), 120 * 50 / 36.0},
+	}
+	for _, tc := range tests {
+		if math.Abs(tc.got-tc.want) > 1e-12 {
+			t.Errorf("%s = %v, want %v", tc.name, tc.got, tc.want)
+		}
+	}
+	if h.Machine.Rotor != limits.Salient || r.Machine.Rotor != limits.Round {
+		t.Error("rotor kinds are wrong")
+	}
+	if r.Coolant.Quantity != HydrogenPressureKPa || r.Coolant.Quantity.Unit() != "kPa" {
+		t.Error("coolant quantity is wrong")
+	}
+	if r.DisplayName() != "Ridge unit 2" || h.DisplayName() != "hydro-1" || r.Site != "ridge" {
+		t.Error("names are wrong")
+	}
+	lines := []struct {
+		field string
+		line  int
+	}{
+		{"rating.mva", 6},
+		{"machine.saturation.s12", 22},
+		{"machine.saturation", 20},
+		{"end_region.points[2].p_mw", 37},
+		{"end_region.points", 35},
+		{"coolant.points[2]", 43},
+		{"grid.x_external_pu", 30},
+		{"stability.margin_fraction", 32},
+		{"machine.nothing_here", 11}, // absent key: its block
+		{"", 2},                      // nothing: the unit
+	}
+	for _, tc := range lines {
+		if got := r.Line(tc.field); got != tc.line {
+			t.Errorf("Line(%q) = %d, want %d", tc.field, got, tc.line)
+		}
+	}
+	if h.Has("machine.xp") || !h.Has("machine.xq") {
+		t.Error("Has is wrong")
+	}
+}
+
+func TestParseExample(t *testing.T) {
+	path := filepath.Join("..", "..", "deploy", "examples", "fleet.yaml")
+	f, ds, err := Load(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(ds) != 0 {
+		t.Fatalf("%s: want no diagnostics, got\n%s", path, ds)
+	}
+	kinds := map[limits.Rotor]int{}
+	quantities := map[CoolantQuantity]bool{}
+	for _, u := range f.Units {
+		kinds[u.Machine.Rotor]++
+		if u.Coolant != nil {
+			quantities[u.Coolant.Quantity] = true
+		}
+		if u.Model == nil {
+			t.Errorf("%s: no model", u.ID)
+		}
+	}
+	if kinds[limits.Salient] == 0 || kinds[limits.Round] == 0 || !quantities[HydrogenPressureKPa] || !quantities[AmbientC] {
+		t.Errorf("the example should have round and salient units and hydrogen and ambient tables: %v %v", kinds, quantities)
+	}
+}
+
+func TestLoadMissingFile(t *testing.T) {
+	_, _, err := Load(filepath.Join(t.TempDir(), "absent.yaml"))
+	if err == nil || !os.IsNotExist(err) && !strings.Contains(err.Error(), "no such file") {
+		t.Fatalf("want a not-exist error, got %v", err)
+	}
+}
+
+// TestParseRules checks one bad file per rule: the exact diagnostics, with
+// line and field.
+func TestParseRules(t *testing.T) {
+	base := readGood(t)
+	const (
+		E = Error
+		W = Warning
+	)
+	tests := []struct {
+		name string
+		file func(t *testing.T) string
+		want []want
+	}{
+		{"unknown unit key", func(t *testing.T) string { return edit(t, base, "    site: ridge", "    sight: ridge") },
+			[]want{{4, "sight", E, "unknown key; allowed keys here: id, name, site, rating"}}},
+		{"unknown nested key", func(t *testing.T) string { return edit(t, base, "      xl: 0.16", "      xll: 0.16") },
+			[]want{{15, "machine.xll", E, "allowed keys here: rotor, xd, xq, xl"}, {11, "machine.xl", E, "missing"}}},
+		{"missing required key", func(t *testing.T) string { return edit(t, base, "      kv: 15.75\n", "") },
+			[]want{{5, "rating.kv", E, "missing; give the rated line-line voltage in kV"}}},
+		{"missing block", func(t *testing.T) string {
+			return edit(t, base, "    field: {air_gap_a: 680}\n", "")
+		}, []want{{44, "field", E, "missing; every unit needs field:"}}},
+		{"missing id", func(t *testing.T) string { return edit(t, base, "  - id: hydro-1\n    rating:", "  - rating:") },
+			[]want{{44, "id", E, "missing; give a unique id"}}},
+		{"quoted number", func(t *testing.T) string { return edit(t, base, "mva: 247", `mva: "247"`) },
+			[]want{{6, "rating.mva", E, `must be a number (the rated apparent power in MVA); got "247" (remove the quotes)`}}},
+		{"string for number", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd: abc") },
+			[]want{{13, "machine.xd", E, `must be a number`}}},
+		{"list for number", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd: [2.1]") },
+			[]want{{13, "machine.xd", E, `got a list`}}},
+		{"null for number", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd:") },
+			[]want{{13, "machine.xd", E, `got nothing`}}},
+		{"nan", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd: .nan") },
+			[]want{{13, "machine.xd", E, "must be a finite number"}}},
+		{"inf", func(t *testing.T) string { return edit(t, base, "mva: 247", "mva: .inf") },
+			[]want{{6, "rating.mva", E, "must be a finite number"}}},
+		{"huge number", func(t *testing.T) string { return edit(t, base, "mva: 247", "mva: 1e400") },
+			[]want{{6, "rating.mva", E, "out of range"}}},
+		{"zero mva", func(t *testing.T) string { return edit(t, base, "mva: 247", "mva: 0") },
+			[]want{{6, "rating.mva", E, "must be positive, got 0"}}},
+		{"negative kv", func(t *testing.T) string { return edit(t, base, "kv: 15.75", "kv: -15.75") },
+			[]want{{7, "rating.kv", E, "must be positive, got -15.75"}}},
+		{"power factor above 1", func(t *testing.T) string { return edit(t, base, "power_factor: 0.85", "power_factor: 1.2") },
+			[]want{{8, "rating.power_factor", E, "must be in (0, 1], got 1.2"}}},
+		{"power factor 0", func(t *testing.T) string { return edit(t, base, "power_factor: 0.85", "power_factor: 0") },
+			[]want{{8, "rating.power_factor", E, "must be in (0, 1]"}}},
+		{"frequency 0", func(t *testing.T) string {
+			return edit(t, base, "frequency_hz: 50\n      poles", "frequency_hz: 0\n      poles")
+		},
+			[]want{{9, "rating.frequency_hz", E, "must be positive"}}},
+		{"odd poles", func(t *testing.T) string { return edit(t, base, "poles: 2\n", "poles: 3\n") },
+			[]want{{10, "rating.poles", E, "must be a positive even integer"}}},
+		{"fractional poles", func(t *testing.T) string { return edit(t, base, "poles: 2\n", "poles: 2.5\n") },
+			[]want{{10, "rating.poles", E, "must be a positive even integer"}}},
+		{"zero poles", func(t *testing.T) string { return edit(t, base, "poles: 36", "poles: 0") },
+			[]want{{45, "rating.poles", E, "must be a positive even integer"}}},
+		{"bad rotor", func(t *testing.T) string { return edit(t, base, "rotor: round", "rotor: square") },
+			[]want{{12, "machine.rotor", E, `must be round or salient; got "square"`}}},
+		{"xq above xd", func(t *testing.T) string { return edit(t, base, "xq: 2.0", "xq: 2.2") },
+			[]want{{14, "machine.xq", E, "xq 2.2 exceeds xd 2.1"}}},
+		{"salient without xq", func(t *testing.T) string { return edit(t, base, "      xq: 0.66\n", "") },
+			[]want{{46, "machine.xq", E, "a salient-pole rotor needs xq"}}},
+		{"salient xq equal to xd", func(t *testing.T) string { return edit(t, base, "xq: 0.66", "xq: 1.05") },
+			[]want{{49, "machine.xq", E, "a salient-pole rotor needs xq below xd"}}},
+		{"zero leakage", func(t *testing.T) string { return edit(t, base, "xl: 0.16", "xl: 0") },
+			[]want{{15, "machine.xl", E, "must be positive"}}},
+		{"negative xd", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd: -2.1") },
+			[]want{{13, "machine.xd", E, "must be positive"}}},
+		{"leakage above xd", func(t *testing.T) string { return edit(t, base, "xl: 0.15", "xl: 1.5") },
+			[]want{{50, "machine.xl", E, "xl 1.5 is not below xd 1.05"}}},
+		{"transient above xd", func(t *testing.T) string { return edit(t, base, "xd_transient: 0.25", "xd_transient: 2.5") },
+			[]want{{18, "machine.xd_transient", E, "not below xd"}}},
+		{"negative inertia", func(t *testing.T) string { return edit(t, base, "inertia_h_s: 4.5", "inertia_h_s: -4.5") },
+			[]want{{19, "machine.inertia_h_s", E, "must be positive"}}},
+		{"ra too large", func(t *testing.T) string { return edit(t, base, "ra: 0.002", "ra: 0.2") },
+			[]want{{17, "machine.ra", E, "must be in [0, 0.1]"}}},
+		{"s12 not above s10", func(t *testing.T) string { return edit(t, base, "s12: 0.32", "s12: 0.05") },
+			[]want{{22, "machine.saturation.s12", E, "s12 0.05 is not above s10 0.09"}}},
+		{"s12 missing", func(t *testing.T) string { return edit(t, base, "        s12: 0.32\n", "") },
+			[]want{{20, "machine.saturation.s12", E, "missing"}}},
+		{"duplicate id", func(t *testing.T) string { return edit(t, base, "id: hydro-1", "id: ridge-2") },
+			[]want{{44, "id", E, "duplicate id; it is already used by the unit on line 2"}}},
+		{"invalid id", func(t *testing.T) string { return edit(t, base, "id: ridge-2", "id: ridge 2") },
+			[]want{{2, "id", E, `contains ' '`}}},
+		{"duplicate key", func(t *testing.T) string {
+			return edit(t, base, "      mva: 247\n", "      mva: 247\n      mva: 250\n")
+		},
+			[]want{{7, "rating.mva", E, "given twice; it was already given on line 6"}}},
+		{"text for a block", func(t *testing.T) string {
+			return edit(t, base, "    grid:\n      x_external_pu: 0.22\n", "    grid: strong\n")
+		},
+			[]want{{29, "grid", E, `must be a mapping with the keys x_external_pu; got "strong"`}}},
+		{"mapping for text", func(t *testing.T) string { return edit(t, base, "name: Ridge unit 2", "name: {a: 1}") },
+			[]want{{3, "name", E, "must be text"}}},
+		{"margin 1", func(t *testing.T) string { return edit(t, base, "margin_fraction: 0.10", "margin_fraction: 1") },
+			[]want{{32, "stability.margin_fraction", E, "must be in [0, 1)"}}},
+		{"negative external reactance", func(t *testing.T) string { return edit(t, base, "x_external_pu: 0.22", "x_external_pu: -0.22") },
+			[]want{{30, "grid.x_external_pu", E, "must not be negative"}}},
+		{"end region not increasing", func(t *testing.T) string {
+			return edit(t, base, "{p_mw: 100, q_mvar: -100}", "{p_mw: 0, q_mvar: -100}")
+		},
+			[]want{{37, "end_region.points", E, "point 2: p_mw 0 is not above 0 of point 1"}}},
+		{"end region one point", func(t *testing.T) string {
+			return edit(t, base, "        - {p_mw: 100, q_mvar: -100}\n        - {p_mw: 210, q_mvar: -60}\n", "")
+		}, []want{{35, "end_region.points", E, "has 1 point(s); give at least two"}}},
+		{"end region point missing q", func(t *testing.T) string { return edit(t, base, "{p_mw: 100, q_mvar: -100}", "{p_mw: 100}") },
+			[]want{{37, "end_region.points[2].q_mvar", E, "missing"}}},
+		{"end region not a list", func(t *testing.T) string {
+			return edit(t, base, "      points:\n        - {p_mw: 0", "      points: 3\n      pp:\n        - {p_mw: 0")
+		}, []want{{35, "end_region.points", E, "must be a list"}, {36, "end_region.pp", E, "unknown key"}}},
+		{"coolant not increasing", func(t *testing.T) string { return edit(t, base, "{at: 414,", "{at: 200,") },
+			[]want{{43, "coolant.points", E, "point 2: at 200 is not above 200 of point 1"}}},
+		{"coolant one point", func(t *testing.T) string {
+			return edit(t, base, "        - {at: 414, armature: 1.0, field: 1.0}\n", "")
+		},
+			[]want{{41, "coolant.points", E, "has 1 point(s)"}}},
+		{"coolant factor zero", func(t *testing.T) string { return edit(t, base, "armature: 0.86", "armature: 0") },
+			[]want{{42, "coolant.points[1].armature", E, "must be in (0, 2]"}}},
+		{"unknown coolant quantity", func(t *testing.T) string { return edit(t, base, "quantity: hydrogen_pressure_kpa", "quantity: helium") },
+			[]want{{40, "coolant.quantity", E, `unknown quantity "helium"; allowed: hydrogen_pressure_kpa, cold_gas_c, ambient_c`}}},
+		{"p_min not below p_max", func(t *testing.T) string { return edit(t, base, "p_min_mw: 60", "p_min_mw: 210") },
+			[]want{{28, "prime_mover.p_min_mw", E, "p_min_mw 210 is not below p_max_mw 210"}}},
+		{"p_max above rated MVA", func(t *testing.T) string { return edit(t, base, "p_max_mw: 110", "p_max_mw: 130") },
+			[]want{{52, "prime_mover.p_max_mw", E, "p_max_mw 130 is above the rated 120 MVA"}}},
+		{"rated point outside envelope", func(t *testing.T) string { return edit(t, base, "rated_a: 1860", "rated_a: 1500") },
+			[]want{
+				{25, "field.rated_a", E, "the rated point (209.9 MW, 130.1 Mvar at 15.75 kV) is outside the unit's own envelope: the field limit allows at most"},
+				{25, "field.rated_a", W, "the nameplate rated field current 1500 A is -"},
+			}},
+		{"rated field far from model", func(t *testing.T) string { return edit(t, base, "rated_a: 1860", "rated_a: 2100") },
+			[]want{{25, "field.rated_a", W, "the nameplate rated field current 2100 A is +13."}}},
+		{"empty units", func(*testing.T) string { return "units: []\n" },
+			[]want{{1, "units", E, "the list is empty"}}},
+		{"null units", func(*testing.T) string { return "# a fleet\nunits:\n" },
+			[]want{{2, "units", E, "must be a list of units; got nothing"}}},
+		{"no units key", func(*testing.T) string { return "unit:\n  - id: a\n" },
+			[]want{{1, "unit", E, "unknown key; allowed keys here: units"}, {1, "units", E, "missing; a fleet file needs a units: list"}}},
+		{"empty file", func(*testing.T) string { return "" },
+			[]want{{0, "", E, "the file is empty"}}},
+		{"comments only", func(*testing.T) string { return "# nothing yet\n" },
+			[]want{{0, "", E, "the file is empty"}}},
+		{"not a mapping", func(*testing.T) string { return "- a\n- b\n" },
+			[]want{{1, "", E, "the file must be a mapping with the keys units; got a list"}}},
+		{"unit not a mapping", func(*testing.T) string { return "units:\n  - ridge-2\n" },
+			[]want{{2, "", E, "each entry of units: must be a mapping"}}},
+		{"yaml syntax", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd: [2.1") },
+			[]want{{12, "", E, "not valid YAML"}}}, // the YAML parser reports the line before
+		{"two documents", func(t *testing.T) string { return base + "---\nunits: []\n" },
+			[]want{{53, "", E, "a fleet file holds one YAML document"}}},
+		{"merge key", func(t *testing.T) string { return edit(t, base, "      rotor: round\n", "      <<: {rotor: round}\n") },
+			[]want{{12, "machine", E, "merge keys (<<) are not supported"}, {11, "machine.rotor", E, "missing"}}},
+	}
+	for _, tc := range tests {
+		t.Run(tc.name, func(t *testing.T) {
+			_, ds := Parse("bad.yaml", []byte(tc.file(t)))
+			if len(ds) != len(tc.want) {
+				t.Fatalf("want %d diagnostics, got %d:\n%s", len(tc.want), len(ds), ds)
+			}
+			// Match regardless of order; the order is checked below.
+			got := append(Diagnostics(nil), ds...)
+			for _, w := range tc.want {
+				found := -1
+				for i, d := range got {
+					if d.Line == w.line && d.Field == w.field && d.Severity == w.sev && strings.Contains(d.Message, w.text) {
+						found = i
+						break
+					}
+				}
+				if found < 0 {
+					t.Errorf("missing diagnostic line %d field %q %v containing %q; got\n%s", w.line, w.field, w.sev, w.text, ds)
+					continue
+				}
+				got = append(got[:found], got[found+1:]...)
+			}
+			if !sort.SliceIsSorted(ds, func(i, j int) bool { return ds[i].Line < ds[j].Line }) {
+				t.Errorf("diagnostics not in line order:\n%s", ds)
+			}
+		})
+	}
+}
+
+func TestParseCollectsAll(t *testing.T) {
+	base := readGood(t)
+	s := strings.NewReplacer(
+		"mva: 247", "mva: -1",
+		"xd: 2.1", "xd: x",
+		"p_min_mw: 60", "p_min_mw: -5",
+		"quantity: hydrogen_pressure_kpa", "quantity: steam",
+		"poles: 36", "poles: 35",
+	).Replace(base)
+	_, ds := Parse("bad.yaml", []byte(s))
+	wantLines := []int{6, 13, 28, 40, 45}
+	if len(ds) != len(wantLines) {
+		t.Fatalf("want %d diagnostics, got\n%s", len(wantLines), ds)
+	}
+	for i, d := range ds {
+		if d.Line != wantLines[i] || d.Severity != Error {
+			t.Errorf("diagnostic %d: line %d (%v), want line %d error", i, d.Line, d.Severity, wantLines[i])
+		}
+	}
+	if !ds.HasErrors() || ds.Count(Error) != 5 || ds.Count(Warning) != 0 {
+		t.Errorf("counts are wrong")
+	}
+}
+
+func TestDiagnosticString(t *testing.T) {
+	tests := []struct {
+		d    Diagnostic
+		want string
+	}{
+		{Diagnostic{File: "f.yaml", Line: 3, UnitID: "a-1", Field: "rating.mva", Message: "must be positive, got 0"},
+			`f.yaml:3: unit "a-1": rating.mva: must be positive, got 0`},
+		{Diagnostic{File: "f.yaml", Line: 1, Field: "units", Message: "the list is empty"},
+			`f.yaml:1: units: the list is empty`},
+		{Diagnostic{File: "f.yaml", Message: "the file is empty"},
+			`f.yaml: the file is empty`},
+		{Diagnostic{File: "f.yaml", Line: 9, UnitID: "b", Field: "field.rated_a", Message: "far off", Severity: Warning},
+			`f.yaml:9: unit "b": field.rated_a: warning: far off`},
+	}
+	for _, tc := range tests {
+		if got := tc.d.String(); got != tc.want {
+			t.Errorf("got  %s\nwant %s", got, tc.want)
+		}
+	}
+}
+
+// FuzzParse checks that no input makes Parse panic, that the diagnostics
+// come in line order, and that a file without errors yields models.
+func FuzzParse(f *testing.F) {
+	f.Add([]byte(readGood(f)))
+	if ex, err := os.ReadFile(filepath.Join("..", "..", "deploy", "examples", "fleet.yaml")); err == nil {
+		f.Add(ex)
+	}
+	f.Add([]byte("units: []\n"))
+	f.Add([]byte("units:\n  - id: a\n    rating: &r {mva: 1, kv: 1, power_factor: 1, frequency_hz: 50, poles: 2}\n  - id: b\n    rating: *r\n"))
+	f.Add([]byte("units:\n  - {id: x, machine: {rotor: salient, xd: .nan}}\n"))
+	f.Add([]byte("a: &a [*a]\n"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		fl, ds := Parse("fuzz.yaml", data)
+		if fl == nil {
+			t.Fatal("nil fleet")
+		}
+		for i, d := range ds {
+			_ = d.String()
+			if i > 0 && ds[i-1].Line > d.Line {
+				t.Fatalf("diagnostics out of order:\n%s", ds)
+			}
+		}
+		if !ds.HasErrors() {
+			if len(fl.Units) == 0 {
+				t.Fatal("no errors but no units")
+			}
+			for _, u := range fl.Units {
+				if u.Model == nil {
+					t.Fatalf("unit %q: no errors but no model", u.ID)
+				}
+			}
+		}
+	})
+}
+
+func TestParseAliasExpansionIsBounded(t *testing.T) {
+	var b strings.Builder
+	b.WriteString("units:\n  - id: u0\n    end_region:\n      points: &p\n")
+	for i := 0; i < 2000; i++ {
+		fmt.Fprintf(&b, "        - {p_mw: %d, q_mvar: -1}\n", i)
+	}
+	for i := 1; i < 600; i++ {
+		fmt.Fprintf(&b, "  - {id: u%d, end_region: {points: *p}}\n", i)
+	}
+	_, ds := Parse("big.yaml", []byte(b.String()))
+	found := false
+	for _, d := range ds {
+		if d.Field == "units" && strings.Contains(d.Message, "expand to more than") {
+			found = true
+		}
+	}
+	if !found {
+		t.Fatalf("want a diagnostic about alias expansion; got %d diagnostics", len(ds))
+	}
+}

@@ -1,0 +1,240 @@
+// Package server runs genvelope: the gRPC services on one listener, the
+// HTTP endpoints (/metrics, /healthz, /readyz, /-/reload) on another,
+// fleet reloads, and an orderly stop.
+package server
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"net/http/pprof"
+	"sync"
+	"sync/atomic"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/health"
+	healthpb "google.golang.org/grpc/health/grpc_health_v1"
+	"google.golang.org/grpc/reflection"
+
+	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/metrics"
+	"github.com/genvelope/genvelope/service/rpc"
+)
+
+// Config is what a server needs to start.
+type Config struct {
+	FleetPath  string // the fleet file, read at start and on every reload
+	GRPCListen string // e.g. "127.0.0.1:9470"
+	HTTPListen string // e.g. "127.0.0.1:9471"
+
+	Ingest   ingest.Options
+	MaxBatch int  // samples per request; default rpc.DefaultMaxBatch
+	Pprof    bool // serve /debug/pprof/ on the HTTP listener
+
+	// ShutdownGrace bounds how long a stop waits for in-flight requests
+	// before closing what is left. Default 10 s.
+	ShutdownGrace time.Duration
+
+	Logger *slog.Logger
+}
+
+// Server is a running genvelope.
+type Server struct {
+	cfg    Config
+	log    *slog.Logger
+	store  *ingest.Store
+	grpc   *grpc.Server
+	health *health.Server
+	http   *http.Server
+
+	grpcLn, httpLn net.Listener
+	draining       chan struct{}
+	ready          atomic.Bool
+
+	reloadMu      sync.Mutex // one reload at a time
+	reloadSuccess *prometheus.CounterVec
+	reloadOK      prometheus.Gauge
+	reloadTime    prometheus.Gauge
+}
+
+// New loads the fleet file and binds both listeners; it fails, saying
+// why, when the file has errors or an address cannot be bound. Run
+// serves.
+func New(cfg Config) (*Server, error) {
+	if cfg.Logger == nil {
+		cfg.Logger = slog.Default()
+	}
+	if cfg.ShutdownGrace <= 0 {
+		cfg.ShutdownGrace = 10 * time.Second
+	}
+	fl, err := loadFleet(cfg.FleetPath)
+	if err != nil {
+		return nil, err
+	}
+	s := &Server{cfg: cfg, log: cfg.Logger, draining: make(chan struct{})}
+	s.store = ingest.NewStore(fl, cfg.Ingest)
+
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	reg.MustRegister(metrics.NewCollector(s.store, nil))
+	s.reloadSuccess = prometheus.NewCounterVec(prometheus.CounterOpts{
+		Namespace: metrics.Namespace, Name: "fleet_reloads_total",
+		Help: "Fleet file reloads, by result: success, or failure (the file had errors; the running fleet was kept).",
+	}, []string{"result"})
+	s.reloadOK = prometheus.NewGauge(prometheus.GaugeOpts{
+		Namespace: metrics.Namespace, Name: "fleet_reload_success",
+		Help: "1 when the last fleet file reload succeeded (or none was tried), 0 when it failed.",
+	})
+	s.reloadTime = prometheus.NewGauge(prometheus.GaugeOpts{
+		Namespace: metrics.Namespace, Name: "fleet_reload_success_timestamp_seconds",
+		Help: "When the fleet file was last loaded successfully, Unix s.",
+	})
+	s.reloadSuccess.WithLabelValues("success")
+	s.reloadSuccess.WithLabelValues("failure")
+	s.reloadOK.Set(1)
+	s.reloadTime.SetToCurrentTime()
+	reg.MustRegister(s.reloadSuccess, s.reloadOK, s.reloadTime)
+
+	s.grpc = grpc.NewServer(grpc.MaxRecvMsgSize(64 << 20))
+	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining}))
+	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
+	s.health = health.NewServer()
+	healthpb.RegisterHealthServer(s.grpc, s.health)
+	reflection.Register(s.grpc)
+
+	mux := http.NewServeMux()
+	mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{ErrorLog: slog.NewLogLogger(s.log.Handler(), slog.LevelError)}))
+	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) { fmt.Fprintln(w, "ok") })
+	mux.HandleFunc("GET /readyz", s.readyz)
+	mux.HandleFunc("POST /-/reload", s.reloadHandler)
+	if cfg.Pprof {
+		mux.HandleFunc("/debug/pprof/", pprof.Index)
+		mux.HandleFunc("/debug/pprof/cmdline", pprof.Cmdline)
+		mux.HandleFunc("/debug/pprof/profile", pprof.Profile)
+		mux.HandleFunc("/debug/pprof/symbol", pprof.Symbol)
+		mux.HandleFunc("/debug/pprof/trace", pprof.Trace)
+	}
+	s.http = &http.Server{Handler: mux, ReadHeaderTimeout: 10 * time.Second}
+
+	if s.grpcLn, err = net.Listen("tcp", cfg.GRPCListen); err != nil {
+		return nil, fmt.Errorf("grpc listen on %s: %w", cfg.GRPCListen, err)
+	}
+	if s.httpLn, err = net.Listen("tcp", cfg.HTTPListen); err != nil {
+		s.grpcLn.Close()
+		return nil, fmt.Errorf("http listen on %s: %w", cfg.HTTPListen, err)
+	}
+	return s, nil
+}
+
+// GRPCAddr and HTTPAddr return the bound addresses (useful with port 0).
+func (s *Server) GRPCAddr() string { return s.grpcLn.Addr().String() }
+func (s *Server) HTTPAddr() string { return s.httpLn.Addr().String() }
+
+// Store returns the live state the server serves.
+func (s *Server) Store() *ingest.Store { return s.store }
+
+// Run serves until ctx is done, then stops in order: it reports not
+// ready and not serving, refuses new connections, lets in-flight batches
+// finish and answers them, ends open streams with UNAVAILABLE, and
+// closes the HTTP listener last so that a final scrape still works.
+func (s *Server) Run(ctx context.Context) error {
+	errc := make(chan error, 2)
+	go func() { errc <- s.grpc.Serve(s.grpcLn) }()
+	go func() {
+		if err := s.http.Serve(s.httpLn); !errors.Is(err, http.ErrServerClosed) {
+			errc <- err
+			return
+		}
+		errc <- nil
+	}()
+	s.health.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
+	s.ready.Store(true)
+	s.log.Info("genvelope serving", "grpc", s.GRPCAddr(), "http", s.HTTPAddr(),
+		"fleet", s.cfg.FleetPath, "units", len(s.store.Units()))
+
+	var runErr error
+	select {
+	case <-ctx.Done():
+	case runErr = <-errc:
+		s.log.Error("listener failed", "err", runErr)
+	}
+	s.log.Info("stopping: finishing in-flight batches", "grace", s.cfg.ShutdownGrace)
+	s.ready.Store(false)
+	s.health.Shutdown()
+	close(s.draining)
+	stopped := make(chan struct{})
+	go func() { s.grpc.GracefulStop(); close(stopped) }()
+	select {
+	case <-stopped:
+	case <-time.After(s.cfg.ShutdownGrace):
+		s.log.Warn("grace period over: closing the remaining gRPC connections")
+		s.grpc.Stop()
+		<-stopped
+	}
+	hctx, cancel := context.WithTimeout(context.Background(), s.cfg.ShutdownGrace)
+	defer cancel()
+	if err := s.http.Shutdown(hctx); err != nil {
+		s.log.Warn("http shutdown", "err", err)
+	}
+	s.log.Info("stopped")
+	return runErr
+}
+
+func (s *Server) readyz(w http.ResponseWriter, r *http.Request) {
+	if !s.ready.Load() {
+		http.Error(w, "not ready", http.StatusServiceUnavailable)
+		return
+	}
+	fmt.Fprintf(w, "ready: %d units\n", len(s.store.Units()))
+}
+
+// Reload reads the fleet file again. A file with errors changes
+// nothing: the running fleet keeps serving, and the error is logged,
+// counted and returned.
+func (s *Server) Reload() error {
+	s.reloadMu.Lock()
+	defer s.reloadMu.Unlock()
+	fl, err := loadFleet(s.cfg.FleetPath)
+	if err != nil {
+		s.reloadSuccess.WithLabelValues("failure").Inc()
+		s.reloadOK.Set(0)
+		s.log.Error("fleet reload refused; the running fleet is kept", "file", s.cfg.FleetPath, "err", err)
+		return err
+	}
+	s.store.Replace(fl)
+	s.reloadSuccess.WithLabelValues("success").Inc()
+	s.reloadOK.Set(1)
+	s.reloadTime.SetToCurrentTime()
+	s.log.Info("fleet reloaded", "file", s.cfg.FleetPath, "units", len(fl.Units))
+	return nil
+}
+
+func (s *Server) reloadHandler(w http.ResponseWriter, r *http.Request) {
+	if err := s.Reload(); err != nil {
+		http.Error(w, err.Error(), http.StatusUnprocessableEntity)
+		return
+	}
+	fmt.Fprintf(w, "reloaded: %d units\n", len(s.store.Units()))
+}
+
+// loadFleet reads a fleet file and refuses one with errors, listing them.
+// Warnings are kept in the returned error's text only when there are errors.
+func loadFleet(path string) (*fleet.Fleet, error) {
+	fl, ds, err := fleet.Load(path)
+	if err != nil {
+		return nil, err
+	}
+	if ds.HasErrors() {
+		return nil, fmt.Errorf("fleet file %s has %d errors:\n%s", path, ds.Count(fleet.Error), ds)
+	}
+	return fl, nil
+}
