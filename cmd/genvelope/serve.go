@@ -19,6 +19,9 @@ import (
 const (
 	defaultGRPCListen = "127.0.0.1:9470"
 	defaultHTTPListen = "127.0.0.1:9471"
+	// defaultStatePath is relative to the working directory; an installed
+	// service sets --state under its state directory (/var/lib/genvelope).
+	defaultStatePath = "genvelope-state.json"
 )
 
 func serveCommand() command {
@@ -30,7 +33,9 @@ func serveCommand() command {
 server reflection) on --grpc-listen, and /metrics, /healthz, /readyz and
 POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
 file again; a file with errors is refused and the running fleet kept.
-SIGTERM or SIGINT stops: in-flight batches are finished and answered.`,
+SIGTERM or SIGINT stops: in-flight batches are finished and answered.
+AlarmService watches, acknowledges and shelves limit-approach alarms. The
+state file (--state) keeps thermal memory and alarms across restarts.`,
 		advises: true,
 		flags: func(fs *flag.FlagSet) func(e env) int {
 			fleetPath := fs.String("fleet", "", "fleet file (YAML)")
@@ -39,6 +44,7 @@ SIGTERM or SIGINT stops: in-flight batches are finished and answered.`,
 			maxBatch := fs.Int("max-batch", 10000, "most samples one request may carry")
 			maxFuture := fs.Duration("max-future", 5*time.Minute, "how far ahead of the server clock a sample may be stamped")
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
+			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
 			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
 			fs.Var(logFormat, "log-format", "log format: text or json")
 			return func(e env) int {
@@ -54,6 +60,7 @@ SIGTERM or SIGINT stops: in-flight batches are finished and answered.`,
 				srv, err := server.New(server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
+					StatePath: *statePath,
 				})
 				if err != nil {
 					log.Error("cannot start", "err", err)

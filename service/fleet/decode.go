@@ -50,6 +50,7 @@ type topKey struct {
 // topLevelKeys lists the top-level blocks of a fleet file.
 func topLevelKeys() []topKey {
 	return []topKey{
+		{name: "alarms", required: false, decode: (*decoder).decodeFleetAlarms}, // before units: their defaults
 		{name: "units", required: true, decode: (*decoder).decodeUnits},
 	}
 }
@@ -76,6 +77,7 @@ func unitKeys() []unitKey {
 		{name: "stability", required: false, decode: (*unitCtx).decodeStability},
 		{name: "end_region", required: false, decode: (*unitCtx).decodeEndRegion},
 		{name: "coolant", required: false, decode: (*unitCtx).decodeCoolant},
+		{name: "alarms", required: false, decode: (*unitCtx).decodeAlarms},
 	}
 }
 

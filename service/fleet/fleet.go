@@ -15,6 +15,7 @@ import (
 	"strings"
 
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 )
 
 // Caution is the sentence every output that gives numbers about operating
@@ -25,6 +26,10 @@ const Caution = "genvelope advises only: the manufacturer's data, local grid cod
 type Fleet struct {
 	File  string  // the name the fleet was parsed under
 	Units []*Unit // in file order
+
+	// Alarms are the alarm settings of units that give none of their own:
+	// alarm.Defaults() with the file's top-level alarms: block on top.
+	Alarms [alarm.NumKinds]alarm.Setting
 
 	byID map[string]*Unit
 }
@@ -66,6 +71,10 @@ type Unit struct {
 	Stability  Stability
 	EndRegion  *EndRegion // nil when not given
 	Coolant    *Coolant   // nil when not given
+
+	// Alarms are the unit's alarm settings: the fleet's, with the unit's
+	// own alarms: block on top.
+	Alarms [alarm.NumKinds]alarm.Setting
 
 	Base  limits.Base  // converts between the units of the file and per unit
 	Model *limits.Unit // the engine model; nil when the unit has errors
@@ -226,8 +235,13 @@ func Load(path string) (*Fleet, Diagnostics, error) {
 // a nil Model. Use the fleet only when the Diagnostics have no errors.
 func Parse(name string, data []byte) (*Fleet, Diagnostics) {
 	d := &decoder{file: name}
-	f := &Fleet{File: name, byID: map[string]*Unit{}}
+	f := &Fleet{File: name, byID: map[string]*Unit{}, Alarms: alarm.Defaults()}
 	d.document(data, f)
+	for _, u := range f.Units {
+		if !u.Has("alarms") {
+			u.Alarms = f.Alarms
+		}
+	}
 	for _, c := range d.units {
 		if !c.bad {
 			d.build(c)

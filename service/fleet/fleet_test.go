@@ -285,13 +285,13 @@ func TestParseRules(t *testing.T) {
 		{"null units", func(*testing.T) string { return "# a fleet\nunits:\n" },
 			[]want{{2, "units", E, "must be a list of units; got nothing"}}},
 		{"no units key", func(*testing.T) string { return "unit:\n  - id: a\n" },
-			[]want{{1, "unit", E, "unknown key; allowed keys here: units"}, {1, "units", E, "missing; a fleet file needs a units: list"}}},
+			[]want{{1, "unit", E, "unknown key; allowed keys here: alarms, units"}, {1, "units", E, "missing; a fleet file needs a units: list"}}},
 		{"empty file", func(*testing.T) string { return "" },
 			[]want{{0, "", E, "the file is empty"}}},
 		{"comments only", func(*testing.T) string { return "# nothing yet\n" },
 			[]want{{0, "", E, "the file is empty"}}},
 		{"not a mapping", func(*testing.T) string { return "- a\n- b\n" },
-			[]want{{1, "", E, "the file must be a mapping with the keys units; got a list"}}},
+			[]want{{1, "", E, "the file must be a mapping with the keys alarms, units; got a list"}}},
 		{"unit not a mapping", func(*testing.T) string { return "units:\n  - ridge-2\n" },
 			[]want{{2, "", E, "each entry of units: must be a mapping"}}},
 		{"yaml syntax", func(t *testing.T) string { return edit(t, base, "xd: 2.1", "xd: [2.1") },
@@ -428,5 +428,20 @@ func TestParseAliasExpansionIsBounded(t *testing.T) {
 	}
 	if !found {
 		t.Fatalf("want a diagnostic about alias expansion; got %d diagnostics", len(ds))
+	}
+}
+
+// Synchronous speed n = 120 f / poles (machine theory; fact of the trade):
+// a 4-pole machine at 60 Hz turns at 1800 rpm, a 2-pole one at 50 Hz at
+// 3000 rpm.
+func TestSpeedRPM(t *testing.T) {
+	for _, tc := range []struct {
+		hz    float64
+		poles int
+		want  float64
+	}{{60, 4, 1800}, {50, 2, 3000}, {60, 2, 3600}, {50, 4, 1500}} {
+		if got := (Rating{FrequencyHz: tc.hz, Poles: tc.poles}).SpeedRPM(); got != tc.want {
+			t.Errorf("%v Hz, %d poles: %v rpm, want %v", tc.hz, tc.poles, got, tc.want)
+		}
 	}
 }

@@ -16,6 +16,7 @@ import (
 	"time"
 
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
@@ -87,6 +88,9 @@ type Options struct {
 	// gap counts as MaxHold: what flowed beyond it is not known.
 	// Default 60 s.
 	MaxHold time.Duration
+	// Now is the wall clock, for stale telemetry and shelving; default
+	// time.Now.
+	Now func() time.Time
 }
 
 func (o Options) withDefaults() Options {
@@ -96,14 +100,22 @@ func (o Options) withDefaults() Options {
 	if o.MaxHold <= 0 {
 		o.MaxHold = 60 * time.Second
 	}
+	if o.Now == nil {
+		o.Now = time.Now
+	}
 	return o
 }
 
 // Store is the live state of a fleet. It is safe for concurrent use.
 type Store struct {
-	opts   Options
-	snap   atomic.Pointer[snapshot]
-	counts [NumResults]atomic.Uint64
+	opts    Options
+	snap    atomic.Pointer[snapshot]
+	counts  [NumResults]atomic.Uint64
+	hub     *alarm.Hub
+	startNS int64 // wall clock at start: the age of a unit that never reported
+
+	// Alarm transitions by kind and level reached.
+	transitions [alarm.NumKinds][3]atomic.Uint64
 }
 
 type snapshot struct {
@@ -114,9 +126,24 @@ type snapshot struct {
 
 // NewStore returns a store serving fl, which must have no errors.
 func NewStore(fl *fleet.Fleet, opts Options) *Store {
-	s := &Store{opts: opts.withDefaults()}
+	s := &Store{opts: opts.withDefaults(), hub: alarm.NewHub(), startNS: opts.withDefaults().Now().UnixNano()}
 	s.snap.Store(newSnapshot(fl, nil))
 	return s
+}
+
+// Hub returns the hub on which the store publishes alarm events.
+func (s *Store) Hub() *alarm.Hub { return s.hub }
+
+// Transitions returns the number of alarm level changes by kind and
+// level reached.
+func (s *Store) Transitions() [alarm.NumKinds][3]uint64 {
+	var t [alarm.NumKinds][3]uint64
+	for k := range t {
+		for l := range t[k] {
+			t[k][l] = s.transitions[k][l].Load()
+		}
+	}
+	return t
 }
 
 func newSnapshot(fl *fleet.Fleet, old *snapshot) *snapshot {
@@ -200,7 +227,7 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 		return RejectFuture, fmt.Sprintf("time %s is %s ahead of the server clock (at most %s)",
 			smp.Time.UTC().Format(time.RFC3339Nano), smp.Time.Sub(now).Round(time.Millisecond), s.opts.MaxFuture)
 	}
-	return u.accept(smp, now, s.opts.MaxHold)
+	return u.accept(smp, now, s)
 }
 
 // checkValues rejects values that are not finite or not physical for the
@@ -264,12 +291,15 @@ type Unit struct {
 	armature, field limits.Thermal
 	xArm, xField    float64 // per-unit currents of the latest sample, held until the next
 	accepted        uint64
+
+	alarms [alarm.NumKinds]alarm.Machine
 }
 
 // accept records a checked sample: a duplicate when its timestamp is
 // one the unit has accepted, out of order when it is older than the
 // latest, else evaluated and stored.
-func (u *Unit) accept(smp *Sample, now time.Time, maxHold time.Duration) (Result, string) {
+func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
+	maxHold := s.opts.MaxHold
 	t := smp.Time.UnixNano()
 	u.mu.Lock()
 	defer u.mu.Unlock()
@@ -299,6 +329,7 @@ func (u *Unit) accept(smp *Sample, now time.Time, maxHold time.Duration) (Result
 	u.recvNS = now.UnixNano()
 	u.accepted++
 	u.evaluate()
+	u.stepAlarms(t, s)
 	return Accepted, ""
 }
 
@@ -364,6 +395,7 @@ type View struct {
 	Field     limits.Thermal
 	XArmature float64 // per-unit currents of the latest sample against the ratings at the present coolant
 	XField    float64
+	Alarms    [alarm.NumKinds]alarm.Machine
 }
 
 // View returns a consistent copy of the unit's state.
@@ -371,7 +403,7 @@ func (u *Unit) View() View {
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
-		XArmature: u.xArm, XField: u.xField}
+		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms}
 	if u.has {
 		v.Latest, v.Eval, v.Received = u.latest, u.eval, time.Unix(0, u.recvNS)
 	}

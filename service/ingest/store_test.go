@@ -2,23 +2,19 @@ package ingest
 
 import (
 	"math"
-	"os"
 	"sync"
 	"testing"
 	"time"
 
+	"github.com/genvelope/genvelope/deploy/examples"
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
 func exampleFleet(t testing.TB) *fleet.Fleet {
 	t.Helper()
-	data, err := os.ReadFile("../../deploy/examples/fleet.yaml")
+	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
-	}
-	fl, ds := fleet.Parse("fleet.yaml", data)
-	if ds.HasErrors() {
-		t.Fatalf("example fleet: %v", ds)
 	}
 	return fl
 }

@@ -11,6 +11,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
@@ -26,6 +27,7 @@ type Collector struct {
 	activePower, reactivePower, voltage, voltagePU         *prometheus.Desc
 	fieldCurrent, loadAngle, cct, thermal, age, sampleTime *prometheus.Desc
 	qLimit, accepted, samples, units                       *prometheus.Desc
+	alarmLevel, alarmShelved, alarmAcked, transitions      *prometheus.Desc
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -61,6 +63,10 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 		accepted:      d("unit_samples_accepted_total", "Samples accepted for the unit since the service started."),
 		samples:       prometheus.NewDesc(Namespace+"_samples_total", "Samples received, by result: accepted, duplicate, or the reason a sample was rejected.", []string{"result"}, nil),
 		units:         prometheus.NewDesc(Namespace+"_fleet_units", "Units in the fleet being served.", nil, nil),
+		alarmLevel:    d("alarm_level", "Alarm level of each limit of the unit: 0 normal, 1 warning, 2 critical (after the fleet file's thresholds, deadband and delays).", "limit"),
+		alarmShelved:  d("alarm_shelved", "1 while an operator has shelved the unit's alarm on this limit.", "limit"),
+		alarmAcked:    d("alarm_acknowledged", "1 while the unit's active alarm on this limit is acknowledged.", "limit"),
+		transitions:   prometheus.NewDesc(Namespace+"_alarm_transitions_total", "Alarm level changes, by limit and the level reached.", []string{"limit", "level"}, nil),
 	}
 }
 
@@ -68,7 +74,8 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 func (c *Collector) Describe(ch chan<- *prometheus.Desc) {
 	for _, d := range []*prometheus.Desc{c.info, c.headroom, c.margin, c.binding, c.feasible, c.zone,
 		c.activePower, c.reactivePower, c.voltage, c.voltagePU, c.fieldCurrent, c.loadAngle, c.cct,
-		c.thermal, c.age, c.sampleTime, c.qLimit, c.accepted, c.samples, c.units} {
+		c.thermal, c.age, c.sampleTime, c.qLimit, c.accepted, c.samples, c.units,
+		c.alarmLevel, c.alarmShelved, c.alarmAcked, c.transitions} {
 		ch <- d
 	}
 }
@@ -82,9 +89,16 @@ func (c *Collector) Collect(ch chan<- prometheus.Metric) {
 	for r := ingest.Result(0); r < ingest.NumResults; r++ {
 		ch <- prometheus.MustNewConstMetric(c.samples, prometheus.CounterValue, float64(counts[r]), r.String())
 	}
+	tr := c.store.Transitions()
+	for k := range tr {
+		for l := alarm.Normal; l <= alarm.Critical; l++ {
+			ch <- prometheus.MustNewConstMetric(c.transitions, prometheus.CounterValue, float64(tr[k][l]), alarm.Kind(k).String(), l.String())
+		}
+	}
 	units := c.store.Units()
 	gauge(c.units, float64(len(units)))
 	now := c.now()
+	nowNS := now.UnixNano()
 	for _, u := range units {
 		v := u.View()
 		cfg := v.Config
@@ -93,6 +107,17 @@ func (c *Collector) Collect(ch chan<- prometheus.Metric) {
 		ch <- prometheus.MustNewConstMetric(c.accepted, prometheus.CounterValue, float64(v.Accepted), id, site)
 		gauge(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
 		gauge(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		for k := range v.Alarms {
+			m := &v.Alarms[k]
+			name := alarm.Kind(k).String()
+			gauge(c.alarmLevel, float64(m.Level), id, site, name)
+			if m.Shelved(nowNS) {
+				gauge(c.alarmShelved, 1, id, site, name)
+			}
+			if m.Acknowledged && m.Level != alarm.Normal {
+				gauge(c.alarmAcked, 1, id, site, name)
+			}
+		}
 		if !v.HasSample {
 			continue
 		}

@@ -1,26 +1,21 @@
 package metrics
 
 import (
-	"os"
 	"testing"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/testutil"
 
-	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/deploy/examples"
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
 func store(t *testing.T) *ingest.Store {
 	t.Helper()
-	data, err := os.ReadFile("../../deploy/examples/fleet.yaml")
+	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
-	}
-	fl, ds := fleet.Parse("fleet.yaml", data)
-	if ds.HasErrors() {
-		t.Fatal(ds)
 	}
 	s := ingest.NewStore(fl, ingest.Options{})
 	at := time.Date(2026, 6, 1, 12, 0, 0, 0, time.UTC)

@@ -14,6 +14,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/service/server"
 )
 
@@ -194,12 +195,30 @@ func TestReloadWhilePushing(t *testing.T) {
 	ctx := ctxT(t)
 	units := []string{"harrowmere-1", "larchwater-2", "brindle-gt3"}
 	kv := []float64{20, 13.8, 15}
-	const batches, perBatch = 50, 20
-	t0 := time.Now().Add(-time.Hour)
-	errs := make(chan error, len(units))
+	const (
+		reloads  = 50
+		perBatch = 20
+		most     = 2000 // batches per unit at most, should the reloads be slow
+	)
+	t0 := time.Now().Add(-24 * time.Hour)
+	// Each pusher goes on until the reloads are done (so that the two
+	// surely overlap) and reports how many batches it pushed.
+	done := make(chan struct{})
+	type result struct {
+		batches int
+		err     error
+	}
+	results := make(chan result, len(units))
 	for j, u := range units {
 		go func() {
-			for b := range batches {
+			b := 0
+			for ; b < most; b++ {
+				select {
+				case <-done:
+					results <- result{b, nil}
+					return
+				default:
+				}
 				req := &pb.PushRequest{Sequence: uint64(b)}
 				for k := range perBatch {
 					req.Samples = append(req.Samples, sample(u, t0.Add(time.Duration(b*perBatch+k)*time.Second), 100, 10, kv[j]))
@@ -209,26 +228,33 @@ func TestReloadWhilePushing(t *testing.T) {
 					err = fmt.Errorf("%s batch %d: %v", u, b, resp)
 				}
 				if err != nil {
-					errs <- err
+					results <- result{b, err}
 					return
 				}
 			}
-			errs <- nil
+			results <- result{b, nil}
 		}()
 	}
-	for range 20 {
+	for range reloads {
 		if err := r.srv.Reload(); err != nil {
+			close(done)
 			t.Fatalf("reload: %v", err)
 		}
 	}
+	close(done)
+	var pushed uint64
 	for range units {
-		if err := <-errs; err != nil {
-			t.Error(err)
+		res := <-results
+		if res.err != nil {
+			t.Error(res.err)
 		}
+		pushed += uint64(res.batches * perBatch)
 	}
+	var accepted uint64
 	for _, u := range units {
-		if n := r.srv.Store().Unit(u).View().Accepted; n != batches*perBatch {
-			t.Errorf("%s accepted %d samples, want %d", u, n, batches*perBatch)
-		}
+		accepted += r.srv.Store().Unit(u).View().Accepted
+	}
+	if c := r.srv.Store().Counts(); accepted != pushed || c[ingest.Accepted] != pushed {
+		t.Errorf("units accepted %d samples, store counts %d, want the %d pushed", accepted, c[ingest.Accepted], pushed)
 	}
 }

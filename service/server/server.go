@@ -28,6 +28,7 @@ import (
 	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/service/metrics"
 	"github.com/genvelope/genvelope/service/rpc"
+	"github.com/genvelope/genvelope/service/state"
 )
 
 // Config is what a server needs to start.
@@ -39,6 +40,12 @@ type Config struct {
 	Ingest   ingest.Options
 	MaxBatch int  // samples per request; default rpc.DefaultMaxBatch
 	Pprof    bool // serve /debug/pprof/ on the HTTP listener
+
+	// StatePath is the state file (thermal memory, alarms, recent
+	// timestamps), restored at start and written every StateInterval
+	// (at most 5 s) and at stop. "" keeps no state.
+	StatePath     string
+	StateInterval time.Duration
 
 	// ShutdownGrace bounds how long a stop waits for in-flight requests
 	// before closing what is left. Default 10 s.
@@ -82,6 +89,11 @@ func New(cfg Config) (*Server, error) {
 	}
 	s := &Server{cfg: cfg, log: cfg.Logger, draining: make(chan struct{})}
 	s.store = ingest.NewStore(fl, cfg.Ingest)
+	if cfg.StatePath != "" {
+		if err := state.Load(cfg.StatePath, s.store, s.log, time.Now()); err != nil {
+			return nil, err
+		}
+	}
 
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
@@ -107,6 +119,7 @@ func New(cfg Config) (*Server, error) {
 	s.grpc = grpc.NewServer(grpc.MaxRecvMsgSize(64 << 20))
 	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
+	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining}))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)
 	reflection.Register(s.grpc)
@@ -161,12 +174,29 @@ func (s *Server) Run(ctx context.Context) error {
 	s.log.Info("genvelope serving", "grpc", s.GRPCAddr(), "http", s.HTTPAddr(),
 		"fleet", s.cfg.FleetPath, "units", len(s.store.Units()))
 
+	var bg sync.WaitGroup
+	bgCtx, stopBG := context.WithCancel(ctx)
+	bg.Add(1)
+	go func() {
+		defer bg.Done()
+		s.sweep(bgCtx)
+	}()
+	if s.cfg.StatePath != "" {
+		bg.Add(1)
+		go func() {
+			defer bg.Done()
+			state.Keep(bgCtx, s.cfg.StatePath, s.store, s.cfg.StateInterval, s.log)
+		}()
+	}
+
 	var runErr error
 	select {
 	case <-ctx.Done():
 	case runErr = <-errc:
 		s.log.Error("listener failed", "err", runErr)
 	}
+	stopBG()
+	bg.Wait()
 	s.log.Info("stopping: finishing in-flight batches", "grace", s.cfg.ShutdownGrace)
 	s.ready.Store(false)
 	s.health.Shutdown()
@@ -180,6 +210,13 @@ func (s *Server) Run(ctx context.Context) error {
 		s.grpc.Stop()
 		<-stopped
 	}
+	if s.cfg.StatePath != "" {
+		if err := state.Write(s.cfg.StatePath, s.store.Snapshot(time.Now())); err != nil {
+			s.log.Error("final state not saved", "err", err)
+		} else {
+			s.log.Info("state saved", "state", s.cfg.StatePath)
+		}
+	}
 	hctx, cancel := context.WithTimeout(context.Background(), s.cfg.ShutdownGrace)
 	defer cancel()
 	if err := s.http.Shutdown(hctx); err != nil {
@@ -187,6 +224,21 @@ func (s *Server) Run(ctx context.Context) error {
 	}
 	s.log.Info("stopped")
 	return runErr
+}
+
+// sweep runs the wall-clock alarms (stale telemetry, shelf expiry) once
+// a second until ctx is done.
+func (s *Server) sweep(ctx context.Context) {
+	t := time.NewTicker(time.Second)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return
+		case now := <-t.C:
+			s.store.Sweep(now)
+		}
+	}
 }
 
 func (s *Server) readyz(w http.ResponseWriter, r *http.Request) {

@@ -1,0 +1,106 @@
+package alarm
+
+import (
+	"fmt"
+	"strings"
+	"time"
+)
+
+// Change says what an event reports.
+type Change uint8
+
+const (
+	LevelChanged Change = iota // the level rose or fell
+	Acknowledged               // an operator acknowledged the alarm
+	Shelved                    // an operator shelved the alarm until a time
+	Unshelved                  // the shelf was lifted or expired
+)
+
+// String returns "level", "acknowledged", "shelved" or "unshelved".
+func (c Change) String() string {
+	return [...]string{"level", "acknowledged", "shelved", "unshelved"}[c]
+}
+
+// Event is one change of one alarm.
+type Event struct {
+	Unit, Site   string
+	Kind         Kind
+	Change       Change
+	Level        Level
+	Prev         Level
+	Time         time.Time // the sample's time (wall clock for stale telemetry and operator actions)
+	Value        float64   // the quantity (see QuantityOf)
+	Threshold    float64   // the threshold of the level reached, or of the level left when falling
+	Shelved      time.Time // until when the alarm is shelved; zero when it is not
+	Acknowledged bool      // the active alarm is acknowledged
+	Message      string    // one plain sentence an operator can act on
+}
+
+// Context is the operating point behind an alarm, in engineering units,
+// for its message. A nil pointer is a value that does not exist.
+type Context struct {
+	PMW, QMvar, VKV    float64
+	QMaxMvar, QMinMvar *float64
+	QMaxLimit          string // the limit setting q_max: "field" or "armature"
+	QMinLimit          string // the limit setting q_min: "stability", "end_region" or "armature"
+	PMaxMW             float64
+	IfdMeasuredA       *float64
+	IfdModelA          float64
+	AgeS               float64
+	Zone               string
+	VPerHzPU           float64
+}
+
+// Message returns the operator's sentence for a level change of kind k
+// of unit id, from the operating point c.
+func Message(id string, k Kind, level, prev Level, value float64, c *Context) string {
+	if level == Normal {
+		return fmt.Sprintf("%s: %s back to normal (was %s).", id, kindTitle(k), prev)
+	}
+	at := fmt.Sprintf("at %.1f MW, %.2f kV", c.PMW, c.VKV)
+	switch k {
+	case Armature, Field:
+		if c.QMaxMvar == nil {
+			return fmt.Sprintf("%s: %s limit %s: no reactive capability left %s; reduce excitation and load.", id, k, level, at)
+		}
+		left := *c.QMaxMvar - c.QMvar
+		return fmt.Sprintf("%s: %.1f Mvar left before the %s current limit (q_max %.1f Mvar, set by the %s) %s; reduce excitation or move reactive load to other units.",
+			id, left, k, *c.QMaxMvar, c.QMaxLimit, at)
+	case Stability, EndRegion:
+		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit"}[k]
+		if c.QMinMvar == nil {
+			return fmt.Sprintf("%s: no stable underexcited range %s (%s); raise excitation or reduce load now.", id, at, what)
+		}
+		left := c.QMvar - *c.QMinMvar
+		return fmt.Sprintf("%s: %.1f Mvar left above the %s (q_min %.1f Mvar) %s; raise excitation or absorb less reactive power.",
+			id, left, what, *c.QMinMvar, at)
+	case PrimeMover:
+		return fmt.Sprintf("%s: %.1f MW left to the prime mover's %.1f MW %s; reduce the active-power set point.", id, c.PMaxMW-c.PMW, c.PMaxMW, at)
+	case VoltsPerHertz:
+		return fmt.Sprintf("%s: volts per hertz %.3f pu against 1.05 pu continuous %s; lower the terminal voltage or check the frequency.", id, c.VPerHzPU, at)
+	case ArmatureThermal, FieldThermal:
+		w := map[Kind]string{ArmatureThermal: "armature", FieldThermal: "field"}[k]
+		return fmt.Sprintf("%s: %.0f %% of the %s winding's short-time thermal capability used %s; bring the %s current below its rating.", id, 100*value, w, at, w)
+	case VoltageFrequencyZone:
+		return fmt.Sprintf("%s: operating in %s of the voltage/frequency zones %s; limit the time spent there and bring voltage back within ±5 %%.", id, zoneWords(c.Zone), at)
+	case StaleTelemetry:
+		return fmt.Sprintf("%s: no sample for %.0f s; its limits are not being watched; check the SCADA link.", id, c.AgeS)
+	case FieldCurrentMismatch:
+		meas := "?"
+		if c.IfdMeasuredA != nil {
+			meas = fmt.Sprintf("%.0f A", *c.IfdMeasuredA)
+		}
+		return fmt.Sprintf("%s: measured field current %s differs from the model's %.0f A by %.0f %% %s; check the field current transducer and the unit's parameters.",
+			id, meas, c.IfdModelA, 100*value, at)
+	}
+	return fmt.Sprintf("%s: %s %s.", id, k, level)
+}
+
+func kindTitle(k Kind) string { return strings.ReplaceAll(k.String(), "_", " ") }
+
+func zoneWords(z string) string {
+	if z == "B" {
+		return "zone B"
+	}
+	return "neither zone A nor zone B"
+}

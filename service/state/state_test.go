@@ -1,0 +1,98 @@
+package state
+
+import (
+	"io"
+	"log/slog"
+	"os"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"github.com/genvelope/genvelope/deploy/examples"
+	"github.com/genvelope/genvelope/service/alarm"
+	"github.com/genvelope/genvelope/service/ingest"
+)
+
+var t0 = time.Date(2026, 6, 1, 12, 0, 0, 0, time.UTC)
+
+func newStore(t *testing.T) *ingest.Store {
+	t.Helper()
+	fl, err := examples.Fleet()
+	if err != nil {
+		t.Fatal(err)
+	}
+	return ingest.NewStore(fl, ingest.Options{Now: func() time.Time { return t0.Add(time.Hour) }})
+}
+
+// A field overload, saved and restored into a fresh store, resumes where
+// it was: the heating integral, the held current, the alarm, and the
+// timestamps that make a resent sample a duplicate.
+func TestRoundTrip(t *testing.T) {
+	s := newStore(t)
+	fl := s.Fleet()
+	u := fl.Unit("harrowmere-1")
+	ratedA := u.Model.RatedFieldCurrent() * u.Field.AirGapA
+	for i := range 20 {
+		smp := ingest.Sample{UnitID: u.ID, Time: t0.Add(time.Duration(i) * time.Second), PMW: 250, QMvar: 100, VKV: 20,
+			FieldA: 1.46 * ratedA, HasFieldA: true, Coolant: 414, HasCoolant: true}
+		if r, d := s.Accept(t0.Add(time.Hour), &smp); r != ingest.Accepted {
+			t.Fatalf("%v %s", r, d)
+		}
+	}
+	if err := s.Acknowledge(u.ID, alarm.FieldThermal, t0.Add(time.Hour), "test"); err != nil {
+		t.Fatalf("acknowledge the thermal alarm: %v", err)
+	}
+	path := filepath.Join(t.TempDir(), "state.json")
+	if err := Write(path, s.Snapshot(t0.Add(time.Hour))); err != nil {
+		t.Fatal(err)
+	}
+	s2 := newStore(t)
+	if err := Load(path, s2, slog.New(slog.NewTextHandler(io.Discard, nil)), t0); err != nil {
+		t.Fatal(err)
+	}
+	a, b := s.Unit(u.ID).View(), s2.Unit(u.ID).View()
+	if a.Field != b.Field || a.XField != b.XField || !b.HasSample || b.Latest.Time != a.Latest.Time {
+		t.Errorf("restored field %+v x %v, want %+v x %v", b.Field, b.XField, a.Field, a.XField)
+	}
+	if m := b.Alarms[alarm.FieldThermal]; m.Level == alarm.Normal || !m.Acknowledged {
+		t.Errorf("field thermal alarm not restored: %+v", m)
+	}
+	resend := ingest.Sample{UnitID: u.ID, Time: t0.Add(19 * time.Second), PMW: 250, QMvar: 100, VKV: 20}
+	if r, _ := s2.Accept(t0.Add(time.Hour), &resend); r != ingest.Duplicate {
+		t.Errorf("resent sample after restore: %v, want duplicate", r)
+	}
+}
+
+func TestCorruptFileMovedAside(t *testing.T) {
+	for name, content := range map[string]string{
+		"corrupt":      `{"format": "genvelope-state", "version": 1, "units": {`,
+		"incompatible": `{"format": "genvelope-state", "version": 99, "units": {}}`,
+		"foreign":      `{"hello": "world"}`,
+	} {
+		t.Run(name, func(t *testing.T) {
+			dir := t.TempDir()
+			path := filepath.Join(dir, "state.json")
+			if err := os.WriteFile(path, []byte(content), 0o600); err != nil {
+				t.Fatal(err)
+			}
+			var logs strings.Builder
+			if err := Load(path, newStore(t), slog.New(slog.NewTextHandler(&logs, nil)), t0); err != nil {
+				t.Fatal(err)
+			}
+			if _, err := os.Stat(path); !os.IsNotExist(err) {
+				t.Errorf("unusable state file left in place")
+			}
+			aside, _ := filepath.Glob(path + ".bad-*")
+			if len(aside) != 1 || !strings.Contains(logs.String(), "STATE FILE UNUSABLE") {
+				t.Errorf("moved aside: %v; log: %s", aside, logs.String())
+			}
+		})
+	}
+}
+
+func TestNoStateFile(t *testing.T) {
+	if err := Load(filepath.Join(t.TempDir(), "none.json"), newStore(t), slog.New(slog.NewTextHandler(io.Discard, nil)), t0); err != nil {
+		t.Fatal(err)
+	}
+}
