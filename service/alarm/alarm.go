@@ -211,6 +211,13 @@ func (m *Machine) Step(t int64, x float64, s *Setting, rising bool) (prev Level,
 		return prev, false
 	}
 	m.Value, m.HasValue = x, true
+	// The common case, a quiet alarm whose quantity is clear of the
+	// warning threshold, decided without the general machinery.
+	if m.Level == Normal && !m.Raising[0] && !m.Raising[1] {
+		if rising && x < s.Warning || !rising && x > s.Warning {
+			return prev, false
+		}
+	}
 	thr := [2]float64{s.Warning, s.Critical}
 	// beyond reports whether x is past threshold th, shifted by the
 	// deadband towards normal when the level is held (hysteresis).

@@ -220,7 +220,9 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	if smp.Quality == QualityInvalid {
 		return RejectInvalidQuality, "the sample's quality is INVALID"
 	}
-	if r, d := checkValues(u.cfg, smp); r != Accepted {
+	// The snapshot's own config: u.cfg is rewritten by reconfigure under
+	// u.mu on a reload, and u.mu is not held here.
+	if r, d := checkValues(sn.fleet.Unit(smp.UnitID), smp); r != Accepted {
 		return r, d
 	}
 	if smp.Time.Sub(now) > s.opts.MaxFuture {
@@ -365,7 +367,7 @@ func (u *Unit) evaluate() {
 	u.eval = cfg.Model.Evaluate(pt, &u.hint)
 	u.xArm = u.eval.I / u.eval.IMax
 	ifd := u.eval.IfdModel
-	if s.HasFieldA {
+	if pt.IfdMeasured {
 		ifd = pt.Ifd
 	}
 	u.xField = ifd / u.eval.IfdMax

@@ -58,6 +58,14 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 		resp.Evaluation = EvaluationProto(report.New(v.Config, pt, &v.Eval))
 		resp.Received = timestamppb.New(v.Received)
 	}
+	resp.ArmatureThermalUsedRatio = v.Armature.Used(limits.ArmatureK)
+	resp.FieldThermalUsedRatio = v.Field.Used(limits.FieldK)
+	if t, ok := v.Armature.TimeLeft(v.XArmature, limits.ArmatureK); ok {
+		resp.ArmatureThermalTimeLeftS = &t
+	}
+	if t, ok := v.Field.TimeLeft(v.XField, limits.FieldK); ok {
+		resp.FieldThermalTimeLeftS = &t
+	}
 	return resp, nil
 }
 

@@ -128,8 +128,12 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 	for i, s := range req.Samples {
 		var smp ingest.Sample
 		res, detail := fromProto(s, &smp)
-		if res == ingest.Accepted {
+		switch {
+		case res == ingest.Accepted:
 			res, detail = t.store.Accept(now, &smp)
+		case t.store.Unit(s.UnitId) == nil:
+			// The unit is the first thing a sample is judged by.
+			res, detail = ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
 		}
 		tally[res]++
 		switch res {

@@ -163,9 +163,18 @@ type GetUnitResponse struct {
 	Evaluation *Evaluation `protobuf:"bytes,3,opt,name=evaluation,proto3" json:"evaluation,omitempty"`
 	// Server time at which the latest sample was received. Absent when
 	// latest is absent.
-	Received      *timestamppb.Timestamp `protobuf:"bytes,4,opt,name=received,proto3" json:"received,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	Received *timestamppb.Timestamp `protobuf:"bytes,4,opt,name=received,proto3" json:"received,omitempty"`
+	// Short-time thermal capability used by each winding, H/K of the
+	// IEEE C50.13 law (x^2 - 1) t = K, accumulated on sample time: 1 is
+	// the limit.
+	ArmatureThermalUsedRatio float64 `protobuf:"fixed64,5,opt,name=armature_thermal_used_ratio,json=armatureThermalUsedRatio,proto3" json:"armature_thermal_used_ratio,omitempty"`
+	FieldThermalUsedRatio    float64 `protobuf:"fixed64,6,opt,name=field_thermal_used_ratio,json=fieldThermalUsedRatio,proto3" json:"field_thermal_used_ratio,omitempty"`
+	// How long each winding may still carry its present current before
+	// its thermal limit, s. Absent while the current is within its rating.
+	ArmatureThermalTimeLeftS *float64 `protobuf:"fixed64,7,opt,name=armature_thermal_time_left_s,json=armatureThermalTimeLeftS,proto3,oneof" json:"armature_thermal_time_left_s,omitempty"`
+	FieldThermalTimeLeftS    *float64 `protobuf:"fixed64,8,opt,name=field_thermal_time_left_s,json=fieldThermalTimeLeftS,proto3,oneof" json:"field_thermal_time_left_s,omitempty"`
+	unknownFields            protoimpl.UnknownFields
+	sizeCache                protoimpl.SizeCache
 }
 
 func (x *GetUnitResponse) Reset() {
@@ -224,6 +233,34 @@ func (x *GetUnitResponse) GetReceived() *timestamppb.Timestamp {
 		return x.Received
 	}
 	return nil
+}
+
+func (x *GetUnitResponse) GetArmatureThermalUsedRatio() float64 {
+	if x != nil {
+		return x.ArmatureThermalUsedRatio
+	}
+	return 0
+}
+
+func (x *GetUnitResponse) GetFieldThermalUsedRatio() float64 {
+	if x != nil {
+		return x.FieldThermalUsedRatio
+	}
+	return 0
+}
+
+func (x *GetUnitResponse) GetArmatureThermalTimeLeftS() float64 {
+	if x != nil && x.ArmatureThermalTimeLeftS != nil {
+		return *x.ArmatureThermalTimeLeftS
+	}
+	return 0
+}
+
+func (x *GetUnitResponse) GetFieldThermalTimeLeftS() float64 {
+	if x != nil && x.FieldThermalTimeLeftS != nil {
+		return *x.FieldThermalTimeLeftS
+	}
+	return 0
 }
 
 // GetEnvelopeRequest asks for one unit's capability envelope.
@@ -433,14 +470,20 @@ const file_genvelope_v1_fleet_proto_rawDesc = "" +
 	"\x11ListUnitsResponse\x12(\n" +
 	"\x05units\x18\x01 \x03(\v2\x12.genvelope.v1.UnitR\x05units\")\n" +
 	"\x0eGetUnitRequest\x12\x17\n" +
-	"\aunit_id\x18\x01 \x01(\tR\x06unitId\"\xd9\x01\n" +
+	"\aunit_id\x18\x01 \x01(\tR\x06unitId\"\x94\x04\n" +
 	"\x0fGetUnitResponse\x12&\n" +
 	"\x04unit\x18\x01 \x01(\v2\x12.genvelope.v1.UnitR\x04unit\x12,\n" +
 	"\x06latest\x18\x02 \x01(\v2\x14.genvelope.v1.SampleR\x06latest\x128\n" +
 	"\n" +
 	"evaluation\x18\x03 \x01(\v2\x18.genvelope.v1.EvaluationR\n" +
 	"evaluation\x126\n" +
-	"\breceived\x18\x04 \x01(\v2\x1a.google.protobuf.TimestampR\breceived\"\xa5\x01\n" +
+	"\breceived\x18\x04 \x01(\v2\x1a.google.protobuf.TimestampR\breceived\x12=\n" +
+	"\x1barmature_thermal_used_ratio\x18\x05 \x01(\x01R\x18armatureThermalUsedRatio\x127\n" +
+	"\x18field_thermal_used_ratio\x18\x06 \x01(\x01R\x15fieldThermalUsedRatio\x12C\n" +
+	"\x1carmature_thermal_time_left_s\x18\a \x01(\x01H\x00R\x18armatureThermalTimeLeftS\x88\x01\x01\x12=\n" +
+	"\x19field_thermal_time_left_s\x18\b \x01(\x01H\x01R\x15fieldThermalTimeLeftS\x88\x01\x01B\x1f\n" +
+	"\x1d_armature_thermal_time_left_sB\x1c\n" +
+	"\x1a_field_thermal_time_left_s\"\xa5\x01\n" +
 	"\x12GetEnvelopeRequest\x12\x17\n" +
 	"\aunit_id\x18\x01 \x01(\tR\x06unitId\x12\x13\n" +
 	"\x04v_kv\x18\x02 \x01(\x01H\x00R\x03vKv\x12\x13\n" +
@@ -514,6 +557,7 @@ func file_genvelope_v1_fleet_proto_init() {
 		return
 	}
 	file_genvelope_v1_types_proto_init()
+	file_genvelope_v1_fleet_proto_msgTypes[3].OneofWrappers = []any{}
 	file_genvelope_v1_fleet_proto_msgTypes[4].OneofWrappers = []any{
 		(*GetEnvelopeRequest_VKv)(nil),
 		(*GetEnvelopeRequest_VPu)(nil),
