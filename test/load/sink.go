@@ -1,0 +1,99 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"log/slog"
+	"net"
+	"os"
+	"os/signal"
+	"syscall"
+	"time"
+
+	"google.golang.org/grpc"
+
+	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+)
+
+// sinkFlag, as the first argument, makes the program a bare sink
+// listening on the address that follows. It is not among the flags the
+// usage lists: the harness passes it to itself.
+const sinkFlag = "-sink"
+
+// sink is the least a TelemetryService can do: it lets gRPC decode each
+// request and answers that every sample was accepted, without looking
+// at them. Loading it measures the transport and the client.
+type sink struct {
+	pb.UnimplementedTelemetryServiceServer
+}
+
+func (sink) Push(_ context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
+	return &pb.PushResponse{Sequence: req.Sequence, Accepted: uint32(len(req.Samples))}, nil
+}
+
+func (sink) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse]) error {
+	for {
+		req, err := st.Recv()
+		if errors.Is(err, io.EOF) {
+			return nil
+		}
+		if err != nil {
+			return err
+		}
+		if err := st.Send(&pb.PushResponse{Sequence: req.Sequence, Accepted: uint32(len(req.Samples))}); err != nil {
+			return err
+		}
+	}
+}
+
+// runSink serves a bare sink on addr until SIGTERM, SIGINT or the end
+// of its standard input (the harness going away), and returns the exit
+// status.
+func runSink(addr string) int {
+	log := slog.New(slog.NewTextHandler(os.Stderr, nil))
+	lis, err := net.Listen("tcp", addr)
+	if err != nil {
+		log.Error("sink: listen", "addr", addr, "err", err)
+		return 1
+	}
+	// The same receive limit as genvelope serve.
+	srv := grpc.NewServer(grpc.MaxRecvMsgSize(64 << 20))
+	pb.RegisterTelemetryServiceServer(srv, sink{})
+	fmt.Printf("%s%s\n", sinkListenPrefix, lis.Addr())
+
+	// Kept until the process exits: a SIGTERM that arrives while it stops
+	// for another reason must not kill it with a signal status.
+	sigs := make(chan os.Signal, 1)
+	signal.Notify(sigs, os.Interrupt, syscall.SIGTERM)
+	stdinEOF := make(chan struct{})
+	go func() {
+		// Ends at EOF or a read error, which both mean the harness is gone
+		// or done; the process exits soon after either way.
+		_, _ = io.Copy(io.Discard, os.Stdin)
+		close(stdinEOF)
+	}()
+	served := make(chan error, 1)
+	go func() { served <- srv.Serve(lis) }()
+	select {
+	case <-sigs:
+	case <-stdinEOF:
+	case err := <-served:
+		log.Error("sink: serve", "err", err)
+		return 1
+	}
+	stopped := make(chan struct{})
+	go func() { srv.GracefulStop(); close(stopped) }()
+	select {
+	case <-stopped:
+	case <-time.After(5 * time.Second):
+		srv.Stop()
+		<-stopped
+	}
+	if err := <-served; err != nil && !errors.Is(err, grpc.ErrServerStopped) {
+		log.Error("sink: serve", "err", err)
+		return 1
+	}
+	return 0
+}
