@@ -109,6 +109,15 @@ func (u *Unit) Line(field string) int {
 	return u.line
 }
 
+// ForgetLines drops the line numbers of every unit's keys, which only
+// diagnostics need, to save memory in a long-running service; Line then
+// returns the line where each unit starts.
+func (f *Fleet) ForgetLines() {
+	for _, u := range f.Units {
+		u.lines = nil
+	}
+}
+
 // Has reports whether the key at the dotted path field is in the file (as
 // opposed to taking its default).
 func (u *Unit) Has(field string) bool {

@@ -18,16 +18,35 @@ import (
 // Namespace prefixes every metric name.
 const Namespace = "genvelope"
 
-// Collector exports the units of a store.
+// family is one metric family: its name, help, type and label names.
+type family struct {
+	name    string
+	help    string
+	counter bool
+	labels  []string
+	desc    *prometheus.Desc
+}
+
+// sink receives the series of one scrape.
+type sink interface {
+	add(f *family, v float64, lv ...string)
+}
+
+// Collector exports the units of a store. It is a prometheus.Collector,
+// and it can also write its families straight to the text format
+// (WriteText), which a fleet of thousands of units needs: the registry's
+// sorting and encoding cost a hundred times more per series.
 type Collector struct {
 	store *ingest.Store
 	now   func() time.Time
 
-	info, headroom, margin, binding, feasible, zone        *prometheus.Desc
-	activePower, reactivePower, voltage, voltagePU         *prometheus.Desc
-	fieldCurrent, loadAngle, cct, thermal, age, sampleTime *prometheus.Desc
-	qLimit, accepted, samples, units                       *prometheus.Desc
-	alarmLevel, alarmShelved, alarmAcked, transitions      *prometheus.Desc
+	families []*family
+
+	info, headroom, margin, binding, feasible, zone        *family
+	activePower, reactivePower, voltage, voltagePU         *family
+	fieldCurrent, loadAngle, cct, thermal, age, sampleTime *family
+	qLimit, accepted, samples, units                       *family
+	alarmLevel, alarmShelved, alarmAcked, transitions      *family
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -36,86 +55,97 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	if now == nil {
 		now = time.Now
 	}
-	ul := []string{"unit", "site"}
-	d := func(name, help string, extra ...string) *prometheus.Desc {
-		return prometheus.NewDesc(Namespace+"_"+name, help, append(append([]string{}, ul...), extra...), nil)
+	c := &Collector{store: store, now: now}
+	mk := func(name, help string, counter bool, labels ...string) *family {
+		f := &family{name: Namespace + "_" + name, help: help, counter: counter, labels: labels}
+		f.desc = prometheus.NewDesc(f.name, help, labels, nil)
+		c.families = append(c.families, f)
+		return f
 	}
-	return &Collector{
-		store:         store,
-		now:           now,
-		info:          d("unit_info", "Configured generator (value 1), with its display name and rotor kind.", "name", "rotor"),
-		headroom:      d("reactive_headroom_vars", "Reactive power the unit can still deliver (direction=up, to q_max) or absorb (direction=down, to q_min) at its present P, voltage and coolant, var; negative outside the envelope.", "direction"),
-		margin:        d("limit_margin_ratio", "Margin to each limit as a ratio, positive inside the envelope (armature 1 - I/Imax, field 1 - Ifd/Ifd_max, stability and end_region (Q - Q_limit)/S_rated, prime_mover (P_max - P)/P_rated, volts_per_hertz 1 - (V/f)/1.05).", "limit"),
-		binding:       d("binding_limit", "The capability limit with the smallest margin at the latest sample (value 1).", "limit"),
-		feasible:      d("envelope_feasible", "1 when every bound of the envelope exists at the present active power, 0 when one does not (see binding_limit)."),
-		zone:          d("voltage_frequency_zone", "IEC 60034-1 operating zone of the latest sample: 0 zone A, 1 zone B, 2 outside both."),
-		activePower:   d("active_power_watts", "Active power of the latest sample, W."),
-		reactivePower: d("reactive_power_vars", "Reactive power of the latest sample, var (positive overexcited)."),
-		voltage:       d("terminal_voltage_volts", "Line-line terminal voltage of the latest sample, V."),
-		voltagePU:     d("terminal_voltage_ratio", "Terminal voltage of the latest sample as a ratio of rated voltage."),
-		fieldCurrent:  d("field_current_amperes", "Field current, A: measured (source=measured, when the sample carries one) and the machine model's (source=model).", "source"),
-		loadAngle:     d("load_angle_radians", "Internal load angle of the latest sample (q axis ahead of the terminal voltage), rad."),
-		cct:           d("critical_clearing_time_seconds", "Classical-model critical clearing time of a three-phase fault at the grid side at the latest operating point, s."),
-		thermal:       d("thermal_capacity_used_ratio", "Short-time thermal capability used, H/K (IEEE C50.13 law); 1 is the limit.", "winding"),
-		age:           d("telemetry_age_seconds", "Time since the unit's latest sample was accepted, by the server clock, s."),
-		sampleTime:    d("sample_timestamp_seconds", "Timestamp carried by the unit's latest accepted sample, Unix s."),
-		qLimit:        d("reactive_limit_vars", "Reactive power bound at the present P, voltage and coolant, var (bound=upper is q_max, bound=lower is q_min).", "bound"),
-		accepted:      d("unit_samples_accepted_total", "Samples accepted for the unit since the service started."),
-		samples:       prometheus.NewDesc(Namespace+"_samples_total", "Samples received, by result: accepted, duplicate, or the reason a sample was rejected.", []string{"result"}, nil),
-		units:         prometheus.NewDesc(Namespace+"_fleet_units", "Units in the fleet being served.", nil, nil),
-		alarmLevel:    d("alarm_level", "Alarm level of each limit of the unit: 0 normal, 1 warning, 2 critical (after the fleet file's thresholds, deadband and delays).", "limit"),
-		alarmShelved:  d("alarm_shelved", "1 while an operator has shelved the unit's alarm on this limit.", "limit"),
-		alarmAcked:    d("alarm_acknowledged", "1 while the unit's active alarm on this limit is acknowledged.", "limit"),
-		transitions:   prometheus.NewDesc(Namespace+"_alarm_transitions_total", "Alarm level changes, by limit and the level reached.", []string{"limit", "level"}, nil),
+	d := func(name, help string, extra ...string) *family {
+		return mk(name, help, false, append([]string{"unit", "site"}, extra...)...)
 	}
+	c.samples = mk("samples_total", "Samples received, by result: accepted, duplicate, or the reason a sample was rejected.", true, "result")
+	c.transitions = mk("alarm_transitions_total", "Alarm level changes, by limit and the level reached.", true, "limit", "level")
+	c.units = mk("fleet_units", "Units in the fleet being served.", false)
+	c.info = d("unit_info", "Configured generator (value 1), with its display name and rotor kind.", "name", "rotor")
+	c.accepted = mk("unit_samples_accepted_total", "Samples accepted for the unit since the service started.", true, "unit", "site")
+	c.thermal = d("thermal_capacity_used_ratio", "Short-time thermal capability used, H/K (IEEE C50.13 law); 1 is the limit.", "winding")
+	c.alarmLevel = d("alarm_level", "Alarm level of each limit of the unit: 0 normal, 1 warning, 2 critical (after the fleet file's thresholds, deadband and delays).", "limit")
+	c.alarmShelved = d("alarm_shelved", "1 while an operator has shelved the unit's alarm on this limit.", "limit")
+	c.alarmAcked = d("alarm_acknowledged", "1 while the unit's active alarm on this limit is acknowledged.", "limit")
+	c.headroom = d("reactive_headroom_vars", "Reactive power the unit can still deliver (direction=up, to q_max) or absorb (direction=down, to q_min) at its present P, voltage and coolant, var; negative outside the envelope.", "direction")
+	c.qLimit = d("reactive_limit_vars", "Reactive power bound at the present P, voltage and coolant, var (bound=upper is q_max, bound=lower is q_min).", "bound")
+	c.margin = d("limit_margin_ratio", "Margin to each limit as a ratio, positive inside the envelope (armature 1 - I/Imax, field 1 - Ifd/Ifd_max, stability and end_region (Q - Q_limit)/S_rated, prime_mover (P_max - P)/P_rated, volts_per_hertz 1 - (V/f)/1.05).", "limit")
+	c.binding = d("binding_limit", "The capability limit with the smallest margin at the latest sample (value 1).", "limit")
+	c.feasible = d("envelope_feasible", "1 when every bound of the envelope exists at the present active power, 0 when one does not (see binding_limit).")
+	c.zone = d("voltage_frequency_zone", "IEC 60034-1 operating zone of the latest sample: 0 zone A, 1 zone B, 2 outside both.")
+	c.activePower = d("active_power_watts", "Active power of the latest sample, W.")
+	c.reactivePower = d("reactive_power_vars", "Reactive power of the latest sample, var (positive overexcited).")
+	c.voltage = d("terminal_voltage_volts", "Line-line terminal voltage of the latest sample, V.")
+	c.voltagePU = d("terminal_voltage_ratio", "Terminal voltage of the latest sample as a ratio of rated voltage.")
+	c.fieldCurrent = d("field_current_amperes", "Field current, A: measured (source=measured, when the sample carries one) and the machine model's (source=model).", "source")
+	c.loadAngle = d("load_angle_radians", "Internal load angle of the latest sample (q axis ahead of the terminal voltage), rad.")
+	c.cct = d("critical_clearing_time_seconds", "Classical-model critical clearing time of a three-phase fault at the grid side at the latest operating point, s.")
+	c.age = d("telemetry_age_seconds", "Time since the unit's latest sample was accepted, by the server clock, s.")
+	c.sampleTime = d("sample_timestamp_seconds", "Timestamp carried by the unit's latest accepted sample, Unix s.")
+	return c
 }
 
 // Describe sends every descriptor.
 func (c *Collector) Describe(ch chan<- *prometheus.Desc) {
-	for _, d := range []*prometheus.Desc{c.info, c.headroom, c.margin, c.binding, c.feasible, c.zone,
-		c.activePower, c.reactivePower, c.voltage, c.voltagePU, c.fieldCurrent, c.loadAngle, c.cct,
-		c.thermal, c.age, c.sampleTime, c.qLimit, c.accepted, c.samples, c.units,
-		c.alarmLevel, c.alarmShelved, c.alarmAcked, c.transitions} {
-		ch <- d
+	for _, f := range c.families {
+		ch <- f.desc
 	}
 }
 
-// Collect builds the metrics from the store as it is now.
-func (c *Collector) Collect(ch chan<- prometheus.Metric) {
-	gauge := func(d *prometheus.Desc, v float64, lv ...string) {
-		ch <- prometheus.MustNewConstMetric(d, prometheus.GaugeValue, v, lv...)
+// constSink builds const metrics for a registry.
+type constSink chan<- prometheus.Metric
+
+func (ch constSink) add(f *family, v float64, lv ...string) {
+	t := prometheus.GaugeValue
+	if f.counter {
+		t = prometheus.CounterValue
 	}
+	ch <- prometheus.MustNewConstMetric(f.desc, t, v, lv...)
+}
+
+// Collect builds the metrics from the store as it is now.
+func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch)) }
+
+// series walks the store once and hands every series to s.
+func (c *Collector) series(out sink) {
 	counts := c.store.Counts()
 	for r := ingest.Result(0); r < ingest.NumResults; r++ {
-		ch <- prometheus.MustNewConstMetric(c.samples, prometheus.CounterValue, float64(counts[r]), r.String())
+		out.add(c.samples, float64(counts[r]), r.String())
 	}
 	tr := c.store.Transitions()
 	for k := range tr {
 		for l := alarm.Normal; l <= alarm.Critical; l++ {
-			ch <- prometheus.MustNewConstMetric(c.transitions, prometheus.CounterValue, float64(tr[k][l]), alarm.Kind(k).String(), l.String())
+			out.add(c.transitions, float64(tr[k][l]), alarm.Kind(k).String(), l.String())
 		}
 	}
 	units := c.store.Units()
-	gauge(c.units, float64(len(units)))
+	out.add(c.units, float64(len(units)))
 	now := c.now()
 	nowNS := now.UnixNano()
 	for _, u := range units {
 		v := u.View()
 		cfg := v.Config
 		id, site := cfg.ID, cfg.Site
-		gauge(c.info, 1, id, site, cfg.DisplayName(), cfg.Machine.Rotor.String())
-		ch <- prometheus.MustNewConstMetric(c.accepted, prometheus.CounterValue, float64(v.Accepted), id, site)
-		gauge(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
-		gauge(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		out.add(c.info, 1, id, site, cfg.DisplayName(), cfg.Machine.Rotor.String())
+		out.add(c.accepted, float64(v.Accepted), id, site)
+		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
+		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
 		for k := range v.Alarms {
 			m := &v.Alarms[k]
 			name := alarm.Kind(k).String()
-			gauge(c.alarmLevel, float64(m.Level), id, site, name)
+			out.add(c.alarmLevel, float64(m.Level), id, site, name)
 			if m.Shelved(nowNS) {
-				gauge(c.alarmShelved, 1, id, site, name)
+				out.add(c.alarmShelved, 1, id, site, name)
 			}
 			if m.Acknowledged && m.Level != alarm.Normal {
-				gauge(c.alarmAcked, 1, id, site, name)
+				out.add(c.alarmAcked, 1, id, site, name)
 			}
 		}
 		if !v.HasSample {
@@ -125,42 +155,42 @@ func (c *Collector) Collect(ch chan<- prometheus.Metric) {
 		q := b.PowerPU(s.QMvar)
 		up, down := e.Headroom(q)
 		if up.OK {
-			gauge(c.headroom, b.PowerMW(up.V)*1e6, id, site, "up")
+			out.add(c.headroom, b.PowerMW(up.V)*1e6, id, site, "up")
 		}
 		if down.OK {
-			gauge(c.headroom, b.PowerMW(down.V)*1e6, id, site, "down")
+			out.add(c.headroom, b.PowerMW(down.V)*1e6, id, site, "down")
 		}
 		if e.QMax.OK {
-			gauge(c.qLimit, b.PowerMW(e.QMax.V)*1e6, id, site, "upper")
+			out.add(c.qLimit, b.PowerMW(e.QMax.V)*1e6, id, site, "upper")
 		}
 		if e.QMin.OK {
-			gauge(c.qLimit, b.PowerMW(e.QMin.V)*1e6, id, site, "lower")
+			out.add(c.qLimit, b.PowerMW(e.QMin.V)*1e6, id, site, "lower")
 		}
 		for _, l := range limits.Limits() {
 			if m := e.Margins[l]; m.OK {
-				gauge(c.margin, m.V, id, site, l.String())
+				out.add(c.margin, m.V, id, site, l.String())
 			}
 		}
 		if e.Binding != limits.NoLimit {
-			gauge(c.binding, 1, id, site, e.Binding.String())
+			out.add(c.binding, 1, id, site, e.Binding.String())
 		}
-		gauge(c.feasible, boolFloat(e.Feasible), id, site)
-		gauge(c.zone, float64(e.Zone), id, site)
-		gauge(c.activePower, s.PMW*1e6, id, site)
-		gauge(c.reactivePower, s.QMvar*1e6, id, site)
-		gauge(c.voltage, s.VKV*1e3, id, site)
-		gauge(c.voltagePU, b.VoltagePU(s.VKV), id, site)
+		out.add(c.feasible, boolFloat(e.Feasible), id, site)
+		out.add(c.zone, float64(e.Zone), id, site)
+		out.add(c.activePower, s.PMW*1e6, id, site)
+		out.add(c.reactivePower, s.QMvar*1e6, id, site)
+		out.add(c.voltage, s.VKV*1e3, id, site)
+		out.add(c.voltagePU, b.VoltagePU(s.VKV), id, site)
 		if s.HasFieldA {
-			gauge(c.fieldCurrent, s.FieldA, id, site, "measured")
+			out.add(c.fieldCurrent, s.FieldA, id, site, "measured")
 		}
-		gauge(c.fieldCurrent, b.FieldA(e.IfdModel), id, site, "model")
+		out.add(c.fieldCurrent, b.FieldA(e.IfdModel), id, site, "model")
 		pPU, vPU := b.PowerPU(s.PMW), b.VoltagePU(s.VKV)
-		gauge(c.loadAngle, cfg.Model.LoadAngle(pPU, q, vPU), id, site)
+		out.add(c.loadAngle, cfg.Model.LoadAngle(pPU, q, vPU), id, site)
 		if t := cfg.Model.CriticalClearingTime(pPU, q, vPU); t.OK && !math.IsInf(t.V, 0) {
-			gauge(c.cct, t.V, id, site)
+			out.add(c.cct, t.V, id, site)
 		}
-		gauge(c.age, now.Sub(v.Received).Seconds(), id, site)
-		gauge(c.sampleTime, float64(s.Time.UnixNano())/1e9, id, site)
+		out.add(c.age, now.Sub(v.Received).Seconds(), id, site)
+		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, id, site)
 	}
 }
 

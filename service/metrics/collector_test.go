@@ -1,11 +1,18 @@
 package metrics
 
 import (
+	"bytes"
+	"sort"
+	"strings"
 	"testing"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/testutil"
+	"github.com/prometheus/client_golang/prometheus/testutil/promlint"
+	dto "github.com/prometheus/client_model/go"
+	"github.com/prometheus/common/expfmt"
+	"github.com/prometheus/common/model"
 
 	"github.com/genvelope/genvelope/deploy/examples"
 	"github.com/genvelope/genvelope/service/ingest"
@@ -64,4 +71,76 @@ func TestCollectorSeries(t *testing.T) {
 	if have["genvelope_unit_info"] != 3 || have["genvelope_reactive_headroom_vars"] != 2 {
 		t.Errorf("series: %v", have)
 	}
+}
+
+// The text writer says exactly what the registry says, and passes the
+// Prometheus linter (Prometheus documentation; the tool is the check).
+func TestWriteTextMatchesRegistry(t *testing.T) {
+	s := store(t)
+	now := func() time.Time { return time.Date(2026, 6, 1, 12, 0, 5, 0, time.UTC) }
+	c := NewCollector(s, now)
+	reg := prometheus.NewPedanticRegistry()
+	reg.MustRegister(c)
+	want, err := reg.Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	var buf bytes.Buffer
+	if err := c.WriteText(&buf); err != nil {
+		t.Fatal(err)
+	}
+	p := expfmt.NewTextParser(model.LegacyValidation)
+	got, err := p.TextToMetricFamilies(bytes.NewReader(buf.Bytes()))
+	if err != nil {
+		t.Fatalf("the text does not parse: %v\n%s", err, buf.String())
+	}
+	if len(got) != len(want) {
+		t.Fatalf("%d families written, registry has %d", len(got), len(want))
+	}
+	for _, w := range want {
+		g := got[w.GetName()]
+		if g == nil {
+			t.Errorf("family %s missing", w.GetName())
+			continue
+		}
+		if g.GetHelp() != w.GetHelp() || g.GetType() != w.GetType() || len(g.GetMetric()) != len(w.GetMetric()) {
+			t.Errorf("family %s differs: %d series written, registry %d", w.GetName(), len(g.GetMetric()), len(w.GetMetric()))
+		}
+		values := map[string]float64{}
+		for _, m := range g.GetMetric() {
+			values[labelKey(m)] = value(m)
+		}
+		for _, m := range w.GetMetric() {
+			if v, ok := values[labelKey(m)]; !ok || v != value(m) {
+				t.Errorf("%s{%s}: written %v (present %v), registry %v", w.GetName(), labelKey(m), v, ok, value(m))
+			}
+		}
+	}
+	var fams []*dto.MetricFamily
+	for _, f := range got {
+		fams = append(fams, f)
+	}
+	problems, err := promlint.NewWithMetricFamilies(fams).Lint()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, p := range problems {
+		t.Errorf("lint: %s: %s", p.Metric, p.Text)
+	}
+}
+
+func labelKey(m *dto.Metric) string {
+	var parts []string
+	for _, l := range m.GetLabel() {
+		parts = append(parts, l.GetName()+"="+l.GetValue())
+	}
+	sort.Strings(parts)
+	return strings.Join(parts, ",")
+}
+
+func value(m *dto.Metric) float64 {
+	if m.Gauge != nil {
+		return m.GetGauge().GetValue()
+	}
+	return m.GetCounter().GetValue()
 }
