@@ -81,11 +81,13 @@ func brent(f func(float64) float64, a, b, fa, fb, tol float64) (root float64, ok
 const stabTol = 1e-9
 
 // warmRoot looks for the root of an increasing function f near hint, the
-// root of the previous sample, using the slope found there: a Newton step
-// with that slope, stretched by a tenth so that it usually steps just past
-// the root, gives a bracket that Brent's method closes in a few steps. It
-// never looks above hi. ok is false when three such steps find no
-// bracket; the caller then solves from its cold bracket.
+// root of the previous sample, by secant steps that start from the slope
+// found there: the first step is a Newton step with that slope, and each
+// later one uses the last two points. Near a simple root this converges
+// superlinearly, so a slowly moving operating point needs three or four
+// evaluations. It never looks above hi. ok is false when the steps do
+// not settle (a kink, a slope of the wrong sign, a far jump); the caller
+// then solves from its cold bracket, which is always safe.
 func warmRoot(f func(float64) float64, hint, slope, hi float64) (root, newSlope float64, ok bool) {
 	if !(hint < hi) {
 		return 0, 0, false
@@ -96,29 +98,33 @@ func warmRoot(f func(float64) float64, hint, slope, hi float64) (root, newSlope 
 		return x0, slope, true
 	}
 	if !(slope > 0) {
-		slope = 1
-	}
-	for range 3 {
-		x1 := x0 - 1.1*f0/slope
-		if x1 >= hi {
-			x1 = hi
+		// No slope known yet (the last root came from the cold path):
+		// measure it here.
+		const h = 1e-6
+		slope = (f(x0+h) - f0) / h
+		if !(slope > 0) {
+			return 0, 0, false
 		}
-		if x1 == x0 {
+	}
+	x1 := x0 - f0/slope
+	for range 6 {
+		if !(x1 < hi) || math.Abs(x1-hint) > 0.2 {
 			return 0, 0, false
 		}
 		f1 := f(x1)
-		if s := (f1 - f0) / (x1 - x0); s > 0 {
-			slope = s
+		if f1 == 0 {
+			return x1, slope, true
 		}
-		if (f0 > 0) != (f1 > 0) || f1 == 0 {
-			a, b, fa, fb := x0, x1, f0, f1
-			if a > b {
-				a, b, fa, fb = b, a, fb, fa
-			}
-			r, ok := brent(f, a, b, fa, fb, stabTol)
-			return r, slope, ok
+		s := (f1 - f0) / (x1 - x0)
+		if !(s > 0) {
+			return 0, 0, false
 		}
-		x0, f0 = x1, f1
+		slope = s
+		x2 := x1 - f1/s
+		if math.Abs(x2-x1) <= stabTol {
+			return x2, slope, true
+		}
+		x0, f0, x1 = x1, f1, x2
 	}
 	return 0, 0, false
 }
