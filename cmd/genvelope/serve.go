@@ -44,6 +44,7 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 			maxBatch := fs.Int("max-batch", 10000, "most samples one request may carry")
 			maxFuture := fs.Duration("max-future", 5*time.Minute, "how far ahead of the server clock a sample may be stamped")
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
+			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
 			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
 			fs.Var(logFormat, "log-format", "log format: text or json")
@@ -66,6 +67,7 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 					log.Error("cannot start", "err", err)
 					return exitUsage
 				}
+				gc.apply(len(srv.Store().Units()), log)
 				log.Warn(fleet.Caution)
 				ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 				defer stop()

@@ -59,13 +59,14 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 	}
 	at := fmt.Sprintf("at %.1f MW, %.2f kV", c.PMW, c.VKV)
 	switch k {
-	case Armature, Field:
-		if c.QMaxMvar == nil {
-			return fmt.Sprintf("%s: %s limit %s: no reactive capability left %s; reduce excitation and load.", id, k, level, at)
+	case Armature:
+		return fmt.Sprintf("%s: armature current at %.0f %% of its rating %s; reduce the reactive (or active) load.", id, 100*(1-value), at)
+	case Field:
+		if c.QMaxMvar != nil && c.QMaxLimit == "field" {
+			return fmt.Sprintf("%s: %.1f Mvar left before the field current limit (q_max %.1f Mvar) %s; reduce excitation or move reactive load to other units.",
+				id, *c.QMaxMvar-c.QMvar, *c.QMaxMvar, at)
 		}
-		left := *c.QMaxMvar - c.QMvar
-		return fmt.Sprintf("%s: %.1f Mvar left before the %s current limit (q_max %.1f Mvar, set by the %s) %s; reduce excitation or move reactive load to other units.",
-			id, left, k, *c.QMaxMvar, c.QMaxLimit, at)
+		return fmt.Sprintf("%s: field current at %.0f %% of its rating %s; reduce excitation or move reactive load to other units.", id, 100*(1-value), at)
 	case Stability, EndRegion:
 		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit"}[k]
 		if c.QMinMvar == nil {

@@ -80,8 +80,17 @@ func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Ti
 	s.hub.Publish(alarm.Event{
 		Unit: u.cfg.ID, Site: u.cfg.Site, Kind: k, Change: alarm.LevelChanged,
 		Level: m.Level, Prev: prev, Time: at, Value: x, Threshold: thr,
+		Shelved: shelvedUntil(m), Acknowledged: m.Acknowledged,
 		Message: alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx),
 	})
+}
+
+// shelvedUntil is the end of m's shelf, or zero when it is not shelved.
+func shelvedUntil(m *alarm.Machine) time.Time {
+	if m.ShelvedUntil == 0 {
+		return time.Time{}
+	}
+	return time.Unix(0, m.ShelvedUntil)
 }
 
 // context returns the operating point behind the unit's alarms. u.mu
@@ -128,7 +137,7 @@ func (s *Store) Sweep(now time.Time) {
 			if m := &u.alarms[k]; m.ShelvedUntil != 0 && m.ShelvedUntil <= t {
 				m.ShelvedUntil = 0
 				s.hub.Publish(alarm.Event{Unit: u.cfg.ID, Site: u.cfg.Site, Kind: alarm.Kind(k), Change: alarm.Unshelved,
-					Level: m.Level, Prev: m.Level, Time: now, Value: m.Value,
+					Level: m.Level, Prev: m.Level, Time: now, Value: m.Value, Acknowledged: m.Acknowledged,
 					Message: fmt.Sprintf("%s: %s alarm no longer shelved (shelf expired).", u.cfg.ID, alarm.Kind(k))})
 			}
 		}
@@ -159,7 +168,7 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 	}
 	m.Acknowledged = true
 	s.hub.Publish(alarm.Event{Unit: id, Site: u.cfg.Site, Kind: k, Change: alarm.Acknowledged, Level: m.Level, Prev: m.Level,
-		Time: now, Value: m.Value, Message: fmt.Sprintf("%s: %s alarm (%s) acknowledged%s.", id, k, m.Level, byWhom(by))})
+		Acknowledged: true, Shelved: shelvedUntil(m), Time: now, Value: m.Value, Message: fmt.Sprintf("%s: %s alarm (%s) acknowledged%s.", id, k, m.Level, byWhom(by))})
 	return nil
 }
 
@@ -173,7 +182,8 @@ func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string)
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	m := &u.alarms[k]
-	ev := alarm.Event{Unit: id, Site: u.cfg.Site, Kind: k, Level: m.Level, Prev: m.Level, Time: now, Value: m.Value}
+	ev := alarm.Event{Unit: id, Site: u.cfg.Site, Kind: k, Level: m.Level, Prev: m.Level, Time: now, Value: m.Value,
+		Acknowledged: m.Acknowledged}
 	if until.IsZero() {
 		if m.ShelvedUntil == 0 {
 			return nil

@@ -90,6 +90,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	for {
 		select {
 		case req := <-reqs:
+			if err := ctx.Err(); err != nil {
+				return err // the client has gone: it will resend what it lacks an answer for
+			}
 			if err := answer(req); err != nil {
 				return err
 			}

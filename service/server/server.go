@@ -4,20 +4,24 @@
 package server
 
 import (
+	"compress/gzip"
 	"context"
 	"errors"
 	"fmt"
+	"io"
 	"log/slog"
 	"net"
 	"net/http"
 	"net/http/pprof"
+	"runtime/debug"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
-	"github.com/prometheus/client_golang/prometheus/promhttp"
+	"github.com/prometheus/common/expfmt"
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/health"
 	healthpb "google.golang.org/grpc/health/grpc_health_v1"
@@ -29,6 +33,7 @@ import (
 	"github.com/genvelope/genvelope/service/metrics"
 	"github.com/genvelope/genvelope/service/rpc"
 	"github.com/genvelope/genvelope/service/state"
+	"github.com/genvelope/genvelope/service/web"
 )
 
 // Config is what a server needs to start.
@@ -62,6 +67,7 @@ type Server struct {
 	grpc   *grpc.Server
 	health *health.Server
 	http   *http.Server
+	web    *web.UI
 
 	grpcLn, httpLn net.Listener
 	draining       chan struct{}
@@ -97,7 +103,7 @@ func New(cfg Config) (*Server, error) {
 
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
-	reg.MustRegister(metrics.NewCollector(s.store, nil))
+	fleetMetrics := metrics.NewCollector(s.store, nil)
 	s.reloadSuccess = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Namespace: metrics.Namespace, Name: "fleet_reloads_total",
 		Help: "Fleet file reloads, by result: success, or failure (the file had errors; the running fleet was kept).",
@@ -125,10 +131,12 @@ func New(cfg Config) (*Server, error) {
 	reflection.Register(s.grpc)
 
 	mux := http.NewServeMux()
-	mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{ErrorLog: slog.NewLogLogger(s.log.Handler(), slog.LevelError)}))
+	mux.Handle("GET /metrics", metricsHandler(reg, fleetMetrics, s.log))
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.HandleFunc("GET /readyz", s.readyz)
 	mux.HandleFunc("POST /-/reload", s.reloadHandler)
+	s.web = web.New(s.store, web.Options{Logger: s.log})
+	mux.Handle("/", s.web) // the operator pages: /, /units/{id} and their endpoints
 	if cfg.Pprof {
 		mux.HandleFunc("/debug/pprof/", pprof.Index)
 		mux.HandleFunc("/debug/pprof/cmdline", pprof.Cmdline)
@@ -181,6 +189,11 @@ func (s *Server) Run(ctx context.Context) error {
 		defer bg.Done()
 		s.sweep(bgCtx)
 	}()
+	bg.Add(1)
+	go func() {
+		defer bg.Done()
+		s.web.Run(bgCtx) // the charts' operating-point trails
+	}()
 	if s.cfg.StatePath != "" {
 		bg.Add(1)
 		go func() {
@@ -224,6 +237,38 @@ func (s *Server) Run(ctx context.Context) error {
 	}
 	s.log.Info("stopped")
 	return runErr
+}
+
+// metricsHandler serves the registry's families (Go runtime, process,
+// reloads) and then the fleet's, which the collector writes straight to
+// the text format: at ten thousand units the registry's own path costs
+// seconds per scrape.
+func metricsHandler(reg *prometheus.Registry, fleetMetrics *metrics.Collector, log *slog.Logger) http.Handler {
+	format := expfmt.NewFormat(expfmt.TypeTextPlain)
+	return http.HandlerFunc(func(w http.ResponseWriter, r *http.Request) {
+		mfs, err := reg.Gather()
+		if err != nil {
+			log.Error("gathering metrics", "err", err)
+		}
+		w.Header().Set("Content-Type", string(format))
+		var out io.Writer = w
+		if strings.Contains(r.Header.Get("Accept-Encoding"), "gzip") {
+			w.Header().Set("Content-Encoding", "gzip")
+			gz, _ := gzip.NewWriterLevel(w, gzip.BestSpeed)
+			defer gz.Close()
+			out = gz
+		}
+		enc := expfmt.NewEncoder(out, format)
+		for _, mf := range mfs {
+			if err := enc.Encode(mf); err != nil {
+				log.Warn("writing metrics", "err", err)
+				return
+			}
+		}
+		if err := fleetMetrics.WriteText(out); err != nil {
+			log.Warn("writing metrics", "err", err)
+		}
+	})
 }
 
 // sweep runs the wall-clock alarms (stale telemetry, shelf expiry) once
@@ -288,5 +333,9 @@ func loadFleet(path string) (*fleet.Fleet, error) {
 	if ds.HasErrors() {
 		return nil, fmt.Errorf("fleet file %s has %d errors:\n%s", path, ds.Count(fleet.Error), ds)
 	}
+	// The service needs no line numbers, and parsing a large file leaves
+	// much garbage: give both back before serving.
+	fl.ForgetLines()
+	debug.FreeOSMemory()
 	return fl, nil
 }

@@ -1,0 +1,507 @@
+package web
+
+import (
+	"bytes"
+	"fmt"
+	"html/template"
+	"math"
+	"sort"
+	"strconv"
+	"strings"
+	"time"
+
+	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
+	"github.com/genvelope/genvelope/service/chart"
+	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/report"
+)
+
+// level is how an alarm level is shown: never by colour alone, always
+// with a shape and a word.
+type level struct {
+	Level alarm.Level
+	Word  string // "critical", "warning", "normal"
+	Icon  string // a shape that differs per level
+	Class string // the stylesheet's class
+}
+
+func levelOf(l alarm.Level) level {
+	switch l {
+	case alarm.Critical:
+		return level{l, "critical", "◆", "lvl-critical"}
+	case alarm.Warning:
+		return level{l, "warning", "▲", "lvl-warning"}
+	}
+	return level{alarm.Normal, "normal", "●", "lvl-normal"}
+}
+
+// num is a number as shown and as sorted; Sort is "" for a value that
+// does not exist.
+type num struct {
+	Text string
+	Sort string
+}
+
+const dash = "—"
+
+// fmtNum formats x with dec decimals, a true minus sign, and "—" for a
+// value that does not exist.
+func fmtNum(x *float64, dec int) num {
+	if x == nil || math.IsNaN(*x) || math.IsInf(*x, 0) {
+		return num{Text: dash}
+	}
+	v := *x
+	if math.Abs(v) < 0.5*math.Pow(10, -float64(dec)) {
+		v = 0 // no "−0.0"
+	}
+	s := strconv.FormatFloat(v, 'f', dec, 64)
+	return num{Text: strings.Replace(s, "-", "−", 1), Sort: strconv.FormatFloat(*x, 'g', 8, 64)}
+}
+
+func val(x float64) *float64 { return &x }
+
+// fmtPct formats a ratio as a percentage.
+func fmtPct(x *float64, dec int) num {
+	if x == nil {
+		return num{Text: dash}
+	}
+	n := fmtNum(val(100**x), dec)
+	if n.Sort != "" {
+		n.Text += " %"
+		n.Sort = strconv.FormatFloat(*x, 'g', 8, 64)
+	}
+	return n
+}
+
+// fmtAge formats a duration in whole seconds, minutes and hours.
+func fmtAge(d time.Duration) string {
+	if d < 0 {
+		d = 0
+	}
+	s := int64(d / time.Second)
+	switch {
+	case s < 120:
+		return fmt.Sprintf("%d s", s)
+	case s < 2*3600:
+		return fmt.Sprintf("%d min %02d s", s/60, s%60)
+	case s < 48*3600:
+		return fmt.Sprintf("%d h %02d min", s/3600, s/60%60)
+	}
+	return fmt.Sprintf("%d d %02d h", s/86400, s/3600%24)
+}
+
+// fmtClock is a wall-clock time as shown on the pages.
+func fmtClock(t time.Time) string { return t.Format("15:04:05 MST") }
+
+// fmtWhen is a time with its date, as shown on the pages.
+func fmtWhen(t time.Time) string { return t.Format("2006-01-02 15:04:05 MST") }
+
+// limitTitle names the limits in the operators' words.
+var limitTitle = map[string]string{
+	"armature":        "Armature current",
+	"field":           "Field current",
+	"stability":       "Steady-state stability",
+	"end_region":      "Stator end region",
+	"prime_mover":     "Prime mover",
+	"volts_per_hertz": "Volts per hertz",
+	"none":            "none",
+}
+
+// limitBasis says what each margin is a fraction of.
+var limitBasis = map[string]string{
+	"armature":        "of the armature current rating",
+	"field":           "of the field current rating",
+	"stability":       "of rated MVA, above the practical limit",
+	"end_region":      "of rated MVA, above the end-region curve",
+	"prime_mover":     "of rated MW, below p_max",
+	"volts_per_hertz": "below 1.05 pu continuous",
+}
+
+// kindTitle names the alarms in the operators' words.
+var kindTitle = [alarm.NumKinds]string{
+	alarm.Armature:             "Armature current",
+	alarm.Field:                "Field current",
+	alarm.Stability:            "Steady-state stability",
+	alarm.EndRegion:            "Stator end region",
+	alarm.PrimeMover:           "Prime mover",
+	alarm.VoltsPerHertz:        "Volts per hertz",
+	alarm.ArmatureThermal:      "Armature short-time heating",
+	alarm.FieldThermal:         "Field short-time heating",
+	alarm.VoltageFrequencyZone: "Voltage/frequency zone",
+	alarm.StaleTelemetry:       "Telemetry stale",
+	alarm.FieldCurrentMismatch: "Field current vs model",
+}
+
+// limitName returns the operators' name of a limit given by its name.
+func limitName(s *string) string {
+	if s == nil {
+		return dash
+	}
+	if t, ok := limitTitle[*s]; ok {
+		return t
+	}
+	return *s
+}
+
+// alarmSummary is the state of a unit's alarms at one wall-clock time.
+type alarmSummary struct {
+	Highest level // the highest level of the alarms not shelved
+	Active  int   // alarms above normal, not shelved
+	Unacked int   // of them, not acknowledged
+	Shelved int   // alarms shelved
+	ByKind  [alarm.NumKinds]level
+}
+
+func summarize(ms *[alarm.NumKinds]alarm.Machine, now time.Time) alarmSummary {
+	var s alarmSummary
+	t := now.UnixNano()
+	for k := range ms {
+		m := &ms[k]
+		s.ByKind[k] = levelOf(m.Level)
+		if m.Shelved(t) {
+			s.Shelved++
+			continue
+		}
+		if m.Level == alarm.Normal {
+			continue
+		}
+		s.Active++
+		if !m.Acknowledged {
+			s.Unacked++
+		}
+		if m.Level > s.Highest.Level {
+			s.Highest = levelOf(m.Level)
+		}
+	}
+	if s.Highest.Word == "" {
+		s.Highest = levelOf(alarm.Normal)
+	}
+	return s
+}
+
+// evaluation reports the view's latest sample in engineering units, or
+// nil without one.
+func evaluation(v *ingest.View) *report.Evaluation {
+	if !v.HasSample {
+		return nil
+	}
+	s := &v.Latest
+	pt := report.Point(v.Config, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
+	return report.New(v.Config, pt, &v.Eval)
+}
+
+// row is one unit in the fleet table.
+type row struct {
+	ID, Name, Site, Href string
+	HasSample            bool
+	Feasible             bool // every bound exists (meaningful with a sample)
+	Within               bool // inside every limit
+	P, Q, V              num
+	Up, Down             num
+	UpLimit, DownLimit   string
+	Binding              string
+	BindingMargin        num
+	BindingWord          string // "left" or "beyond"
+	Alarms               alarmSummary
+	Age                  num
+	Rank                 int
+}
+
+// fleetData is what the overview shows.
+type fleetData struct {
+	Now      time.Time
+	Rows     []row
+	Units    int
+	Critical int
+	Warning  int
+	NoData   int // units that never reported or whose telemetry is stale
+	Outside  int // units outside their envelope
+}
+
+// worst returns the smallest capability margin of an evaluation, or +Inf.
+func worst(ev *report.Evaluation) float64 {
+	m := math.Inf(1)
+	if ev.BindingLimit != nil {
+		if b := ev.Margins[*ev.BindingLimit]; b != nil {
+			m = *b
+		}
+	}
+	return m
+}
+
+func (ui *UI) fleetData() *fleetData {
+	now := ui.opts.Now()
+	units := ui.store.Units()
+	d := &fleetData{Now: now, Units: len(units), Rows: make([]row, 0, len(units))}
+	type ranked struct {
+		r      row
+		margin float64
+	}
+	rs := make([]ranked, 0, len(units))
+	for _, u := range units {
+		v := u.View()
+		cfg := v.Config
+		r := row{ID: cfg.ID, Name: cfg.DisplayName(), Site: cfg.Site, Href: unitURL(cfg.ID), HasSample: v.HasSample,
+			Alarms: summarize(&v.Alarms, now)}
+		margin := math.Inf(1)
+		if ev := evaluation(&v); ev != nil {
+			r.P, r.Q, r.V = fmtNum(&ev.PMW, 1), fmtNum(&ev.QMvar, 1), fmtNum(&ev.VKV, 2)
+			r.Up, r.Down = fmtNum(ev.QHeadroomUpMvar, 1), fmtNum(ev.QHeadroomDownMvar, 1)
+			r.UpLimit, r.DownLimit = limitName(ev.QMaxLimit), limitName(ev.QMinLimit)
+			r.Feasible, r.Within = ev.Feasible, ev.WithinLimits
+			if ev.BindingLimit != nil {
+				r.Binding = limitName(ev.BindingLimit)
+				r.BindingMargin, r.BindingWord = fmtPct(ev.Margins[*ev.BindingLimit], 1), "left"
+				if m := ev.Margins[*ev.BindingLimit]; m != nil && *m < 0 {
+					r.BindingMargin, r.BindingWord = fmtPct(val(-*m), 1), "beyond"
+				}
+			}
+			if !ev.Feasible {
+				r.Binding = limitName(ev.InfeasibleLimit)
+				r.BindingMargin = num{Text: "no bound", Sort: "-1e9"}
+			}
+			margin = worst(ev)
+			if !ev.Feasible {
+				margin = math.Inf(-1)
+			}
+			age := now.Sub(v.Received)
+			r.Age = num{Text: fmtAge(age), Sort: strconv.FormatFloat(age.Seconds(), 'f', 3, 64)}
+			if !ev.WithinLimits {
+				d.Outside++
+			}
+		} else {
+			r.P, r.Q, r.V, r.Up, r.Down, r.BindingMargin = num{Text: dash}, num{Text: dash}, num{Text: dash}, num{Text: dash}, num{Text: dash}, num{Text: dash}
+			r.Binding, r.UpLimit, r.DownLimit = dash, "", ""
+			r.Age = num{Text: "never", Sort: "1e18"}
+		}
+		switch r.Alarms.Highest.Level {
+		case alarm.Critical:
+			d.Critical++
+		case alarm.Warning:
+			d.Warning++
+		}
+		if !v.HasSample || v.Alarms[alarm.StaleTelemetry].Level != alarm.Normal {
+			d.NoData++
+		}
+		rs = append(rs, ranked{r, margin})
+	}
+	// Worst first: the highest alarm level, then the smallest margin;
+	// units without telemetry after those that have it at the same level.
+	sort.SliceStable(rs, func(i, j int) bool {
+		a, b := &rs[i], &rs[j]
+		if a.r.Alarms.Highest.Level != b.r.Alarms.Highest.Level {
+			return a.r.Alarms.Highest.Level > b.r.Alarms.Highest.Level
+		}
+		if a.r.HasSample != b.r.HasSample {
+			return a.r.HasSample
+		}
+		if a.margin != b.margin {
+			return a.margin < b.margin
+		}
+		return a.r.ID < b.r.ID
+	})
+	for i := range rs {
+		rs[i].r.Rank = i
+		d.Rows = append(d.Rows, rs[i].r)
+	}
+	return d
+}
+
+// unitData is what a unit page shows.
+type unitData struct {
+	Now          time.Time
+	view         ingest.View
+	Unit         *fleet.Unit
+	Eval         *report.Evaluation // nil without a sample
+	Alarms       alarmSummary
+	AlarmRows    []alarmRow
+	Trail        []chart.Point
+	trailVersion uint64
+	Age          string
+	Chart        template.HTML
+	Href         string
+
+	// The sample, as shown.
+	SampleTime    string
+	Quality       string
+	Rating        string
+	AcceptedCount uint64
+
+	Margins  []marginRow
+	Thermal  []thermalRow
+	Headroom struct{ Up, Down, QMax, QMin num }
+}
+
+// marginRow is one limit's margin.
+type marginRow struct {
+	Name, Title, Basis string
+	Value              num
+	Fill               int // 0..100, the bar's length
+	Level              level
+	Binding            bool
+}
+
+// thermalRow is one winding's short-time heating.
+type thermalRow struct {
+	Title    string
+	Used     num
+	Fill     int
+	Current  num // pu of the continuous rating
+	TimeLeft string
+	Level    level
+}
+
+// alarmRow is one alarm on the unit page.
+type alarmRow struct {
+	Kind         string // the machine name, e.g. "field"
+	Title        string
+	Level        level
+	Since        string
+	Message      string
+	Acknowledged bool
+	Shelved      bool
+	ShelvedUntil string
+	Action       string // URL prefix of the alarm's POST endpoints
+}
+
+func (ui *UI) unitData(u *ingest.Unit) *unitData {
+	now := ui.opts.Now()
+	v := u.View()
+	cfg := v.Config
+	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID)}
+	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
+	r := cfg.Rating
+	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	if ev := d.Eval; ev != nil {
+		d.Age = fmtAge(now.Sub(v.Received))
+		d.SampleTime = fmtWhen(v.Latest.Time)
+		d.AcceptedCount = v.Accepted
+		d.Quality = map[ingest.Quality]string{ingest.QualityGood: "good", ingest.QualityQuestionable: "questionable"}[v.Latest.Quality]
+		d.Headroom.Up, d.Headroom.Down = fmtNum(ev.QHeadroomUpMvar, 1), fmtNum(ev.QHeadroomDownMvar, 1)
+		d.Headroom.QMax, d.Headroom.QMin = fmtNum(ev.QMaxMvar, 1), fmtNum(ev.QMinMvar, 1)
+		for _, l := range limits.Limits() {
+			name := l.String()
+			m := ev.Margins[name]
+			k, _ := alarm.ParseKind(name)
+			mr := marginRow{Name: name, Title: limitTitle[name], Basis: limitBasis[name], Value: fmtPct(m, 1), Level: d.Alarms.ByKind[k],
+				Binding: ev.BindingLimit != nil && *ev.BindingLimit == name}
+			if m != nil {
+				mr.Fill = fill(*m)
+			}
+			d.Margins = append(d.Margins, mr)
+		}
+		for _, w := range []struct {
+			title string
+			t     limits.Thermal
+			x, k  float64
+			kind  alarm.Kind
+		}{
+			{"Armature winding", v.Armature, v.XArmature, limits.ArmatureK, alarm.ArmatureThermal},
+			{"Field winding", v.Field, v.XField, limits.FieldK, alarm.FieldThermal},
+		} {
+			used := w.t.Used(w.k)
+			tr := thermalRow{Title: w.title, Used: fmtPct(&used, 0), Fill: fill(used), Current: fmtNum(&w.x, 3), Level: d.Alarms.ByKind[w.kind]}
+			if s, ok := w.t.TimeLeft(w.x, w.k); ok {
+				tr.TimeLeft = fmtAge(time.Duration(s * float64(time.Second)))
+			}
+			d.Thermal = append(d.Thermal, tr)
+		}
+	}
+	d.AlarmRows = ui.alarmRows(cfg.ID, &v, now)
+	return d
+}
+
+// fill is a ratio as a bar length in percent.
+func fill(x float64) int {
+	if math.IsNaN(x) {
+		return 0
+	}
+	return int(math.Round(100 * math.Max(0, math.Min(1, x))))
+}
+
+// alarmRows returns unit id's active and shelved alarms, most severe
+// first.
+func (ui *UI) alarmRows(id string, v *ingest.View, now time.Time) []alarmRow {
+	var rows []alarmRow
+	msgs := map[alarm.Kind]alarm.Event{}
+	for _, ev := range ui.store.Active() {
+		if ev.Unit == id {
+			msgs[ev.Kind] = ev
+		}
+	}
+	t := now.UnixNano()
+	for k := range v.Alarms {
+		m := &v.Alarms[k]
+		kind := alarm.Kind(k)
+		shelved := m.Shelved(t)
+		if m.Level == alarm.Normal && !shelved {
+			continue
+		}
+		r := alarmRow{Kind: kind.String(), Title: kindTitle[kind], Level: levelOf(m.Level), Acknowledged: m.Acknowledged,
+			Shelved: shelved, Action: unitURL(id) + "/alarms/" + kind.String()}
+		if m.Level != alarm.Normal {
+			r.Since = fmtWhen(time.Unix(0, m.Since))
+			if ev, ok := msgs[kind]; ok {
+				r.Message = ev.Message
+			}
+		} else {
+			r.Message = "Back to normal while shelved."
+		}
+		if shelved {
+			r.ShelvedUntil = fmtClock(time.Unix(0, m.ShelvedUntil))
+		}
+		rows = append(rows, r)
+	}
+	sort.SliceStable(rows, func(i, j int) bool {
+		a, b := &rows[i], &rows[j]
+		if a.Shelved != b.Shelved {
+			return !a.Shelved
+		}
+		return a.Level.Level > b.Level.Level
+	})
+	return rows
+}
+
+// drawChart draws the unit's capability chart at its present voltage and
+// coolant, with the operating point and its trail.
+func drawChart(d *unitData) (template.HTML, error) {
+	cfg := d.Unit
+	vPU, coolant, hasCoolant := 1.0, 0.0, false
+	// The page's heading names the unit in full; the chart's title is
+	// centred over the plot, so a long name is shortened to fit there.
+	name := cfg.DisplayName()
+	if r := []rune(name); len(r) > 32 {
+		name = string(r[:31]) + "…"
+	}
+	title := fmt.Sprintf("%s · rated voltage %g kV", name, cfg.Rating.KV)
+	opts := []chart.Option{chart.WithPrimeMover(cfg.PrimeMover.PMinMW, cfg.PrimeMover.PMaxMW),
+		chart.WithSize(chartWidth, chartHeight)}
+	if ev := d.Eval; ev != nil {
+		vPU = ev.VPU
+		title = fmt.Sprintf("%s · %.2f kV (%.3f pu)", name, ev.VKV, ev.VPU)
+		if ev.Coolant != nil && cfg.Coolant != nil {
+			coolant, hasCoolant = *ev.Coolant, true
+			title += fmt.Sprintf(" · coolant %.1f %s", coolant, cfg.Coolant.Quantity.Unit())
+		}
+		op := chart.Point{PMW: ev.PMW, QMvar: ev.QMvar}
+		trail := d.Trail
+		if n := len(trail); n == 0 || trail[n-1] != op {
+			trail = append(trail, op)
+		}
+		opts = append(opts, chart.WithOperatingPoint(op), chart.WithTrail(trail))
+	}
+	pts := cfg.Model.Envelope(vPU, coolant, hasCoolant, 41)
+	var buf bytes.Buffer
+	if err := chart.Capability(&buf, title, pts, cfg.Base, opts...); err != nil {
+		return "", err
+	}
+	svg := chart.Mark(buf.Bytes())
+	if i := bytes.Index(svg, []byte("<svg")); i > 0 {
+		svg = svg[i:] // inline in HTML: no XML prolog
+	}
+	// The SVG comes from our own drawing code, which escapes the texts it
+	// draws (the unit's name among them).
+	return template.HTML(svg), nil
+}
