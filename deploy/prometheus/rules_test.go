@@ -21,6 +21,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/genvelope/genvelope/test/testenv"
+
 	"go.yaml.in/yaml/v3"
 
 	"github.com/genvelope/genvelope/service/alarm"
@@ -36,22 +38,6 @@ const (
 	installProm = "apt-get install prometheus"
 	installAM   = "apt-get install prometheus-alertmanager"
 )
-
-// needTool returns the path of an outside program. Missing, it skips the
-// test with how to install it, or fails it when CI=true.
-func needTool(t *testing.T, name, install string) string {
-	t.Helper()
-	p, err := exec.LookPath(name)
-	if err == nil {
-		return p
-	}
-	msg := fmt.Sprintf("%s not found on PATH: install it with `%s`", name, install)
-	if os.Getenv("CI") == "true" {
-		t.Fatalf("%s (CI=true: outside programs are required)", msg)
-	}
-	t.Skip(msg)
-	return ""
-}
 
 // run runs a program in this directory and returns its combined output,
 // failing the test when it exits non-zero.
@@ -69,7 +55,7 @@ func run(t *testing.T, bin string, args ...string) string {
 }
 
 func TestPromtool(t *testing.T) {
-	promtool := needTool(t, "promtool", installProm)
+	promtool := testenv.NeedTool(t, "promtool", installProm)
 	for _, c := range []struct {
 		name string
 		args []string
@@ -90,7 +76,7 @@ func TestPromtool(t *testing.T) {
 }
 
 func TestAmtoolCheckConfig(t *testing.T) {
-	amtool := needTool(t, "amtool", installAM)
+	amtool := testenv.NeedTool(t, "amtool", installAM)
 	out := run(t, amtool, "check-config", amConfig)
 	if !strings.Contains(out, "SUCCESS") {
 		t.Errorf("amtool check-config: no SUCCESS in\n%s", out)
@@ -101,7 +87,7 @@ func TestAmtoolCheckConfig(t *testing.T) {
 // Critical pages the on-call receiver, warning goes to the team, and an
 // alert without a severity still reaches someone.
 func TestAlertmanagerRoutes(t *testing.T) {
-	amtool := needTool(t, "amtool", installAM)
+	amtool := testenv.NeedTool(t, "amtool", installAM)
 	for _, c := range []struct {
 		receiver string
 		labels   []string

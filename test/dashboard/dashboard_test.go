@@ -16,6 +16,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/genvelope/genvelope/test/testenv"
+
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/protobuf/types/known/durationpb"
@@ -57,11 +59,11 @@ func TestDashboardQueries(t *testing.T) {
 	if testing.Short() {
 		t.Skip("end-to-end: skipped under -short")
 	}
-	promBin := needTool(t, "prometheus", install)
+	promBin := testenv.NeedTool(t, "prometheus", install)
 	began := time.Now()
 	step := func(what string, since time.Time) { t.Logf("%-36s %6.2f s", what, time.Since(since).Seconds()) }
 
-	root := moduleRoot(t)
+	root := testenv.ModuleRoot(t)
 	d := loadDashboard(t, root)
 	fl, err := examples.Fleet()
 	if err != nil {
@@ -81,32 +83,32 @@ func TestDashboardQueries(t *testing.T) {
 
 	dir := t.TempDir()
 	at := time.Now()
-	bin := buildGenvelope(t, root, dir)
+	bin := testenv.BuildGenvelope(t, root, dir)
 	step("build ./cmd/genvelope", at)
 
 	// The service, on the example fleet.
 	fleetPath := filepath.Join(root, "deploy", "examples", "fleet.yaml")
-	grpcAddr, httpAddr := addr(freePort(t)), addr(freePort(t))
+	grpcAddr, httpAddr := testenv.Addr(testenv.FreePort(t)), testenv.Addr(testenv.FreePort(t))
 	at = time.Now()
-	gv := startProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
+	gv := testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
 		"--state", filepath.Join(dir, "state.json"))
-	gv.waitHTTP(t, "http://"+httpAddr+"/readyz")
+	gv.WaitHTTP(t, "http://"+httpAddr+"/readyz")
 	step("genvelope ready", at)
 
 	// Prometheus, scraping every second. It scrapes once before the
 	// samples arrive, so the counters rise inside the rate windows.
-	promAddr := addr(freePort(t))
+	promAddr := testenv.Addr(testenv.FreePort(t))
 	cfg := filepath.Join(dir, "prometheus.yml")
 	writeConfig(t, cfg, httpAddr)
 	at = time.Now()
-	prom := startProc(t, "prometheus", promBin,
+	prom := testenv.StartProc(t, "prometheus", promBin,
 		"--config.file="+cfg,
 		"--storage.tsdb.path="+filepath.Join(dir, "tsdb"),
 		"--web.listen-address="+promAddr,
 		"--log.level=warn")
-	prom.waitHTTP(t, "http://"+promAddr+"/-/ready")
+	prom.WaitHTTP(t, "http://"+promAddr+"/-/ready")
 	api := &promAPI{t: t, p: prom, base: "http://" + promAddr}
-	api.waitFor(`up{job="genvelope"} == 1`, waitLong)
+	api.waitFor(`up{job="genvelope"} == 1`, testenv.WaitLong)
 	step("prometheus ready, first scrape", at)
 
 	at = time.Now()
@@ -125,7 +127,7 @@ func TestDashboardQueries(t *testing.T) {
 		default:
 			t.Fatalf("variable %q: type %q, which the test does not know how to resolve", v.Name, v.Type)
 		}
-		got := api.variableValues(v, vals, waitLong)
+		got := api.variableValues(v, vals, testenv.WaitLong)
 		switch v.Name {
 		case "site":
 			if strings.Join(got, ",") != strings.Join(allSites, ",") {
@@ -141,7 +143,7 @@ func TestDashboardQueries(t *testing.T) {
 				one[k] = x
 			}
 			one["site"] = regexp.QuoteMeta(allSites[0])
-			sub := api.variableValues(v, one, waitLong)
+			sub := api.variableValues(v, one, testenv.WaitLong)
 			want := append([]string(nil), unitsBySite[allSites[0]]...)
 			sort.Strings(want)
 			if strings.Join(sub, ",") != strings.Join(want, ",") {
@@ -207,8 +209,8 @@ func TestDashboardQueries(t *testing.T) {
 	}
 	step("panel queries", at)
 
-	if err := gv.stop(waitLong); err != nil {
-		gv.failf(t, "genvelope after SIGTERM: %v, want exit status 0", err)
+	if err := gv.Stop(testenv.WaitLong); err != nil {
+		gv.Failf(t, "genvelope after SIGTERM: %v, want exit status 0", err)
 	}
 	step("whole test", began)
 }
@@ -217,14 +219,14 @@ func TestDashboardQueries(t *testing.T) {
 // unit into alarm, and leaves a duplicate, rejected samples, an
 // acknowledged alarm and a shelved one, so that every panel has
 // something to show.
-func pushSamples(t *testing.T, gv *proc, grpcAddr string) {
+func pushSamples(t *testing.T, gv *testenv.Proc, grpcAddr string) {
 	t.Helper()
 	conn, err := grpc.NewClient(grpcAddr, grpc.WithTransportCredentials(insecure.NewCredentials()))
 	if err != nil {
 		t.Fatal(err)
 	}
 	defer conn.Close()
-	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+	ctx, cancel := context.WithTimeout(context.Background(), testenv.WaitLong)
 	defer cancel()
 	f := func(x float64) *float64 { return &x }
 	ts := func(t0 time.Time, s int) *timestamppb.Timestamp {
@@ -259,7 +261,7 @@ func pushSamples(t *testing.T, gv *proc, grpcAddr string) {
 	for _, b := range batches {
 		resp, err := tel.Push(ctx, b)
 		if err != nil {
-			gv.failf(t, "push %d: %v", b.Sequence, err)
+			gv.Failf(t, "push %d: %v", b.Sequence, err)
 		}
 		accepted, dups, rejected = accepted+int(resp.Accepted), dups+int(resp.Duplicates), rejected+len(resp.Rejected)
 	}
@@ -269,11 +271,11 @@ func pushSamples(t *testing.T, gv *proc, grpcAddr string) {
 
 	alarms := pb.NewAlarmServiceClient(conn)
 	if _, err := alarms.AcknowledgeAlarm(ctx, &pb.AcknowledgeAlarmRequest{UnitId: "larchwater-2", Limit: "prime_mover", Operator: "dashboard test"}); err != nil {
-		gv.failf(t, "acknowledge larchwater-2 prime_mover (should be critical after %d s over p_max): %v", len(over)-1, err)
+		gv.Failf(t, "acknowledge larchwater-2 prime_mover (should be critical after %d s over p_max): %v", len(over)-1, err)
 	}
 	if _, err := alarms.ShelveAlarm(ctx, &pb.ShelveAlarmRequest{UnitId: "brindle-gt3", Limit: "stale_telemetry",
 		Duration: durationpb.New(time.Hour), Operator: "dashboard test", Reason: "test"}); err != nil {
-		gv.failf(t, "shelve brindle-gt3 stale_telemetry: %v", err)
+		gv.Failf(t, "shelve brindle-gt3 stale_telemetry: %v", err)
 	}
 }
 
@@ -297,7 +299,7 @@ scrape_configs:
 // refuses (bad PromQL) fails the test at once: no wait fixes it.
 type promAPI struct {
 	t    *testing.T
-	p    *proc
+	p    *testenv.Proc
 	base string
 }
 
@@ -307,12 +309,12 @@ func (a *promAPI) call(what, path string, params url.Values) json.RawMessage {
 	a.t.Helper()
 	resp, err := http.Get(a.base + path + "?" + params.Encode())
 	if err != nil {
-		a.p.failf(a.t, "%s: GET %s: %v", what, path, err)
+		a.p.Failf(a.t, "%s: GET %s: %v", what, path, err)
 	}
 	defer resp.Body.Close()
 	body, err := io.ReadAll(resp.Body)
 	if err != nil {
-		a.p.failf(a.t, "%s: GET %s: %v", what, path, err)
+		a.p.Failf(a.t, "%s: GET %s: %v", what, path, err)
 	}
 	var r struct {
 		Status    string          `json:"status"`
@@ -321,7 +323,7 @@ func (a *promAPI) call(what, path string, params url.Values) json.RawMessage {
 		Data      json.RawMessage `json:"data"`
 	}
 	if err := json.Unmarshal(body, &r); err != nil {
-		a.p.failf(a.t, "%s: GET %s: %s: %v in %s", what, path, resp.Status, err, body)
+		a.p.Failf(a.t, "%s: GET %s: %s: %v in %s", what, path, resp.Status, err, body)
 	}
 	if r.Status != "success" {
 		a.t.Fatalf("%s: Prometheus refused it (%s): %s: %s\n  %s %v", what, resp.Status, r.ErrorType, r.Error, path, params)
@@ -385,7 +387,7 @@ func (a *promAPI) waitFor(expr string, within time.Duration) {
 	deadline := time.Now().Add(within)
 	for a.instant(query{where: "wait", expr: expr}) == 0 {
 		if time.Now().After(deadline) {
-			a.p.failf(a.t, "%s: no series within %s", expr, within)
+			a.p.Failf(a.t, "%s: no series within %s", expr, within)
 		}
 		time.Sleep(200 * time.Millisecond)
 	}

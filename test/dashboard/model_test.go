@@ -10,6 +10,8 @@ import (
 	"strings"
 	"testing"
 
+	"github.com/genvelope/genvelope/test/testenv"
+
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
@@ -184,7 +186,7 @@ var requiredMetrics = []string{
 // reference known, the required metrics shown, and the caution sentence
 // on the dashboard and in its README.
 func TestDashboardModel(t *testing.T) {
-	root := moduleRoot(t)
+	root := testenv.ModuleRoot(t)
 	d := loadDashboard(t, root)
 	if d.UID == "" || d.Title == "" {
 		t.Errorf("uid %q, title %q: both must be set", d.UID, d.Title)

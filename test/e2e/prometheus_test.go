@@ -18,6 +18,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/genvelope/genvelope/test/testenv"
+
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/protobuf/types/known/timestamppb"
@@ -37,24 +39,24 @@ func TestPrometheusScrape(t *testing.T) {
 	if testing.Short() {
 		t.Skip("end-to-end: skipped under -short")
 	}
-	promBin := needTool(t, "prometheus", install)
-	promtool := needTool(t, "promtool", install)
+	promBin := testenv.NeedTool(t, "prometheus", install)
+	promtool := testenv.NeedTool(t, "promtool", install)
 	began := time.Now()
 	step := func(what string, since time.Time) { t.Logf("%-34s %6.2f s", what, time.Since(since).Seconds()) }
 
-	root := moduleRoot(t)
+	root := testenv.ModuleRoot(t)
 	dir := t.TempDir()
 	at := time.Now()
-	bin := buildGenvelope(t, root, dir)
+	bin := testenv.BuildGenvelope(t, root, dir)
 	step("build ./cmd/genvelope", at)
 
 	// The service.
 	fleetPath := filepath.Join(root, "deploy", "examples", "fleet.yaml")
-	grpcAddr, httpAddr := addr(freePort(t)), addr(freePort(t))
+	grpcAddr, httpAddr := testenv.Addr(testenv.FreePort(t)), testenv.Addr(testenv.FreePort(t))
 	at = time.Now()
-	gv := startProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
+	gv := testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
 		"--state", filepath.Join(dir, "state.json"))
-	gv.waitHTTP(t, "http://"+httpAddr+"/readyz")
+	gv.WaitHTTP(t, "http://"+httpAddr+"/readyz")
 	step("genvelope ready", at)
 
 	// The samples: three of harrowmere-1, the last of which is checked;
@@ -79,13 +81,13 @@ func TestPrometheusScrape(t *testing.T) {
 	}
 	defer conn.Close()
 	tel := pb.NewTelemetryServiceClient(conn)
-	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+	ctx, cancel := context.WithTimeout(context.Background(), testenv.WaitLong)
 	defer cancel()
 	var accepted, dups, rejected uint32
 	for _, b := range batches {
 		resp, err := tel.Push(ctx, b)
 		if err != nil {
-			gv.failf(t, "push %d: %v", b.Sequence, err)
+			gv.Failf(t, "push %d: %v", b.Sequence, err)
 		}
 		accepted, dups, rejected = accepted+resp.Accepted, dups+resp.Duplicates, rejected+uint32(len(resp.Rejected))
 	}
@@ -105,16 +107,16 @@ func TestPrometheusScrape(t *testing.T) {
 	}
 
 	// Prometheus, scraping every second.
-	promAddr := addr(freePort(t))
+	promAddr := testenv.Addr(testenv.FreePort(t))
 	cfg := filepath.Join(dir, "prometheus.yml")
 	writeConfig(t, cfg, httpAddr)
 	at = time.Now()
-	prom := startProc(t, "prometheus", promBin,
+	prom := testenv.StartProc(t, "prometheus", promBin,
 		"--config.file="+cfg,
 		"--storage.tsdb.path="+filepath.Join(dir, "tsdb"),
 		"--web.listen-address="+promAddr,
 		"--log.level=warn")
-	prom.waitHTTP(t, "http://"+promAddr+"/-/ready")
+	prom.WaitHTTP(t, "http://"+promAddr+"/-/ready")
 	step("prometheus ready", at)
 
 	at = time.Now()
@@ -142,7 +144,7 @@ func TestPrometheusScrape(t *testing.T) {
 		t.Fatal("the engine has no q_max at the checked sample: choose another")
 	}
 	wantUp := (res.QMax.V - pt.Q) * mva * 1e6 // var
-	if got := headroom[0].value; !relClose(got, wantUp, 1e-6) {
+	if got := headroom[0].value; !testenv.RelClose(got, wantUp, 1e-6) {
 		t.Errorf("prometheus headroom up %.9g var, engine q_max - q %.9g var", got, wantUp)
 	}
 	// At 330 MW the armature circle binds q_max: Q = √((V·I_max)² - P²)
@@ -151,7 +153,7 @@ func TestPrometheusScrape(t *testing.T) {
 	// table (deploy/examples/fleet.yaml).
 	if res.QMaxLimit == limits.LimitArmature {
 		vi := 1.0 * 0.95 * 390
-		if want := (math.Sqrt(vi*vi-330*330) - 80) * 1e6; !relClose(headroom[0].value, want, 1e-6) {
+		if want := (math.Sqrt(vi*vi-330*330) - 80) * 1e6; !testenv.RelClose(headroom[0].value, want, 1e-6) {
 			t.Errorf("prometheus headroom up %.9g var, armature circle %.9g var", headroom[0].value, want)
 		}
 	} else {
@@ -178,7 +180,7 @@ func TestPrometheusScrape(t *testing.T) {
 		t.Errorf("margin series for %s, want %s", keys(gotM), keys(wantM))
 	}
 	for l, w := range wantM {
-		if g, ok := gotM[l]; ok && !relClose(g, w, 1e-6) {
+		if g, ok := gotM[l]; ok && !testenv.RelClose(g, w, 1e-6) {
 			t.Errorf("margin %s: prometheus %.9g, engine %.9g", l, g, w)
 		}
 	}
@@ -192,7 +194,7 @@ func TestPrometheusScrape(t *testing.T) {
 		"prime_mover":     (335 - 330) / (390 * 0.85),
 		"volts_per_hertz": 1 - (1.0/(50.1/50))/1.05,
 	} {
-		if g, ok := gotM[l]; !ok || !relClose(g, want, 1e-6) {
+		if g, ok := gotM[l]; !ok || !testenv.RelClose(g, want, 1e-6) {
 			t.Errorf("margin %s: prometheus %v (present %v), closed form %.9g", l, g, ok, want)
 		}
 	}
@@ -217,8 +219,8 @@ func TestPrometheusScrape(t *testing.T) {
 
 	// The service stops cleanly on SIGTERM.
 	at = time.Now()
-	if err := gv.stop(waitLong); err != nil {
-		gv.failf(t, "genvelope after SIGTERM: %v, want exit status 0", err)
+	if err := gv.Stop(testenv.WaitLong); err != nil {
+		gv.Failf(t, "genvelope after SIGTERM: %v, want exit status 0", err)
 	}
 	step("genvelope stop on SIGTERM", at)
 	step("whole test", began)
@@ -242,16 +244,16 @@ scrape_configs:
 	}
 }
 
-func get(t *testing.T, p *proc, u string) []byte {
+func get(t *testing.T, p *testenv.Proc, u string) []byte {
 	t.Helper()
 	resp, err := http.Get(u)
 	if err != nil {
-		p.failf(t, "GET %s: %v", u, err)
+		p.Failf(t, "GET %s: %v", u, err)
 	}
 	defer resp.Body.Close()
 	b, err := io.ReadAll(resp.Body)
 	if err != nil || resp.StatusCode != http.StatusOK {
-		p.failf(t, "GET %s: %s, %v", u, resp.Status, err)
+		p.Failf(t, "GET %s: %s, %v", u, resp.Status, err)
 	}
 	return b
 }
@@ -265,7 +267,7 @@ type series struct {
 func (s series) String() string { return fmt.Sprintf("%v=%g", s.labels, s.value) }
 
 // query runs an instant query against Prometheus's HTTP API.
-func query(t *testing.T, p *proc, promAddr, q string) []series {
+func query(t *testing.T, p *testenv.Proc, promAddr, q string) []series {
 	t.Helper()
 	body := get(t, p, "http://"+promAddr+"/api/v1/query?query="+url.QueryEscape(q))
 	var r struct {
@@ -280,17 +282,17 @@ func query(t *testing.T, p *proc, promAddr, q string) []series {
 		} `json:"data"`
 	}
 	if err := json.Unmarshal(body, &r); err != nil {
-		p.failf(t, "query %s: %v in %s", q, err, body)
+		p.Failf(t, "query %s: %v in %s", q, err, body)
 	}
 	if r.Status != "success" || r.Data.ResultType != "vector" {
-		p.failf(t, "query %s: status %s, result %s, error %q", q, r.Status, r.Data.ResultType, r.Error)
+		p.Failf(t, "query %s: status %s, result %s, error %q", q, r.Status, r.Data.ResultType, r.Error)
 	}
 	out := make([]series, 0, len(r.Data.Result))
 	for _, e := range r.Data.Result {
 		s, _ := e.Value[1].(string)
 		v, err := strconv.ParseFloat(s, 64)
 		if err != nil {
-			p.failf(t, "query %s: value %v: %v", q, e.Value[1], err)
+			p.Failf(t, "query %s: value %v: %v", q, e.Value[1], err)
 		}
 		out = append(out, series{labels: e.Metric, value: v})
 	}
@@ -298,9 +300,9 @@ func query(t *testing.T, p *proc, promAddr, q string) []series {
 }
 
 // waitSeries polls a query until it returns n series.
-func waitSeries(t *testing.T, p *proc, promAddr, q string, n int) []series {
+func waitSeries(t *testing.T, p *testenv.Proc, promAddr, q string, n int) []series {
 	t.Helper()
-	deadline := time.Now().Add(waitLong)
+	deadline := time.Now().Add(testenv.WaitLong)
 	for {
 		s := query(t, p, promAddr, q)
 		if len(s) == n {
@@ -308,7 +310,7 @@ func waitSeries(t *testing.T, p *proc, promAddr, q string, n int) []series {
 		}
 		if time.Now().After(deadline) {
 			targets := get(t, p, "http://"+promAddr+"/api/v1/targets")
-			p.failf(t, "query %s: %d series within %s, want %d; targets: %s", q, len(s), waitLong, n, targets)
+			p.Failf(t, "query %s: %d series within %s, want %d; targets: %s", q, len(s), testenv.WaitLong, n, targets)
 		}
 		time.Sleep(200 * time.Millisecond)
 	}

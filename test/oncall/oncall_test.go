@@ -16,6 +16,8 @@ import (
 	"testing"
 	"time"
 
+	"github.com/genvelope/genvelope/test/testenv"
+
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/protobuf/types/known/timestamppb"
@@ -69,15 +71,15 @@ func TestOnCallChain(t *testing.T) {
 	if testing.Short() {
 		t.Skip("end-to-end: skipped under -short")
 	}
-	promBin := needTool(t, "prometheus", installProm)
-	amBin := needTool(t, "prometheus-alertmanager", installAM)
+	promBin := testenv.NeedTool(t, "prometheus", installProm)
+	amBin := testenv.NeedTool(t, "prometheus-alertmanager", installAM)
 	began := time.Now()
 	step := func(what string, since time.Time) { t.Logf("%-36s %6.2f s", what, time.Since(since).Seconds()) }
 
-	root := moduleRoot(t)
+	root := testenv.ModuleRoot(t)
 	dir := t.TempDir()
 	at := time.Now()
-	bin := buildGenvelope(t, root, dir)
+	bin := testenv.BuildGenvelope(t, root, dir)
 	step("build ./cmd/genvelope", at)
 
 	// The fleet file, and the engine's view of the unit: which limit sets
@@ -126,11 +128,11 @@ func TestOnCallChain(t *testing.T) {
 	hook := newWebhook(t)
 
 	// The service.
-	grpcAddr, httpAddr := addr(freePort(t)), addr(freePort(t))
+	grpcAddr, httpAddr := testenv.Addr(testenv.FreePort(t)), testenv.Addr(testenv.FreePort(t))
 	at = time.Now()
-	gv := startProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr,
+	gv := testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr,
 		"--http-listen", httpAddr, "--state", filepath.Join(dir, "state.json"))
-	gv.waitHTTP(t, "http://"+httpAddr+"/readyz")
+	gv.WaitHTTP(t, "http://"+httpAddr+"/readyz")
 	step("genvelope ready", at)
 
 	// Alertmanager, with the deployed configuration, its receivers
@@ -146,29 +148,29 @@ func TestOnCallChain(t *testing.T) {
 	if err := os.WriteFile(amCfg, bytes.ReplaceAll(amYAML, []byte(placeholderWebhook), []byte(hook.url)), 0o644); err != nil {
 		t.Fatal(err)
 	}
-	amAddr := addr(freePort(t))
+	amAddr := testenv.Addr(testenv.FreePort(t))
 	at = time.Now()
-	am := startProc(t, "alertmanager", amBin,
+	am := testenv.StartProc(t, "alertmanager", amBin,
 		"--config.file="+amCfg,
 		"--storage.path="+filepath.Join(dir, "am"),
 		"--web.listen-address="+amAddr,
 		"--cluster.listen-address=", // no gossip: one Alertmanager on loopback
 		"--log.level=warn")
-	am.waitHTTP(t, "http://"+amAddr+"/-/ready")
+	am.WaitHTTP(t, "http://"+amAddr+"/-/ready")
 	step("alertmanager ready", at)
 
 	// Prometheus, scraping and evaluating every second, with the deployed
 	// rules file as it is.
-	promAddr := addr(freePort(t))
+	promAddr := testenv.Addr(testenv.FreePort(t))
 	promCfg := filepath.Join(dir, "prometheus.yml")
 	writePromConfig(t, promCfg, httpAddr, amAddr, filepath.Join(root, "deploy", "prometheus", "genvelope.rules.yml"))
 	at = time.Now()
-	prom := startProc(t, "prometheus", promBin,
+	prom := testenv.StartProc(t, "prometheus", promBin,
 		"--config.file="+promCfg,
 		"--storage.tsdb.path="+filepath.Join(dir, "tsdb"),
 		"--web.listen-address="+promAddr,
 		"--log.level=warn")
-	prom.waitHTTP(t, "http://"+promAddr+"/-/ready")
+	prom.WaitHTTP(t, "http://"+promAddr+"/-/ready")
 	step("prometheus ready", at)
 
 	// The telemetry: a ramp of one sample per second of sample time, the
@@ -189,10 +191,10 @@ func TestOnCallChain(t *testing.T) {
 		seq++
 		resp, err := tel.Push(ctx, &pb.PushRequest{Sequence: seq, Samples: samples})
 		if err != nil {
-			gv.failf(t, "push %d: %v", seq, err)
+			gv.Failf(t, "push %d: %v", seq, err)
 		}
 		if int(resp.Accepted) != len(samples) {
-			gv.failf(t, "push %d: %d of %d samples accepted; rejected %v", seq, resp.Accepted, len(samples), resp.Rejected)
+			gv.Failf(t, "push %d: %d of %d samples accepted; rejected %v", seq, resp.Accepted, len(samples), resp.Rejected)
 		}
 	}
 	at = time.Now()

@@ -1,4 +1,8 @@
-package e2e
+// Package testenv is what the end-to-end tests share: finding outside
+// programs (skipping locally, failing under CI=true), building genvelope,
+// free loopback ports, and running programs that are always stopped when
+// the test ends.
+package testenv
 
 import (
 	"bytes"
@@ -17,12 +21,12 @@ import (
 	"time"
 )
 
-// waitLong bounds every wait: generous, since nothing here is about speed.
-const waitLong = 60 * time.Second
+// WaitLong bounds every wait: generous, since nothing here is about speed.
+const WaitLong = 60 * time.Second
 
-// needTool returns the path of an outside program. Missing, it skips the
+// NeedTool returns the path of an outside program. Missing, it skips the
 // test with how to install it, or fails it when CI=true.
-func needTool(t *testing.T, name, install string) string {
+func NeedTool(t *testing.T, name, install string) string {
 	t.Helper()
 	p, err := exec.LookPath(name)
 	if err == nil {
@@ -36,21 +40,28 @@ func needTool(t *testing.T, name, install string) string {
 	return ""
 }
 
-// moduleRoot returns the directory of the module's go.mod.
-func moduleRoot(t *testing.T) string {
+// ModuleRoot returns the directory of the module's go.mod, found by
+// walking up from the test's working directory.
+func ModuleRoot(t *testing.T) string {
 	t.Helper()
-	dir, err := filepath.Abs(filepath.Join("..", ".."))
+	dir, err := os.Getwd()
 	if err != nil {
 		t.Fatal(err)
 	}
-	if _, err := os.Stat(filepath.Join(dir, "go.mod")); err != nil {
-		t.Fatalf("module root %s: %v", dir, err)
+	for {
+		if _, err := os.Stat(filepath.Join(dir, "go.mod")); err == nil {
+			return dir
+		}
+		up := filepath.Dir(dir)
+		if up == dir {
+			t.Fatal("no go.mod above the test's directory")
+		}
+		dir = up
 	}
-	return dir
 }
 
-// buildGenvelope builds ./cmd/genvelope into dir and returns its path.
-func buildGenvelope(t *testing.T, root, dir string) string {
+// BuildGenvelope builds ./cmd/genvelope into dir and returns its path.
+func BuildGenvelope(t *testing.T, root, dir string) string {
 	t.Helper()
 	bin := filepath.Join(dir, "genvelope")
 	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Minute)
@@ -63,8 +74,8 @@ func buildGenvelope(t *testing.T, root, dir string) string {
 	return bin
 }
 
-// freePort returns a loopback port that was free a moment ago.
-func freePort(t *testing.T) int {
+// FreePort returns a loopback port that was free a moment ago.
+func FreePort(t *testing.T) int {
 	t.Helper()
 	ln, err := net.Listen("tcp", "127.0.0.1:0")
 	if err != nil {
@@ -103,9 +114,9 @@ func (w *tail) lines(n int) string {
 	return string(bytes.Join(ls, []byte("\n")))
 }
 
-// proc is an outside program run by a test. It is stopped when the test
+// Proc is an outside program run by a test. It is stopped when the test
 // ends, whatever happens.
-type proc struct {
+type Proc struct {
 	name   string
 	cmd    *exec.Cmd
 	stderr *tail
@@ -113,9 +124,10 @@ type proc struct {
 	err    error // set before done is closed
 }
 
-func startProc(t *testing.T, name, bin string, args ...string) *proc {
+// StartProc starts bin with args; it is stopped when the test ends.
+func StartProc(t *testing.T, name, bin string, args ...string) *Proc {
 	t.Helper()
-	p := &proc{name: name, cmd: exec.Command(bin, args...), stderr: &tail{}, done: make(chan struct{})}
+	p := &Proc{name: name, cmd: exec.Command(bin, args...), stderr: &tail{}, done: make(chan struct{})}
 	p.cmd.Stdout = p.stderr
 	p.cmd.Stderr = p.stderr
 	if err := p.cmd.Start(); err != nil {
@@ -123,7 +135,7 @@ func startProc(t *testing.T, name, bin string, args ...string) *proc {
 	}
 	go func() { p.err = p.cmd.Wait(); close(p.done) }()
 	t.Cleanup(func() {
-		if err := p.stop(10 * time.Second); err != nil && !p.exited() {
+		if err := p.Stop(10 * time.Second); err != nil && !p.Exited() {
 			t.Logf("%s: %v", name, err)
 		}
 		if t.Failed() {
@@ -133,7 +145,11 @@ func startProc(t *testing.T, name, bin string, args ...string) *proc {
 	return p
 }
 
-func (p *proc) exited() bool {
+// Output returns the last n lines the program wrote (stdout and stderr).
+func (p *Proc) Output(n int) string { return p.stderr.lines(n) }
+
+// Exited reports whether the program has ended.
+func (p *Proc) Exited() bool {
 	select {
 	case <-p.done:
 		return true
@@ -142,10 +158,10 @@ func (p *proc) exited() bool {
 	}
 }
 
-// stop sends SIGTERM, waits up to grace, then kills. It returns the
+// Stop sends SIGTERM, waits up to grace, then kills. It returns the
 // program's exit error (nil for exit status 0).
-func (p *proc) stop(grace time.Duration) error {
-	if !p.exited() {
+func (p *Proc) Stop(grace time.Duration) error {
+	if !p.Exited() {
 		_ = p.cmd.Process.Signal(syscall.SIGTERM)
 		select {
 		case <-p.done:
@@ -158,21 +174,21 @@ func (p *proc) stop(grace time.Duration) error {
 	return p.err
 }
 
-// failf fails the test with the program's output tail.
-func (p *proc) failf(t *testing.T, format string, args ...any) {
+// Failf fails the test with the program's output tail.
+func (p *Proc) Failf(t *testing.T, format string, args ...any) {
 	t.Helper()
 	state := "running"
-	if p.exited() {
+	if p.Exited() {
 		state = fmt.Sprintf("exited: %v", p.err)
 	}
 	t.Fatalf("%s; %s (%s), last output:\n%s", fmt.Sprintf(format, args...), p.name, state, p.stderr.lines(40))
 }
 
-// waitHTTP waits until GET url answers 200, or fails with the program's
-// output when it does not within waitLong or the program exits.
-func (p *proc) waitHTTP(t *testing.T, url string) {
+// WaitHTTP waits until GET url answers 200, or fails with the program's
+// output when it does not within WaitLong or the program exits.
+func (p *Proc) WaitHTTP(t *testing.T, url string) {
 	t.Helper()
-	deadline := time.Now().Add(waitLong)
+	deadline := time.Now().Add(WaitLong)
 	var last string
 	for {
 		resp, err := http.Get(url)
@@ -185,20 +201,21 @@ func (p *proc) waitHTTP(t *testing.T, url string) {
 		} else {
 			last = err.Error()
 		}
-		if p.exited() {
-			p.failf(t, "GET %s: %s", url, last)
+		if p.Exited() {
+			p.Failf(t, "GET %s: %s", url, last)
 		}
 		if time.Now().After(deadline) {
-			p.failf(t, "GET %s not 200 within %s: %s", url, waitLong, last)
+			p.Failf(t, "GET %s not 200 within %s: %s", url, WaitLong, last)
 		}
 		time.Sleep(50 * time.Millisecond)
 	}
 }
 
-func addr(port int) string { return "127.0.0.1:" + strconv.Itoa(port) }
+// Addr returns the loopback address of port.
+func Addr(port int) string { return "127.0.0.1:" + strconv.Itoa(port) }
 
-// relClose reports whether a and b agree within tol relative to the
+// RelClose reports whether a and b agree within tol relative to the
 // larger magnitude.
-func relClose(a, b, tol float64) bool {
+func RelClose(a, b, tol float64) bool {
 	return a == b || math.Abs(a-b) <= tol*math.Max(math.Abs(a), math.Abs(b))
 }
