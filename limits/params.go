@@ -3,6 +3,8 @@ package limits
 import (
 	"fmt"
 	"math"
+	"slices"
+	"sort"
 
 	"gonum.org/v1/gonum/interp"
 )
@@ -102,11 +104,7 @@ type Unit struct {
 	roundStab    bool    // Xq == Xd: closed-form stability bounds apply
 	endRegion    interp.PiecewiseLinear
 	hasEnd       bool
-	coolArm      interp.PiecewiseLinear
-	coolField    interp.PiecewiseLinear
 	hasCoolant   bool
-	coolLo       float64
-	coolHi       float64
 	hasTransient bool
 }
 
@@ -201,14 +199,9 @@ func New(p Params) (*Unit, error) {
 				return bad("coolant.points", "at must be strictly increasing; point %d is not above point %d", i+1, i)
 			}
 		}
-		if err := u.coolArm.Fit(c.At, c.Armature); err != nil {
-			return bad("coolant.points", "%v", err)
-		}
-		if err := u.coolField.Fit(c.At, c.Field); err != nil {
-			return bad("coolant.points", "%v", err)
-		}
+		// A copy, so that the caller's slices may change without changing the unit.
+		u.p.Coolant = &Coolant{At: slices.Clone(c.At), Armature: slices.Clone(c.Armature), Field: slices.Clone(c.Field)}
 		u.hasCoolant = true
-		u.coolLo, u.coolHi = c.At[0], c.At[len(c.At)-1]
 	}
 	u.ifdModel = u.FieldCurrent(p.PowerFactor, math.Sqrt(1-p.PowerFactor*p.PowerFactor), 1)
 	u.ifdRated = p.IfdRated
@@ -265,7 +258,21 @@ func (u *Unit) CoolantFactors(c float64) (armature, field float64, inside bool) 
 	if !u.hasCoolant {
 		return 1, 1, true
 	}
-	return u.coolArm.Predict(c), u.coolField.Predict(c), c >= u.coolLo && c <= u.coolHi
+	t := u.p.Coolant
+	n := len(t.At)
+	switch {
+	case c <= t.At[0]:
+		return t.Armature[0], t.Field[0], c == t.At[0]
+	case c >= t.At[n-1]:
+		return t.Armature[n-1], t.Field[n-1], c == t.At[n-1]
+	}
+	// One search serves both factors: i is the segment [At[i], At[i+1]).
+	i := sort.SearchFloat64s(t.At, c)
+	if t.At[i] != c {
+		i--
+	}
+	w := (c - t.At[i]) / (t.At[i+1] - t.At[i])
+	return t.Armature[i] + w*(t.Armature[i+1]-t.Armature[i]), t.Field[i] + w*(t.Field[i+1]-t.Field[i]), true
 }
 
 // HasCoolantTable reports whether the unit has a coolant capability table.

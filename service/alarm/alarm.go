@@ -133,6 +133,10 @@ var quantities = [NumKinds]Quantity{
 // QuantityOf returns what kind k's thresholds apply to.
 func QuantityOf(k Kind) Quantity { return quantities[k] }
 
+// Rising reports whether kind k alarms when its quantity rises (true) or
+// falls (false): QuantityOf(k).Rising without the copy, for the per-sample path.
+func Rising(k Kind) bool { return quantities[k].Rising }
+
 // Defaults returns the settings used where the fleet file gives none.
 // The margin thresholds warn with 5 % (or 0.05 pu) left and go critical
 // at the limit; delays of 5 s on and 30 s off in sample time; the zone
@@ -183,10 +187,10 @@ type Machine struct {
 	Clearing   [2]bool
 	ClearSince [2]int64
 
-	Acknowledged bool  // an operator acknowledged the current level
-	ShelvedUntil int64 // wall-clock Unix ns until which the alarm is shelved; 0 when not
-	Since        int64 // sample time (Unix ns) of the last level change
-	Value        float64
+	Acknowledged bool    // an operator acknowledged the current level
+	ShelvedUntil int64   // wall-clock Unix ns until which the alarm is shelved; 0 when not
+	Since        int64   // sample time (Unix ns) of the last level change
+	Value        float64 // the quantity at the last step that was not at rest
 	HasValue     bool
 }
 
@@ -210,14 +214,16 @@ func (m *Machine) Step(t int64, x float64, s *Setting, rising bool) (prev Level,
 	if math.IsNaN(x) {
 		return prev, false
 	}
-	m.Value, m.HasValue = x, true
 	// The common case, a quiet alarm whose quantity is clear of the
-	// warning threshold, decided without the general machinery.
+	// warning threshold, decided without the general machinery and
+	// without writing to the machine (Value is kept for alarms that are
+	// not at rest).
 	if m.Level == Normal && !m.Raising[0] && !m.Raising[1] {
 		if rising && x < s.Warning || !rising && x > s.Warning {
 			return prev, false
 		}
 	}
+	m.Value, m.HasValue = x, true
 	thr := [2]float64{s.Warning, s.Critical}
 	// beyond reports whether x is past threshold th, shifted by the
 	// deadband towards normal when the level is held (hysteresis).

@@ -60,7 +60,7 @@ func (u *Unit) stepAlarms(t int64, s *Store) {
 		}
 		set := &u.cfg.Alarms[k]
 		m := &u.alarms[k]
-		if prev, changed := m.Step(t, x, set, alarm.QuantityOf(k).Rising); changed {
+		if prev, changed := m.Step(t, x, set, alarm.Rising(k)); changed {
 			s.publishLevel(u, k, prev, time.Unix(0, t), x, 0)
 		}
 	}

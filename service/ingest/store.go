@@ -118,9 +118,17 @@ type Store struct {
 	transitions [alarm.NumKinds][3]atomic.Uint64
 }
 
+// entry is a unit and the configuration it has in this snapshot: ingest
+// reads the configuration before it holds the unit's lock, so it must
+// not read u.cfg, which a reload rewrites.
+type entry struct {
+	u   *Unit
+	cfg *fleet.Unit
+}
+
 type snapshot struct {
 	fleet *fleet.Fleet
-	byID  map[string]*Unit
+	byID  map[string]entry
 	units []*Unit // fleet file order
 }
 
@@ -147,18 +155,18 @@ func (s *Store) Transitions() [alarm.NumKinds][3]uint64 {
 }
 
 func newSnapshot(fl *fleet.Fleet, old *snapshot) *snapshot {
-	sn := &snapshot{fleet: fl, byID: make(map[string]*Unit, len(fl.Units))}
+	sn := &snapshot{fleet: fl, byID: make(map[string]entry, len(fl.Units))}
 	for _, cfg := range fl.Units {
 		var u *Unit
 		if old != nil {
-			u = old.byID[cfg.ID]
+			u = old.byID[cfg.ID].u
 		}
 		if u != nil {
 			u.reconfigure(cfg)
 		} else {
 			u = &Unit{cfg: cfg}
 		}
-		sn.byID[cfg.ID] = u
+		sn.byID[cfg.ID] = entry{u, cfg}
 		sn.units = append(sn.units, u)
 	}
 	return sn
@@ -176,7 +184,7 @@ func (s *Store) Replace(fl *fleet.Fleet) {
 func (s *Store) Fleet() *fleet.Fleet { return s.snap.Load().fleet }
 
 // Unit returns the state of the unit with the given id, or nil.
-func (s *Store) Unit(id string) *Unit { return s.snap.Load().byID[id] }
+func (s *Store) Unit(id string) *Unit { return s.snap.Load().byID[id].u }
 
 // Units returns the state of every unit, in fleet file order. The slice
 // must not be modified.
@@ -210,8 +218,9 @@ func (s *Store) Commit(t *Tally) {
 // rejected sample, detail says what was wrong in words for the sender.
 func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	sn := s.snap.Load()
-	u := sn.byID[smp.UnitID]
-	if u == nil {
+	e, ok := sn.byID[smp.UnitID]
+	u := e.u
+	if !ok {
 		return RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
 	}
 	if smp.Time.IsZero() {
@@ -220,9 +229,7 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	if smp.Quality == QualityInvalid {
 		return RejectInvalidQuality, "the sample's quality is INVALID"
 	}
-	// The snapshot's own config: u.cfg is rewritten by reconfigure under
-	// u.mu on a reload, and u.mu is not held here.
-	if r, d := checkValues(sn.fleet.Unit(smp.UnitID), smp); r != Accepted {
+	if r, d := checkValues(e.cfg, smp); r != Accepted {
 		return r, d
 	}
 	if smp.Time.Sub(now) > s.opts.MaxFuture {
@@ -236,22 +243,13 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 // unit. The ranges are wide: they catch wrong scaling and broken links,
 // not abnormal operation, which is what the envelope is for.
 func checkValues(cfg *fleet.Unit, smp *Sample) (Result, string) {
-	type val struct {
-		name string
-		x    float64
-		has  bool
+	notFinite := func(x float64) bool { return x-x != 0 } // NaN or ±Inf
+	if notFinite(smp.PMW) || notFinite(smp.QMvar) || notFinite(smp.VKV) ||
+		smp.HasFieldA && notFinite(smp.FieldA) || smp.HasFreq && notFinite(smp.FrequencyHz) ||
+		smp.HasCoolant && notFinite(smp.Coolant) {
+		return RejectNotFinite, notFiniteDetail(smp)
 	}
-	vals := [...]val{
-		{"p_mw", smp.PMW, true}, {"q_mvar", smp.QMvar, true}, {"v_kv", smp.VKV, true},
-		{"field_a", smp.FieldA, smp.HasFieldA}, {"frequency_hz", smp.FrequencyHz, smp.HasFreq},
-		{"coolant", smp.Coolant, smp.HasCoolant},
-	}
-	for _, v := range vals {
-		if v.has && (math.IsNaN(v.x) || math.IsInf(v.x, 0)) {
-			return RejectNotFinite, fmt.Sprintf("%s is %v", v.name, v.x)
-		}
-	}
-	r := cfg.Rating
+	r := &cfg.Rating
 	sMax := 5 * r.MVA
 	switch {
 	case math.Abs(smp.PMW) > sMax:
@@ -266,6 +264,24 @@ func checkValues(cfg *fleet.Unit, smp *Sample) (Result, string) {
 		return RejectOutOfRange, fmt.Sprintf("frequency_hz %g is outside [%g, %g] Hz (50 %% to 150 %% of rated)", smp.FrequencyHz, 0.5*r.FrequencyHz, 1.5*r.FrequencyHz)
 	}
 	return Accepted, ""
+}
+
+// notFiniteDetail names the first value of smp that is NaN or infinite.
+func notFiniteDetail(smp *Sample) string {
+	for _, v := range [...]struct {
+		name string
+		x    float64
+		has  bool
+	}{
+		{"p_mw", smp.PMW, true}, {"q_mvar", smp.QMvar, true}, {"v_kv", smp.VKV, true},
+		{"field_a", smp.FieldA, smp.HasFieldA}, {"frequency_hz", smp.FrequencyHz, smp.HasFreq},
+		{"coolant", smp.Coolant, smp.HasCoolant},
+	} {
+		if v.has && (math.IsNaN(v.x) || math.IsInf(v.x, 0)) {
+			return fmt.Sprintf("%s is %v", v.name, v.x)
+		}
+	}
+	return "a value is not finite"
 }
 
 // ringSize is how many recent accepted timestamps each unit remembers, so
