@@ -211,17 +211,8 @@ func (m *Machine) Step(t int64, x float64, s *Setting, rising bool) (prev Level,
 		}
 		return prev, false
 	}
-	if math.IsNaN(x) {
+	if math.IsNaN(x) || m.Quiet(x, s, rising) {
 		return prev, false
-	}
-	// The common case, a quiet alarm whose quantity is clear of the
-	// warning threshold, decided without the general machinery and
-	// without writing to the machine (Value is kept for alarms that are
-	// not at rest).
-	if m.Level == Normal && !m.Raising[0] && !m.Raising[1] {
-		if rising && x < s.Warning || !rising && x > s.Warning {
-			return prev, false
-		}
 	}
 	m.Value, m.HasValue = x, true
 	thr := [2]float64{s.Warning, s.Critical}
@@ -273,6 +264,23 @@ func (m *Machine) Step(t int64, x float64, s *Setting, rising bool) (prev Level,
 		m.Acknowledged = false
 	}
 	return prev, true
+}
+
+// Quiet reports whether a step with quantity x would change nothing
+// because the alarm is at rest and x is clear of the warning threshold:
+// the common case, decided without the general machinery and without
+// writing to the machine (Value is kept for alarms that are not at rest).
+func (m *Machine) Quiet(x float64, s *Setting, rising bool) bool {
+	if m.Level != Normal || m.Raising[0] || m.Raising[1] {
+		return false
+	}
+	if s.Disabled {
+		return true
+	}
+	if rising {
+		return x < s.Warning
+	}
+	return x > s.Warning
 }
 
 // Shelved reports whether the alarm is shelved at wall-clock time now (Unix ns).

@@ -60,6 +60,9 @@ func (u *Unit) stepAlarms(t int64, s *Store) {
 		}
 		set := &u.cfg.Alarms[k]
 		m := &u.alarms[k]
+		if m.Quiet(x, set, alarm.Rising(k)) {
+			continue
+		}
 		if prev, changed := m.Step(t, x, set, alarm.Rising(k)); changed {
 			s.publishLevel(u, k, prev, time.Unix(0, t), x, 0)
 		}
