@@ -23,17 +23,22 @@ func (c Change) String() string {
 
 // Event is one change of one alarm.
 type Event struct {
-	Unit, Site   string
-	Kind         Kind
-	Change       Change
-	Level        Level
-	Prev         Level
-	Time         time.Time // the sample's time (wall clock for stale telemetry and operator actions)
-	Value        float64   // the quantity (see QuantityOf)
-	Threshold    float64   // the threshold of the level reached, or of the level left when falling
-	Shelved      time.Time // until when the alarm is shelved; zero when it is not
-	Acknowledged bool      // the active alarm is acknowledged
-	Message      string    // one plain sentence an operator can act on
+	Unit, Site string
+	Kind       Kind
+	Change     Change
+	Level      Level
+	Prev       Level
+	Time       time.Time // the sample's time (wall clock for stale telemetry and operator actions)
+	Value      float64   // the quantity (see QuantityOf)
+	// Actual and LimitAt are what the alarm watches and the limit it is
+	// held against, in engineering units named by Units (A, Mvar, MW,
+	// kV, pu, s): for example Q and q_min in Mvar for the stability alarm.
+	Actual, LimitAt float64
+	Units           string
+	Threshold       float64   // the threshold of the level reached, or of the level left when falling
+	Shelved         time.Time // until when the alarm is shelved; zero when it is not
+	Acknowledged    bool      // the active alarm is acknowledged
+	Message         string    // one plain sentence an operator can act on
 }
 
 // Context is the operating point behind an alarm, in engineering units,

@@ -80,12 +80,10 @@ func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Ti
 	}
 	ctx := u.context()
 	ctx.AgeS = ageS
-	s.hub.Publish(alarm.Event{
-		Unit: u.cfg.ID, Site: u.cfg.Site, Kind: k, Change: alarm.LevelChanged,
-		Level: m.Level, Prev: prev, Time: at, Value: x, Threshold: thr,
-		Shelved: shelvedUntil(m), Acknowledged: m.Acknowledged,
-		Message: alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx),
-	})
+	ev := u.event(k, alarm.LevelChanged, at, ageS)
+	ev.Prev, ev.Value, ev.Threshold = prev, x, thr
+	ev.Message = alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx)
+	s.hub.Publish(ev)
 }
 
 // shelvedUntil is the end of m's shelf, or zero when it is not shelved.
@@ -94,6 +92,63 @@ func shelvedUntil(m *alarm.Machine) time.Time {
 		return time.Time{}
 	}
 	return time.Unix(0, m.ShelvedUntil)
+}
+
+// engineering returns what alarm kind k watches and the limit it is held
+// against, in engineering units, with their unit. u.mu must be held.
+func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, units string) {
+	e, b, smp := &u.eval, &u.cfg.Base, &u.latest
+	mvar := func(x limits.Bound) float64 {
+		if !x.OK {
+			return math.NaN()
+		}
+		return b.PowerMW(x.V)
+	}
+	switch k {
+	case alarm.Armature:
+		return e.I * b.CurrentA(), e.IMax * b.CurrentA(), "A"
+	case alarm.Field:
+		ifd := b.FieldA(e.IfdModel)
+		if smp.HasFieldA && smp.Quality == QualityGood {
+			ifd = smp.FieldA
+		}
+		return ifd, b.FieldA(e.IfdMax), "A"
+	case alarm.Stability:
+		return smp.QMvar, mvar(e.Practical), "Mvar"
+	case alarm.EndRegion:
+		return smp.QMvar, mvar(e.EndRegion), "Mvar"
+	case alarm.PrimeMover:
+		return smp.PMW, u.cfg.PrimeMover.PMaxMW, "MW"
+	case alarm.VoltsPerHertz:
+		return e.VPerHz, limits.VoltsPerHertzLimit, "pu"
+	case alarm.ArmatureThermal:
+		return u.armature.H, limits.ArmatureK, "s"
+	case alarm.FieldThermal:
+		return u.field.H, limits.FieldK, "s"
+	case alarm.VoltageFrequencyZone:
+		edge := 1.05
+		if smp.VKV < u.cfg.Rating.KV {
+			edge = 0.95
+		}
+		return smp.VKV, edge * u.cfg.Rating.KV, "kV"
+	case alarm.StaleTelemetry:
+		return ageS, u.cfg.Alarms[k].Warning, "s"
+	case alarm.FieldCurrentMismatch:
+		return smp.FieldA, b.FieldA(e.IfdModel), "A"
+	}
+	return math.NaN(), math.NaN(), ""
+}
+
+// event returns the event skeleton of unit u's alarm k with its present
+// state. u.mu must be held.
+func (u *Unit) event(k alarm.Kind, change alarm.Change, at time.Time, ageS float64) alarm.Event {
+	m := &u.alarms[k]
+	ev := alarm.Event{Unit: u.cfg.ID, Site: u.cfg.Site, Kind: k, Change: change, Level: m.Level, Prev: m.Level,
+		Time: at, Value: m.Value, Acknowledged: m.Acknowledged, Shelved: shelvedUntil(m)}
+	if u.has || k == alarm.StaleTelemetry {
+		ev.Actual, ev.LimitAt, ev.Units = u.engineering(k, ageS)
+	}
+	return ev
 }
 
 // context returns the operating point behind the unit's alarms. u.mu
@@ -139,13 +194,23 @@ func (s *Store) Sweep(now time.Time) {
 		for k := range u.alarms {
 			if m := &u.alarms[k]; m.ShelvedUntil != 0 && m.ShelvedUntil <= t {
 				m.ShelvedUntil = 0
-				s.hub.Publish(alarm.Event{Unit: u.cfg.ID, Site: u.cfg.Site, Kind: alarm.Kind(k), Change: alarm.Unshelved,
-					Level: m.Level, Prev: m.Level, Time: now, Value: m.Value, Acknowledged: m.Acknowledged,
-					Message: fmt.Sprintf("%s: %s alarm no longer shelved (shelf expired).", u.cfg.ID, alarm.Kind(k))})
+				ev := u.event(alarm.Kind(k), alarm.Unshelved, now, age)
+				ev.Message = fmt.Sprintf("%s: %s alarm no longer shelved (shelf expired).", u.cfg.ID, alarm.Kind(k))
+				s.hub.Publish(ev)
 			}
 		}
 		u.mu.Unlock()
 	}
+}
+
+// age is the time since unit u's latest sample (or the store's start),
+// in seconds, at wall-clock now. u.mu must be held.
+func (s *Store) age(u *Unit, now time.Time) float64 {
+	last := s.startNS
+	if u.has {
+		last = u.recvNS
+	}
+	return float64(now.UnixNano()-last) / 1e9
 }
 
 // Errors of the operator actions.
@@ -170,8 +235,9 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 		return nil
 	}
 	m.Acknowledged = true
-	s.hub.Publish(alarm.Event{Unit: id, Site: u.cfg.Site, Kind: k, Change: alarm.Acknowledged, Level: m.Level, Prev: m.Level,
-		Acknowledged: true, Shelved: shelvedUntil(m), Time: now, Value: m.Value, Message: fmt.Sprintf("%s: %s alarm (%s) acknowledged%s.", id, k, m.Level, byWhom(by))})
+	ev := u.event(k, alarm.Acknowledged, now, s.age(u, now))
+	ev.Message = fmt.Sprintf("%s: %s alarm (%s) acknowledged%s.", id, k, m.Level, byWhom(by))
+	s.hub.Publish(ev)
 	return nil
 }
 
@@ -185,18 +251,19 @@ func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string)
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	m := &u.alarms[k]
-	ev := alarm.Event{Unit: id, Site: u.cfg.Site, Kind: k, Level: m.Level, Prev: m.Level, Time: now, Value: m.Value,
-		Acknowledged: m.Acknowledged}
 	if until.IsZero() {
 		if m.ShelvedUntil == 0 {
 			return nil
 		}
 		m.ShelvedUntil = 0
+	} else {
+		m.ShelvedUntil = until.UnixNano()
+	}
+	ev := u.event(k, alarm.Shelved, now, s.age(u, now))
+	if until.IsZero() {
 		ev.Change = alarm.Unshelved
 		ev.Message = fmt.Sprintf("%s: %s alarm unshelved%s.", id, k, byWhom(by))
 	} else {
-		m.ShelvedUntil = until.UnixNano()
-		ev.Change, ev.Shelved = alarm.Shelved, until
 		ev.Message = fmt.Sprintf("%s: %s alarm shelved until %s%s.", id, k, until.UTC().Format(time.RFC3339), byWhom(by))
 	}
 	s.hub.Publish(ev)
@@ -222,12 +289,8 @@ func (s *Store) Active() []alarm.Event {
 				continue
 			}
 			ctx := u.context()
-			ev := alarm.Event{Unit: u.cfg.ID, Site: u.cfg.Site, Kind: alarm.Kind(k), Change: alarm.LevelChanged,
-				Level: m.Level, Prev: m.Level, Time: time.Unix(0, m.Since), Value: m.Value,
-				Message: alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx), Acknowledged: m.Acknowledged}
-			if m.ShelvedUntil != 0 {
-				ev.Shelved = time.Unix(0, m.ShelvedUntil)
-			}
+			ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), s.age(u, s.opts.Now()))
+			ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
 			out = append(out, ev)
 		}
 		u.mu.Unlock()

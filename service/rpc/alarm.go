@@ -208,6 +208,7 @@ func eventProto(e *alarm.Event) *pb.AlarmEvent {
 		UnitId: e.Unit, Site: e.Site, Limit: e.Kind.String(), Change: pb.AlarmChange(e.Change) + pb.AlarmChange_ALARM_CHANGE_LEVEL,
 		Level: levelProto(e.Level), PreviousLevel: levelProto(e.Prev), Time: timestamppb.New(e.Time),
 		Value: e.Value, Threshold: e.Threshold, Acknowledged: e.Acknowledged, Message: e.Message,
+		Actual: e.Actual, LimitValue: e.LimitAt, Units: e.Units,
 	}
 	if !e.Shelved.IsZero() {
 		out.ShelvedUntil = timestamppb.New(e.Shelved)

@@ -172,7 +172,18 @@ type AlarmEvent struct {
 	Acknowledged bool `protobuf:"varint,11,opt,name=acknowledged,proto3" json:"acknowledged,omitempty"`
 	// One plain sentence an operator can act on, for example how many Mvar
 	// are left before which limit at what voltage.
-	Message       string `protobuf:"bytes,12,opt,name=message,proto3" json:"message,omitempty"`
+	Message string `protobuf:"bytes,12,opt,name=message,proto3" json:"message,omitempty"`
+	// What the alarm watches and the limit it is held against, in
+	// engineering units named by units: armature and field current and
+	// their ratings in A; Q and the stability or end-region limit in Mvar;
+	// P and p_max in MW; volts per hertz and 1.05 in pu; the thermal
+	// heating integral and its limit K in s; terminal voltage and the
+	// nearer zone A edge in kV; seconds since the last sample and the
+	// warning threshold in s; measured and model field current in A. NaN
+	// where a limit does not exist at this active power.
+	Actual        float64 `protobuf:"fixed64,13,opt,name=actual,proto3" json:"actual,omitempty"`
+	LimitValue    float64 `protobuf:"fixed64,14,opt,name=limit_value,json=limitValue,proto3" json:"limit_value,omitempty"`
+	Units         string  `protobuf:"bytes,15,opt,name=units,proto3" json:"units,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -287,6 +298,27 @@ func (x *AlarmEvent) GetAcknowledged() bool {
 func (x *AlarmEvent) GetMessage() string {
 	if x != nil {
 		return x.Message
+	}
+	return ""
+}
+
+func (x *AlarmEvent) GetActual() float64 {
+	if x != nil {
+		return x.Actual
+	}
+	return 0
+}
+
+func (x *AlarmEvent) GetLimitValue() float64 {
+	if x != nil {
+		return x.LimitValue
+	}
+	return 0
+}
+
+func (x *AlarmEvent) GetUnits() string {
+	if x != nil {
+		return x.Units
 	}
 	return ""
 }
@@ -775,7 +807,7 @@ var File_genvelope_v1_alarm_proto protoreflect.FileDescriptor
 
 const file_genvelope_v1_alarm_proto_rawDesc = "" +
 	"\n" +
-	"\x18genvelope/v1/alarm.proto\x12\fgenvelope.v1\x1a\x1egoogle/protobuf/duration.proto\x1a\x1fgoogle/protobuf/timestamp.proto\"\xd6\x03\n" +
+	"\x18genvelope/v1/alarm.proto\x12\fgenvelope.v1\x1a\x1egoogle/protobuf/duration.proto\x1a\x1fgoogle/protobuf/timestamp.proto\"\xa5\x04\n" +
 	"\n" +
 	"AlarmEvent\x12\x17\n" +
 	"\aunit_id\x18\x01 \x01(\tR\x06unitId\x12\x12\n" +
@@ -790,7 +822,11 @@ const file_genvelope_v1_alarm_proto_rawDesc = "" +
 	"\rshelved_until\x18\n" +
 	" \x01(\v2\x1a.google.protobuf.TimestampR\fshelvedUntil\x12\"\n" +
 	"\facknowledged\x18\v \x01(\bR\facknowledged\x12\x18\n" +
-	"\amessage\x18\f \x01(\tR\amessage\"u\n" +
+	"\amessage\x18\f \x01(\tR\amessage\x12\x16\n" +
+	"\x06actual\x18\r \x01(\x01R\x06actual\x12\x1f\n" +
+	"\vlimit_value\x18\x0e \x01(\x01R\n" +
+	"limitValue\x12\x14\n" +
+	"\x05units\x18\x0f \x01(\tR\x05units\"u\n" +
 	"\vAlarmFilter\x12\x19\n" +
 	"\bunit_ids\x18\x01 \x03(\tR\aunitIds\x12\x14\n" +
 	"\x05sites\x18\x02 \x03(\tR\x05sites\x125\n" +
