@@ -17,7 +17,9 @@ import (
 // TestDemoPages runs `genvelope demo` (the service on its invented fleet
 // with the simulator pushing a sample a second per unit) and checks the
 // pages against that live traffic: every unit listed, a unit's chart and
-// operating point drawn, its numbers changing in place, a clean console.
+// operating point drawn, its numbers changing in place, the drifting
+// unit's alarm acknowledged from its page, a clean console. The demo runs
+// its day fast (--speed 6 on a 10-minute day) so the drift comes soon.
 func TestDemoPages(t *testing.T) {
 	if testing.Short() {
 		t.Skip("browser test: skipped under -short")
@@ -50,6 +52,21 @@ func TestDemoPages(t *testing.T) {
 		t.Error("the page reloaded instead of updating in place")
 	}
 	screenshot(t, tab, dir, "demo-unit.png")
+
+	// The scenario drifts vessa-2 onto its underexcited limit early in the
+	// day: wait for its alarm on its page and acknowledge it there.
+	if err := chromedp.Do(tab, chromedp.Navigate(web+"/units/vessa-2"), chromedp.WaitVisible(chromedp.CSS(`.chart svg`))); err != nil {
+		t.Fatalf("the page of vessa-2: %v", err)
+	}
+	waitFor(t, tab, "vessa-2's drift to raise an alarm", `!!document.querySelector("button[data-ack]")`)
+	kind := eval[string](t, tab, `document.querySelector("button[data-ack]").dataset.ack`)
+	if err := chromedp.Do(tab, chromedp.Click(chromedp.CSS(`button[data-ack="`+kind+`"]`))); err != nil {
+		t.Fatalf("acknowledging vessa-2's %s alarm: %v", kind, err)
+	}
+	waitFor(t, tab, "vessa-2's "+kind+" alarm to show acknowledged", `(() => {
+		const s = document.querySelector('[data-alarm="`+kind+`"] [data-alarm-state]');
+		return !!s && !s.textContent.includes("not acknowledged") && s.textContent.includes("acknowledged"); })()`)
+	screenshot(t, tab, dir, "demo-acknowledged.png")
 	for _, e := range consoleErrors() {
 		t.Errorf("browser console: %s", e)
 	}
@@ -80,7 +97,8 @@ func startDemo(t *testing.T) string {
 		t.Skip("this genvelope has no demo command")
 	}
 
-	cmd := exec.Command(bin, "demo", "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0", "--state", "")
+	cmd := exec.Command(bin, "demo", "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0", "--state", "",
+		"--speed", "6", "--day", "10m")
 	logPath := filepath.Join(t.TempDir(), "demo.log")
 	logFile, err := os.Create(logPath)
 	if err != nil {
