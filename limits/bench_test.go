@@ -85,3 +85,21 @@ func benchmarkTracking(b *testing.B, u *Unit) {
 
 func BenchmarkEvaluateTracking(b *testing.B)        { benchmarkTracking(b, benchRound(b)) }
 func BenchmarkEvaluateTrackingSalient(b *testing.B) { benchmarkTracking(b, benchSalient(b)) }
+
+// BenchmarkEvaluateSample is the per-sample path of the service
+// (EvaluateSample) on the tracking telemetry of both units.
+func BenchmarkEvaluateSample(b *testing.B) {
+	for _, tc := range []struct {
+		name string
+		u    *Unit
+	}{{"round", benchRound(b)}, {"salient", benchSalient(b)}} {
+		b.Run(tc.name, func(b *testing.B) {
+			pts := tracking(4096)
+			var h Hint
+			b.ReportAllocs()
+			for i := range b.N {
+				sink = tc.u.EvaluateSample(pts[i&4095], &h)
+			}
+		})
+	}
+}

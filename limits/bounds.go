@@ -63,16 +63,40 @@ func (h *Hint) set(bit uint8, b Bound) {
 // v (pu), with the armature and field ratings multiplied by the coolant
 // factors armF and fieldF. h may be nil.
 func (u *Unit) Bounds(p, v, armF, fieldF float64, h *Hint) Bounds {
-	var b Bounds
+	b, _ := u.bounds(p, v, armF, fieldF, h, true)
+	return b
+}
+
+// bounds computes the limit curves. With full false it may leave the
+// field-limit curve, and so q_max, unsolved (deferred true) when nothing
+// else at this point depends on its value: see deferredBounds.
+func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full bool) (b Bounds, deferred bool) {
 	iMax := armF
 	r := v * iMax
 	if math.Abs(p) <= r {
 		a := math.Sqrt(r*r - p*p)
 		b.ArmatureUp, b.ArmatureDown = some(a), some(-a)
 	}
-	b.Field = u.fieldLimit(p, v, u.ifdRated*fieldF, h)
+	ifdMax := u.ifdRated * fieldF
+	if !full && b.ArmatureUp.OK {
+		if d, ok := u.deferredBounds(p, v, ifdMax, b, h); ok {
+			return d, true
+		}
+	}
+	b.Field = u.fieldLimit(p, v, ifdMax, h)
+	b.upperBound()
 
-	// Upper bound: q_max = min(armature, field).
+	if b.QMax.OK {
+		b.Stability, b.Practical = u.stabilityLimits(math.Abs(p), v, b.QMax.V, h)
+	}
+	b.EndRegion = u.endRegionAt(p, v)
+	b.lowerBound()
+	return b, false
+}
+
+// upperBound sets b's upper bound from its armature and field curves:
+// q_max = min of the two, naming the one that binds.
+func (b *Bounds) upperBound() {
 	switch {
 	case !b.ArmatureUp.OK:
 		b.QMaxLimit = LimitArmature
@@ -83,19 +107,11 @@ func (u *Unit) Bounds(p, v, armF, fieldF float64, h *Hint) Bounds {
 	default:
 		b.QMax, b.QMaxLimit = b.ArmatureUp, LimitArmature
 	}
+}
 
-	if b.QMax.OK {
-		b.Stability, b.Practical = u.stabilityLimits(math.Abs(p), v, b.QMax.V, h)
-	}
-	if u.hasEnd {
-		q := u.endRegion.Predict(p)
-		if k := u.p.EndRegion.VoltageExponent; k != 0 {
-			q *= math.Pow(v, k)
-		}
-		b.EndRegion = some(q)
-	}
-
-	// Lower bound: q_min = max(armature, practical stability, end region).
+// lowerBound sets b's lower bound from its armature, practical stability
+// and end-region curves: q_min = max of the three, naming the one that binds.
+func (b *Bounds) lowerBound() {
 	switch {
 	case !b.ArmatureDown.OK:
 		b.QMinLimit = LimitArmature
@@ -110,7 +126,51 @@ func (u *Unit) Bounds(p, v, armF, fieldF float64, h *Hint) Bounds {
 			b.QMin, b.QMinLimit = b.EndRegion, LimitEndRegion
 		}
 	}
-	return b
+}
+
+// endRegionAt returns the end-region curve at p and v.
+func (u *Unit) endRegionAt(p, v float64) Bound {
+	if !u.hasEnd {
+		return Bound{}
+	}
+	q := u.endRegion.Predict(p)
+	if k := u.p.EndRegion.VoltageExponent; k != 0 {
+		q *= math.Pow(v, k)
+	}
+	return some(q)
+}
+
+// deferredBounds computes the lower side of the envelope without solving
+// the field limit, which a service needs only when someone reads q_max.
+// The stability limits are searched below the armature circle instead of
+// below q_max; that finds the same roots whenever they lie below q_max,
+// which holds exactly when the field current at q_min is within its
+// rating (i_fd rises with q above -v^2/Xq), checked with one evaluation
+// of the field model instead of a root. Whenever a limit reaches the top
+// of its search, or that check fails, ok is false and the caller solves
+// the full envelope, so the result is always Bounds' own.
+func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint) (Bounds, bool) {
+	qTop := b.ArmatureUp.V
+	theo, prac := u.stabilityLimits(math.Abs(p), v, qTop, h)
+	if !theo.OK || !prac.OK || theo.V >= qTop {
+		return b, false
+	}
+	b.Stability, b.Practical = theo, prac
+	b.EndRegion = u.endRegionAt(p, v)
+	b.lowerBound()
+	qMin := b.QMin.V
+	if qMin > qTop {
+		return b, false
+	}
+	// One evaluation settles it: above lo, i_fd(q_min) within the rating
+	// means the field limit exists and lies above q_min (i_fd rises
+	// without bound); below lo, the field limit exists above lo, and so
+	// above q_min, when i_fd(lo) is within the rating.
+	at := max(qMin, -v*v/u.p.Xq)
+	if u.field(p, at, v, false).ifd >= ifdMax {
+		return b, false
+	}
+	return b, true
 }
 
 // fieldLimit solves i_fd(p, q, v) = ifdMax for q on the branch where the

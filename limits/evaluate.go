@@ -17,7 +17,29 @@ import "math"
 //	end_region       (q - q_end) / 1 pu (only with an end-region curve)
 //	prime_mover      (p_max - p) / p_rated, p_max the prime mover's
 //	volts_per_hertz  1 - (v/f)/1.05
-func (u *Unit) Evaluate(pt Point, h *Hint) Result {
+func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, true) }
+
+// EvaluateSample is Evaluate for the per-sample path of a service. Its
+// margins, binding limit, feasibility, lower bound and stability limits
+// are Evaluate's; but where nothing else depends on it, it leaves the
+// field-limit curve, and so q_max and its limit, unsolved and sets
+// QMaxPending. Complete solves them when someone reads them, which is far
+// less often than samples arrive.
+func (u *Unit) EvaluateSample(pt Point, h *Hint) Result { return u.evaluate(pt, h, false) }
+
+// Complete solves what EvaluateSample left pending in r, the result of
+// point pt; after it r is Evaluate's result, to the root tolerance. It
+// does nothing when nothing is pending.
+func (u *Unit) Complete(r *Result, pt Point) {
+	if !r.QMaxPending {
+		return
+	}
+	r.Field = u.fieldLimit(pt.P, pt.V, r.IfdMax, nil)
+	r.upperBound()
+	r.QMaxPending = false
+}
+
+func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 	p, q, v := pt.P, pt.Q, pt.V
 	f := pt.F
 	if f == 0 {
@@ -39,7 +61,7 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result {
 		r.CoolantOutside = !inside
 	}
 	r.IMax, r.IfdMax = armF, u.ifdRated*fieldF
-	r.Bounds = u.Bounds(p, v, armF, fieldF, h)
+	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full)
 
 	fs := u.field(p, q, v, false)
 	r.IfdModel, r.Ef = fs.ifd, fs.ef
@@ -69,7 +91,8 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result {
 	r.Margins[LimitVoltsPerHertz] = some(1 - r.VPerHz*(1/VoltsPerHertzLimit))
 	r.Zone = VoltageFrequencyZone(v, f)
 
-	r.Feasible = r.QMax.OK && r.QMin.OK && r.QMin.V <= r.QMax.V
+	// A pending q_max exists and lies above q_min: deferredBounds checked both.
+	r.Feasible = r.QMaxPending || r.QMax.OK && r.QMin.OK && r.QMin.V <= r.QMax.V
 	switch {
 	case !r.QMax.OK:
 		r.Infeasible = r.QMaxLimit

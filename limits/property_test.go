@@ -171,3 +171,41 @@ func mustNew(t testing.TB, p Params) *Unit {
 	}
 	return u
 }
+
+// EvaluateSample followed by Complete is Evaluate, over whole trajectories
+// (warm hints) and at independent points (cold).
+func TestEvaluateSampleCompletes(t *testing.T) {
+	same := func(t *testing.T, i int, a, b Result) {
+		t.Helper()
+		for _, x := range [][2]Bound{{a.Field, b.Field}, {a.QMax, b.QMax}, {a.QMin, b.QMin}, {a.Stability, b.Stability},
+			{a.Practical, b.Practical}, {a.EndRegion, b.EndRegion}} {
+			if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 1e-8 {
+				t.Fatalf("point %d: sample path %+v, Evaluate %+v", i, x[0], x[1])
+			}
+		}
+		for l := range a.Margins {
+			if a.Margins[l].OK != b.Margins[l].OK || math.Abs(a.Margins[l].V-b.Margins[l].V) > 1e-8 {
+				t.Fatalf("point %d: margin %v: %+v against %+v", i, Limit(l), a.Margins[l], b.Margins[l])
+			}
+		}
+		if a.QMaxLimit != b.QMaxLimit || a.QMinLimit != b.QMinLimit || a.Feasible != b.Feasible ||
+			a.Infeasible != b.Infeasible || a.Binding != b.Binding || a.QMaxPending {
+			t.Fatalf("point %d: sample path %+v\nEvaluate %+v", i, a, b)
+		}
+	}
+	for _, u := range propUnits(t) {
+		var hs, he Hint
+		deferred := 0
+		for i, pt := range append(tracking(2000), spread(u, 2000)...) {
+			a := u.EvaluateSample(pt, &hs)
+			if a.QMaxPending {
+				deferred++
+			}
+			u.Complete(&a, pt)
+			same(t, i, a, u.Evaluate(pt, &he))
+		}
+		if deferred == 0 {
+			t.Errorf("the sample path never deferred q_max")
+		}
+	}
+}

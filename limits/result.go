@@ -110,6 +110,10 @@ type Result struct {
 	// Margins are ratios, positive inside the envelope, indexed by Limit.
 	Margins [numLimits]Bound
 
+	// QMaxPending is set by EvaluateSample when Field, QMax and QMaxLimit
+	// are left unsolved; Complete solves them.
+	QMaxPending bool
+
 	Binding    Limit // the capability-chart limit (armature to prime mover) with the smallest margin
 	Feasible   bool  // every bound exists at this active power
 	Infeasible Limit // when not feasible, the limit whose bound is missing

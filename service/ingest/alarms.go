@@ -158,6 +158,7 @@ func (u *Unit) context() alarm.Context {
 	if !u.has {
 		return c
 	}
+	u.complete()
 	s := &u.latest
 	pt := report.Point(u.cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
 	e := report.New(u.cfg, pt, &u.eval)

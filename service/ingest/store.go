@@ -297,7 +297,8 @@ type Unit struct {
 	hint   limits.Hint
 	has    bool          // a sample has been accepted
 	latest Sample        // the latest accepted sample
-	eval   limits.Result // its evaluation
+	eval   limits.Result // its evaluation (see complete)
+	pt     limits.Point  // its operating point, per unit
 	recvNS int64         // server time it was accepted, Unix ns
 
 	// Accepted timestamps, Unix ns, increasing; ring[(head-1) mod
@@ -380,13 +381,24 @@ func (u *Unit) evaluate() {
 	if s.HasFreq {
 		pt.F = b.FrequencyPU(s.FrequencyHz)
 	}
-	u.eval = cfg.Model.Evaluate(pt, &u.hint)
+	// The per-sample evaluation leaves q_max to be solved by the first
+	// reader (complete): samples come far more often than reads.
+	u.eval = cfg.Model.EvaluateSample(pt, &u.hint)
+	u.pt = pt
 	u.xArm = u.eval.I / u.eval.IMax
 	ifd := u.eval.IfdModel
 	if pt.IfdMeasured {
 		ifd = pt.Ifd
 	}
 	u.xField = ifd / u.eval.IfdMax
+}
+
+// complete solves what the per-sample evaluation left pending. u.mu
+// must be held.
+func (u *Unit) complete() {
+	if u.has && u.eval.QMaxPending {
+		u.cfg.Model.Complete(&u.eval, u.pt)
+	}
 }
 
 // reconfigure gives the unit new parameters after a reload and
@@ -420,6 +432,7 @@ type View struct {
 func (u *Unit) View() View {
 	u.mu.Lock()
 	defer u.mu.Unlock()
+	u.complete()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
 		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms}
 	if u.has {
