@@ -151,11 +151,17 @@ func (u *Unit) endRegionAt(p, v float64) Bound {
 // the full envelope, so the result is always Bounds' own.
 func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint) (Bounds, bool) {
 	qTop := b.ArmatureUp.V
-	theo, prac := u.stabilityLimits(math.Abs(p), v, qTop, h)
-	if !theo.OK || !prac.OK || theo.V >= qTop {
-		return b, false
+	if prac, ok := u.warmPractical(math.Abs(p), v, qTop, h); ok {
+		// The theoretical limit is not needed to place the point: leave
+		// it, like the field limit, to Complete.
+		b.Practical = prac
+	} else {
+		theo, prac := u.stabilityLimits(math.Abs(p), v, qTop, h)
+		if !theo.OK || !prac.OK || theo.V >= qTop {
+			return b, false
+		}
+		b.Stability, b.Practical = theo, prac
 	}
-	b.Stability, b.Practical = theo, prac
 	b.EndRegion = u.endRegionAt(p, v)
 	b.lowerBound()
 	qMin := b.QMin.V
@@ -353,6 +359,37 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 	q, _ := brent(hf, qs, qTop, hLo, hTop, stabTol)
 	h.set(hintPrac, some(q))
 	return some(q)
+}
+
+// warmPractical finds the practical stability limit of a salient-pole
+// unit from the previous sample's alone, without the theoretical limit
+// below it: the warm secant root of P_max - p - m, accepted when the point
+// there is stable (K_s > 0 and E_f > 0), which puts it above the
+// theoretical limit. A round rotor has both in closed form and gains
+// nothing from this.
+func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
+	hint, ok := h.get(hintPrac)
+	if u.roundStab || !ok {
+		return Bound{}, false
+	}
+	pm := p + u.marginPU
+	hf := func(q float64) float64 {
+		s := u.stab(p, q, v)
+		if s.degen {
+			return -pm
+		}
+		return peakPower(s.a, s.b) - pm
+	}
+	q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop)
+	if !ok {
+		return Bound{}, false
+	}
+	if s := u.stab(p, q, v); s.degen || !(s.ks > 0 && s.ef > 0) {
+		return Bound{}, false
+	}
+	h.pracSlope = slope
+	h.set(hintPrac, some(q))
+	return some(q), true
 }
 
 // perpendicular returns the q at which E_Q = V + jXq I and V_s = V - jXe I

@@ -20,10 +20,10 @@ import "math"
 func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, true) }
 
 // EvaluateSample is Evaluate for the per-sample path of a service. Its
-// margins, binding limit, feasibility, lower bound and stability limits
-// are Evaluate's; but where nothing else depends on it, it leaves the
-// field-limit curve, and so q_max and its limit, unsolved and sets
-// QMaxPending. Complete solves them when someone reads them, which is far
+// margins, binding limit, feasibility, lower bound and practical
+// stability limit are Evaluate's; but where nothing else depends on
+// them, it leaves the field-limit curve (and so q_max and its limit) and
+// the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
 // less often than samples arrive.
 func (u *Unit) EvaluateSample(pt Point, h *Hint) Result { return u.evaluate(pt, h, false) }
 
@@ -36,6 +36,11 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	}
 	r.Field = u.fieldLimit(pt.P, pt.V, r.IfdMax, nil)
 	r.upperBound()
+	if !r.Stability.OK && r.QMax.OK {
+		// Left by the warm practical limit; the practical limit is solved
+		// again with it, to the same root.
+		r.Stability, r.Practical = u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, nil)
+	}
 	r.QMaxPending = false
 }
 

@@ -111,7 +111,8 @@ type Result struct {
 	Margins [numLimits]Bound
 
 	// QMaxPending is set by EvaluateSample when Field, QMax and QMaxLimit
-	// are left unsolved; Complete solves them.
+	// (and, for a salient-pole unit, Stability) are left unsolved;
+	// Complete solves them.
 	QMaxPending bool
 
 	Binding    Limit // the capability-chart limit (armature to prime mover) with the smallest margin
