@@ -1,6 +1,9 @@
 package alarm
 
-import "sync"
+import (
+	"sync"
+	"sync/atomic"
+)
 
 // Hub fans alarm events out to watchers. Publishing never waits: each
 // watcher has a bounded buffer, and a watcher whose buffer is full is
@@ -9,6 +12,7 @@ import "sync"
 type Hub struct {
 	mu       sync.Mutex
 	watchers map[*Watcher]struct{}
+	n        atomic.Int32 // len(watchers), readable without the lock
 }
 
 // NewHub returns a hub with no watchers.
@@ -29,6 +33,7 @@ func (h *Hub) Watch(size int, filter func(*Event) bool) *Watcher {
 	w := &Watcher{C: make(chan Event, size), Overflowed: make(chan struct{}), filter: filter, hub: h}
 	h.mu.Lock()
 	h.watchers[w] = struct{}{}
+	h.n.Store(int32(len(h.watchers)))
 	h.mu.Unlock()
 	return w
 }
@@ -37,6 +42,7 @@ func (h *Hub) Watch(size int, filter func(*Event) bool) *Watcher {
 func (w *Watcher) Close() {
 	w.hub.mu.Lock()
 	delete(w.hub.watchers, w)
+	w.hub.n.Store(int32(len(w.hub.watchers)))
 	w.hub.mu.Unlock()
 }
 
@@ -52,14 +58,15 @@ func (h *Hub) Publish(ev Event) {
 		case w.C <- ev:
 		default:
 			delete(h.watchers, w)
+			h.n.Store(int32(len(h.watchers)))
 			w.once.Do(func() { close(w.Overflowed) })
 		}
 	}
 }
 
+// Watched reports whether any watcher is registered, without waiting:
+// a publisher may skip building events nobody will read.
+func (h *Hub) Watched() bool { return h.n.Load() > 0 }
+
 // Watchers returns the number of registered watchers.
-func (h *Hub) Watchers() int {
-	h.mu.Lock()
-	defer h.mu.Unlock()
-	return len(h.watchers)
-}
+func (h *Hub) Watchers() int { return int(h.n.Load()) }

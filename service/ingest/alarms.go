@@ -73,6 +73,9 @@ func (u *Unit) stepAlarms(t int64, s *Store) {
 func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Time, x, ageS float64) {
 	m := &u.alarms[k]
 	s.transitions[k][m.Level].Add(1)
+	if !s.hub.Watched() {
+		return // the sentence and the operating point are for watchers only
+	}
 	set := &u.cfg.Alarms[k]
 	thr := set.Warning
 	if l := max(m.Level, prev); l == alarm.Critical {
