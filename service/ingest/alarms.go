@@ -286,18 +286,33 @@ func byWhom(by string) string {
 func (s *Store) Active() []alarm.Event {
 	var out []alarm.Event
 	for _, u := range s.Units() {
-		u.mu.Lock()
-		for k := range u.alarms {
-			m := &u.alarms[k]
-			if m.Level == alarm.Normal {
-				continue
-			}
-			ctx := u.context()
-			ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), s.age(u, s.opts.Now()))
-			ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
-			out = append(out, ev)
+		out = s.appendActive(out, u)
+	}
+	return out
+}
+
+// ActiveOf returns unit id's alarms above normal, like Active; nil for an
+// unknown unit.
+func (s *Store) ActiveOf(id string) []alarm.Event {
+	u := s.Unit(id)
+	if u == nil {
+		return nil
+	}
+	return s.appendActive(nil, u)
+}
+
+func (s *Store) appendActive(out []alarm.Event, u *Unit) []alarm.Event {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	for k := range u.alarms {
+		m := &u.alarms[k]
+		if m.Level == alarm.Normal {
+			continue
 		}
-		u.mu.Unlock()
+		ctx := u.context()
+		ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), s.age(u, s.opts.Now()))
+		ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
+		out = append(out, ev)
 	}
 	return out
 }

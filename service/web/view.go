@@ -426,10 +426,8 @@ func fill(x float64) int {
 func (ui *UI) alarmRows(id string, v *ingest.View, now time.Time) []alarmRow {
 	var rows []alarmRow
 	msgs := map[alarm.Kind]alarm.Event{}
-	for _, ev := range ui.store.Active() {
-		if ev.Unit == id {
-			msgs[ev.Kind] = ev
-		}
+	for _, ev := range ui.store.ActiveOf(id) {
+		msgs[ev.Kind] = ev
 	}
 	t := now.UnixNano()
 	for k := range v.Alarms {
