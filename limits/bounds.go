@@ -328,17 +328,24 @@ func (u *Unit) stabilityLimits(p, v, qTop float64, h *Hint) (theo, prac Bound) {
 	return theo, u.practicalLimit(p, v, lo, qTop, h)
 }
 
-// practicalLimit returns the lowest q in [qs, qTop] at which the peak of
-// P(delta) at the point's own E_f and V_s is at least p + m.
-func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
+// peakExcess returns the function whose root in q is the practical
+// stability limit at active power p >= 0 and voltage v: the peak of
+// P(delta) at the point's own E_f and V_s, less p and the margin m.
+func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
 	pm := p + u.marginPU
-	hf := func(q float64) float64 {
+	return func(q float64) float64 {
 		s := u.stab(p, q, v)
 		if s.degen {
 			return -pm
 		}
 		return peakPower(s.a, s.b) - pm
 	}
+}
+
+// practicalLimit returns the lowest q in [qs, qTop] at which the peak of
+// P(delta) at the point's own E_f and V_s is at least p + m.
+func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
+	hf := u.peakExcess(p, v)
 	if hint, ok := h.get(hintPrac); ok && hint > qs {
 		if q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop); ok && q > qs {
 			h.pracSlope = slope
@@ -372,14 +379,7 @@ func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
 	if u.roundStab || !ok {
 		return Bound{}, false
 	}
-	pm := p + u.marginPU
-	hf := func(q float64) float64 {
-		s := u.stab(p, q, v)
-		if s.degen {
-			return -pm
-		}
-		return peakPower(s.a, s.b) - pm
-	}
+	hf := u.peakExcess(p, v)
 	q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop)
 	if !ok {
 		return Bound{}, false

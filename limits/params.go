@@ -274,6 +274,3 @@ func (u *Unit) CoolantFactors(c float64) (armature, field float64, inside bool) 
 	w := (c - t.At[i]) / (t.At[i+1] - t.At[i])
 	return t.Armature[i] + w*(t.Armature[i+1]-t.Armature[i]), t.Field[i] + w*(t.Field[i+1]-t.Field[i]), true
 }
-
-// HasCoolantTable reports whether the unit has a coolant capability table.
-func (u *Unit) HasCoolantTable() bool { return u.hasCoolant }

@@ -191,7 +191,6 @@ type Machine struct {
 	ShelvedUntil int64   // wall-clock Unix ns until which the alarm is shelved; 0 when not
 	Since        int64   // sample time (Unix ns) of the last level change
 	Value        float64 // the quantity at the last step that was not at rest
-	HasValue     bool
 }
 
 // Step advances the machine to time t (Unix ns) with the quantity x and
@@ -214,7 +213,7 @@ func (m *Machine) Step(t int64, x float64, s *Setting, rising bool) (prev Level,
 	if math.IsNaN(x) || m.Quiet(x, s, rising) {
 		return prev, false
 	}
-	m.Value, m.HasValue = x, true
+	m.Value = x
 	thr := [2]float64{s.Warning, s.Critical}
 	// beyond reports whether x is past threshold th, shifted by the
 	// deadband towards normal when the level is held (hysteresis).

@@ -18,6 +18,7 @@ import (
 	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/report"
 )
 
 // Quality is the quality flag a sample carries from the plant.
@@ -371,16 +372,10 @@ func (u *Unit) seen(t int64) bool {
 // evaluate places u.latest against the envelope. u.mu must be held.
 func (u *Unit) evaluate() {
 	cfg := u.cfg
-	b := &cfg.Base
 	s := &u.latest
-	pt := limits.Point{
-		P: b.PowerPU(s.PMW), Q: b.PowerPU(s.QMvar), V: b.VoltagePU(s.VKV),
-		Ifd: b.FieldPU(s.FieldA), IfdMeasured: s.HasFieldA && s.Quality == QualityGood,
-		Coolant: s.Coolant, HasCoolant: s.HasCoolant,
-	}
-	if s.HasFreq {
-		pt.F = b.FrequencyPU(s.FrequencyHz)
-	}
+	// A measured field current counts only on a sample of good quality.
+	pt := report.Point(cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA && s.Quality == QualityGood,
+		s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
 	// The per-sample evaluation leaves q_max to be solved by the first
 	// reader (complete): samples come far more often than reads.
 	u.eval = cfg.Model.EvaluateSample(pt, &u.hint)
@@ -419,6 +414,7 @@ type View struct {
 	HasSample bool
 	Latest    Sample
 	Eval      limits.Result
+	Point     limits.Point // the latest sample in per unit, as evaluated
 	Received  time.Time
 	Accepted  uint64         // samples accepted since the service started
 	Armature  limits.Thermal // short-time thermal accumulators
@@ -436,14 +432,7 @@ func (u *Unit) View() View {
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
 		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms}
 	if u.has {
-		v.Latest, v.Eval, v.Received = u.latest, u.eval, time.Unix(0, u.recvNS)
+		v.Latest, v.Eval, v.Point, v.Received = u.latest, u.eval, u.pt, time.Unix(0, u.recvNS)
 	}
 	return v
-}
-
-// ID returns the unit's id.
-func (u *Unit) ID() string {
-	u.mu.Lock()
-	defer u.mu.Unlock()
-	return u.cfg.ID
 }

@@ -151,9 +151,8 @@ func (c *Collector) series(out sink) {
 		if !v.HasSample {
 			continue
 		}
-		e, s, b := &v.Eval, &v.Latest, cfg.Base
-		q := b.PowerPU(s.QMvar)
-		up, down := e.Headroom(q)
+		e, s, b, pt := &v.Eval, &v.Latest, cfg.Base, &v.Point
+		up, down := e.Headroom(pt.Q)
 		if up.OK {
 			out.add(c.headroom, b.PowerMW(up.V)*1e6, id, site, "up")
 		}
@@ -179,14 +178,13 @@ func (c *Collector) series(out sink) {
 		out.add(c.activePower, s.PMW*1e6, id, site)
 		out.add(c.reactivePower, s.QMvar*1e6, id, site)
 		out.add(c.voltage, s.VKV*1e3, id, site)
-		out.add(c.voltagePU, b.VoltagePU(s.VKV), id, site)
+		out.add(c.voltagePU, pt.V, id, site)
 		if s.HasFieldA {
 			out.add(c.fieldCurrent, s.FieldA, id, site, "measured")
 		}
 		out.add(c.fieldCurrent, b.FieldA(e.IfdModel), id, site, "model")
-		pPU, vPU := b.PowerPU(s.PMW), b.VoltagePU(s.VKV)
-		out.add(c.loadAngle, cfg.Model.LoadAngle(pPU, q, vPU), id, site)
-		if t := cfg.Model.CriticalClearingTime(pPU, q, vPU); t.OK && !math.IsInf(t.V, 0) {
+		out.add(c.loadAngle, cfg.Model.LoadAngle(pt.P, pt.Q, pt.V), id, site)
+		if t := cfg.Model.CriticalClearingTime(pt.P, pt.Q, pt.V); t.OK && !math.IsInf(t.V, 0) {
 			out.add(c.cct, t.V, id, site)
 		}
 		out.add(c.age, now.Sub(v.Received).Seconds(), id, site)
