@@ -32,9 +32,10 @@ func (l Limit) String() string {
 	return fmt.Sprintf("Limit(%d)", uint8(l))
 }
 
-// Limits returns every limit that has a margin, in Margins order.
-func Limits() []Limit {
-	return []Limit{LimitArmature, LimitField, LimitStability, LimitEndRegion, LimitPrimeMover, LimitVoltsPerHertz}
+// Limits returns every limit that has a margin, in Margins order. It is
+// an array, so the scrape-time loops over every unit allocate nothing.
+func Limits() [numLimits - 1]Limit {
+	return [...]Limit{LimitArmature, LimitField, LimitStability, LimitEndRegion, LimitPrimeMover, LimitVoltsPerHertz}
 }
 
 // Zone is the IEC 60034-1 voltage and frequency operating zone.
