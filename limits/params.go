@@ -61,6 +61,16 @@ type Params struct {
 	Xe             float64 // external reactance to the infinite bus (step-up plus system), pu on machine base
 	MarginFraction float64 // practical stability margin as a fraction of rated MW
 
+	// The avr stability basis (envelope.md, "The linearized model").
+	Basis         Basis       // which stability limit the unit is held to
+	ZetaMin       float64     // lowest damping ratio of an electromechanical mode, [0, 1)
+	Td0TransientS float64     // open-circuit d-axis transient time constant T'd0, s; 0 when not known
+	DampingPU     float64     // mechanical damping D, pu torque per pu speed
+	Exciter       *Exciter    // the regulator; nil when not given
+	Stabilizer    *Stabilizer // the power system stabilizer; nil when none
+
+	UEL *UEL // the underexcitation limiter curve; nil when none
+
 	EndRegion *EndRegion // optional stator end-region curve
 	Coolant   *Coolant   // optional coolant capability table
 }
@@ -273,4 +283,136 @@ func (u *Unit) CoolantFactors(c float64) (armature, field float64, inside bool) 
 	}
 	w := (c - t.At[i]) / (t.At[i+1] - t.At[i])
 	return t.Armature[i] + w*(t.Armature[i+1]-t.Armature[i]), t.Field[i] + w*(t.Field[i+1]-t.Field[i]), true
+}
+
+// Basis is what the steady-state stability limit assumes about the
+// excitation (envelope.md, "Stability basis").
+type Basis uint8
+
+const (
+	// BasisManual holds the field voltage constant: unstable where the
+	// synchronizing coefficient K_s <= 0 or E_f <= 0.
+	BasisManual Basis = iota
+	// BasisAVR keeps the voltage regulator in service: the linearized
+	// single-machine model with its exciter (and stabilizer), unstable
+	// where a mode grows or an electromechanical mode is damped below
+	// Params.ZetaMin.
+	BasisAVR
+)
+
+// String returns the fleet-file spelling: "manual" or "avr".
+func (b Basis) String() string {
+	switch b {
+	case BasisManual:
+		return "manual"
+	case BasisAVR:
+		return "avr"
+	}
+	return fmt.Sprintf("Basis(%d)", uint8(b))
+}
+
+// Exciter is the voltage regulator and exciter of the avr basis: a
+// single time constant exciter with gain K_A (IEEE 421.5 static-exciter
+// form reduced to its small-signal gain, from memory), field voltage in
+// pu of the air-gap-line field (1 pu E_fd gives 1 pu open-circuit
+// voltage, unsaturated).
+type Exciter struct {
+	KA     float64 // regulator gain, pu E_fd per pu voltage error, >= 0
+	TAS    float64 // exciter time constant T_A, s, > 0
+	TRS    float64 // terminal-voltage transducer time constant T_R, s, >= 0 (0: no state)
+	EfdMin float64 // lowest field voltage the exciter gives, pu (default 0)
+	EfdMax float64 // ceiling field voltage, pu; 0 when not given (reported only)
+}
+
+// Stabilizer is a speed-input power system stabilizer: gain k, washout
+// T_w and two lead-lag stages (T1/T2, T3/T4), all times in s.
+type Stabilizer struct {
+	K                       float64
+	TWS, T1S, T2S, T3S, T4S float64
+}
+
+// UELShape is the form of an underexcitation limiter curve.
+type UELShape uint8
+
+const (
+	// UELCircle is the IEEE 421.5 UEL1-like circle in the P-Q plane.
+	UELCircle UELShape = iota
+	// UELPoints is the IEEE 421.5 UEL2-like piecewise-linear curve with
+	// voltage exponents (from memory).
+	UELPoints
+)
+
+// UEL is an underexcitation limiter curve defined at 1.0 pu terminal
+// voltage, in pu of machine MVA (coordination.md, "Curves").
+type UEL struct {
+	Shape UELShape
+
+	// Circle: centre (CenterP, CenterQ) and radius, scaled with v^K.
+	CenterP, CenterQ, Radius, K float64
+
+	// Points: q_uel = v^K2 F(p / v^K1), F piecewise linear through
+	// (P[i], Q[i]), held constant beyond the end points.
+	P, Q   []float64
+	K1, K2 float64
+}
+
+// At returns q_uel at active power p and terminal voltage v (pu): the
+// lowest reactive power the limiter lets the unit reach. OK is false
+// where the curve has no value at this p (a circle the vertical line
+// p does not cross).
+//
+//	circle: q_uel = v^k (c_q - sqrt(r^2 - (p/v^k - c_p)^2))
+//	points: q_uel = v^k2 F(p / v^k1)
+//
+// Source: coordination.md, after IEEE 421.5 UEL1 and UEL2 (from memory).
+func (c *UEL) At(p, v float64) Bound {
+	switch c.Shape {
+	case UELCircle:
+		s := math.Pow(v, c.K)
+		d := p/s - c.CenterP
+		r2 := c.Radius*c.Radius - d*d
+		if r2 < 0 {
+			return Bound{}
+		}
+		return some(s * (c.CenterQ - math.Sqrt(r2)))
+	case UELPoints:
+		n := len(c.P)
+		if n == 0 {
+			return Bound{}
+		}
+		x := p / math.Pow(v, c.K1)
+		var f float64
+		switch {
+		case x <= c.P[0]:
+			f = c.Q[0]
+		case x >= c.P[n-1]:
+			f = c.Q[n-1]
+		default:
+			i := sort.SearchFloat64s(c.P, x)
+			if c.P[i] != x {
+				i--
+			}
+			w := (x - c.P[i]) / (c.P[i+1] - c.P[i])
+			f = c.Q[i] + w*(c.Q[i+1]-c.Q[i])
+		}
+		return some(math.Pow(v, c.K2) * f)
+	}
+	return Bound{}
+}
+
+// UELAt returns the unit's underexcitation limiter curve q_uel at p and
+// v (pu); absent without a UEL or where the curve has no value at p.
+func (u *Unit) UELAt(p, v float64) Bound {
+	if u.p.UEL == nil {
+		return Bound{}
+	}
+	return u.p.UEL.At(p, v)
+}
+
+// StabilityLimit returns q_stability(p, v), the steady-state stability
+// limit on the unit's own basis with no practical margin, computed
+// directly (no warm start), at rated coolant. Absent where the point has
+// no stable operation. The coordination study and the reports use it.
+func (u *Unit) StabilityLimit(p, v float64) Bound {
+	return u.Bounds(p, v, 1, 1, nil).Stability
 }
