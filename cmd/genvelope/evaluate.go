@@ -76,7 +76,8 @@ func evaluate(e env, f *evaluateFlags) int {
 	if f.coolant.set && u.Coolant == nil {
 		fmt.Fprintf(e.stderr, "genvelope evaluate: unit %q has no coolant table; --coolant is ignored\n", u.ID)
 	}
-	pt := report.Point(u, f.pMW.v, f.qMvar.v, f.vKV.v, f.fieldA.v, f.fieldA.set, f.fHz.v, f.fHz.set, f.coolant.v, f.coolant.set)
+	pt := report.Point(u, report.Reading{PMW: f.pMW.v, QMvar: f.qMvar.v, VKV: f.vKV.v, FieldA: f.fieldA.v, HasFieldA: f.fieldA.set,
+		FrequencyHz: f.fHz.v, HasFrequency: f.fHz.set, Coolant: f.coolant.v, HasCoolant: f.coolant.set})
 	r := u.Model.Evaluate(pt, nil)
 	out := report.New(u, pt, &r)
 	if f.format.v == "json" {

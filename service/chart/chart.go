@@ -319,9 +319,19 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 	})
 	capStyle := textStyle(captionFontSize, pal.caption)
 	margin := 0.2 * vg.Inch
-	capLines := wrap(fleet.Caution, capStyle, cfg.width-2*margin)
+	// The caption is measured in Liberation Sans; a viewer without it
+	// draws the fallback (DejaVu Sans is about 12 % wider), so the lines
+	// are wrapped with that much room to spare and are never cut.
+	capLines := wrap(fleet.Caution, capStyle, (cfg.width-2*margin)/fallbackWidthFactor)
 	capHeight := vg.Length(len(capLines))*capStyle.Height("Mg")*1.25 + margin
-	legendW := cfg.width * legendWidthFraction
+	// The legend is as wide as its longest label set in the fallback
+	// font, and at least its share of the width.
+	lgStyle := textStyle(bodyFontSize-1, pal.text)
+	var labelW vg.Length
+	for _, e := range legend {
+		labelW = max(labelW, lgStyle.Width(e.label))
+	}
+	legendW := max(cfg.width*legendWidthFraction, labelW*fallbackWidthFactor+legendThumbnailWidth+3*vg.Points(4)+margin)
 
 	plotArea := draw.Crop(dc, 0, -legendW-0.15*vg.Inch, capHeight, 0)
 	p.Draw(plotArea)
@@ -339,10 +349,12 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 	lg.Draw(legendArea)
 
 	capStyle.XAlign, capStyle.YAlign = text.XLeft, text.YBottom
-	y := dc.Min.Y + margin/2
-	for i := len(capLines) - 1; i >= 0; i-- {
-		dc.FillText(capStyle, vg.Point{X: dc.Min.X + margin, Y: y}, capLines[i])
-		y += capStyle.Height("Mg") * 1.25
+	// Written in reading order (the first line at the top), so that the
+	// SVG's text reads as the sentence.
+	lineH := capStyle.Height("Mg") * 1.25
+	for i, line := range capLines {
+		y := dc.Min.Y + margin/2 + vg.Length(len(capLines)-1-i)*lineH
+		dc.FillText(capStyle, vg.Point{X: dc.Min.X + margin, Y: y}, line)
 	}
 
 	var buf bytes.Buffer
@@ -360,6 +372,11 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 	}
 	return nil
 }
+
+// fallbackWidthFactor is how much wider than Liberation Sans the widest
+// usual fallback font sets the same text (DejaVu Sans, measured on the
+// caution sentence: about 1.12), with room to spare.
+const fallbackWidthFactor = 1.2
 
 // fontFallback is the font-family of the chart's text when the fonts are
 // not embedded.

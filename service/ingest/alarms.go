@@ -11,22 +11,13 @@ import (
 	"github.com/genvelope/genvelope/service/report"
 )
 
-// marginLimit maps the margin alarms to the engine's limits.
-var marginLimit = [...]limits.Limit{
-	alarm.Armature: limits.LimitArmature, alarm.Field: limits.LimitField,
-	alarm.Stability: limits.LimitStability, alarm.EndRegion: limits.LimitEndRegion,
-	alarm.PrimeMover: limits.LimitPrimeMover, alarm.VoltsPerHertz: limits.LimitVoltsPerHertz,
-}
-
 // quantity returns what alarm kind k of the unit compares with its
 // thresholds, from the latest evaluation; NaN when there is nothing to
 // compare (no end-region curve, no field measurement). A bound missing
 // at this active power counts as a margin of -1: past the limit.
 func (u *Unit) quantity(k alarm.Kind) float64 {
 	e := &u.eval
-	switch {
-	case k <= alarm.VoltsPerHertz:
-		l := marginLimit[k]
+	if l := report.LimitOfAlarm(k); l != limits.NoLimit {
 		if m := e.Margins[l]; m.OK {
 			return m.V
 		}
@@ -34,6 +25,8 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 			return -1
 		}
 		return math.NaN()
+	}
+	switch {
 	case k == alarm.ArmatureThermal:
 		return u.armature.Used(limits.ArmatureK)
 	case k == alarm.FieldThermal:
@@ -112,8 +105,8 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 		return e.I * b.CurrentA(), e.IMax * b.CurrentA(), "A"
 	case alarm.Field:
 		ifd := b.FieldA(e.IfdModel)
-		if smp.HasFieldA && smp.Quality == QualityGood {
-			ifd = smp.FieldA
+		if u.pt.IfdMeasured { // the field current the engine used
+			ifd = b.FieldA(u.pt.Ifd)
 		}
 		return ifd, b.FieldA(e.IfdMax), "A"
 	case alarm.Stability:
@@ -163,8 +156,8 @@ func (u *Unit) context() alarm.Context {
 	}
 	u.complete()
 	s := &u.latest
-	pt := report.Point(u.cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
-	e := report.New(u.cfg, pt, &u.eval)
+	e := report.New(u.cfg, u.pt, &u.eval) // the point as evaluated
+
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
 		PMaxMW: u.cfg.PrimeMover.PMaxMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
 	if e.QMaxLimit != nil {

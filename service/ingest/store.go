@@ -313,6 +313,8 @@ type Unit struct {
 	accepted        uint64
 
 	alarms [alarm.NumKinds]alarm.Machine
+
+	trend trend // headroom and nearest margin over the last hours (trend.go)
 }
 
 // accept records a checked sample: a duplicate when its timestamp is
@@ -349,6 +351,7 @@ func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
 	u.recvNS = now.UnixNano()
 	u.accepted++
 	u.evaluate()
+	u.recordTrend(t)
 	u.stepAlarms(t, s)
 	return Accepted, ""
 }
@@ -374,8 +377,9 @@ func (u *Unit) evaluate() {
 	cfg := u.cfg
 	s := &u.latest
 	// A measured field current counts only on a sample of good quality.
-	pt := report.Point(cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA && s.Quality == QualityGood,
-		s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
+	pt := report.Point(cfg, report.Reading{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV,
+		FieldA: s.FieldA, HasFieldA: s.HasFieldA && s.Quality == QualityGood,
+		FrequencyHz: s.FrequencyHz, HasFrequency: s.HasFreq, Coolant: s.Coolant, HasCoolant: s.HasCoolant})
 	// The per-sample evaluation leaves q_max to be solved by the first
 	// reader (complete): samples come far more often than reads.
 	u.eval = cfg.Model.EvaluateSample(pt, &u.hint)

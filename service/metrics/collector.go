@@ -13,6 +13,7 @@ import (
 	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/report"
 )
 
 // Namespace prefixes every metric name.
@@ -167,11 +168,11 @@ func (c *Collector) series(out sink) {
 		}
 		for _, l := range limits.Limits() {
 			if m := e.Margins[l]; m.OK {
-				out.add(c.margin, m.V, id, site, l.String())
+				out.add(c.margin, m.V, id, site, report.LimitOf(l).Name)
 			}
 		}
 		if e.Binding != limits.NoLimit {
-			out.add(c.binding, 1, id, site, e.Binding.String())
+			out.add(c.binding, 1, id, site, report.LimitOf(e.Binding).Name)
 		}
 		out.add(c.feasible, boolFloat(e.Feasible), id, site)
 		out.add(c.zone, float64(e.Zone), id, site)

@@ -11,15 +11,27 @@ import (
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
-// Point converts an operating point in engineering units to the
-// engine's per unit. fieldA, hz and coolant are used when their has
-// flag is set; a coolant value is dropped for a unit without a table.
-func Point(u *fleet.Unit, pMW, qMvar, vKV float64, fieldA float64, hasField bool, hz float64, hasHz bool, coolant float64, hasCoolant bool) limits.Point {
+// Reading is one operating point as measured, in engineering units. A
+// value whose Has flag is false was not measured.
+type Reading struct {
+	PMW, QMvar, VKV float64
+
+	FieldA       float64
+	HasFieldA    bool // FieldA holds a measurement the engine may use
+	FrequencyHz  float64
+	HasFrequency bool
+	Coolant      float64
+	HasCoolant   bool
+}
+
+// Point converts a reading to the engine's per unit on unit u's base. A
+// coolant value is dropped for a unit without a coolant table.
+func Point(u *fleet.Unit, r Reading) limits.Point {
 	b := u.Base
-	pt := limits.Point{P: b.PowerPU(pMW), Q: b.PowerPU(qMvar), V: b.VoltagePU(vKV),
-		Ifd: b.FieldPU(fieldA), IfdMeasured: hasField, Coolant: coolant, HasCoolant: hasCoolant && u.Coolant != nil}
-	if hasHz {
-		pt.F = b.FrequencyPU(hz)
+	pt := limits.Point{P: b.PowerPU(r.PMW), Q: b.PowerPU(r.QMvar), V: b.VoltagePU(r.VKV),
+		Ifd: b.FieldPU(r.FieldA), IfdMeasured: r.HasFieldA, Coolant: r.Coolant, HasCoolant: r.HasCoolant && u.Coolant != nil}
+	if r.HasFrequency {
+		pt.F = b.FrequencyPU(r.FrequencyHz)
 	}
 	return pt
 }
@@ -95,7 +107,7 @@ func limitName(l limits.Limit) *string {
 	if l == limits.NoLimit {
 		return nil
 	}
-	s := l.String()
+	s := LimitOf(l).Name
 	return &s
 }
 
@@ -156,7 +168,7 @@ func New(u *fleet.Unit, pt limits.Point, r *limits.Result) *Evaluation {
 	within := r.Feasible
 	for _, l := range limits.Limits() {
 		m := r.Margins[l]
-		ev.Margins[l.String()] = bound(m, 1)
+		ev.Margins[LimitOf(l).Name] = bound(m, 1)
 		if m.OK && m.V < 0 {
 			within = false
 		}

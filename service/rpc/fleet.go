@@ -53,9 +53,9 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 	resp := &pb.GetUnitResponse{Unit: unitProto(v.Config)}
 	if v.HasSample {
 		resp.Latest = sampleProto(&v.Latest)
-		pt := report.Point(v.Config, v.Latest.PMW, v.Latest.QMvar, v.Latest.VKV, v.Latest.FieldA, v.Latest.HasFieldA,
-			v.Latest.FrequencyHz, v.Latest.HasFreq, v.Latest.Coolant, v.Latest.HasCoolant)
-		resp.Evaluation = EvaluationProto(report.New(v.Config, pt, &v.Eval))
+		// The point as the engine evaluated it: a field current it did not
+		// use (a questionable sample) is not reported as measured.
+		resp.Evaluation = EvaluationProto(report.New(v.Config, v.Point, &v.Eval))
 		resp.Received = timestamppb.New(v.Received)
 	}
 	resp.ArmatureThermalUsedRatio = v.Armature.Used(limits.ArmatureK)
@@ -163,25 +163,17 @@ func sampleProto(s *ingest.Sample) *pb.Sample {
 	}
 }
 
+// limitProto returns the wire enum of the limit named name (a name of
+// report's limit table): LIMIT_ and the name in capitals.
 func limitProto(name *string) pb.Limit {
 	if name == nil {
 		return pb.Limit_LIMIT_UNSPECIFIED
 	}
-	switch *name {
-	case "armature":
-		return pb.Limit_LIMIT_ARMATURE
-	case "field":
-		return pb.Limit_LIMIT_FIELD
-	case "stability":
-		return pb.Limit_LIMIT_STABILITY
-	case "end_region":
-		return pb.Limit_LIMIT_END_REGION
-	case "prime_mover":
-		return pb.Limit_LIMIT_PRIME_MOVER
-	case "volts_per_hertz":
-		return pb.Limit_LIMIT_VOLTS_PER_HERTZ
+	li, ok := report.LimitNamed(*name)
+	if !ok {
+		return pb.Limit_LIMIT_UNSPECIFIED
 	}
-	return pb.Limit_LIMIT_UNSPECIFIED
+	return pb.Limit(pb.Limit_value["LIMIT_"+strings.ToUpper(li.Name)])
 }
 
 func zoneProto(z string) pb.Zone {
@@ -212,7 +204,7 @@ func EvaluationProto(e *report.Evaluation) *pb.Evaluation {
 		ArmatureRatingFactor: e.ArmatureRatingFactor, FieldRatingFactor: e.FieldRatingFactor,
 	}
 	for _, l := range limits.Limits() {
-		name := l.String()
+		name := report.LimitOf(l).Name
 		out.Margins = append(out.Margins, &pb.Margin{Limit: limitProto(&name), Ratio: e.Margins[name]})
 	}
 	return out

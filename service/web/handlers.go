@@ -210,7 +210,7 @@ func (ui *UI) unitLive(w http.ResponseWriter, r *http.Request) {
 	}
 	d := ui.unitData(u)
 	d.Chart = ui.unitChart(d)
-	secs, err := ui.fragments("unit.html", d, "unit-status", "unit-tiles", "unit-numbers", "unit-alarms", "unit-chart")
+	secs, err := ui.fragments("unit.html", d, "unit-status", "unit-tiles", "unit-numbers", "unit-alarms", "unit-chart", "unit-trend")
 	if err != nil {
 		ui.log.Error("unit fragments not rendered", "unit", d.Unit.ID, "err", err)
 		writeJSON(w, http.StatusInternalServerError, map[string]string{"error": "not rendered"})
@@ -265,7 +265,7 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 	switch action {
 	case "acknowledge":
 		err = ui.store.Acknowledge(id, kind, now, by)
-		done = fmt.Sprintf("%s: %s alarm acknowledged by %s.", id, kindTitle[kind], by)
+		done = fmt.Sprintf("%s: %s alarm acknowledged by %s.", id, report.AlarmTitle(kind), by)
 	case "shelve":
 		d, perr := time.ParseDuration(r.PostForm.Get("duration"))
 		if perr != nil || d < minShelve || d > maxShelve {
@@ -274,17 +274,17 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 		}
 		until := now.Add(d)
 		err = ui.store.Shelve(id, kind, until, now, by)
-		done = fmt.Sprintf("%s: %s alarm shelved until %s by %s.", id, kindTitle[kind], fmtClock(until), by)
+		done = fmt.Sprintf("%s: %s alarm shelved until %s by %s.", id, report.AlarmTitle(kind), fmtClock(until), by)
 	case "unshelve":
 		err = ui.store.Shelve(id, kind, time.Time{}, now, by)
-		done = fmt.Sprintf("%s: %s alarm unshelved by %s.", id, kindTitle[kind], by)
+		done = fmt.Sprintf("%s: %s alarm unshelved by %s.", id, report.AlarmTitle(kind), by)
 	default:
 		fail(http.StatusNotFound, fmt.Sprintf("There is no alarm action %q: acknowledge, shelve or unshelve.", action))
 		return
 	}
 	switch {
 	case errors.Is(err, ingest.ErrNotActive):
-		fail(http.StatusConflict, fmt.Sprintf("The %s alarm of %s is not active: nothing to acknowledge.", kindTitle[kind], id))
+		fail(http.StatusConflict, fmt.Sprintf("The %s alarm of %s is not active: nothing to acknowledge.", report.AlarmTitle(kind), id))
 		return
 	case errors.Is(err, ingest.ErrUnknownUnit):
 		fail(http.StatusNotFound, fmt.Sprintf("Unit %q is not in the fleet.", id))

@@ -141,7 +141,7 @@ func TestPagesRender(t *testing.T) {
 		first   []string // more for the page of harrowmere-1
 		overall []string // more for the overview
 	}{
-		{"no samples", func(*testing.T, *fixture) {}, []string{"No telemetry from this unit yet", "rated voltage"}, nil, []string{"never"}},
+		{"no samples", func(*testing.T, *fixture) {}, []string{"No data from this unit yet", "rated voltage"}, nil, []string{"never"}},
 		{"samples", func(t *testing.T, f *fixture) { f.normal(t) }, []string{chart.ClassOperatingPoint, `data-value="p_mw"`, "Critical clearing time", "Margins to each limit"},
 			[]string{"No active or shelved alarms"}, []string{"left", "280.0"}},
 		{"alarm", func(t *testing.T, f *fixture) { f.normal(t); f.overField(t) }, nil,

@@ -154,6 +154,12 @@ func (s *service) push(t *testing.T, smps ...sample) {
 // test ends.
 func browser(t *testing.T, path string) (context.Context, func() []string) {
 	t.Helper()
+	return browserSized(t, path, viewportWidth, viewportHeight)
+}
+
+// browserSized is browser with a window of w × h pixels.
+func browserSized(t *testing.T, path string, w, h int) (context.Context, func() []string) {
+	t.Helper()
 	opts := append(chromedp.DefaultExecAllocatorOptions[:],
 		chromedp.ExecPath(path),
 		chromedp.NoSandbox,
@@ -161,7 +167,7 @@ func browser(t *testing.T, path string) (context.Context, func() []string) {
 		chromedp.UserDataDir(t.TempDir()),
 		chromedp.Flag("disable-quic", true),
 		chromedp.Flag("disable-component-update", true),
-		chromedp.WindowSize(viewportWidth, viewportHeight),
+		chromedp.WindowSize(w, h),
 	)
 	ctx, cancel := context.WithTimeout(t.Context(), 3*waitLong)
 	t.Cleanup(cancel)
@@ -169,7 +175,7 @@ func browser(t *testing.T, path string) (context.Context, func() []string) {
 	t.Cleanup(cancelAlloc)
 	tab, cancelTab := chromedp.NewContext(allocCtx)
 	t.Cleanup(cancelTab)
-	if err := chromedp.Do(tab); err != nil { // starts the browser
+	if err := chromedp.Do(tab, chromedp.EmulateViewport(int64(w), int64(h))); err != nil { // starts the browser
 		t.Fatalf("starting chromium: %v", err)
 	}
 	msgs := chromedp.Console(tab)
@@ -204,18 +210,25 @@ func browser(t *testing.T, path string) (context.Context, func() []string) {
 // the bottom of the viewport, is drawn at the end and not over the page.
 func screenshot(t *testing.T, ctx context.Context, dir, name string) {
 	t.Helper()
+	w := eval[int](t, ctx, `window.innerWidth`)
+	vh := eval[int](t, ctx, `window.innerHeight`)
 	h := eval[int](t, ctx, `Math.ceil(document.documentElement.scrollHeight)`)
-	if err := chromedp.Do(ctx, chromedp.EmulateViewport(viewportWidth, int64(max(h, viewportHeight)))); err != nil {
+	if err := chromedp.Do(ctx, chromedp.EmulateViewport(int64(w), int64(max(h, vh)))); err != nil {
 		t.Fatalf("screenshot %s: %v", name, err)
 	}
 	png, err := chromedp.Run(ctx, chromedp.CaptureScreenshot())
-	if rerr := chromedp.Do(ctx, chromedp.EmulateViewport(viewportWidth, viewportHeight)); err == nil {
+	if rerr := chromedp.Do(ctx, chromedp.EmulateViewport(int64(w), int64(vh))); err == nil {
 		err = rerr
 	}
 	if err != nil {
 		t.Fatalf("screenshot %s: %v", name, err)
 	}
-	p := filepath.Join(dir, name)
+	writeFile(t, filepath.Join(dir, name), png)
+}
+
+// writeFile saves a screenshot and logs where.
+func writeFile(t *testing.T, p string, png []byte) {
+	t.Helper()
 	if err := os.WriteFile(p, png, 0o644); err != nil {
 		t.Fatal(err)
 	}
