@@ -155,6 +155,7 @@ type liveRow struct {
 	Unit  string `json:"unit"`
 	Level string `json:"level"`
 	Rank  int    `json:"rank"`
+	State string `json:"state"` // "live", "stale" or "no data"
 }
 
 func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
@@ -167,7 +168,7 @@ func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
 	}
 	out := liveFleet{Time: d.Now, Clock: fmtClock(d.Now), Sections: secs, Caution: fleet.Caution}
 	for _, row := range d.Rows {
-		out.Units = append(out.Units, liveRow{Unit: row.ID, Level: row.Alarms.Highest.Word, Rank: row.Rank})
+		out.Units = append(out.Units, liveRow{Unit: row.ID, Level: row.Alarms.Highest.Word, Rank: row.Rank, State: row.State.Word})
 	}
 	writeJSON(w, http.StatusOK, out)
 }

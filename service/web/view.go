@@ -253,9 +253,25 @@ type row struct {
 	BindingMargin        num
 	BindingWord          string // "left" or "beyond"
 	Alarms               alarmSummary
+	Badge                level // the highest alarm level; "no data" or "stale" instead of normal
 	Cause                cause
 	Age                  num
 	Rank                 int
+}
+
+// badgeOf is the badge a unit shows: its highest alarm level, except
+// that a unit without fresh data is never shown as normal.
+func badgeOf(a *alarmSummary, st dataState) level {
+	if a.Highest.Level != alarm.Normal {
+		return a.Highest
+	}
+	switch st {
+	case stateNoData:
+		return level{alarm.Normal, "no data", "○", "lvl-nodata"}
+	case stateStale:
+		return level{alarm.Normal, "stale", "◔", "lvl-stale"}
+	}
+	return a.Highest
 }
 
 // fleetData is what the overview shows.
@@ -319,6 +335,7 @@ func (ui *UI) fleetData() *fleetData {
 		cfg := v.Config
 		r := row{ID: cfg.ID, Name: cfg.DisplayName(), Site: cfg.Site, Href: unitURL(cfg.ID), HasSample: v.HasSample,
 			State: stateOf(&v, now), Alarms: summarize(&v.Alarms, now), Cause: ui.causeOf(&v, now)}
+		r.Badge = badgeOf(&r.Alarms, r.State)
 		margin := math.Inf(1)
 		if ev := evaluation(&v); ev != nil {
 			r.Questionable = v.Latest.Quality == ingest.QualityQuestionable
@@ -396,6 +413,7 @@ type unitData struct {
 	Unit         *fleet.Unit
 	Eval         *report.Evaluation // nil without a sample
 	Alarms       alarmSummary
+	Badge        level // see badgeOf
 	AlarmRows    []alarmRow
 	Trail        []chart.Point
 	trailVersion uint64
@@ -460,6 +478,7 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 	cfg := v.Config
 	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID),
 		State: stateOf(&v, now)}
+	d.Badge = badgeOf(&d.Alarms, d.State)
 	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
 	r := cfg.Rating
 	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)

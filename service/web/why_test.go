@@ -35,7 +35,10 @@ func TestOverviewStates(t *testing.T) {
 				if r.State.Word != tc.want {
 					t.Errorf("%s: state %q, want %q", r.ID, r.State.Word, tc.want)
 				}
-				if tc.want == "no data" && (r.Cause.Title != "No data" || r.Alarms.Highest.Word != "normal") {
+				if tc.want != "live" && r.Badge.Word != tc.want {
+					t.Errorf("%s: badge %q, want %q (never normal)", r.ID, r.Badge.Word, tc.want)
+				}
+				if tc.want == "no data" && r.Cause.Title != "No data" {
 					t.Errorf("%s: cause %+v", r.ID, r.Cause)
 				}
 			}
