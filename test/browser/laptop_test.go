@@ -154,21 +154,8 @@ func TestLaptopScreen(t *testing.T) {
 		t.Fatalf("unit page: %v", err)
 	}
 	viewportShot(t, tab, dir, "laptop-unit.png")
-	fold := eval[string](t, tab, `(() => {
-		const out = [], fold = document.querySelector("footer.caution").getBoundingClientRect().top;
-		const svg = document.querySelector(".chart svg").getBoundingClientRect();
-		if (svg.top < 0 || svg.bottom > fold) out.push("chart from " + Math.round(svg.top) + " to " + Math.round(svg.bottom) + ", fold at " + Math.round(fold));
-		const op = document.querySelector(".chart svg path.gv-operating-point").getBoundingClientRect();
-		if (op.top < 0 || op.bottom > fold || op.width < 3) out.push("operating point at " + Math.round(op.top));
-		for (const el of document.querySelectorAll(".chart svg text")) {
-			const r = el.getBoundingClientRect();
-			if (r.width > 0 && (r.left < svg.left - 0.5 || r.right > svg.right + 0.5 || r.bottom > svg.bottom + 0.5 || r.bottom > fold))
-				out.push("text cut: " + el.textContent.slice(0, 40) + " [" + Math.round(r.left) + ", " + Math.round(r.right) + "] in [" + Math.round(svg.left) + ", " + Math.round(svg.right) + "]");
-		}
-		return out.join("; ");
-	})()`)
-	if fold != "" {
-		t.Errorf("unit page at %d × %d: %s", laptopWidth, laptopHeight, fold)
+	if fold := aboveFold(t, tab); fold != "" {
+		t.Errorf("harrowmere-1's page at %d × %d: %s", laptopWidth, laptopHeight, fold)
 	}
 	if c := clipped(t, tab, `.tile, .status-strip, .panel`); c != "" {
 		t.Errorf("unit page: clipped: %s", c)
@@ -200,6 +187,9 @@ func TestLaptopScreen(t *testing.T) {
 		t.Errorf("brindle-gt3's status %q, want no data", got)
 	}
 	viewportShot(t, tab, dir, "laptop-nodata.png")
+	if fold := aboveFold(t, tab); fold != "" {
+		t.Errorf("brindle-gt3's page at %d × %d: %s", laptopWidth, laptopHeight, fold)
+	}
 
 	// Printed: the unit page without its controls, the caution kept.
 	if err := chromedp.Do(tab, chromedp.Navigate(svc.base+"/units/harrowmere-1"), chromedp.WaitVisible(chromedp.CSS(`.chart svg`))); err != nil {
@@ -220,4 +210,28 @@ func TestLaptopScreen(t *testing.T) {
 	for _, e := range consoleErrors() {
 		t.Errorf("browser console: %s", e)
 	}
+}
+
+// aboveFold returns what of the unit page's chart (its box, its axes and
+// labels, its footnote, the operating point when there is one) lies
+// outside the chart or below the caution footer without scrolling; ""
+// when all is in view.
+func aboveFold(t *testing.T, ctx context.Context) string {
+	t.Helper()
+	return eval[string](t, ctx, `(() => {
+		const out = [], fold = document.querySelector("footer.caution").getBoundingClientRect().top;
+		const svg = document.querySelector(".chart svg").getBoundingClientRect();
+		if (svg.top < 0 || svg.bottom > fold) out.push("chart from " + Math.round(svg.top) + " to " + Math.round(svg.bottom) + ", fold at " + Math.round(fold));
+		const opEl = document.querySelector(".chart svg path.gv-operating-point");
+		if (opEl) {
+			const op = opEl.getBoundingClientRect();
+			if (op.top < 0 || op.bottom > fold || op.width < 3) out.push("operating point at " + Math.round(op.top));
+		}
+		for (const el of document.querySelectorAll(".chart svg text")) {
+			const r = el.getBoundingClientRect();
+			if (r.width > 0 && (r.left < svg.left - 0.5 || r.right > svg.right + 0.5 || r.bottom > svg.bottom + 0.5 || r.bottom > fold))
+				out.push("text cut: " + el.textContent.slice(0, 40) + " [" + Math.round(r.left) + ", " + Math.round(r.right) + "] in [" + Math.round(svg.left) + ", " + Math.round(svg.right) + "]");
+		}
+		return out.join("; ");
+	})()`)
 }
