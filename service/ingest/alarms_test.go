@@ -2,6 +2,7 @@ package ingest
 
 import (
 	"math"
+	"strings"
 	"testing"
 	"time"
 
@@ -45,5 +46,45 @@ func TestStabilityAlarmEventInEngineeringUnits(t *testing.T) {
 	// in the event is the limit plus margin times rated MVA.
 	if math.Abs(got.Actual-(qLimit+got.Value*u.Rating.MVA)) > 1e-6 {
 		t.Errorf("Q %.3f Mvar, margin %.4f, limit %.3f: inconsistent", got.Actual, got.Value, got.LimitAt)
+	}
+}
+
+// The field alarm of a QUESTIONABLE sample speaks of the field current
+// the engine used, the model's, not of the reading it ignored; its
+// sentence does not quote the reading as measured.
+func TestFieldAlarmUsesThePointAsEvaluated(t *testing.T) {
+	fl := exampleFleet(t)
+	s := NewStore(fl, Options{})
+	u := fl.Unit("harrowmere-1")
+	b := u.Base
+	coolant := u.Coolant.Points[len(u.Coolant.Points)-1].At
+	now := t0.Add(time.Hour)
+	for i := range 4 {
+		// Beyond the model's field limit (q_max ≈ 226 Mvar here), with a
+		// low, ignored reading of 500 A.
+		smp := Sample{UnitID: u.ID, Time: t0.Add(time.Duration(i) * 10 * time.Second), PMW: 300, QMvar: 240, VKV: 20.4,
+			Coolant: coolant, HasCoolant: true, FieldA: 500, HasFieldA: true, Quality: QualityQuestionable}
+		if r, d := s.Accept(now, &smp); r != Accepted {
+			t.Fatalf("%v %s", r, d)
+		}
+	}
+	v := s.Unit(u.ID).View()
+	if v.Point.IfdMeasured {
+		t.Fatal("the engine used a QUESTIONABLE field reading")
+	}
+	var ev *alarm.Event
+	for _, e := range s.ActiveOf(u.ID) {
+		if e.Kind == alarm.Field {
+			ev = &e
+		}
+	}
+	if ev == nil {
+		t.Fatal("no field alarm")
+	}
+	if want := b.FieldA(v.Eval.IfdModel); math.Abs(ev.Actual-want) > 1e-6 {
+		t.Errorf("field alarm's current %.1f A, want the model's %.1f A (the reading of 500 A was not used)", ev.Actual, want)
+	}
+	if strings.Contains(ev.Message, "500 A") {
+		t.Errorf("the sentence quotes the unused reading: %s", ev.Message)
 	}
 }
