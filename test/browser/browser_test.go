@@ -338,6 +338,9 @@ func TestOperatorPages(t *testing.T) {
 	if !eval[bool](t, tab, drawn) {
 		t.Error("the chart, its operating point or its trail is not drawn")
 	}
+	if c := clipped(t, tab, `.tile, .status-strip, .panel`); c != "" {
+		t.Errorf("unit page at %d × %d: clipped: %s", viewportWidth, viewportHeight, c)
+	}
 	if got := eval[string](t, tab, `document.querySelector('[data-value="p_mw"]').textContent`); got != "301.0" {
 		t.Errorf("P shows %q, want 301.0", got)
 	}

@@ -60,6 +60,9 @@ func clipped(t *testing.T, ctx context.Context, sel string) string {
 			if (r.left < -0.5 || r.right > vw + 0.5) out.push(el.tagName + " " + (el.textContent || "").trim().slice(0, 30) + " [" + Math.round(r.left) + ", " + Math.round(r.right) + "]");
 			if (el.scrollWidth > el.clientWidth + 1 && getComputedStyle(el).overflowX !== "visible") out.push(el.tagName + "." + el.className + " scrolls sideways: " + el.scrollWidth + " > " + el.clientWidth);
 		}
+		for (const el of document.querySelectorAll(".tile, table.fleet td, table.margins td")) {
+			if (el.scrollWidth > el.clientWidth + 1) out.push(el.className + " " + (el.textContent || "").trim().slice(0, 30) + " overflows: " + el.scrollWidth + " > " + el.clientWidth);
+		}
 		if (document.documentElement.scrollWidth > vw + 1) out.push("the page scrolls sideways: " + document.documentElement.scrollWidth + " > " + vw);
 		return out.join("; ");
 	})()`, sel))
