@@ -608,6 +608,9 @@ func drawChart(d *unitData) (template.HTML, error) {
 			coolant, hasCoolant = *ev.Coolant, true
 			title += fmt.Sprintf(" · coolant %.1f %s", coolant, cfg.Coolant.Quantity.Unit())
 		}
+		if d.Questionable {
+			title += " · QUESTIONABLE sample"
+		}
 		op := chart.Point{PMW: ev.PMW, QMvar: ev.QMvar}
 		trail := d.Trail
 		if n := len(trail); n == 0 || trail[n-1] != op {

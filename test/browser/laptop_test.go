@@ -172,11 +172,18 @@ func TestLaptopScreen(t *testing.T) {
 	screenshot(t, tab, dir, "laptop-unit-full.png")
 
 	// The questionable unit: its field reading is shown as not used.
+
 	if err := chromedp.Do(tab, chromedp.Navigate(svc.base+"/units/larchwater-2"), chromedp.WaitVisible(chromedp.CSS(`.chart svg`))); err != nil {
 		t.Fatalf("larchwater-2: %v", err)
 	}
 	if got := eval[string](t, tab, `document.querySelector('[data-value="field_measured_a"]').textContent`); !strings.Contains(got, "900 A") || !strings.Contains(got, "not used") {
 		t.Errorf("larchwater-2's field current %q: want the reading marked not used", got)
+	}
+	if fold := aboveFold(t, tab); fold != "" {
+		t.Errorf("larchwater-2's page at %d × %d: %s", laptopWidth, laptopHeight, fold)
+	}
+	if !eval[bool](t, tab, `document.querySelector(".chart svg").textContent.includes("QUESTIONABLE sample")`) {
+		t.Error("larchwater-2's chart does not say its sample is questionable")
 	}
 	if !eval[bool](t, tab, `document.querySelector(".status-strip").textContent.includes("questionable")`) {
 		t.Error("larchwater-2's status does not say the sample is questionable")
