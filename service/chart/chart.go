@@ -332,8 +332,16 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		labelW = max(labelW, lgStyle.Width(e.label))
 	}
 	legendW := max(cfg.width*legendWidthFraction, labelW*fallbackWidthFactor+legendThumbnailWidth+3*vg.Points(4)+margin)
+	// The title is centred over the plot: smaller type when it would
+	// reach beyond it in the fallback font.
+	for plotW := cfg.width - legendW - 0.15*vg.Inch; p.Title.TextStyle.Font.Size > 7 &&
+		p.Title.TextStyle.Width(p.Title.Text)*fallbackWidthFactor > plotW; {
+		p.Title.TextStyle.Font.Size -= 0.5
+	}
 
-	plotArea := draw.Crop(dc, 0, -legendW-0.15*vg.Inch, capHeight, 0)
+	// A little room on the left: the rotated axis label, set in a
+	// fallback font, stands out of its measured box.
+	plotArea := draw.Crop(dc, 0.06*vg.Inch, -legendW-0.15*vg.Inch, capHeight, 0)
 	p.Draw(plotArea)
 
 	lg := plot.NewLegend()

@@ -179,6 +179,7 @@ func TestLaptopScreen(t *testing.T) {
 	if got := eval[string](t, tab, `document.querySelector('[data-value="field_measured_a"]').textContent`); !strings.Contains(got, "900 A") || !strings.Contains(got, "not used") {
 		t.Errorf("larchwater-2's field current %q: want the reading marked not used", got)
 	}
+	screenshot(t, tab, dir, "laptop-questionable-full.png")
 	if fold := aboveFold(t, tab); fold != "" {
 		t.Errorf("larchwater-2's page at %d × %d: %s", laptopWidth, laptopHeight, fold)
 	}
@@ -230,7 +231,11 @@ func aboveFold(t *testing.T, ctx context.Context) string {
 	t.Helper()
 	return eval[string](t, ctx, `(() => {
 		const out = [], fold = document.querySelector("footer.caution").getBoundingClientRect().top;
-		const svg = document.querySelector(".chart svg").getBoundingClientRect();
+		// The drawing's own area: the viewBox as placed on the screen
+		// (the element may be wider than the drawing it centres).
+		const svgEl = document.querySelector(".chart svg"), vb = svgEl.viewBox.baseVal, m = svgEl.getScreenCTM();
+		const p0 = new DOMPoint(vb.x, vb.y).matrixTransform(m), p1 = new DOMPoint(vb.x + vb.width, vb.y + vb.height).matrixTransform(m);
+		const svg = {left: Math.min(p0.x, p1.x), right: Math.max(p0.x, p1.x), top: Math.min(p0.y, p1.y), bottom: Math.max(p0.y, p1.y)};
 		if (svg.top < 0 || svg.bottom > fold) out.push("chart from " + Math.round(svg.top) + " to " + Math.round(svg.bottom) + ", fold at " + Math.round(fold));
 		const opEl = document.querySelector(".chart svg path.gv-operating-point");
 		if (opEl) {
