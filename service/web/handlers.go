@@ -186,13 +186,15 @@ func (ui *UI) unitPage(w http.ResponseWriter, r *http.Request) {
 
 // liveUnit is the unit page's refresh.
 type liveUnit struct {
-	Unit       string             `json:"unit"`
-	Time       time.Time          `json:"time"`
-	Clock      string             `json:"clock"`
-	Sections   map[string]string  `json:"sections"`
-	Evaluation *report.Evaluation `json:"evaluation"` // null before the first sample
-	Alarms     []liveAlarm        `json:"alarms"`
-	Caution    string             `json:"caution"`
+	Unit         string             `json:"unit"`
+	Time         time.Time          `json:"time"`
+	Clock        string             `json:"clock"`
+	Sections     map[string]string  `json:"sections"`
+	Evaluation   *report.Evaluation `json:"evaluation"`   // null before the first sample
+	State        string             `json:"state"`        // "live", "stale" or "no data"
+	Questionable bool               `json:"questionable"` // the latest sample's quality is QUESTIONABLE
+	Alarms       []liveAlarm        `json:"alarms"`
+	Caution      string             `json:"caution"`
 }
 
 type liveAlarm struct {
@@ -217,7 +219,8 @@ func (ui *UI) unitLive(w http.ResponseWriter, r *http.Request) {
 		writeJSON(w, http.StatusInternalServerError, map[string]string{"error": "not rendered"})
 		return
 	}
-	out := liveUnit{Unit: d.Unit.ID, Time: d.Now, Clock: fmtClock(d.Now), Sections: secs, Evaluation: d.Eval, Alarms: []liveAlarm{}, Caution: fleet.Caution}
+	out := liveUnit{Unit: d.Unit.ID, Time: d.Now, Clock: fmtClock(d.Now), Sections: secs, Evaluation: d.Eval, Alarms: []liveAlarm{}, Caution: fleet.Caution,
+		State: d.State.Word, Questionable: d.Questionable}
 	for _, a := range d.AlarmRows {
 		out.Alarms = append(out.Alarms, liveAlarm{Kind: a.Kind, Level: a.Level.Word, Acknowledged: a.Acknowledged, Shelved: a.Shelved, Message: a.Message})
 	}
