@@ -95,23 +95,23 @@ func LimitOfAlarm(k alarm.Kind) limits.Limit {
 	return limits.NoLimit
 }
 
-// alarmTitles names the alarms that do not watch a margin.
-var alarmTitles = map[alarm.Kind]string{
-	alarm.ArmatureThermal:      "Armature short-time heating",
-	alarm.FieldThermal:         "Field short-time heating",
-	alarm.VoltageFrequencyZone: "Voltage/frequency zone",
-	alarm.StaleTelemetry:       "Telemetry stale",
-	alarm.FieldCurrentMismatch: "Field current vs model",
-}
-
 // AlarmTitle names alarm kind k in the operators' words: a margin alarm
 // by its limit's title.
 func AlarmTitle(k alarm.Kind) string {
 	if l := LimitOfAlarm(k); l != limits.NoLimit {
 		return LimitOf(l).Title
 	}
-	if t, ok := alarmTitles[k]; ok {
-		return t
+	switch k {
+	case alarm.ArmatureThermal:
+		return "Armature short-time heating"
+	case alarm.FieldThermal:
+		return "Field short-time heating"
+	case alarm.VoltageFrequencyZone:
+		return "Voltage/frequency zone"
+	case alarm.StaleTelemetry:
+		return "Telemetry stale"
+	case alarm.FieldCurrentMismatch:
+		return "Field current vs model"
 	}
 	return k.String()
 }
