@@ -303,7 +303,8 @@ func (s *Store) appendActive(out []alarm.Event, u *Unit) []alarm.Event {
 			continue
 		}
 		ctx := u.context()
-		ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), s.age(u, s.opts.Now()))
+		ctx.AgeS = s.age(u, s.opts.Now()) // the stale-telemetry sentence says how long
+		ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), ctx.AgeS)
 		ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
 		out = append(out, ev)
 	}

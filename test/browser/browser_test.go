@@ -75,8 +75,14 @@ type service struct {
 
 func startService(t *testing.T) *service {
 	t.Helper()
+	return startServiceFleet(t, exampleFleet)
+}
+
+// startServiceFleet is startService on the fleet file at path.
+func startServiceFleet(t *testing.T, path string) *service {
+	t.Helper()
 	srv, err := server.New(server.Config{
-		FleetPath: exampleFleet, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
+		FleetPath: path, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
 		Logger: slog.New(slog.NewTextHandler(io.Discard, nil)),
 	})
 	if err != nil {

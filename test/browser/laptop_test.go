@@ -4,6 +4,7 @@ import (
 	"context"
 	"fmt"
 	"math"
+	"os"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -249,4 +250,54 @@ func aboveFold(t *testing.T, ctx context.Context) string {
 		}
 		return out.join("; ");
 	})()`)
+}
+
+// TestStaleOnPages: a unit whose telemetry stops turns stale on the
+// overview and on its page while they stay open: its state says so in
+// words, its numbers are greyed, its cause is the stale-telemetry alarm.
+// The fleet is the example with a stale threshold of 2 s, so that the
+// test waits seconds, not half a minute.
+func TestStaleOnPages(t *testing.T) {
+	if testing.Short() {
+		t.Skip("browser test: skipped under -short")
+	}
+	chromium := needChromium(t)
+	dir := artifacts(t)
+	example, err := os.ReadFile(exampleFleet)
+	if err != nil {
+		t.Fatal(err)
+	}
+	path := filepath.Join(t.TempDir(), "fleet.yaml")
+	fast := "alarms:\n  limits:\n    stale_telemetry: {warning: 2, critical: 600}\n"
+	if err := os.WriteFile(path, append([]byte(fast), example...), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	svc := startServiceFleet(t, path)
+	svc.pushRaw(t, &pb.Sample{UnitId: "larchwater-2", Time: timestamppb.New(time.Now()), PMw: 72, QMvar: 14, VKv: 13.85})
+
+	tab, consoleErrors := browserSized(t, chromium, laptopWidth, laptopHeight)
+	if err := chromedp.Do(tab, chromedp.Navigate(svc.base+"/"), chromedp.WaitVisible(chromedp.CSS(`table.fleet tbody tr`))); err != nil {
+		t.Fatalf("overview: %v", err)
+	}
+	waitFor(t, tab, "larchwater-2 to turn stale on the open overview", `(() => {
+		const r = document.querySelector('tr[data-unit="larchwater-2"]');
+		return !!r && r.dataset.state === "stale" && r.querySelector("td.cause").dataset.cause === "stale_telemetry"; })()`)
+	got := eval[string](t, tab, `(() => { const r = document.querySelector('tr[data-unit="larchwater-2"]');
+		return getComputedStyle(r.querySelector("td.val")).fontStyle + " | " + r.textContent.replace(/\s+/g, " "); })()`)
+	if !strings.HasPrefix(got, "italic | ") || !strings.Contains(got, "stale") || !strings.Contains(got, "Telemetry stale") || !strings.Contains(got, "72.0") ||
+		strings.Contains(got, "no sample for 0 s") {
+		t.Errorf("stale row: %q, want greyed numbers kept, the word stale and the stale-telemetry cause", got)
+	}
+	viewportShot(t, tab, dir, "stale-overview.png")
+
+	if err := chromedp.Do(tab, chromedp.Navigate(svc.base+"/units/larchwater-2"), chromedp.WaitVisible(chromedp.CSS(`.chart svg`))); err != nil {
+		t.Fatalf("unit page: %v", err)
+	}
+	if got := eval[string](t, tab, `document.querySelector(".status-strip").dataset.state + " " + document.querySelector(".tiles").className`); got != "stale tiles is-stale" {
+		t.Errorf("stale unit page: %q", got)
+	}
+	viewportShot(t, tab, dir, "stale-unit.png")
+	for _, e := range consoleErrors() {
+		t.Errorf("browser console: %s", e)
+	}
 }
