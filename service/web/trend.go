@@ -145,6 +145,17 @@ func trendSVG(pts []ingest.TrendPoint, mva, warn float64) template.HTML {
 		fmt.Fprintf(&b, `<text class="gv-trend-tick" x="%.1f" y="%g" text-anchor="%s">%s</text>`, x, trendLabelY, anchor, label)
 	}
 	b.WriteString(`</svg>`)
+	// The lowest margin of the window, in words beside the drawing.
+	low, at := math.Inf(1), time.Time{}
+	for _, p := range pts {
+		if p.Margin < low {
+			low, at = p.Margin, p.Time
+		}
+	}
+	if !math.IsInf(low, 1) {
+		fmt.Fprintf(&b, `<p class="trend-low">Lowest nearest margin in the window: <strong>%s</strong>, %s before the latest sample.</p>`,
+			fmtPct(&low, 1).Text, fmtAge(end.Sub(at)-ingest.TrendStep))
+	}
 	// Built here from numbers and fixed words only.
 	return template.HTML(b.String())
 }

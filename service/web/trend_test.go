@@ -61,6 +61,11 @@ func TestTrendSVG(t *testing.T) {
 	if math.Abs(x-wantX) > 0.1 {
 		t.Errorf("latest point at x = %.1f, want %.1f", x, wantX)
 	}
+	// The lowest margin, 5 %, one minute before the latest step's start
+	// is two steps before the latest.
+	if !strings.Contains(svg, "Lowest nearest margin in the window: <strong>5.0 %</strong>, 2 min 00 s before") {
+		t.Errorf("no lowest margin sentence in %s", svg[strings.Index(svg, "</svg>"):])
+	}
 	if !strings.Contains(svg, "−6 h") || !strings.Contains(svg, "latest") || strings.Contains(svg, "NaN") {
 		t.Errorf("axis labels or NaN: %s", svg)
 	}
