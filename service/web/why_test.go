@@ -145,3 +145,16 @@ func TestQuestionableSample(t *testing.T) {
 	wantContains(t, "unit page", page, "<s>900 A</s>", "not used", "QUESTIONABLE", "? questionable")
 	wantContains(t, "overview", f.get(t, "/").body, "is-questionable", "? questionable")
 }
+
+// A negative Q (absorbing) is no fault: only a negative headroom is shown
+// as one.
+func TestNegativeQIsNoFault(t *testing.T) {
+	f := newFixture(t, nil)
+	f.push(t, "larchwater-2", f.now.Add(-time.Second), 60, -20, 13.8)
+	page := f.get(t, "/units/larchwater-2").body
+	i := strings.Index(page, `data-value="q_mvar"`)
+	j := strings.LastIndex(page[:i], `<div class="tile`)
+	if j < 0 || strings.Contains(page[j:i], "is-neg") {
+		t.Errorf("the Q tile of an underexcited unit is marked as a fault: %s", page[max(0, j):i])
+	}
+}
