@@ -103,3 +103,42 @@ func BenchmarkEvaluateSample(b *testing.B) {
 		})
 	}
 }
+
+// benchAVR is benchRound on the avr basis: a static exciter of moderate
+// gain with a transducer and a speed stabilizer (plausible, not check values).
+func benchAVR(tb testing.TB) *Unit {
+	tb.Helper()
+	p := benchRound(tb).Params()
+	p.Basis, p.Td0TransientS, p.MarginFraction = BasisAVR, 7.5, 0
+	p.Exciter = &Exciter{KA: 100, TAS: 0.02, TRS: 0.015}
+	p.Stabilizer = &Stabilizer{K: 10, TWS: 3, T1S: 0.15, T2S: 0.03, T3S: 0.15, T4S: 0.03}
+	u, err := New(p)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return u
+}
+
+func BenchmarkEvaluateTrackingAVR(b *testing.B) { benchmarkTracking(b, benchAVR(b)) }
+
+// BenchmarkNewAVR is the cost of preparing one avr unit (its table);
+// a 10,000-unit fleet pays it 10,000 times at load.
+func BenchmarkNewAVR(b *testing.B) {
+	p := benchAVR(b).Params()
+	b.ReportAllocs()
+	for range b.N {
+		if _, err := New(p); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
+// BenchmarkStabilityLimitAVR is the direct computation of q_stability
+// on the avr basis (evaluate, envelope and coordinate use it).
+func BenchmarkStabilityLimitAVR(b *testing.B) {
+	u := benchAVR(b)
+	b.ReportAllocs()
+	for i := range b.N {
+		_ = u.StabilityLimit(0.1+0.7*float64(i%8)/8, 1)
+	}
+}

@@ -39,7 +39,7 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.Stability.OK && r.QMax.OK {
 		// Left by the warm practical limit; the practical limit is solved
 		// again with it, to the same root.
-		r.Stability, r.Practical = u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, nil)
+		r.setStability(u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, r.fast))
 	}
 	r.QMaxPending = false
 }
@@ -66,7 +66,10 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 		r.CoolantOutside = !inside
 	}
 	r.IMax, r.IfdMax = armF, u.ifdRated*fieldF
-	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full)
+	// With a hint this is the per-sample path: the avr basis reads its
+	// stability limit from the unit's table.
+	r.fast = h != nil && u.avrTab != nil
+	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full, r.fast)
 
 	fs := u.field(p, q, v, false)
 	r.IfdModel, r.Ef = fs.ifd, fs.ef
@@ -86,7 +89,12 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 	}
 	r.Margins[LimitField] = some(1 - ifd/r.IfdMax)
 	if r.Practical.OK {
-		r.Margins[LimitStability] = some(q - r.Practical.V)
+		m := q - r.Practical.V
+		if r.StabilityTop.OK {
+			// Above the topmost stable interval the point is unstable too.
+			m = math.Min(m, r.StabilityTop.V-q)
+		}
+		r.Margins[LimitStability] = some(m)
 	}
 	if r.EndRegion.OK {
 		r.Margins[LimitEndRegion] = some(q - r.EndRegion.V)

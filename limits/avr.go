@@ -1,0 +1,393 @@
+package limits
+
+import "math"
+
+// The stability limit on the avr basis: the topmost-stable-interval rule
+// (envelope.md, "Which stable interval, and the limit") over the
+// small-signal test of smallsignal.go, computed directly with eigenvalues,
+// and a per-unit table of it for the per-sample path.
+
+// interval is the outcome of the topmost-stable-interval rule at one p
+// and v.
+type interval struct {
+	top Bound // when q_max itself is unstable: the top of the topmost stable interval below it
+	low Bound // q_stability, the bottom of that interval; absent when no stable q exists
+	err error // the stability test failed (ErrSmallSignal); low and top are then absent
+}
+
+// Scan parameters of the rule: the step of the downward scan (pu, the
+// spec's), the bisection tolerance of the direct computation (pu, the
+// spec's) and how far below the armature lower bound the scan looks for
+// the bottom of the interval (pu, our choice: the limit is then reported
+// at that depth, which only the stability margin's value shows, since
+// the armature binds there).
+const (
+	scanStep  = 0.02
+	scanTol   = 1e-6
+	scanFloor = 1.0
+)
+
+// topInterval applies the rule to stable along q in [qBot, qTop]: scan
+// downward from qTop in steps of step; the first stable q (refined by
+// bisection against the unstable one above it when qTop is unstable) is
+// the top of the topmost stable interval; continue downward to the first
+// unstable q and bisect to tol between it and the last stable one: that
+// is q_stability (the midpoint of the final bracket). No stable q down to
+// qBot: low is absent (infeasible, reason stability). Stable down to
+// qBot - scanFloor: low is reported there.
+func topInterval(stable func(q float64) (bool, error), qTop, qBot, step, tol float64) interval {
+	var iv interval
+	s, err := stable(qTop)
+	if err != nil {
+		return interval{err: err}
+	}
+	q := qTop
+	if !s {
+		found := false
+		for q > qBot {
+			hi := q
+			q = math.Max(q-step, qBot)
+			if s, err = stable(q); err != nil {
+				return interval{err: err}
+			}
+			if s {
+				lo := q
+				if lo, _, err = bisectStable(stable, lo, hi, tol); err != nil {
+					return interval{err: err}
+				}
+				q, found = lo, true
+				iv.top = some(lo)
+				break
+			}
+		}
+		if !found {
+			return iv
+		}
+	}
+	floor := qBot - scanFloor
+	for {
+		if q <= floor {
+			iv.low = some(floor)
+			return iv
+		}
+		hi := q
+		q = math.Max(q-step, floor)
+		if s, err = stable(q); err != nil {
+			return interval{err: err}
+		}
+		if !s {
+			st, un, err := bisectStable(stable, hi, q, tol)
+			if err != nil {
+				return interval{err: err}
+			}
+			iv.low = some(0.5 * (st + un))
+			return iv
+		}
+	}
+}
+
+// bisectStable narrows [a, b] between a stable q (st) and an unstable
+// one (un), in either order, to tol; it returns the final pair.
+func bisectStable(stable func(float64) (bool, error), st, un, tol float64) (float64, float64, error) {
+	for math.Abs(st-un) > tol {
+		m := 0.5 * (st + un)
+		s, err := stable(m)
+		if err != nil {
+			return 0, 0, err
+		}
+		if s {
+			st = m
+		} else {
+			un = m
+		}
+	}
+	return st, un, nil
+}
+
+// avrInterval is the direct computation of the rule on the avr basis at
+// p, v below qTop, down to the armature lower bound qBot: eigenvalues
+// with gonum at every test.
+func (u *Unit) avrInterval(p, v, qTop, qBot float64) interval {
+	return topInterval(func(q float64) (bool, error) { return u.avrStable(p, q, v) }, qTop, qBot, scanStep, scanTol)
+}
+
+// poly is a polynomial in s, ascending coefficients c[0] + c[1] s + ...,
+// of degree n (at most maxSSStates).
+type poly struct {
+	c [maxSSStates + 1]float64
+	n int
+}
+
+func pl(c ...float64) poly {
+	var p poly
+	copy(p.c[:], c)
+	p.n = len(c) - 1
+	return p
+}
+
+func (a poly) mul(b poly) poly {
+	var r poly
+	r.n = a.n + b.n
+	for i := 0; i <= a.n; i++ {
+		for j := 0; j <= b.n; j++ {
+			r.c[i+j] += a.c[i] * b.c[j]
+		}
+	}
+	return r
+}
+
+func (a poly) add(b poly, k float64) poly { // a + k b
+	if b.n > a.n {
+		a.n = b.n
+	}
+	for i := 0; i <= b.n; i++ {
+		a.c[i] += k * b.c[i]
+	}
+	return a
+}
+
+// charParts are the q-independent pieces of the characteristic
+// polynomial (see charPoly), formed once per unit.
+type charParts struct {
+	m0c1, m0c2, c1, c2, c3, c4, c5 poly
+}
+
+// charPoly returns the characteristic polynomial of the state matrix of
+// stateMatrix, up to a positive factor, from the model's transfer
+// functions (block-diagram reduction of the same equations):
+//
+//	M = (2H/w_s) s^2 + (D/w_s) s + K1, F = 1 + s T'd0 K3,
+//	A = 1 + s T_A, R = 1 + s T_R, Dp = (1 + s T_w)(1 + s T2)(1 + s T4),
+//	Np = (k T_w/w_s) s^2 (1 + s T1)(1 + s T3) (Dp = 1, Np = 0 without a stabilizer)
+//	PE = Dp (F A R + K3 K_A K6), QE = K3 K_A (R Np - K5 Dp) - K3 K4 A R Dp
+//	char(s) = M PE + K2 QE
+//
+// from 2H s dw = -K1 dd - K2 dE'q - D dw, dw = s dd/w_s,
+// F dE'q = K3 (dEfd - K4 dd), A R Dp dEfd = K_A (R Np dd - Dp (K5 dd + K6 dE'q)).
+// K3 depends only on the reactances, so with M = m0 + K1 the polynomial
+// is a sum of seven fixed polynomials weighted by the constants:
+//
+//	char = m0 c1 + K6 m0 c2 + K1 c1 + K1 K6 c2 + K2 c3 - K2 K5 c4 - K2 K4 c5
+//	c1 = F A R Dp, c2 = c4 = K3 K_A Dp, c3 = K3 K_A R Np, c5 = K3 A R Dp.
+func (u *Unit) charParts() charParts {
+	ex, ps := u.p.Exciter, u.p.Stabilizer
+	ws := 2 * math.Pi * u.p.FrequencyHz
+	k3 := (u.p.XdTransient + u.p.Xe) / (u.p.Xd + u.p.Xe)
+	m0 := pl(0, u.p.DampingPU/ws, 2*u.p.InertiaHS/ws)
+	f := pl(1, u.p.Td0TransientS*k3)
+	a := pl(1, ex.TAS)
+	r := pl(1)
+	if ex.TRS > 0 {
+		r = pl(1, ex.TRS)
+	}
+	dp, np := pl(1), pl(0)
+	if ps != nil {
+		dp = pl(1, ps.TWS).mul(pl(1, ps.T2S)).mul(pl(1, ps.T4S))
+		np = pl(0, 0, ps.K*ps.TWS/ws).mul(pl(1, ps.T1S)).mul(pl(1, ps.T3S))
+	}
+	ard := a.mul(r).mul(dp)
+	var c charParts
+	c.c1 = f.mul(ard)
+	c.c2 = pl(k3 * ex.KA).mul(dp)
+	c.c3 = pl(k3 * ex.KA).mul(r).mul(np)
+	c.c4 = c.c2
+	c.c5 = pl(k3).mul(ard)
+	c.m0c1, c.m0c2 = m0.mul(c.c1), m0.mul(c.c2)
+	return c
+}
+
+// charPoly returns the characteristic polynomial at the constants k (see
+// charParts).
+func (c *charParts) charPoly(k *HeffronPhillips) poly {
+	r := c.m0c1
+	w := [...]float64{k.K6, k.K1, k.K1 * k.K6, k.K2, -k.K2 * k.K5, -k.K2 * k.K4}
+	for j, q := range [...]*poly{&c.m0c2, &c.c1, &c.c2, &c.c3, &c.c4, &c.c5} {
+		if q.n > r.n {
+			r.n = q.n
+		}
+		for i := 0; i <= q.n; i++ {
+			r.c[i] += w[j] * q.c[i]
+		}
+	}
+	return r
+}
+
+// hurwitz says whether every root of c has a real part below sigma,
+// by the Routh-Hurwitz criterion on c(z + sigma) (Routh 1877; any control
+// text). sure is false when an entry of the first column is lost to
+// cancellation (within 1e-9 of the terms it is formed from), where the
+// verdict is not to be trusted.
+func hurwitz(c poly, sigma float64) (stable, sure bool) {
+	n := c.n
+	var b [maxSSStates + 1]float64 // descending
+	for i := 0; i <= n; i++ {
+		b[i] = c.c[n-i]
+	}
+	if b[0] < 0 {
+		for i := 0; i <= n; i++ {
+			b[i] = -b[i]
+		}
+	}
+	// Taylor shift: b(z) <- b(z + sigma).
+	for i := 0; i < n; i++ {
+		for j := 1; j <= n-i; j++ {
+			b[j] += sigma * b[j-1]
+		}
+	}
+	if b[0] <= 0 {
+		return false, false
+	}
+	var r0, r1 [maxSSStates/2 + 2]float64
+	for i := 0; i <= n; i++ {
+		if i%2 == 0 {
+			r0[i/2] = b[i]
+		} else {
+			r1[i/2] = b[i]
+		}
+	}
+	scale := math.Abs(r1[0])
+	for row := 1; row <= n; row++ {
+		if !(r1[0] > 1e-9*scale) {
+			return false, math.Abs(r1[0]) > 1e-9*scale
+		}
+		var nx [maxSSStates/2 + 2]float64
+		f := r0[0] / r1[0]
+		for j := 0; j+1 < len(r0); j++ {
+			nx[j] = r0[j+1] - f*r1[j+1]
+		}
+		scale = math.Abs(r0[1]) + math.Abs(f*r1[1])
+		r0, r1 = r1, nx
+	}
+	return true, true
+}
+
+// avrStableFast is avrStable by the Routh-Hurwitz criterion on the
+// characteristic polynomial instead of eigenvalues: some hundred
+// nanoseconds against some microseconds. It applies the growth rule
+// (every root below 1e-7 s^-1), which with zeta_min = 0 is the whole
+// rule (see modeUnstable); with zeta_min > 0, or where the criterion is
+// not sure, it takes the eigenvalues.
+func (u *Unit) avrStableFast(c *charParts, p, q, v float64) (bool, error) {
+	k := u.HeffronPhillips(p, q, v)
+	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+		return false, nil
+	}
+	if u.p.ZetaMin == 0 {
+		if s, sure := hurwitz(c.charPoly(&k), ssGrowth); sure {
+			return s, nil
+		}
+	}
+	return u.avrStable(p, q, v)
+}
+
+// stabTable is q_stability on the avr basis over a grid of p and v,
+// built once in New, for the per-sample path: the rule is applied at
+// every node with the Routh-Hurwitz test, a coarser scan (tabScanStep)
+// and a bisection to tabTol, and read by bilinear interpolation. A point
+// outside the grid takes the direct computation.
+type stabTable struct {
+	np, nv   int
+	pStep    float64   // pu; the p grid starts at 0
+	v0, vInv float64   // first v node, 1/step
+	low      []float32 // q_stability at node (i_v*np + i_p); NaN: no stable q
+	top      []float32 // top of the topmost stable interval: the armature circle where that is stable
+	moved    []bool    // top lies below the armature circle (q_max moves there)
+}
+
+// The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
+// Its spacing keeps bilinear interpolation within 0.002 pu of the direct
+// computation over the chart (TestAVRTableAgrees); float32 keeps a
+// 10,000-unit fleet's tables to about 20 MB.
+const (
+	tabPMax     = 1.25
+	tabPStep    = 0.05
+	tabVLo      = 0.8
+	tabVHi      = 1.2
+	tabVStep    = 0.05
+	tabScanStep = 0.2
+	tabTol      = 2e-5
+)
+
+// buildStabTable applies the rule at every node of the grid, below the
+// armature circle at rated current (q_max without the field limit).
+func (u *Unit) buildStabTable() (*stabTable, error) {
+	t := &stabTable{np: int(math.Round(tabPMax/tabPStep)) + 1, nv: int(math.Round((tabVHi-tabVLo)/tabVStep)) + 1,
+		pStep: tabPStep, v0: tabVLo, vInv: 1 / tabVStep}
+	n := t.np * t.nv
+	t.low, t.top, t.moved = make([]float32, n), make([]float32, n), make([]bool, n)
+	c := u.charParts()
+	for iv := range t.nv {
+		v := tabVLo + float64(iv)*tabVStep
+		for ip := range t.np {
+			p := float64(ip) * tabPStep
+			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+			it := topInterval(func(q float64) (bool, error) { return u.avrStableFast(&c, p, q, v) }, qArm, -qArm, tabScanStep, tabTol)
+			if it.err != nil {
+				return nil, it.err
+			}
+			k := iv*t.np + ip
+			t.low[k], t.top[k] = float32(math.NaN()), float32(qArm)
+			if it.low.OK {
+				t.low[k] = float32(it.low.V)
+			}
+			if it.top.OK {
+				t.top[k], t.moved[k] = float32(it.top.V), true
+			}
+		}
+	}
+	return t, nil
+}
+
+// lookup interpolates the table at p >= 0 and v below q_max = qTop; ok
+// is false outside the grid. Where the four nodes around the point
+// disagree on feasibility, the nearest node decides, and the feasible
+// nodes are interpolated among themselves; q_max moves when a node
+// around the point moves and the interpolated top lies below qTop.
+func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok bool) {
+	x := p / t.pStep
+	y := (v - t.v0) * t.vInv
+	if !(x >= 0 && y >= 0) || x > float64(t.np-1) || y > float64(t.nv-1) {
+		return interval{}, false
+	}
+	ip, jv := int(x), int(y)
+	if ip == t.np-1 {
+		ip--
+	}
+	if jv == t.nv-1 {
+		jv--
+	}
+	wx, wy := x-float64(ip), y-float64(jv)
+	k := jv*t.np + ip
+	idx := [4]int{k, k + 1, k + t.np, k + t.np + 1}
+	w := [4]float64{(1 - wx) * (1 - wy), wx * (1 - wy), (1 - wx) * wy, wx * wy}
+	near := 0
+	for i := range w {
+		if w[i] > w[near] {
+			near = i
+		}
+	}
+	if math.IsNaN(float64(t.low[idx[near]])) {
+		return interval{}, true // no stable operation
+	}
+	var low, top, sw float64
+	moved := false
+	for i, j := range idx {
+		if math.IsNaN(float64(t.low[j])) {
+			continue
+		}
+		low += w[i] * float64(t.low[j])
+		top += w[i] * float64(t.top[j])
+		sw += w[i]
+		moved = moved || t.moved[j] && w[i] > 0
+	}
+	low, top = low/sw, top/sw
+	if moved && top < qTop {
+		iv.top = some(top)
+		qTop = top
+	}
+	if low >= qTop {
+		return interval{}, true // the stable interval lies above q_max
+	}
+	iv.low = some(low)
+	return iv, true
+}
