@@ -229,7 +229,7 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 		}
 	}
 	// Taylor shift: b(z) <- b(z + sigma).
-	for i := 0; i < n; i++ {
+	for i := 0; sigma != 0 && i < n; i++ {
 		for j := 1; j <= n-i; j++ {
 			b[j] += sigma * b[j-1]
 		}
@@ -267,13 +267,17 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 // (every root below 1e-7 s^-1), which with zeta_min = 0 is the whole
 // rule (see modeUnstable); with zeta_min > 0, or where the criterion is
 // not sure, it takes the eigenvalues.
-func (u *Unit) avrStableFast(c *charParts, p, q, v float64) (bool, error) {
-	k := u.HeffronPhillips(p, q, v)
+//
+// With sigma = 0 the criterion tests Re < 0 rather than Re <= 1e-7 s^-1,
+// which the per-sample checks use (they look 0.0019 pu away from the
+// boundary, where the difference does not show).
+func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error) {
+	k := u.heffronPhillips(p, q, v, false)
 	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
 		return false, nil
 	}
 	if u.p.ZetaMin == 0 {
-		if s, sure := hurwitz(c.charPoly(&k), ssGrowth); sure {
+		if s, sure := hurwitz(c.charPoly(&k), sigma); sure {
 			return s, nil
 		}
 	}
@@ -292,6 +296,7 @@ type stabTable struct {
 	low      []float32 // q_stability at node (i_v*np + i_p); NaN: no stable q
 	top      []float32 // top of the topmost stable interval: the armature circle where that is stable
 	moved    []bool    // top lies below the armature circle (q_max moves there)
+	smooth   []bool    // cell (i_v*(np-1) + i_p) interpolates within tabSmooth, by its second differences
 }
 
 // The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
@@ -299,14 +304,19 @@ type stabTable struct {
 // computation over the chart (TestAVRTableAgrees); float32 keeps a
 // 10,000-unit fleet's tables to about 20 MB.
 const (
-	tabPMax     = 1.25
+	tabPMax     = 1.2
 	tabPStep    = 0.05
-	tabVLo      = 0.8
-	tabVHi      = 1.2
+	tabVLo      = 0.85
+	tabVHi      = 1.15
 	tabVStep    = 0.05
 	tabScanStep = 0.2
-	tabTol      = 2e-5
+	tabTol      = 1e-4
 )
+
+// tabCheck is the half-width of the bracket, pu, in which the per-sample
+// path checks the table's answer (see fastInterval): it keeps the fast
+// answer within 0.002 pu of the direct computation.
+const tabCheck = 0.0019
 
 // buildStabTable applies the rule at every node of the grid, below the
 // armature circle at rated current (q_max without the field limit).
@@ -315,17 +325,29 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 		pStep: tabPStep, v0: tabVLo, vInv: 1 / tabVStep}
 	n := t.np * t.nv
 	t.low, t.top, t.moved = make([]float32, n), make([]float32, n), make([]bool, n)
-	c := u.charParts()
+	c := &u.avrChar
 	for iv := range t.nv {
 		v := tabVLo + float64(iv)*tabVStep
 		for ip := range t.np {
 			p := float64(ip) * tabPStep
 			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
-			it := topInterval(func(q float64) (bool, error) { return u.avrStableFast(&c, p, q, v) }, qArm, -qArm, tabScanStep, tabTol)
+			stable := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }
+			k := iv*t.np + ip
+			var it interval
+			ok := false
+			if ip >= 2 && !t.moved[k-1] && !t.moved[k-2] {
+				// Continuation along p: the limit extrapolated from the two
+				// nodes before, kept when q_max (here the armature circle) is
+				// stable and the limit lies within tabNear of the guess.
+				guess := 2*float64(t.low[k-1]) - float64(t.low[k-2])
+				it, ok = nearInterval(stable, qArm, guess)
+			}
+			if !ok {
+				it = topInterval(stable, qArm, -qArm, tabScanStep, tabTol)
+			}
 			if it.err != nil {
 				return nil, it.err
 			}
-			k := iv*t.np + ip
 			t.low[k], t.top[k] = float32(math.NaN()), float32(qArm)
 			if it.low.OK {
 				t.low[k] = float32(it.low.V)
@@ -335,7 +357,121 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 			}
 		}
 	}
+	t.markSmooth()
 	return t, nil
+}
+
+// tabNear is the half-width, pu, of the bracket about the continuation's
+// guess in which buildStabTable looks for the limit first.
+const tabNear = 0.01
+
+// nearInterval looks for q_stability within tabNear of guess: q_max =
+// qTop stable, stable at the bracket's top and unstable at its bottom;
+// ok is false when that does not hold (the caller scans).
+func nearInterval(stable func(float64) (bool, error), qTop, guess float64) (interval, bool) {
+	hi, lo := guess+tabNear, guess-tabNear
+	if math.IsNaN(guess) || hi >= qTop {
+		return interval{}, false
+	}
+	for _, c := range [...]struct {
+		q    float64
+		want bool
+	}{{qTop, true}, {hi, true}, {lo, false}} {
+		if s, err := stable(c.q); err != nil || s != c.want {
+			return interval{}, false
+		}
+	}
+	st, un, err := bisectStable(stable, hi, lo, tabTol)
+	if err != nil {
+		return interval{}, false
+	}
+	return interval{low: some(0.5 * (st + un))}, true
+}
+
+// tabSmooth is the interpolation error, pu, below which a cell is
+// trusted without a check: bilinear interpolation errs by about an
+// eighth of the second difference across the cell in each direction
+// (h^2 |f''|/8), to which the nodes' own error (tabTol/2) adds: 1e-3 +
+// 5e-5 leaves a margin to the 0.002 pu the fast answer is held to.
+const tabSmooth = 1e-3
+
+// markSmooth marks the cells whose four nodes all have stable operation,
+// agree on whether q_max moves, and whose second differences (of
+// q_stability and of the top, along p and v, at the nodes or their inner
+// neighbours on an edge) promise an interpolation error below tabSmooth.
+// A kink or a jump between two nodes shows in the second differences of
+// both, so the cells on either side are checked at every sample instead.
+func (t *stabTable) markSmooth() {
+	est := make([]float64, len(t.low)) // the interpolation error about node k
+	d2 := func(f []float32, a, b, c int) float64 {
+		return math.Abs(float64(f[a]) - 2*float64(f[b]) + float64(f[c]))
+	}
+	for iv := range t.nv {
+		for ip := range t.np {
+			cp := min(max(ip, 1), t.np-2)
+			cv := min(max(iv, 1), t.nv-2)
+			kp, kv := iv*t.np+cp, cv*t.np+ip
+			e := d2(t.low, kp-1, kp, kp+1) + d2(t.low, kv-t.np, kv, kv+t.np)
+			if t.moved[kp-1] || t.moved[kp] || t.moved[kp+1] || t.moved[kv-t.np] || t.moved[kv] || t.moved[kv+t.np] {
+				// The top is interpolated only where it moved.
+				e += d2(t.top, kp-1, kp, kp+1) + d2(t.top, kv-t.np, kv, kv+t.np)
+			}
+			if math.IsNaN(e) {
+				e = math.Inf(1)
+			}
+			est[iv*t.np+ip] = e / 8
+		}
+	}
+	t.smooth = make([]bool, (t.np-1)*(t.nv-1))
+	for iv := range t.nv - 1 {
+		for ip := range t.np - 1 {
+			k := iv*t.np + ip
+			ok := true
+			for _, j := range [4]int{k, k + 1, k + t.np, k + t.np + 1} {
+				ok = ok && est[j] < tabSmooth && t.moved[j] == t.moved[k]
+			}
+			t.smooth[iv*(t.np-1)+ip] = ok
+		}
+	}
+}
+
+// fastInterval is the rule's answer for the per-sample path at p >= 0,
+// v, below qTop and down to qBot. In a cell of the table marked smooth
+// it is the interpolation alone. In other cells the answer is checked
+// with two Routh-Hurwitz tests: stable tabCheck above the interpolated
+// q_stability and unstable tabCheck below it (and the same about a moved
+// top), which puts the limit within tabCheck of the answer. Where the
+// check fails, the table has no answer (outside its grid, no stable
+// operation, a stable interval above q_max), or the Routh test is not
+// sure, the rule itself is applied with the Routh-Hurwitz test (the
+// direct computation's scan, some tens of microseconds), bisected to
+// fastTol so that Complete and Evaluate agree to it whatever q_max each
+// starts from.
+func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
+	c := &u.avrChar
+	iv, ok, smooth := u.avrTab.lookup(p, v, qTop)
+	if ok && smooth {
+		return iv
+	}
+	check := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, 0) }
+	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) &&
+		(!iv.top.OK || bracketHolds(check, iv.top.V, qTop, false)) {
+		return iv
+	}
+	stable := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }
+	return topInterval(stable, qTop, qBot, scanStep, fastTol)
+}
+
+// fastTol is the bisection tolerance of the per-sample path's own scan, pu.
+const fastTol = 1e-8
+
+// bracketHolds says whether a stability boundary lies within tabCheck of
+// q (at most up to qTop): for a bottom (q_stability) stable just above
+// and unstable just below, for a moved top the other way round.
+func bracketHolds(stable func(float64) (bool, error), q, qTop float64, bottom bool) bool {
+	sLo, err1 := stable(q - tabCheck)
+	sHi, err2 := stable(math.Min(q+tabCheck, qTop))
+	return err1 == nil && err2 == nil && sLo != sHi && sHi == bottom
 }
 
 // lookup interpolates the table at p >= 0 and v below q_max = qTop; ok
@@ -343,11 +479,11 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 // disagree on feasibility, the nearest node decides, and the feasible
 // nodes are interpolated among themselves; q_max moves when a node
 // around the point moves and the interpolated top lies below qTop.
-func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok bool) {
+func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 	x := p / t.pStep
 	y := (v - t.v0) * t.vInv
 	if !(x >= 0 && y >= 0) || x > float64(t.np-1) || y > float64(t.nv-1) {
-		return interval{}, false
+		return interval{}, false, false
 	}
 	ip, jv := int(x), int(y)
 	if ip == t.np-1 {
@@ -358,6 +494,7 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok bool) {
 	}
 	wx, wy := x-float64(ip), y-float64(jv)
 	k := jv*t.np + ip
+	smooth = t.smooth[jv*(t.np-1)+ip]
 	idx := [4]int{k, k + 1, k + t.np, k + t.np + 1}
 	w := [4]float64{(1 - wx) * (1 - wy), wx * (1 - wy), (1 - wx) * wy, wx * wy}
 	near := 0
@@ -367,7 +504,7 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok bool) {
 		}
 	}
 	if math.IsNaN(float64(t.low[idx[near]])) {
-		return interval{}, true // no stable operation
+		return interval{}, true, false // no stable operation
 	}
 	var low, top, sw float64
 	moved := false
@@ -386,8 +523,8 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok bool) {
 		qTop = top
 	}
 	if low >= qTop {
-		return interval{}, true // the stable interval lies above q_max
+		return interval{}, true, false // the stable interval lies above q_max
 	}
 	iv.low = some(low)
-	return iv, true
+	return iv, true, smooth
 }

@@ -373,11 +373,9 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) sta
 // avrLimits is stabilityLimits on the avr basis.
 func (u *Unit) avrLimits(p, v, qTop, qBot float64, h *Hint, fast bool) stabLimits {
 	var iv interval
-	ok := false
 	if fast && u.avrTab != nil {
-		iv, ok = u.avrTab.lookup(p, v, qTop)
-	}
-	if !ok {
+		iv = u.fastInterval(p, v, qTop, qBot)
+	} else {
 		iv = u.avrInterval(p, v, qTop, qBot)
 	}
 	res := stabLimits{theo: iv.low, top: iv.top, err: iv.err}

@@ -17,7 +17,14 @@ import "math"
 //	end_region       (q - q_end) / 1 pu (only with an end-region curve)
 //	prime_mover      (p_max - p) / p_rated, p_max the prime mover's
 //	volts_per_hertz  1 - (v/f)/1.05
-func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, true) }
+//
+// On the avr basis, Evaluate with a hint is the per-sample path and reads
+// the stability limit from the unit's table (within 0.002 pu of the
+// direct computation, see stabTable); with a nil hint it is the direct
+// computation, an eigenvalue search of some milliseconds.
+func (u *Unit) Evaluate(pt Point, h *Hint) Result {
+	return u.evaluate(pt, h, true, h != nil && u.avrTab != nil)
+}
 
 // EvaluateSample is Evaluate for the per-sample path of a service. Its
 // margins, binding limit, feasibility, lower bound and practical
@@ -25,13 +32,22 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, tru
 // them, it leaves the field-limit curve (and so q_max and its limit) and
 // the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
 // less often than samples arrive.
-func (u *Unit) EvaluateSample(pt Point, h *Hint) Result { return u.evaluate(pt, h, false) }
+func (u *Unit) EvaluateSample(pt Point, h *Hint) Result {
+	return u.evaluate(pt, h, false, h != nil && u.avrTab != nil)
+}
 
 // Complete solves what EvaluateSample left pending in r, the result of
 // point pt; after it r is Evaluate's result, to the root tolerance. It
 // does nothing when nothing is pending.
 func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.QMaxPending {
+		return
+	}
+	if r.fast {
+		// The avr basis' table answer depends on q_max only through
+		// which checks it needs: the evaluation is done again, as
+		// Evaluate with a hint does it.
+		*r = u.evaluate(pt, nil, true, true)
 		return
 	}
 	r.Field = u.fieldLimit(pt.P, pt.V, r.IfdMax, nil)
@@ -44,7 +60,7 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	r.QMaxPending = false
 }
 
-func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
+func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
 	p, q, v := pt.P, pt.Q, pt.V
 	f := pt.F
 	if f == 0 {
@@ -66,9 +82,7 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 		r.CoolantOutside = !inside
 	}
 	r.IMax, r.IfdMax = armF, u.ifdRated*fieldF
-	// With a hint this is the per-sample path: the avr basis reads its
-	// stability limit from the unit's table.
-	r.fast = h != nil && u.avrTab != nil
+	r.fast = fast
 	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full, r.fast)
 
 	fs := u.field(p, q, v, false)

@@ -118,7 +118,8 @@ type Unit struct {
 	hasTransient bool
 
 	// The avr stability basis.
-	avrTab *stabTable // q_stability over p and v for the per-sample path; nil on the manual basis
+	avrTab  *stabTable // q_stability over p and v for the per-sample path; nil on the manual basis
+	avrChar charParts  // the fixed parts of the characteristic polynomial (avr basis)
 }
 
 // New checks p and prepares a Unit. The first inconsistency found is
@@ -312,6 +313,7 @@ func (u *Unit) prepareAVR() error {
 	if u.p.Basis != BasisAVR {
 		return nil
 	}
+	u.avrChar = u.charParts()
 	t, err := u.buildStabTable()
 	if err != nil {
 		return &ParamError{Field: "stability.basis", Reason: "the small-signal model could not be solved while preparing the unit: " + err.Error()}

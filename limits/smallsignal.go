@@ -69,9 +69,15 @@ type HeffronPhillips struct {
 // Source: envelope.md after de Mello and Concordia (1969) and Kundur
 // (1994) ch. 12, from memory. It needs X'd (Params.XdTransient) > 0.
 func (u *Unit) HeffronPhillips(p, q, v float64) HeffronPhillips {
+	return u.heffronPhillips(p, q, v, true)
+}
+
+// heffronPhillips is HeffronPhillips; the angle Delta (an arc tangent)
+// only withDelta.
+func (u *Unit) heffronPhillips(p, q, v float64, withDelta bool) HeffronPhillips {
 	xd, xq, x1, xe := u.p.Xd, u.p.Xq, u.p.XdTransient, u.p.Xe
 	iR, iI := p/v, -q/v
-	eqR, eqI := v-xq*iI, xq*iR // E_Q = V + jXq I
+	eqR, eqI := v-xq*iI, xq*iR  // E_Q = V + jXq I
 	vsR, vsI := v+xe*iI, -xe*iR // V_s = V - jXe I
 	n := math.Sqrt(eqR*eqR + eqI*eqI)
 	var k HeffronPhillips
@@ -86,7 +92,9 @@ func (u *Unit) HeffronPhillips(p, q, v float64) HeffronPhillips {
 	k.Iq, k.Id = iR*c+iI*s, -(iI*c - iR*s)
 	usR, usI := vsR/k.EB, vsI/k.EB
 	cosD, sinD := c*usR+s*usI, s*usR-c*usI // e^(j delta) = e^(j theta) conj(u_s)
-	k.Delta = math.Atan2(sinD, cosD)
+	if withDelta {
+		k.Delta = math.Atan2(sinD, cosD)
+	}
 	k.Eq1 = k.Eq + x1*k.Id
 	k.Efd = k.Eq + xd*k.Id
 	eb := k.EB
