@@ -136,16 +136,6 @@ func (a poly) mul(b poly) poly {
 	return r
 }
 
-func (a poly) add(b poly, k float64) poly { // a + k b
-	if b.n > a.n {
-		a.n = b.n
-	}
-	for i := 0; i <= b.n; i++ {
-		a.c[i] += k * b.c[i]
-	}
-	return a
-}
-
 // charParts are the q-independent pieces of the characteristic
 // polynomial (see charPoly), formed once per unit.
 type charParts struct {
@@ -391,7 +381,7 @@ func nearInterval(stable func(float64) (bool, error), qTop, guess float64) (inte
 // tabSmooth is the interpolation error, pu, below which a cell is
 // trusted without a check: bilinear interpolation errs by about an
 // eighth of the second difference across the cell in each direction
-// (h^2 |f''|/8), to which the nodes' own error (tabTol/2) adds: 1e-3 +
+// (h^2 |f”|/8), to which the nodes' own error (tabTol/2) adds: 1e-3 +
 // 5e-5 leaves a margin to the 0.002 pu the fast answer is held to.
 const tabSmooth = 1e-3
 
