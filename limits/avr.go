@@ -242,7 +242,8 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 		}
 		var nx [maxSSStates/2 + 2]float64
 		f := r0[0] / r1[0]
-		for j := 0; j+1 < len(r0); j++ {
+		// Row row+1 of the array has (n - row - 1)/2 + 1 entries.
+		for j := 0; j <= (n-row-1)/2 && j+1 < len(r0); j++ {
 			nx[j] = r0[j+1] - f*r1[j+1]
 		}
 		scale = math.Abs(r0[1]) + math.Abs(f*r1[1])
