@@ -64,8 +64,7 @@ func (h *Hint) set(bit uint8, b Bound) {
 // factors armF and fieldF. h may be nil.
 //
 // Bounds is the direct computation on both stability bases (on the avr
-// basis an eigenvalue search, some hundred microseconds to a few
-// milliseconds); only Evaluate and EvaluateSample with a Hint take the
+// basis a search of tens of microseconds, see avrInterval); only Evaluate and EvaluateSample with a Hint take the
 // per-sample table (see stabTable).
 func (u *Unit) Bounds(p, v, armF, fieldF float64, h *Hint) Bounds {
 	b, _ := u.bounds(p, v, armF, fieldF, h, true, false)

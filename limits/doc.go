@@ -54,9 +54,10 @@
 // curves are closed forms where they exist (round-rotor stability, the
 // armature circle) and otherwise warm-started iterations from the unit's
 // previous solution (Hint): Newton steps on the field limit, a bracketed
-// Brent search on the salient-pole stability limits. On the avr basis an
-// eigenvalue search takes milliseconds, so New builds a table of the
-// limit over p and v per unit, and the per-sample path (Evaluate and
+// Brent search on the salient-pole stability limits. On the avr basis the
+// direct search (a Routh-Hurwitz scan confirmed by eigenvalues) takes
+// tens of microseconds, so New builds a table of the limit over p and v
+// per unit, and the per-sample path (Evaluate and
 // EvaluateSample with a Hint) interpolates it, checking the answer with
 // two Routh-Hurwitz tests of the characteristic polynomial where the
 // table is not smooth (stabTable, fastInterval): within 0.002 pu of the

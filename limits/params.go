@@ -515,8 +515,8 @@ func (u *Unit) UELAt(p, v float64) Bound {
 // directly (no warm start), at rated coolant. Absent where the point has
 // no stable operation. The coordination study and the reports use it.
 //
-// On the avr basis this is the eigenvalue search (envelope.md, "Which
-// stable interval, and the limit"), some hundred eigen decompositions.
+// On the avr basis this is the search of avrInterval (envelope.md,
+// "Which stable interval, and the limit").
 func (u *Unit) StabilityLimit(p, v float64) Bound {
 	return u.Bounds(p, v, 1, 1, nil).Stability
 }
