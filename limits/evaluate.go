@@ -21,7 +21,7 @@ import "math"
 // On the avr basis, Evaluate with a hint is the per-sample path and reads
 // the stability limit from the unit's table (within 0.002 pu of the
 // direct computation, see stabTable); with a nil hint it is the direct
-// computation, an eigenvalue search of some milliseconds.
+// computation (avrInterval, tens of microseconds).
 func (u *Unit) Evaluate(pt Point, h *Hint) Result {
 	return u.evaluate(pt, h, true, h != nil && u.avrTab != nil)
 }
