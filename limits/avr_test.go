@@ -491,3 +491,27 @@ func TestRotorModeManual(t *testing.T) {
 		t.Errorf("manual basis: rotor mode ok %v, err %v", ok, err)
 	}
 }
+
+// The direct computation (a Routh-Hurwitz scan confirmed by eigenvalues)
+// is the rule applied with eigenvalues at every test, as the spec writes
+// it: same top, same limit, same feasibility.
+func TestAVRDirectIsEigenRule(t *testing.T) {
+	for ui, u := range append(avrUnits(t), kundurUnit(t, nil)) {
+		for _, v := range []float64{0.9, 1, 1.1} {
+			for p := 0.0; p <= u.p.PMax+1e-9; p += 0.1 {
+				b := u.Bounds(p, v, 1, 1, nil)
+				qTop := math.Min(b.Field.V, b.ArmatureUp.V)
+				if !b.Field.OK {
+					qTop = b.ArmatureUp.V
+				}
+				eig := topInterval(func(q float64) (bool, error) { return u.avrStable(p, q, v) }, qTop, b.ArmatureDown.V, scanStep, scanTol)
+				got := u.avrInterval(p, v, qTop, b.ArmatureDown.V)
+				for _, x := range [][2]Bound{{eig.low, got.low}, {eig.top, got.top}} {
+					if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 2e-6 {
+						t.Errorf("unit %d p %.1f v %.1f: eigenvalue rule %+v, direct %+v", ui, p, v, x[0], x[1])
+					}
+				}
+			}
+		}
+	}
+}
