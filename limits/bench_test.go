@@ -133,6 +133,19 @@ func BenchmarkNewAVR(b *testing.B) {
 	}
 }
 
+// BenchmarkNewAVRZetaMin is New with a damping-ratio criterion, whose
+// table is built on eigenvalues.
+func BenchmarkNewAVRZetaMin(b *testing.B) {
+	p := benchAVR(b).Params()
+	p.ZetaMin = 0.05
+	b.ReportAllocs()
+	for range b.N {
+		if _, err := New(p); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
 // BenchmarkStabilityLimitAVR is the direct computation of q_stability
 // on the avr basis (evaluate, envelope and coordinate use it).
 func BenchmarkStabilityLimitAVR(b *testing.B) {

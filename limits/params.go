@@ -295,6 +295,16 @@ func checkAVR(p *Params) error {
 	return nil
 }
 
+// DefaultBasis is the stability basis of a unit whose fleet file does
+// not name one (envelope.md, "Stability basis"): avr when the exciter is
+// given, else manual.
+func (p *Params) DefaultBasis() Basis {
+	if p.Exciter != nil {
+		return BasisAVR
+	}
+	return BasisManual
+}
+
 // prepareAVR checks the avr basis' parameters and, on that basis, builds
 // the per-sample table of the stability limit (stabTable), copying the
 // exciter and stabilizer so that the caller's may change.
