@@ -305,7 +305,8 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) sta
 		}
 		return math.Min(s.ks, s.ef)
 	}
-	if hint, ok := h.get(hintStab); ok {
+	gTop := g(qTop)
+	if hint, ok := h.get(hintStab); ok && gTop > 0 {
 		if q, slope, ok := warmRoot(g, hint, h.stabSlope, qTop); ok {
 			theo := some(q)
 			h.stabSlope = slope
@@ -313,7 +314,6 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) sta
 			return stabLimits{theo: theo, prac: u.practicalLimit(p, v, q, qTop, h)}
 		}
 	}
-	gTop := g(qTop)
 	if gTop <= 0 {
 		// q_max is unstable: the scan of the rule, from the top.
 		iv := topInterval(func(q float64) (bool, error) { return g(q) > 0, nil }, qTop, qBot, scanStep, scanTol)
@@ -444,6 +444,10 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
 	hint, ok := h.get(hintPrac)
 	if u.roundStab || u.p.Basis == BasisAVR || !ok {
+		return Bound{}, false
+	}
+	if s := u.stab(p, qTop, v); s.degen || !(s.ks > 0 && s.ef > 0) {
+		// q_max itself is unstable: the topmost stable interval lies below it.
 		return Bound{}, false
 	}
 	hf := u.peakExcess(p, v)

@@ -55,7 +55,13 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.Stability.OK && r.QMax.OK {
 		// Left by the warm practical limit; the practical limit is solved
 		// again with it, to the same root.
-		r.setStability(u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, r.fast))
+		s := u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, false)
+		if s.top.OK || s.err != nil {
+			// q_max itself is unstable: the whole envelope changes.
+			*r = u.evaluate(pt, nil, true, false)
+			return
+		}
+		r.setStability(s)
 	}
 	r.QMaxPending = false
 }
