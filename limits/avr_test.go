@@ -515,3 +515,44 @@ func TestAVRDirectIsEigenRule(t *testing.T) {
 		}
 	}
 }
+
+// On a weak grid q_max itself can be unstable; the warm (hint) paths and
+// the sample path move it to the top of the stable interval as the cold
+// path does.
+func TestWeakGridTopMovesOnEveryPath(t *testing.T) {
+	sal := benchSalient(t).Params()
+	sal.Xe, sal.IfdRated = 1.2, 3
+	units := []*Unit{roundUnit(t, 2.0, 1.5, func(p *Params) { p.IfdRated = 3 }), mustNew(t, sal)}
+	rng := rand.New(rand.NewPCG(9, 10))
+	for ui, u := range units {
+		var hw, hs Hint
+		moved := 0
+		p, q, v := 0.2, 0.0, 1.0
+		for i := range 3000 {
+			p = math.Min(0.6, math.Max(0.05, p+0.01*rng.NormFloat64()))
+			q = math.Min(0.5, math.Max(-0.4, q+0.02*rng.NormFloat64()))
+			v = math.Min(1.05, math.Max(0.95, v+0.002*rng.NormFloat64()))
+			pt := Point{P: p, Q: q, V: v}
+			cold := u.Evaluate(pt, nil)
+			warm := u.Evaluate(pt, &hw)
+			s := u.EvaluateSample(pt, &hs)
+			u.Complete(&s, pt)
+			if cold.QMaxLimit == LimitStability {
+				moved++
+			}
+			for _, r := range []Result{warm, s} {
+				for _, x := range [][2]Bound{{r.QMax, cold.QMax}, {r.QMin, cold.QMin}, {r.Stability, cold.Stability}, {r.Practical, cold.Practical}} {
+					if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 1e-6 {
+						t.Fatalf("unit %d sample %d (p %v q %v v %v): %+v, cold %+v", ui, i, p, q, v, x[0], x[1])
+					}
+				}
+				if r.QMaxLimit != cold.QMaxLimit || r.Feasible != cold.Feasible || r.Binding != cold.Binding {
+					t.Fatalf("unit %d sample %d: limit %v feasible %v binding %v, cold %v %v %v", ui, i, r.QMaxLimit, r.Feasible, r.Binding, cold.QMaxLimit, cold.Feasible, cold.Binding)
+				}
+			}
+		}
+		if moved == 0 {
+			t.Errorf("unit %d: the walk never met an unstable q_max", ui)
+		}
+	}
+}

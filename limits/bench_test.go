@@ -92,7 +92,7 @@ func BenchmarkEvaluateSample(b *testing.B) {
 	for _, tc := range []struct {
 		name string
 		u    *Unit
-	}{{"round", benchRound(b)}, {"salient", benchSalient(b)}} {
+	}{{"round", benchRound(b)}, {"salient", benchSalient(b)}, {"avr", benchAVR(b)}} {
 		b.Run(tc.name, func(b *testing.B) {
 			pts := tracking(4096)
 			var h Hint
