@@ -4,8 +4,9 @@ import "math"
 
 // The stability limit on the avr basis: the topmost-stable-interval rule
 // (envelope.md, "Which stable interval, and the limit") over the
-// small-signal test of smallsignal.go, computed directly with eigenvalues,
-// and a per-unit table of it for the per-sample path.
+// small-signal test of smallsignal.go, computed directly (a Routh-Hurwitz
+// scan confirmed by eigenvalues), and a per-unit table of it for the
+// per-sample path.
 
 // interval is the outcome of the topmost-stable-interval rule at one p
 // and v.
@@ -316,22 +317,35 @@ func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error)
 // stabTable is q_stability on the avr basis over a grid of p and v,
 // built once in New, for the per-sample path: the rule is applied at
 // every node with the Routh-Hurwitz test, a coarser scan (tabScanStep)
-// and a bisection to tabTol, and read by bilinear interpolation. A point
-// outside the grid takes the direct computation.
+// and a bisection to tabTol, with continuation along p (nearInterval),
+// and read by bilinear interpolation; see fastInterval for how its
+// answer is used and checked.
 type stabTable struct {
 	np, nv   int
-	pStep    float64   // pu; the p grid starts at 0
-	v0, vInv float64   // first v node, 1/step
-	low      []float32 // q_stability at node (i_v*np + i_p); NaN: no stable q
-	top      []float32 // top of the topmost stable interval: the armature circle where that is stable
-	moved    []bool    // top lies below the armature circle (q_max moves there)
-	smooth   []bool    // cell (i_v*(np-1) + i_p) interpolates within tabSmooth, by its second differences
+	pStep    float64 // pu; the p grid starts at 0
+	v0, vInv float64 // first v node, 1/step
+	low      []int16 // q_stability at node (i_v*np + i_p), in steps of tabQuant; tabNone: no stable q
+	top      []int16 // top of the topmost stable interval (the armature circle where that is stable); nil when no node moved
+	moved    []bool  // top lies below the armature circle (q_max moves there); nil when no node moved
+	smooth   []bool  // cell (i_v*(np-1) + i_p) interpolates within tabSmooth, by its second differences
+}
+
+// The table stores q in fixed point: tabQuant pu a step (an error of
+// 5e-5 pu at most, inside the margin of tabSmooth), tabNone for "no
+// stable operation". Two bytes a node keep a 10,000-unit fleet's tables
+// to about 12 MB with the polynomial parts.
+const (
+	tabQuant = 1e-4
+	tabNone  = math.MinInt16
+)
+
+func toQ16(q float64) int16 {
+	return int16(math.Round(math.Max(-3.2, math.Min(3.2, q)) / tabQuant))
 }
 
 // The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
 // Its spacing keeps bilinear interpolation within 0.002 pu of the direct
-// computation over the chart (TestAVRTableAgrees); float32 keeps a
-// 10,000-unit fleet's tables to about 20 MB.
+// computation over the chart (TestAVRTableAgrees).
 const (
 	tabPMax     = 1.2
 	tabPStep    = 0.05
@@ -353,7 +367,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	t := &stabTable{np: int(math.Round(tabPMax/tabPStep)) + 1, nv: int(math.Round((tabVHi-tabVLo)/tabVStep)) + 1,
 		pStep: tabPStep, v0: tabVLo, vInv: 1 / tabVStep}
 	n := t.np * t.nv
-	t.low, t.top, t.moved = make([]float32, n), make([]float32, n), make([]bool, n)
+	low, top, moved := make([]float64, n), make([]float64, n), make([]bool, n)
 	c := &u.avrChar
 	for iv := range t.nv {
 		v := tabVLo + float64(iv)*tabVStep
@@ -364,11 +378,11 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 			k := iv*t.np + ip
 			var it interval
 			ok := false
-			if ip >= 2 && !t.moved[k-1] && !t.moved[k-2] {
+			if ip >= 2 && !moved[k-1] && !moved[k-2] {
 				// Continuation along p: the limit extrapolated from the two
 				// nodes before, kept when q_max (here the armature circle) is
 				// stable and the limit lies within tabNear of the guess.
-				guess := 2*float64(t.low[k-1]) - float64(t.low[k-2])
+				guess := 2*low[k-1] - low[k-2]
 				it, ok = nearInterval(stable, qArm, guess)
 			}
 			if !ok {
@@ -377,16 +391,32 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 			if it.err != nil {
 				return nil, it.err
 			}
-			t.low[k], t.top[k] = float32(math.NaN()), float32(qArm)
+			low[k], top[k] = math.NaN(), qArm
 			if it.low.OK {
-				t.low[k] = float32(it.low.V)
+				low[k] = it.low.V
 			}
 			if it.top.OK {
-				t.top[k], t.moved[k] = float32(it.top.V), true
+				top[k], moved[k] = it.top.V, true
 			}
 		}
 	}
-	t.markSmooth()
+	t.markSmooth(low, top, moved)
+	t.low = make([]int16, n)
+	for k, q := range low {
+		t.low[k] = tabNone
+		if !math.IsNaN(q) {
+			t.low[k] = toQ16(q)
+		}
+	}
+	for k := range moved {
+		if moved[k] {
+			t.top, t.moved = make([]int16, n), moved
+			for k, q := range top {
+				t.top[k] = toQ16(q)
+			}
+			break
+		}
+	}
 	return t, nil
 }
 
@@ -430,20 +460,20 @@ const tabSmooth = 1e-3
 // neighbours on an edge) promise an interpolation error below tabSmooth.
 // A kink or a jump between two nodes shows in the second differences of
 // both, so the cells on either side are checked at every sample instead.
-func (t *stabTable) markSmooth() {
-	est := make([]float64, len(t.low)) // the interpolation error about node k
-	d2 := func(f []float32, a, b, c int) float64 {
-		return math.Abs(float64(f[a]) - 2*float64(f[b]) + float64(f[c]))
+func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
+	est := make([]float64, len(low)) // the interpolation error about node k
+	d2 := func(f []float64, a, b, c int) float64 {
+		return math.Abs(f[a] - 2*f[b] + f[c])
 	}
 	for iv := range t.nv {
 		for ip := range t.np {
 			cp := min(max(ip, 1), t.np-2)
 			cv := min(max(iv, 1), t.nv-2)
 			kp, kv := iv*t.np+cp, cv*t.np+ip
-			e := d2(t.low, kp-1, kp, kp+1) + d2(t.low, kv-t.np, kv, kv+t.np)
-			if t.moved[kp-1] || t.moved[kp] || t.moved[kp+1] || t.moved[kv-t.np] || t.moved[kv] || t.moved[kv+t.np] {
+			e := d2(low, kp-1, kp, kp+1) + d2(low, kv-t.np, kv, kv+t.np)
+			if moved[kp-1] || moved[kp] || moved[kp+1] || moved[kv-t.np] || moved[kv] || moved[kv+t.np] {
 				// The top is interpolated only where it moved.
-				e += d2(t.top, kp-1, kp, kp+1) + d2(t.top, kv-t.np, kv, kv+t.np)
+				e += d2(top, kp-1, kp, kp+1) + d2(top, kv-t.np, kv, kv+t.np)
 			}
 			if math.IsNaN(e) {
 				e = math.Inf(1)
@@ -457,7 +487,7 @@ func (t *stabTable) markSmooth() {
 			k := iv*t.np + ip
 			ok := true
 			for _, j := range [4]int{k, k + 1, k + t.np, k + t.np + 1} {
-				ok = ok && est[j] < tabSmooth && t.moved[j] == t.moved[k]
+				ok = ok && est[j] < tabSmooth && moved[j] == moved[k]
 			}
 			t.smooth[iv*(t.np-1)+ip] = ok
 		}
@@ -532,21 +562,23 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 			near = i
 		}
 	}
-	if math.IsNaN(float64(t.low[idx[near]])) {
+	if t.low[idx[near]] == tabNone {
 		return interval{}, true, false // no stable operation
 	}
 	var low, top, sw float64
 	moved := false
 	for i, j := range idx {
-		if math.IsNaN(float64(t.low[j])) {
+		if t.low[j] == tabNone {
 			continue
 		}
 		low += w[i] * float64(t.low[j])
-		top += w[i] * float64(t.top[j])
+		if t.moved != nil {
+			top += w[i] * float64(t.top[j])
+			moved = moved || t.moved[j] && w[i] > 0
+		}
 		sw += w[i]
-		moved = moved || t.moved[j] && w[i] > 0
 	}
-	low, top = low/sw, top/sw
+	low, top = low/sw*tabQuant, top/sw*tabQuant
 	if moved && top < qTop {
 		iv.top = some(top)
 		qTop = top
