@@ -556,3 +556,25 @@ func TestWeakGridTopMovesOnEveryPath(t *testing.T) {
 		}
 	}
 }
+
+// With the practical margin 0 the practical limit is q_stability exactly
+// (envelope.md, "Practical margin"), on both bases and every path, also
+// on a salient rotor where E_f = 0 binds rather than K_s = 0.
+func TestZeroMarginIsStabilityLimit(t *testing.T) {
+	sal := benchSalient(t).Params()
+	sal.MarginFraction = 0
+	rnd := benchRound(t).Params()
+	rnd.MarginFraction = 0
+	for ui, u := range append(avrUnits(t), mustNew(t, sal), mustNew(t, rnd)) {
+		var hw, hs Hint
+		for i, pt := range append(tracking(500), spread(u, 500)...) {
+			s := u.EvaluateSample(pt, &hs)
+			u.Complete(&s, pt)
+			for _, r := range []Result{u.Evaluate(pt, nil), u.Evaluate(pt, &hw), s} {
+				if r.Practical != r.Stability {
+					t.Fatalf("unit %d point %d: practical %+v, stability %+v", ui, i, r.Practical, r.Stability)
+				}
+			}
+		}
+	}
+}

@@ -409,10 +409,12 @@ func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
 // practicalLimit returns the lowest q in [qs, qTop] at which the peak of
 // P(delta) at the point's own E_f and V_s is at least p + m.
 func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
-	hf := u.peakExcess(p, v)
-	if u.marginPU == 0 && u.p.Basis == BasisAVR {
+	if u.marginPU == 0 {
+		// With m = 0 the practical limit is q_stability exactly
+		// (envelope.md, "Practical margin"), on both bases.
 		return some(qs)
 	}
+	hf := u.peakExcess(p, v)
 	if hint, ok := h.get(hintPrac); ok && hint > qs {
 		if q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop); ok && q > qs {
 			h.pracSlope = slope
@@ -443,7 +445,7 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 // nothing from this.
 func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
 	hint, ok := h.get(hintPrac)
-	if u.roundStab || u.p.Basis == BasisAVR || !ok {
+	if u.roundStab || u.p.Basis == BasisAVR || u.marginPU == 0 || !ok {
 		return Bound{}, false
 	}
 	if s := u.stab(p, qTop, v); s.degen || !(s.ks > 0 && s.ef > 0) {
