@@ -266,27 +266,24 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 	if b[0] <= 0 {
 		return false, false
 	}
-	var r0, r1 [maxSSStates/2 + 2]float64
+	// The array's rows in a ring of three: r[i%3] is row i.
+	var r [3][maxSSStates/2 + 2]float64
 	for i := 0; i <= n; i++ {
-		if i%2 == 0 {
-			r0[i/2] = b[i]
-		} else {
-			r1[i/2] = b[i]
-		}
+		r[i%2][i/2] = b[i]
 	}
-	scale := math.Abs(r1[0])
+	scale := math.Abs(r[1][0])
 	for row := 1; row <= n; row++ {
+		r0, r1, nx := &r[(row-1)%3], &r[row%3], &r[(row+1)%3]
 		if !(r1[0] > 1e-9*scale) {
 			return false, math.Abs(r1[0]) > 1e-9*scale
 		}
-		var nx [maxSSStates/2 + 2]float64
 		f := r0[0] / r1[0]
-		// Row row+1 of the array has (n - row - 1)/2 + 1 entries.
+		// Row row+1 has (n - row - 1)/2 + 1 entries; the rest are zero.
+		*nx = [maxSSStates/2 + 2]float64{}
 		for j := 0; j <= (n-row-1)/2 && j+1 < len(r0); j++ {
 			nx[j] = r0[j+1] - f*r1[j+1]
 		}
 		scale = math.Abs(r0[1]) + math.Abs(f*r1[1])
-		r0, r1 = r1, nx
 	}
 	return true, true
 }
@@ -308,6 +305,28 @@ func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error)
 	}
 	if u.p.ZetaMin == 0 {
 		if s, sure := hurwitz(c.charPoly(&k), sigma); sure {
+			return s, nil
+		}
+	}
+	return u.avrStable(p, q, v)
+}
+
+// avrStableTab is the test of the table's build: the Routh-Hurwitz
+// criterion without the shift first (Re < 0), and with it (Re <= 1e-7
+// s^-1) only where the first is not sure, as at an undamped mode. The two
+// differ only for a mode with 0 <= Re <= 1e-7 s^-1, within some 1e-6 pu
+// of a boundary, far inside the table's tolerance.
+func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
+	k := u.heffronPhillips(p, q, v, false)
+	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+		return false, nil
+	}
+	if u.p.ZetaMin == 0 {
+		cp := c.charPoly(&k)
+		if s, sure := hurwitz(cp, 0); sure {
+			return s, nil
+		}
+		if s, sure := hurwitz(cp, ssGrowth); sure {
 			return s, nil
 		}
 	}
@@ -374,7 +393,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 		for ip := range t.np {
 			p := float64(ip) * tabPStep
 			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
-			stable := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }
+			stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
 			k := iv*t.np + ip
 			var it interval
 			ok := false
