@@ -13,7 +13,8 @@ import "math"
 //
 //	armature         1 - i/i_max
 //	field            1 - i_fd/i_fd_max (the measured field current when the point has one, else the model)
-//	stability        (q - q_practical) / 1 pu
+//	stability        (q - q_practical) / 1 pu; where q_max moved down to the top of the
+//	                 stable interval (StabilityTop), the smaller of that and (top - q) / 1 pu
 //	end_region       (q - q_end) / 1 pu (only with an end-region curve)
 //	prime_mover      (p_max - p) / p_rated, p_max the prime mover's
 //	volts_per_hertz  1 - (v/f)/1.05
@@ -37,8 +38,10 @@ func (u *Unit) EvaluateSample(pt Point, h *Hint) Result {
 }
 
 // Complete solves what EvaluateSample left pending in r, the result of
-// point pt; after it r is Evaluate's result, to the root tolerance. It
-// does nothing when nothing is pending.
+// point pt; after it r is Evaluate's result, to the root tolerance (on
+// the avr basis the result of Evaluate with a hint: both read the
+// stability limit from the unit's table). It does nothing when nothing
+// is pending.
 func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.QMaxPending {
 		return
