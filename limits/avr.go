@@ -557,12 +557,62 @@ func bracketHolds(stable func(float64) (bool, error), q, qTop float64, bottom bo
 // disagree on feasibility, the nearest node decides, and the feasible
 // nodes are interpolated among themselves; q_max moves when a node
 // around the point moves and the interpolated top lies below qTop.
+//
+// A voltage off the grid is extrapolated along v from the three rows at
+// the grid's edge (Newton's backward-difference formula, quadratic),
+// never as smooth: the caller checks it.
 func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 	x := p / t.pStep
 	y := (v - t.v0) * t.vInv
-	if !(x >= 0 && y >= 0) || x > float64(t.np-1) || y > float64(t.nv-1) {
+	if !(x >= 0) || x > float64(t.np-1) || math.IsNaN(y) {
 		return interval{}, false, false
 	}
+	var low, top float64
+	moved, none := false, false
+	switch last := float64(t.nv - 1); {
+	case y >= 0 && y <= last:
+		low, top, moved, none, smooth = t.at(x, y)
+	case y > last && y-last <= 2 || y < 0 && y >= -2:
+		// d rows beyond the edge row e, with rows e-s and e-2s inside.
+		e, s, d := last, 1.0, y-last
+		if y < 0 {
+			e, s, d = 0, -1, -y
+		}
+		var f [3]float64
+		var g [3]float64
+		for i := range f {
+			l, tp, mv, nn, _ := t.at(x, e-s*float64(i))
+			if nn {
+				return interval{}, false, false
+			}
+			f[i], g[i], moved = l, tp, moved || mv
+		}
+		ext := func(f [3]float64) float64 {
+			return f[0] + d*(f[0]-f[1]) + d*(d+1)/2*(f[0]-2*f[1]+f[2])
+		}
+		low, top = ext(f), ext(g)
+	default:
+		return interval{}, false, false
+	}
+	if none {
+		return interval{}, true, false // no stable operation
+	}
+	if moved && top < qTop {
+		iv.top = some(top)
+		qTop = top
+	}
+	if low >= qTop {
+		return interval{}, true, false // the stable interval lies above q_max
+	}
+	iv.low = some(low)
+	return iv, true, smooth
+}
+
+// at interpolates the table at grid coordinates x (along p) and y (along
+// v), both inside the grid: q_stability, the top, whether the top moved
+// at a node around, whether the nearest node has no stable operation,
+// and whether the cell is smooth.
+func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool) {
 	ip, jv := int(x), int(y)
 	if ip == t.np-1 {
 		ip--
@@ -582,10 +632,9 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		}
 	}
 	if t.low[idx[near]] == tabNone {
-		return interval{}, true, false // no stable operation
+		return 0, 0, false, true, false
 	}
-	var low, top, sw float64
-	moved := false
+	var sw float64
 	for i, j := range idx {
 		if t.low[j] == tabNone {
 			continue
@@ -597,14 +646,5 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		}
 		sw += w[i]
 	}
-	low, top = low/sw*tabQuant, top/sw*tabQuant
-	if moved && top < qTop {
-		iv.top = some(top)
-		qTop = top
-	}
-	if low >= qTop {
-		return interval{}, true, false // the stable interval lies above q_max
-	}
-	iv.low = some(low)
-	return iv, true, smooth
+	return low / sw * tabQuant, top / sw * tabQuant, moved, false, smooth
 }

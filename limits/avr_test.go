@@ -578,3 +578,21 @@ func TestZeroMarginIsStabilityLimit(t *testing.T) {
 		}
 	}
 }
+
+// Off the table's voltage range the per-sample path still answers within
+// 0.002 pu of the direct computation (a scaled guess, checked, or the scan).
+func TestAVRTableOffGrid(t *testing.T) {
+	for ui, u := range avrUnits(t) {
+		for _, v := range []float64{0.7, 0.75, 0.79, 1.21, 1.25} {
+			for p := 0.0; p <= 0.7; p += 0.07 {
+				d, _ := u.bounds(p, v, 1, 1, nil, true, false)
+				f, _ := u.bounds(p, v, 1, 1, nil, true, true)
+				for _, x := range [][2]Bound{{d.Stability, f.Stability}, {d.QMax, f.QMax}, {d.QMin, f.QMin}} {
+					if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 0.002 {
+						t.Errorf("unit %d p %.2f v %.2f: direct %+v, table %+v", ui, p, v, x[0], x[1])
+					}
+				}
+			}
+		}
+	}
+}
