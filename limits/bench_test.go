@@ -155,3 +155,13 @@ func BenchmarkStabilityLimitAVR(b *testing.B) {
 		_ = u.StabilityLimit(0.1+0.7*float64(i%8)/8, 1)
 	}
 }
+
+// BenchmarkRotorMode is the rotor mode at one point, as a page or an RPC
+// reads it (an eigen decomposition with both eigenvector sets).
+func BenchmarkRotorMode(b *testing.B) {
+	u := benchAVR(b)
+	b.ReportAllocs()
+	for i := range b.N {
+		_, _, _ = u.RotorMode(Point{P: 0.1 + 0.7*float64(i%8)/8, Q: 0.1, V: 1})
+	}
+}
