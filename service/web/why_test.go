@@ -158,3 +158,31 @@ func TestNegativeQIsNoFault(t *testing.T) {
 		t.Errorf("the Q tile of an underexcited unit is marked as a fault: %s", page[max(0, j):i])
 	}
 }
+
+// The worst alarm: the highest level; at the same level one not yet
+// acknowledged; then the one raised first; shelved alarms do not count.
+func TestWorstAlarm(t *testing.T) {
+	now := time.Date(2026, 6, 1, 12, 0, 0, 0, time.UTC)
+	type m = alarm.Machine
+	for _, tc := range []struct {
+		name   string
+		set    map[alarm.Kind]m
+		want   alarm.Kind
+		wantOK bool
+	}{
+		{"none", nil, 0, false},
+		{"level first", map[alarm.Kind]m{alarm.Armature: {Level: alarm.Warning, Since: 1}, alarm.VoltsPerHertz: {Level: alarm.Critical, Since: 5}}, alarm.VoltsPerHertz, true},
+		{"not acknowledged first", map[alarm.Kind]m{alarm.Armature: {Level: alarm.Critical, Acknowledged: true, Since: 1}, alarm.Field: {Level: alarm.Critical, Since: 5}}, alarm.Field, true},
+		{"raised first", map[alarm.Kind]m{alarm.StaleTelemetry: {Level: alarm.Warning, Since: 9}, alarm.VoltageFrequencyZone: {Level: alarm.Warning, Since: 3}}, alarm.VoltageFrequencyZone, true},
+		{"shelved ignored", map[alarm.Kind]m{alarm.Field: {Level: alarm.Critical, ShelvedUntil: now.Add(time.Hour).UnixNano()}, alarm.Armature: {Level: alarm.Warning}}, alarm.Armature, true},
+	} {
+		var v ingest.View
+		for k, x := range tc.set {
+			v.Alarms[k] = x
+		}
+		got, ok := worstAlarm(&v, now)
+		if ok != tc.wantOK || ok && got != tc.want {
+			t.Errorf("%s: %v %v, want %v %v", tc.name, got, ok, tc.want, tc.wantOK)
+		}
+	}
+}
