@@ -46,6 +46,7 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
+			nf := addNATSFlags(fs)
 			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
 			fs.Var(logFormat, "log-format", "log format: text or json")
 			return func(e env) int {
@@ -58,11 +59,21 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 					h = slog.NewJSONHandler(e.stderr, nil)
 				}
 				log := slog.New(h)
-				srv, err := server.New(server.Config{
+				cfg := server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
 					StatePath: *statePath,
-				})
+				}
+				if nf.enabled() {
+					dl, err := nf.open(*statePath, log)
+					if err != nil {
+						log.Error("cannot start", "err", err)
+						return exitFailure
+					}
+					defer dl.Close()
+					cfg.Log = dl
+				}
+				srv, err := server.New(cfg)
 				if err != nil {
 					log.Error("cannot start", "err", err)
 					return exitUsage

@@ -28,6 +28,7 @@ type Telemetry struct {
 	pb.UnimplementedTelemetryServiceServer
 
 	store    *ingest.Store
+	log      Log
 	maxBatch int
 	now      func() time.Time
 	draining <-chan struct{}
@@ -41,6 +42,20 @@ type TelemetryOptions struct {
 	// answered, with UNAVAILABLE, so that a graceful stop does not wait
 	// on clients that never close.
 	Draining <-chan struct{}
+	// Log, when set, makes every acknowledgement durable: the samples
+	// that pass the checks are written to the log, and the batch is
+	// answered once they are in it and applied from it.
+	Log Log
+}
+
+// Log is the durable path of accepted samples (package durable).
+type Log interface {
+	// Check says what would become of smp, without recording it.
+	Check(now time.Time, smp *ingest.Sample) (ingest.Result, string)
+	// Append writes smps to the log and returns what applying each of
+	// them from the log gave. An error means the samples may or may not
+	// be in the log: nothing is acknowledged, and the client resends.
+	Append(ctx context.Context, now time.Time, smps []ingest.Sample) ([]ingest.Result, []string, error)
 }
 
 // NewTelemetry returns a TelemetryService over store.
@@ -51,12 +66,12 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Telemetry{store: store, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
+	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
 }
 
 // Push takes one batch.
 func (t *Telemetry) Push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
-	return t.push(req)
+	return t.push(ctx, req)
 }
 
 // Stream takes batches and answers each, in order.
@@ -81,7 +96,7 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 		}
 	}()
 	answer := func(req *pb.PushRequest) error {
-		resp, err := t.push(req)
+		resp, err := t.push(ctx, req)
 		if err != nil {
 			return err
 		}
@@ -114,7 +129,7 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	}
 }
 
-func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
+func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
 	if n := len(req.Samples); n > t.maxBatch {
 		st := status.New(codes.InvalidArgument, fmt.Sprintf("batch %d has %d samples, more than the limit of %d: split it", req.Sequence, n, t.maxBatch))
 		if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{{
@@ -126,27 +141,82 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 		return nil, st.Err()
 	}
 	now := t.now()
+	if t.log != nil {
+		return t.pushLog(ctx, req, now)
+	}
 	resp := &pb.PushResponse{Sequence: req.Sequence}
 	var tally ingest.Tally
 	for i, s := range req.Samples {
 		var smp ingest.Sample
-		res, detail := fromProto(s, &smp)
-		switch {
-		case res == ingest.Accepted:
-			res, detail = t.store.Accept(now, &smp)
-		case t.store.Unit(s.UnitId) == nil:
-			// The unit is the first thing a sample is judged by.
-			res, detail = ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
-		}
+		res, detail := t.judge(now, s, &smp, t.store.Accept)
 		tally[res]++
-		switch res {
-		case ingest.Accepted:
-			resp.Accepted++
-		case ingest.Duplicate:
-			resp.Duplicates++
-		default:
-			resp.Rejected = append(resp.Rejected, &pb.Rejection{Index: uint32(i), Reason: reasonProto(res), Detail: detail})
+		answer(resp, i, res, detail)
+	}
+	t.store.Commit(&tally)
+	return resp, nil
+}
+
+// judge converts s into smp and returns what check says of it.
+func (t *Telemetry) judge(now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+	res, detail := fromProto(s, smp)
+	switch {
+	case res == ingest.Accepted:
+		return check(now, smp)
+	case t.store.Unit(s.UnitId) == nil:
+		// The unit is the first thing a sample is judged by.
+		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
+	}
+	return res, detail
+}
+
+// answer adds the result of sample i to resp.
+func answer(resp *pb.PushResponse, i int, res ingest.Result, detail string) {
+	switch res {
+	case ingest.Accepted:
+		resp.Accepted++
+	case ingest.Duplicate:
+		resp.Duplicates++
+	default:
+		resp.Rejected = append(resp.Rejected, &pb.Rejection{Index: uint32(i), Reason: reasonProto(res), Detail: detail})
+	}
+}
+
+// pushLog takes a batch on the durable path: the samples that pass the
+// checks are written to the log, and the batch is answered only when
+// they are in it; what the log's consumer made of them is the answer
+// (normally accepted; a duplicate or out of order when another replica
+// wrote the same unit's samples in between). Results decided before the
+// log are counted here; those of the log by its consumer, on every
+// replica alike.
+func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.Time) (*pb.PushResponse, error) {
+	resp := &pb.PushResponse{Sequence: req.Sequence}
+	var tally ingest.Tally
+	results := make([]ingest.Result, len(req.Samples))
+	details := make([]string, len(req.Samples))
+	smps := make([]ingest.Sample, 0, len(req.Samples))
+	idx := make([]int, 0, len(req.Samples))
+	for i, s := range req.Samples {
+		var smp ingest.Sample
+		res, detail := t.judge(now, s, &smp, t.log.Check)
+		if res == ingest.Accepted {
+			smps = append(smps, smp)
+			idx = append(idx, i)
+			continue
 		}
+		results[i], details[i] = res, detail
+		tally[res]++
+	}
+	if len(smps) > 0 {
+		res, det, err := t.log.Append(ctx, now, smps)
+		if err != nil {
+			return nil, status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", req.Sequence, err)
+		}
+		for j, i := range idx {
+			results[i], details[i] = res[j], det[j]
+		}
+	}
+	for i, res := range results {
+		answer(resp, i, res, details[i])
 	}
 	t.store.Commit(&tally)
 	return resp, nil
