@@ -100,7 +100,9 @@ func TestKillNineLosesNothing(t *testing.T) {
 
 	statePath := filepath.Join(dir, "replica.json")
 	r := startReplica(t, fleetPath, statePath, "--nats", nd.url(), "--nats-checkpoint-interval", "50ms")
-	rng := rand.New(rand.NewPCG(12, 1))
+	seed := uint64(time.Now().UnixNano())
+	t.Logf("random seed %d", seed)
+	rng := rand.New(rand.NewPCG(seed, 1))
 	kills := map[int]bool{}
 	for len(kills) < 3 {
 		kills[5+rng.IntN(len(batches)-10)] = true

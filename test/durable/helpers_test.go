@@ -110,7 +110,6 @@ func startNodes(t *testing.T, dir string, n int) []*natsNode {
 func (n *natsNode) start(t *testing.T) {
 	t.Helper()
 	n.proc = testenv.StartProc(t, "nats-server "+n.name, n.bin, "-c", n.conf)
-	n.proc.WaitHTTP(t, fmt.Sprintf("http://127.0.0.1:%d/healthz", n.mport))
 }
 
 // waitJetStream waits until the node's JetStream answers, and in a
@@ -119,7 +118,11 @@ func (n *natsNode) waitJetStream(t *testing.T, cluster bool) {
 	t.Helper()
 	deadline := time.Now().Add(testenv.WaitLong)
 	for {
-		body, err := get(fmt.Sprintf("http://127.0.0.1:%d/jsz", n.mport))
+		_, err := get(fmt.Sprintf("http://127.0.0.1:%d/healthz", n.mport))
+		var body string
+		if err == nil {
+			body, err = get(fmt.Sprintf("http://127.0.0.1:%d/jsz", n.mport))
+		}
 		if err == nil && (!cluster || strings.Contains(body, `"leader": "n`)) {
 			return
 		}
