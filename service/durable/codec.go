@@ -87,7 +87,7 @@ func decodeSamples(data []byte, out []ingest.Sample, intern func([]byte) string)
 	}
 	for i := uint64(0); i < n; i++ {
 		l, k := binary.Uvarint(data)
-		if k <= 0 || uint64(len(data)-k) < l+8*4+2 {
+		if k <= 0 || l > uint64(len(data)) || uint64(len(data)-k) < l+8*4+2 {
 			return out, errShort
 		}
 		var s ingest.Sample
