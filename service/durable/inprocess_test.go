@@ -80,6 +80,12 @@ func TestInProcess(t *testing.T) {
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
+			var reqs []*pb.PushRequest // the third unit's batches go over one Stream, pipelined
+			defer func() {
+				if len(reqs) > 0 {
+					streamAll(ctx, t, tel, reqs)
+				}
+			}()
 			for k := 0; k < steps; k += 4 {
 				var req pb.PushRequest
 				for j := k; j < k+4; j++ {
@@ -90,6 +96,10 @@ func TestInProcess(t *testing.T) {
 					}
 					req.Samples = append(req.Samples, &pb.Sample{UnitId: id, Time: timestamppb.New(base.Add(time.Duration(j) * time.Second)),
 						PMw: 200, QMvar: q, VKv: 20.4})
+				}
+				if c == 2 {
+					reqs = append(reqs, &req)
+					continue
 				}
 				for {
 					cctx, ccancel := context.WithTimeout(ctx, testenv.WaitLong)
@@ -143,5 +153,37 @@ func TestInProcess(t *testing.T) {
 	}
 	if a := cp.State.Units[units[0]].Alarms["field"]; !a.Acknowledged {
 		t.Errorf("the acknowledgement is not in the checkpoint: %+v", a)
+	}
+}
+
+// streamAll sends every batch over one Stream without waiting, then
+// reads the answers, which must come in order and account for every
+// sample.
+func streamAll(ctx context.Context, t *testing.T, tel pb.TelemetryServiceClient, reqs []*pb.PushRequest) {
+	sctx, cancel := context.WithTimeout(ctx, testenv.WaitLong)
+	defer cancel()
+	st, err := tel.Stream(sctx)
+	if err != nil {
+		t.Errorf("Stream: %v", err)
+		return
+	}
+	go func() {
+		for i, r := range reqs {
+			r.Sequence = uint64(i + 1)
+			if st.Send(r) != nil {
+				return
+			}
+		}
+		_ = st.CloseSend()
+	}()
+	for i := range reqs {
+		resp, err := st.Recv()
+		if err != nil {
+			t.Errorf("Stream answer %d: %v", i+1, err)
+			return
+		}
+		if resp.Sequence != uint64(i+1) || resp.Accepted != 4 {
+			t.Errorf("Stream answer %d: %v", i+1, resp)
+		}
 	}
 }

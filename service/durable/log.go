@@ -292,10 +292,13 @@ func (l *Log) forget(ids []string) {
 	l.mu.Unlock()
 }
 
-// Append writes smps to the log, one message per partition, waits until
-// the stream has stored every message and this replica has applied
-// them, and returns what applying gave for each sample.
-func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) ([]ingest.Result, []string, error) {
+// Append writes smps to the log, one message per partition, and
+// returns at once; wait waits until the stream has stored every message
+// and this replica has applied them, and returns what applying gave for
+// each sample. Batches appended one after another enter the log in that
+// order, so a stream of batches can be pipelined. wait must be called
+// (with a done ctx to give up).
+func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (func(context.Context) ([]ingest.Result, []string, error), error) {
 	byPart := make([][]int, l.cfg.Partitions)
 	for i := range smps {
 		p := Partition(smps[i].UnitID, l.cfg.Partitions)
@@ -308,7 +311,6 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) ([]
 	}
 	var all []sent
 	var ids []string
-	defer func() { l.forget(ids) }()
 	for p, idx := range byPart {
 		if len(idx) == 0 {
 			continue
@@ -319,41 +321,46 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) ([]
 			Data: encodeSamples(make([]byte, 0, 16+len(idx)*64), smps, idx)}
 		fut, err := l.js.PublishMsgAsync(msg, jetstream.WithExpectStream(l.cfg.Stream))
 		if err != nil {
+			l.forget(ids)
 			l.pubFailed.Inc()
-			return nil, nil, fmt.Errorf("writing to the log: %w", err)
+			return nil, fmt.Errorf("writing to the log: %w", err)
 		}
 		all = append(all, sent{idx, w, fut})
 	}
-	timer := time.NewTimer(l.cfg.Timeout)
-	defer timer.Stop()
-	for _, s := range all {
-		select {
-		case <-s.fut.Ok():
-		case err := <-s.fut.Err():
-			l.pubFailed.Inc()
-			return nil, nil, fmt.Errorf("writing to the log: %w", err)
-		case <-timer.C:
-			l.pubFailed.Inc()
-			return nil, nil, fmt.Errorf("the log did not confirm the write within %s", l.cfg.Timeout)
-		case <-ctx.Done():
-			return nil, nil, ctx.Err()
+	n := len(smps)
+	return func(ctx context.Context) ([]ingest.Result, []string, error) {
+		defer l.forget(ids)
+		timer := time.NewTimer(l.cfg.Timeout)
+		defer timer.Stop()
+		for _, s := range all {
+			select {
+			case <-s.fut.Ok():
+			case err := <-s.fut.Err():
+				l.pubFailed.Inc()
+				return nil, nil, fmt.Errorf("writing to the log: %w", err)
+			case <-timer.C:
+				l.pubFailed.Inc()
+				return nil, nil, fmt.Errorf("the log did not confirm the write within %s", l.cfg.Timeout)
+			case <-ctx.Done():
+				return nil, nil, ctx.Err()
+			}
 		}
-	}
-	res := make([]ingest.Result, len(smps))
-	det := make([]string, len(smps))
-	for _, s := range all {
-		select {
-		case <-s.w.done:
-		case <-timer.C:
-			return nil, nil, fmt.Errorf("written to the log but not applied here within %s (the replica is behind)", l.cfg.Timeout)
-		case <-ctx.Done():
-			return nil, nil, ctx.Err()
+		res := make([]ingest.Result, n)
+		det := make([]string, n)
+		for _, s := range all {
+			select {
+			case <-s.w.done:
+			case <-timer.C:
+				return nil, nil, fmt.Errorf("written to the log but not applied here within %s (the replica is behind)", l.cfg.Timeout)
+			case <-ctx.Done():
+				return nil, nil, ctx.Err()
+			}
+			for j, i := range s.idx {
+				res[i], det[i] = s.w.results[j], s.w.details[j]
+			}
 		}
-		for j, i := range s.idx {
-			res[i], det[i] = s.w.results[j], s.w.details[j]
-		}
-	}
-	return res, det, nil
+		return res, det, nil
+	}, nil
 }
 
 // Acknowledge implements ingest.Actions through the log.

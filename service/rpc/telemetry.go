@@ -52,11 +52,18 @@ type TelemetryOptions struct {
 type Log interface {
 	// Check says what would become of smp, without recording it.
 	Check(now time.Time, smp *ingest.Sample) (ingest.Result, string)
-	// Append writes smps to the log and returns what applying each of
-	// them from the log gave. An error means the samples may or may not
-	// be in the log: nothing is acknowledged, and the client resends.
-	Append(ctx context.Context, now time.Time, smps []ingest.Sample) ([]ingest.Result, []string, error)
+	// Append starts writing smps to the log; wait returns what applying
+	// each of them from the log gave. Batches appended one after another
+	// enter the log in that order. An error (of either) means the
+	// samples may or may not be in the log: nothing is acknowledged, and
+	// the client resends. wait must be called, with a done ctx to give
+	// up.
+	Append(ctx context.Context, now time.Time, smps []ingest.Sample) (wait func(context.Context) ([]ingest.Result, []string, error), err error)
 }
+
+// streamWindow is how many batches of one stream may be in the log at
+// once, waiting to be answered in order.
+const streamWindow = 8
 
 // NewTelemetry returns a TelemetryService over store.
 func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
@@ -95,6 +102,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 			}
 		}
 	}()
+	if t.log != nil {
+		return t.streamLog(st, reqs, errc)
+	}
 	answer := func(req *pb.PushRequest) error {
 		resp, err := t.push(ctx, req)
 		if err != nil {
@@ -130,15 +140,8 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 }
 
 func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
-	if n := len(req.Samples); n > t.maxBatch {
-		st := status.New(codes.InvalidArgument, fmt.Sprintf("batch %d has %d samples, more than the limit of %d: split it", req.Sequence, n, t.maxBatch))
-		if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{{
-			Field:       "samples",
-			Description: fmt.Sprintf("at most %d samples per request, got %d", t.maxBatch, n),
-		}}}); err == nil {
-			st = d
-		}
-		return nil, st.Err()
+	if err := t.checkSize(req); err != nil {
+		return nil, err
 	}
 	now := t.now()
 	if t.log != nil {
@@ -154,6 +157,21 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 	}
 	t.store.Commit(&tally)
 	return resp, nil
+}
+
+// checkSize refuses a batch larger than the limit.
+func (t *Telemetry) checkSize(req *pb.PushRequest) error {
+	if n := len(req.Samples); n > t.maxBatch {
+		st := status.New(codes.InvalidArgument, fmt.Sprintf("batch %d has %d samples, more than the limit of %d: split it", req.Sequence, n, t.maxBatch))
+		if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{{
+			Field:       "samples",
+			Description: fmt.Sprintf("at most %d samples per request, got %d", t.maxBatch, n),
+		}}}); err == nil {
+			st = d
+		}
+		return st.Err()
+	}
+	return nil
 }
 
 // judge converts s into smp and returns what check says of it.
@@ -189,7 +207,19 @@ func answer(resp *pb.PushResponse, i int, res ingest.Result, detail string) {
 // log are counted here; those of the log by its consumer, on every
 // replica alike.
 func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.Time) (*pb.PushResponse, error) {
-	resp := &pb.PushResponse{Sequence: req.Sequence}
+	finish, err := t.startLog(ctx, req, now)
+	if err != nil {
+		return nil, err
+	}
+	return finish(ctx)
+}
+
+// startLog checks the batch and starts writing what passes to the log;
+// finish waits for the log and builds the answer.
+func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.Time) (finish func(context.Context) (*pb.PushResponse, error), err error) {
+	if err := t.checkSize(req); err != nil {
+		return nil, err
+	}
 	var tally ingest.Tally
 	results := make([]ingest.Result, len(req.Samples))
 	details := make([]string, len(req.Samples))
@@ -206,20 +236,112 @@ func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.T
 		results[i], details[i] = res, detail
 		tally[res]++
 	}
+	t.store.Commit(&tally)
+	wait := func(context.Context) ([]ingest.Result, []string, error) { return nil, nil, nil }
 	if len(smps) > 0 {
-		res, det, err := t.log.Append(ctx, now, smps)
+		if wait, err = t.log.Append(ctx, now, smps); err != nil {
+			return nil, unavailable(req, err)
+		}
+	}
+	return func(ctx context.Context) (*pb.PushResponse, error) {
+		res, det, err := wait(ctx)
 		if err != nil {
-			return nil, status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", req.Sequence, err)
+			return nil, unavailable(req, err)
 		}
 		for j, i := range idx {
 			results[i], details[i] = res[j], det[j]
 		}
+		resp := &pb.PushResponse{Sequence: req.Sequence}
+		for i, res := range results {
+			answer(resp, i, res, details[i])
+		}
+		return resp, nil
+	}, nil
+}
+
+func unavailable(req *pb.PushRequest, err error) error {
+	return status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", req.Sequence, err)
+}
+
+// streamLog is Stream on the durable path: up to streamWindow batches
+// are in the log at once, and answered in order as they are applied.
+func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse], reqs <-chan *pb.PushRequest, errc <-chan error) error {
+	ctx := st.Context()
+	pending := make(chan func(context.Context) (*pb.PushResponse, error), streamWindow)
+	sendErr := make(chan error, 1)
+	go func() { // answers in order; ends when pending is closed
+		var failed error
+		dead, cancel := context.WithCancel(ctx)
+		cancel()
+		for finish := range pending {
+			if failed != nil {
+				_, _ = finish(dead) // gives up its wait
+				continue
+			}
+			resp, err := finish(ctx)
+			if err == nil {
+				err = st.Send(resp)
+			}
+			if err != nil {
+				failed = err
+				sendErr <- err
+			}
+		}
+		if failed == nil {
+			sendErr <- nil
+		}
+	}()
+	// end closes the pipeline and returns the first error of the
+	// answers, or err.
+	end := func(err error) error {
+		close(pending)
+		if serr := <-sendErr; serr != nil {
+			return serr
+		}
+		return err
 	}
-	for i, res := range results {
-		answer(resp, i, res, details[i])
+	start := func(req *pb.PushRequest) error {
+		finish, err := t.startLog(ctx, req, t.now())
+		if err != nil {
+			return err
+		}
+		select {
+		case pending <- finish:
+			return nil
+		case err := <-sendErr:
+			sendErr <- err // for end
+			_, _ = finish(ctx)
+			return err
+		}
 	}
-	t.store.Commit(&tally)
-	return resp, nil
+	for {
+		select {
+		case req := <-reqs:
+			if err := ctx.Err(); err != nil {
+				return end(err)
+			}
+			if err := start(req); err != nil {
+				return end(err)
+			}
+		case err := <-errc:
+			if errors.Is(err, io.EOF) {
+				return end(nil)
+			}
+			return end(err)
+		case err := <-sendErr:
+			sendErr <- err
+			return end(err)
+		case <-t.draining:
+			select {
+			case req := <-reqs:
+				if err := start(req); err != nil {
+					return end(err)
+				}
+			default:
+			}
+			return end(status.Error(codes.Unavailable, "genvelope is shutting down: reconnect and resend any batch not acknowledged"))
+		}
+	}
 }
 
 // fromProto converts s into smp, or returns the reason it cannot be.
