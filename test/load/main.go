@@ -337,7 +337,7 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 		if natsProc, url, err = startNATS(ctx, log, cfg.NATSServer, dir, cfg.StartWait); err != nil {
 			return rep, err
 		}
-		if durableProc, _, err = startServe(ctx, log, "serve-nats", bin, fi.Path, dir, false, true, cfg.ServeEnv,
+		if durableProc, _, err = startServe(ctx, log, "serve-nats", bin, fi.Path, dir, cfg.Pprof, true, cfg.ServeEnv,
 			[]string{"--nats", url}, cfg.StartWait); err != nil {
 			return rep, err
 		}
@@ -370,7 +370,9 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 				before[i] = g.k
 			}
 			profile := ""
-			if server == "full" && r == 1 && cfg.CPUProfile != "" {
+			// The profile is of the first phase of the in-process service,
+			// or of the one over JetStream when that is the only one.
+			if r == 1 && cfg.CPUProfile != "" && (server == "full" || server == "nats" && !cfg.has("full")) {
 				profile = cfg.CPUProfile
 			}
 			res, err := runPhase(ctx, log, cfg, server, p, gens, profile)
