@@ -28,14 +28,19 @@ func serveCommand() command {
 	return command{
 		name:    "serve",
 		summary: "run the service: telemetry over gRPC, metrics and health over HTTP",
-		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR]",
+		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR] [--nats URL[,URL...] [--partitions 0-7]]",
 		about: `Serves TelemetryService and FleetService (with the gRPC health protocol and
 server reflection) on --grpc-listen, and /metrics, /healthz, /readyz and
 POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
 file again; a file with errors is refused and the running fleet kept.
 SIGTERM or SIGINT stops: in-flight batches are finished and answered.
 AlarmService watches, acknowledges and shelves limit-approach alarms. The
-state file (--state) keeps thermal memory and alarms across restarts.`,
+state file (--state) keeps thermal memory and alarms across restarts.
+With --nats, accepted samples and operator actions are written to a NATS
+JetStream stream before they are acknowledged, every replica builds its
+state from that log, and --state is its checkpoint (the state and the
+stream sequence it includes); --partitions splits the fleet across
+replicas by the FNV-1a hash of the unit id.`,
 		advises: true,
 		flags: func(fs *flag.FlagSet) func(e env) int {
 			fleetPath := fs.String("fleet", "", "fleet file (YAML)")
