@@ -22,7 +22,7 @@ var sampleDriven = []string{
 	"genvelope_reactive_headroom_vars", "genvelope_limit_margin_ratio", "genvelope_reactive_limit_vars",
 	"genvelope_thermal_capacity_used_ratio", "genvelope_active_power_watts", "genvelope_reactive_power_vars",
 	"genvelope_sample_timestamp_seconds", "genvelope_alarm_level", "genvelope_alarm_acknowledged",
-	"genvelope_samples_total", "genvelope_log_applied_sequence",
+	`genvelope_samples_total{result="accepted"}`, "genvelope_log_applied_sequence",
 }
 
 // waitSameSequence waits until every replica has applied the log to the
@@ -60,13 +60,24 @@ func TestTwoReplicas(t *testing.T) {
 	fleetPath := fleetFile(t, dir, units)
 	a := startReplica(t, fleetPath, filepath.Join(dir, "a.json"), "--nats", nd.url())
 	b := startReplica(t, fleetPath, filepath.Join(dir, "b.json"), "--nats", nd.url())
-	for i, batch := range newTraffic(units, 60).batches(3, nil) {
+	batches := newTraffic(units, 60).batches(3, nil)
+	for i, batch := range batches {
 		pushUntilAnswered(t, []*replica{a, b}[i%2], batch)
+	}
+	// A client resending through the other replica what one of them
+	// acknowledged counts nothing twice.
+	for i, batch := range batches[len(batches)-4:] {
+		if resp := pushUntilAnswered(t, []*replica{b, a}[i%2], batch); resp.Duplicates != uint32(len(batch)) {
+			t.Errorf("resend through the other replica: %v, want %d duplicates", resp, len(batch))
+		}
 	}
 	waitSameSequence(t, a, b)
 	ma, mb := a.metrics(t, sampleDriven...), b.metrics(t, sampleDriven...)
 	if len(ma) < units*10 {
 		t.Fatalf("only %d sample-driven series", len(ma))
+	}
+	if got := ma[`genvelope_samples_total{result="accepted"}`]; got != float64(units*60) {
+		t.Errorf("accepted samples: %v, want %d", got, units*60)
 	}
 	if !maps.Equal(ma, mb) {
 		for k, v := range ma {
