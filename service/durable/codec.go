@@ -28,6 +28,11 @@ const (
 	hasCoolant
 )
 
+// maxSampleBytes bounds what encodeSamples writes for one sample beside
+// its id: the id's length (uvarint), time, three values, flags, three
+// optional values and quality.
+const maxSampleBytes = binary.MaxVarintLen64 + 8 + 3*8 + 1 + 3*8 + 1
+
 // encodeSamples appends the binary form of smps to buf: a uvarint count,
 // then per sample a uvarint id length, the id, the time (Unix ns, int64
 // little endian), P, Q, V (float64 bits, little endian), a flag byte,

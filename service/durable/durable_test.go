@@ -135,3 +135,37 @@ func TestServerAtLeast(t *testing.T) {
 		}
 	}
 }
+
+func TestChunkSamples(t *testing.T) {
+	smps := make([]ingest.Sample, 10)
+	for i := range smps {
+		smps[i].UnitID = "u" // each counts 1 + maxSampleBytes
+	}
+	per := 1 + maxSampleBytes
+	all := []int{0, 1, 2, 3, 4, 5, 6, 7, 8, 9}
+	for _, tc := range []struct {
+		limit int
+		want  []int // chunk lengths
+	}{
+		{10 * per, []int{10}},
+		{4 * per, []int{4, 4, 2}},
+		{per, []int{1, 1, 1, 1, 1, 1, 1, 1, 1, 1}},
+		{1, []int{1, 1, 1, 1, 1, 1, 1, 1, 1, 1}}, // a sample larger than the limit goes alone
+	} {
+		var got []int
+		n := 0
+		for _, c := range chunkSamples(smps, all, tc.limit) {
+			got = append(got, len(c))
+			n += len(c)
+			if data := encodeSamples(nil, smps, c); len(c) > 1 && len(data) > tc.limit {
+				t.Errorf("limit %d: a chunk of %d encodes to %d bytes", tc.limit, len(c), len(data))
+			}
+		}
+		if !reflect.DeepEqual(got, tc.want) || n != len(all) {
+			t.Errorf("limit %d: chunks %v, want %v", tc.limit, got, tc.want)
+		}
+	}
+	if chunkSamples(smps, nil, 100) != nil {
+		t.Error("no samples, yet chunks")
+	}
+}

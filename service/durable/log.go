@@ -311,21 +311,20 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 	}
 	var all []sent
 	var ids []string
-	for p, idx := range byPart {
-		if len(idx) == 0 {
-			continue
+	for p, part := range byPart {
+		for _, idx := range l.chunks(smps, part) {
+			id, w := l.register(len(idx))
+			ids = append(ids, id)
+			msg := &nats.Msg{Subject: l.subject(p), Header: nats.Header{formatHeader: {formatSamples}, idHeader: {id}},
+				Data: encodeSamples(make([]byte, 0, 16+len(idx)*64), smps, idx)}
+			fut, err := l.js.PublishMsgAsync(msg, jetstream.WithExpectStream(l.cfg.Stream))
+			if err != nil {
+				l.forget(ids)
+				l.pubFailed.Inc()
+				return nil, fmt.Errorf("writing to the log: %w", err)
+			}
+			all = append(all, sent{idx, w, fut})
 		}
-		id, w := l.register(len(idx))
-		ids = append(ids, id)
-		msg := &nats.Msg{Subject: l.subject(p), Header: nats.Header{formatHeader: {formatSamples}, idHeader: {id}},
-			Data: encodeSamples(make([]byte, 0, 16+len(idx)*64), smps, idx)}
-		fut, err := l.js.PublishMsgAsync(msg, jetstream.WithExpectStream(l.cfg.Stream))
-		if err != nil {
-			l.forget(ids)
-			l.pubFailed.Inc()
-			return nil, fmt.Errorf("writing to the log: %w", err)
-		}
-		all = append(all, sent{idx, w, fut})
 	}
 	n := len(smps)
 	return func(ctx context.Context) ([]ingest.Result, []string, error) {
@@ -361,6 +360,35 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 		}
 		return res, det, nil
 	}, nil
+}
+
+// chunks splits one partition's samples into runs whose messages stay
+// within half the server's largest payload.
+func (l *Log) chunks(smps []ingest.Sample, idx []int) [][]int {
+	limit := int(l.nc.MaxPayload()) / 2
+	if limit <= 0 {
+		limit = 512 << 10
+	}
+	return chunkSamples(smps, idx, limit)
+}
+
+// chunkSamples splits idx into runs of at most limit encoded bytes (a
+// single sample larger than that goes alone).
+func chunkSamples(smps []ingest.Sample, idx []int, limit int) [][]int {
+	if len(idx) == 0 {
+		return nil
+	}
+	var out [][]int
+	start, size := 0, 0
+	for j, i := range idx {
+		n := len(smps[i].UnitID) + maxSampleBytes
+		if j > start && size+n > limit {
+			out = append(out, idx[start:j])
+			start, size = j, 0
+		}
+		size += n
+	}
+	return append(out, idx[start:])
 }
 
 // Acknowledge implements ingest.Actions through the log.
