@@ -222,6 +222,7 @@ func (l *Log) apply(msg jetstream.Msg) {
 	if seq > l.lastSeq.Load() {
 		l.lastSeq.Store(seq)
 	}
+	l.behind.Store(meta.NumPending)
 	if meta.NumPending == 0 {
 		l.caughtUp.Store(true)
 	}

@@ -133,12 +133,14 @@ type Log struct {
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
 	caughtUp atomic.Bool
+	behind   atomic.Uint64 // messages of the log not yet delivered to this replica, at the last one
 
 	messages   *prometheus.CounterVec
 	pubFailed  prometheus.Counter
 	seqGauge   prometheus.GaugeFunc
 	connected  prometheus.GaugeFunc
 	caughtUpGa prometheus.GaugeFunc
+	behindGa   prometheus.GaugeFunc
 }
 
 // Ledger is what a replica has applied of one unit: the number of
@@ -478,11 +480,15 @@ func (l *Log) metrics() {
 		Namespace: "genvelope", Name: "log_caught_up",
 		Help: "1 when this replica has applied the log up to its end.",
 	}, func() float64 { return b2f(l.caughtUp.Load()) })
+	l.behindGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+		Namespace: "genvelope", Name: "log_pending_messages",
+		Help: "Messages of the log (of the partitions served) not yet delivered to this replica, as of the last one applied.",
+	}, func() float64 { return float64(l.behind.Load()) })
 }
 
 // Collectors returns the log's metrics.
 func (l *Log) Collectors() []prometheus.Collector {
-	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa}
+	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa}
 }
 
 func b2f(b bool) float64 {
