@@ -10,7 +10,7 @@ type Plausibility struct {
 	VoltageMinPU, VoltageMaxPU float64 // terminal voltage, of rated kV
 	PowerMaxPU                 float64 // |P| and |Q|, of rated MVA
 	CurrentMaxPU               float64 // armature current, of rated current
-	FieldMaxPU                 float64 // field current, of IFag
+	FieldMaxPU                 float64 // field current, of the rated field current
 	// StepMaxPU is the largest change of armature current, of rated
 	// current, between two consecutive samples that is taken at face
 	// value; a larger jump is flagged suspect and not held into the
@@ -24,11 +24,12 @@ type Plausibility struct {
 // than a factor of the common unit mix-ups (a value in pu or V instead of
 // kV is off by the rated kV or by 1000); 1.5 pu of rated MVA for P and Q
 // and 2.5 pu armature current cover the short-time overloads of IEEE
-// C50.13 (2.26 pu for 10 s from its K = 37.5 s); 6 × IFag is above the
-// ceiling of common excitation systems (common practice: rated field
-// current 2 to 3 × IFag, ceiling about 2 × rated). A current jump of
-// 1 pu between two samples is flagged.
-var DefaultPlausibility = Plausibility{VoltageMinPU: 0.5, VoltageMaxPU: 1.3, PowerMaxPU: 1.5, CurrentMaxPU: 2.5, FieldMaxPU: 6, StepMaxPU: 1}
+// C50.13 (2.26 pu for 10 s from its K = 37.5 s); 3 × the rated field
+// current is above the ceiling of common excitation systems (common
+// practice: ceiling about 2 × rated; C50.13's field short-time
+// capability is 2.09 × rated for 10 s). A current jump of 1 pu between
+// two samples is flagged.
+var DefaultPlausibility = Plausibility{VoltageMinPU: 0.5, VoltageMaxPU: 1.3, PowerMaxPU: 1.5, CurrentMaxPU: 2.5, FieldMaxPU: 3, StepMaxPU: 1}
 
 // Effective returns p with every zero field replaced by its default.
 func (p Plausibility) Effective() Plausibility {
@@ -60,7 +61,7 @@ func (c *unitCtx) decodePlausibility(v *yaml.Node, path string, line int) {
 	p.VoltageMaxPU, _ = c.number(m, "voltage_max_pu", false, "the highest plausible terminal voltage, pu of rated kV", between(1, 2, false, false))
 	p.PowerMaxPU, _ = c.number(m, "power_max_pu", false, "the largest plausible |P| and |Q|, pu of rated MVA", between(1, 5, false, false))
 	p.CurrentMaxPU, _ = c.number(m, "current_max_pu", false, "the largest plausible armature current, pu of rated", between(1, 10, false, false))
-	p.FieldMaxPU, _ = c.number(m, "field_max_pu", false, "the largest plausible field current, multiple of IFag", between(1, 10, false, false))
+	p.FieldMaxPU, _ = c.number(m, "field_max_pu", false, "the largest plausible field current, multiple of the rated field current", between(1, 10, false, false))
 	p.StepMaxPU, _ = c.number(m, "step_max_pu", false, "the largest armature current change between two samples taken at face value, pu of rated", between(0, 10, true, false))
 	if e := p.Effective(); e.VoltageMinPU >= e.VoltageMaxPU {
 		c.errorf(line, path, "voltage_min_pu %g must be below voltage_max_pu %g", e.VoltageMinPU, e.VoltageMaxPU)
