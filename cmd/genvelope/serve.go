@@ -22,6 +22,8 @@ const (
 	// defaultStatePath is relative to the working directory; an installed
 	// service sets --state under its state directory (/var/lib/genvelope).
 	defaultStatePath = "genvelope-state.json"
+	// defaultJournalPath likewise: the alarm journal.
+	defaultJournalPath = "genvelope-journal.jsonl"
 )
 
 func serveCommand() command {
@@ -42,7 +44,10 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 			grpcListen := fs.String("grpc-listen", defaultGRPCListen, "gRPC listen address")
 			httpListen := fs.String("http-listen", defaultHTTPListen, "HTTP listen address (metrics, health, reload)")
 			maxBatch := fs.Int("max-batch", 10000, "most samples one request may carry")
-			maxFuture := fs.Duration("max-future", 5*time.Minute, "how far ahead of the server clock a sample may be stamped")
+			maxFuture := fs.Duration("max-future", 5*time.Second, "how far ahead of the server clock a sample may be stamped (clock skew)")
+			horizon := fs.Duration("horizon", 7*24*time.Hour, "how far behind the server clock a sample may be stamped; older history: genvelope replay --backfill")
+			journalPath := fs.String("journal", defaultJournalPath, "alarm journal `FILE`: every alarm change and operator action, rotated (FILE.1 ... FILE.4) past --journal-max-bytes; \"\" keeps none")
+			journalMax := fs.Int64("journal-max-bytes", 8<<20, "size at which the journal is rotated")
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
@@ -60,8 +65,8 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 				log := slog.New(h)
 				srv, err := server.New(server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
-					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
-					StatePath: *statePath,
+					Ingest: ingest.Options{MaxFuture: *maxFuture, Horizon: *horizon}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
+					StatePath: *statePath, JournalPath: *journalPath, JournalMaxBytes: *journalMax,
 				})
 				if err != nil {
 					log.Error("cannot start", "err", err)

@@ -21,7 +21,7 @@ func FuzzAccept(f *testing.F) {
 	f.Add(int64(1)<<62, int64(-5), 250.0, 80.0, 20.1, 0.0, false, uint8(7))            // far future, odd quality
 	f.Add(now.Unix()-7*24*3600-1, int64(0), 250.0, 80.0, 20.1, 3000.0, true, uint8(2)) // just before the horizon
 	f.Add(now.Unix(), int64(500000000), 600.0, 550.0, 14.0, 9000.0, true, uint8(0))    // overload, field high
-	fl := exampleFleet(f) // immutable: shared by every run
+	fl := exampleFleet(f)                                                              // immutable: shared by every run
 	f.Fuzz(func(t *testing.T, sec, nsec int64, p, q, v, fa float64, hasFA bool, quality uint8) {
 		s := NewStore(fl, Options{Now: func() time.Time { return now }})
 		wall := now

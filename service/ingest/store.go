@@ -435,7 +435,7 @@ func hint(x float64, ok func(float64) bool, asPU, want, small, lineNeutral strin
 	switch {
 	case asPU != "" && x > 0.3 && x < 2:
 		return fmt.Sprintf("; it looks like %s: send %s", asPU, want)
-	case small != "" && ok(x/1000):
+	case small != "" && ok(x/1000) && !ok(x/10):
 		return fmt.Sprintf("; it looks like %s: send %s", small, want)
 	case lineNeutral != "" && ok(x*math.Sqrt(3)):
 		return fmt.Sprintf("; it looks like %s: send %s line to line", lineNeutral, want)
@@ -643,8 +643,13 @@ func (u *Unit) evaluate() {
 	u.pt = pt
 	u.xArm = u.eval.I / u.eval.IMax
 	ifd := u.eval.IfdModel
-	if pt.IfdMeasured {
+	switch {
+	case pt.IfdMeasured:
 		ifd = pt.Ifd
+	case s.HasFieldA && s.Quality == QualityGood:
+		// The mismatch alarm is active: heat the winding with the larger
+		// of the reading and the model, as neither can be trusted alone.
+		ifd = max(ifd, cfg.Base.FieldPU(s.FieldA))
 	}
 	u.xField = ifd / u.eval.IfdMax
 }

@@ -157,7 +157,7 @@ func fromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
 	smp.UnitID = s.UnitId
 	if s.Time != nil {
 		if err := s.Time.CheckValid(); err != nil {
-			return ingest.RejectOutOfRange, fmt.Sprintf("time: %v", err)
+			return ingest.RejectOutOfRangeTime, fmt.Sprintf("time (%d s, %d ns since 1970) is outside what a time can hold: %v", s.Time.Seconds, s.Time.Nanos, err)
 		}
 		smp.Time = s.Time.AsTime()
 	}
@@ -200,6 +200,10 @@ func reasonProto(r ingest.Result) pb.RejectReason {
 		return pb.RejectReason_REJECT_REASON_INVALID_QUALITY
 	case ingest.RejectMissingTime:
 		return pb.RejectReason_REJECT_REASON_MISSING_TIME
+	case ingest.RejectOutOfRangeTime:
+		return pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME
+	case ingest.RejectImplausible:
+		return pb.RejectReason_REJECT_REASON_IMPLAUSIBLE
 	}
 	return pb.RejectReason_REJECT_REASON_UNSPECIFIED
 }
