@@ -130,7 +130,7 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 	var tally ingest.Tally
 	for i, s := range req.Samples {
 		var smp ingest.Sample
-		res, detail := fromProto(s, &smp)
+		res, detail := FromProto(s, &smp)
 		switch {
 		case res == ingest.Accepted:
 			res, detail = t.store.Accept(now, &smp)
@@ -152,8 +152,8 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 	return resp, nil
 }
 
-// fromProto converts s into smp, or returns the reason it cannot be.
-func fromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
+// FromProto converts s into smp, or returns the reason it cannot be.
+func FromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
 	smp.UnitID = s.UnitId
 	if s.Time != nil {
 		if err := s.Time.CheckValid(); err != nil {
