@@ -576,7 +576,11 @@ func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
 	}
 	u.hArm, u.hField = nanTo1(xa), nanTo1(xf)
 	u.heat[u.accepted%heatSize] = heatStep{t: t, discardable: true}
+	mismatch := u.alarms[alarm.FieldCurrentMismatch].Level
 	u.stepAlarms(t, s, false)
+	if (mismatch == alarm.Normal) != (u.alarms[alarm.FieldCurrentMismatch].Level == alarm.Normal) {
+		u.evaluate() // the reading starts or stops counting with this very sample
+	}
 	return Accepted, ""
 }
 
