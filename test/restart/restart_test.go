@@ -254,10 +254,10 @@ func TestKillDuringFieldOverload(t *testing.T) {
 	t0 := time.Now().Add(-10 * time.Minute).Truncate(time.Second)
 	at := func(i int) time.Time { return t0.Add(time.Duration(i) * time.Second) }
 	var batch []*pb.Sample
-	for i := 0; i <= 20; i++ {
+	for i := -1; i <= 20; i++ { // the sample at -1 s confirms the overload (a first sample is suspect)
 		batch = append(batch, overloaded(at(i)))
 	}
-	if resp := s1.push(t, batch...); resp.Accepted != 21 {
+	if resp := s1.push(t, batch...); resp.Accepted != 22 {
 		t.Fatalf("pushing 20 s of overload: %v", resp)
 	}
 	// Wait for a snapshot that holds the last sample and the unit gone
@@ -274,7 +274,7 @@ func TestKillDuringFieldOverload(t *testing.T) {
 			}
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("no state file with the sample at 20 s within %s", waitLong)
+			t.Fatalf("no state file with the sample at 20 s and %g used within %s", want, waitLong)
 		}
 		time.Sleep(50 * time.Millisecond)
 	}
@@ -296,10 +296,10 @@ func TestKillDuringFieldOverload(t *testing.T) {
 	if got := g.GetLatest().GetTime().AsTime(); !got.Equal(at(20)) {
 		t.Errorf("latest sample after the restart at %s, want %s", got, at(20))
 	}
-	// The whole overload so far, resent: 21 samples, within the 256 recent
+	// The whole overload so far, resent: 22 samples, within the 256 recent
 	// times a snapshot keeps of each unit.
-	if resp := s2.push(t, batch...); resp.Duplicates != 21 || resp.Accepted != 0 || len(resp.Rejected) != 0 {
-		t.Errorf("resending the 21 samples from before the kill: %v, want 21 duplicates", resp)
+	if resp := s2.push(t, batch...); resp.Duplicates != 22 || resp.Accepted != 0 || len(resp.Rejected) != 0 {
+		t.Errorf("resending the 22 samples from before the kill: %v, want 22 duplicates", resp)
 	}
 	if g := s2.unit(t, unit); g.FieldThermalUsedRatio != a {
 		t.Errorf("field_thermal_used_ratio %g after the resend, want %g: duplicates must not heat", g.FieldThermalUsedRatio, a)
