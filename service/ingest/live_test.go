@@ -354,3 +354,52 @@ func TestSnapshotWindowAndValidation(t *testing.T) {
 		t.Error("the bad entry was restored")
 	}
 }
+
+// An alarm held by its off-delay keeps the sentence of what raised it,
+// and a sentence past a limit says "beyond", never a negative "left".
+func TestHeldAlarmKeepsSentence(t *testing.T) {
+	s := NewStore(exampleFleet(t), Options{})
+	w := s.Hub().Watch(64, nil)
+	defer w.Close()
+	now := t0.Add(time.Hour)
+	i := 0
+	push := func(vKV float64, n int) {
+		for range n {
+			smp := good("harrowmere-1", t0.Add(time.Duration(i)*time.Second))
+			smp.VKV = vKV
+			s.Accept(now, &smp)
+			i++
+		}
+	}
+	push(22, 10) // 1.1 pu: past the volts-per-hertz limit
+	var raised string
+	for _, ev := range s.ActiveOf("harrowmere-1") {
+		if ev.Kind == alarm.VoltsPerHertz {
+			raised = ev.Message
+		}
+	}
+	if !strings.Contains(raised, "1.100 pu") {
+		t.Fatalf("raised with %q", raised)
+	}
+	push(20, 5) // back inside, within the 30 s off-delay
+	for _, ev := range s.ActiveOf("harrowmere-1") {
+		if ev.Kind == alarm.VoltsPerHertz && ev.Message != raised {
+			t.Errorf("held alarm says %q, want what raised it: %q", ev.Message, raised)
+		}
+	}
+	for _, c := range []struct {
+		k   alarm.Kind
+		ctx alarm.Context
+	}{
+		{alarm.Stability, alarm.Context{QMvar: -100.5, QMinMvar: ptrF(-100)}},
+		{alarm.Field, alarm.Context{QMvar: 200.5, QMaxMvar: ptrF(200), QMaxLimit: "field"}},
+		{alarm.PrimeMover, alarm.Context{PMW: 340.5, PMaxMW: 340}},
+	} {
+		m := alarm.Message("u", c.k, alarm.Critical, alarm.Warning, -0.01, &c.ctx)
+		if !strings.Contains(m, "0.5 ") || !strings.Contains(m, "beyond") || strings.Contains(m, "-0.5") {
+			t.Errorf("%s: %q, want 0.5 ... beyond", c.k, m)
+		}
+	}
+}
+
+func ptrF(x float64) *float64 { return &x }
