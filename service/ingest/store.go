@@ -347,11 +347,13 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 		return RejectOutOfRangeTime, fmt.Sprintf("time %s is outside what the service can represent (%s to %s)",
 			smp.Time.UTC().Format(time.RFC3339Nano), minTime.Format(time.RFC3339), maxTime.Format(time.RFC3339))
 	}
-	if smp.Time.Before(now.Add(-s.opts.Horizon)) {
+	// Within the representable range: the rest is integer arithmetic.
+	t, nowNS := smp.Time.UnixNano(), now.UnixNano()
+	if t < satAdd(nowNS, -int64(s.opts.Horizon)) {
 		return RejectOutOfRangeTime, fmt.Sprintf("time %s is more than %s before the server clock (%s); evaluate older history with genvelope replay --backfill",
 			smp.Time.UTC().Format(time.RFC3339Nano), s.opts.Horizon, now.UTC().Format(time.RFC3339))
 	}
-	if smp.Time.After(now.Add(s.opts.MaxFuture)) {
+	if t > satAdd(nowNS, int64(s.opts.MaxFuture)) {
 		return RejectFuture, fmt.Sprintf("time %s is ahead of the server clock %s by more than %s (check the sender's clock)",
 			smp.Time.UTC().Format(time.RFC3339Nano), now.UTC().Format(time.RFC3339Nano), s.opts.MaxFuture)
 	}
@@ -361,7 +363,19 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	if r, d := checkValues(e.cfg, e.plaus, smp); r != Accepted {
 		return r, d
 	}
-	return u.accept(smp, now, s)
+	return u.accept(smp, t, now, s)
+}
+
+// satAdd returns a + b, saturated at the ends of int64.
+func satAdd(a, b int64) int64 {
+	c := a + b
+	switch {
+	case b > 0 && c < a:
+		return math.MaxInt64
+	case b < 0 && c > a:
+		return math.MinInt64
+	}
+	return c
 }
 
 // minTime and maxTime bound the sample times the service can hold in
@@ -419,7 +433,7 @@ func checkPlausible(cfg *fleet.Unit, p *fleet.Plausibility, smp *Sample) (Result
 	}
 	// Armature current, pu of rated: S/V in pu. The voltage is already
 	// known to be plausible.
-	iPU := math.Hypot(smp.PMW, smp.QMvar) / r.MVA / (smp.VKV / r.KV)
+	iPU := math.Sqrt(smp.PMW*smp.PMW+smp.QMvar*smp.QMvar) / r.MVA / (smp.VKV / r.KV) // P and Q are bounded above: no overflow
 	if iPU > p.CurrentMaxPU {
 		return RejectImplausible, fmt.Sprintf("armature current %.2f pu (from P %g MW, Q %g Mvar at %g kV) is above the plausible %g pu of rated; check that P, Q and V are in MW, Mvar and line-line kV",
 			iPU, smp.PMW, smp.QMvar, smp.VKV, p.CurrentMaxPU)
@@ -518,9 +532,8 @@ type heatStep struct {
 // accept records a checked sample: a duplicate when its timestamp is
 // one the unit has accepted, out of order when it is older than the
 // latest, else evaluated and stored.
-func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
+func (u *Unit) accept(smp *Sample, t int64, now time.Time, s *Store) (Result, string) {
 	maxHold := int64(s.opts.MaxHold)
-	t := smp.Time.UnixNano()
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	if u.n > 0 {
