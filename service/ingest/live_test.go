@@ -2,6 +2,7 @@ package ingest
 
 import (
 	"math"
+	"path/filepath"
 	"strings"
 	"testing"
 	"time"
@@ -9,6 +10,7 @@ import (
 	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/journal"
 )
 
 // A sample stamped in the year 1000 (a typo in a CSV year) is rejected
@@ -286,7 +288,12 @@ func TestFrozenFieldSensorUsesModel(t *testing.T) {
 // its thermal memory: added again, it comes back warm.
 func TestReloadRemovesAndRestoresWarm(t *testing.T) {
 	fl := exampleFleet(t)
-	s := NewStore(fl, Options{})
+	j, err := journal.Open(filepath.Join(t.TempDir(), "j"), journal.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer j.Close()
+	s := NewStore(fl, Options{Journal: j})
 	now := t0.Add(time.Hour)
 	for i := range 20 {
 		smp := good("harrowmere-1", t0.Add(time.Duration(i)*time.Second))
@@ -322,6 +329,19 @@ func TestReloadRemovesAndRestoresWarm(t *testing.T) {
 	s.Replace(exampleFleet(t))
 	if h := s.Unit("harrowmere-1").View().Armature.H; h != 12 {
 		t.Errorf("re-added unit's armature H = %v, want 12 (warm)", h)
+	}
+	// Journalled: the alarm's rise, its end by removal, both reloads.
+	es, _, err := j.Query(journal.Filter{Changes: []string{journal.ChangeRemoved, journal.ChangeReload}}, 10, "")
+	if err != nil || len(es) < 3 {
+		t.Fatalf("journal %+v %v, want two reloads and the removals", es, err)
+	}
+	if !strings.Contains(es[0].Message, "Back with their state: harrowmere-1") || !strings.Contains(es[1].Message, "Removed: harrowmere-1") {
+		t.Errorf("reload entries %+v", es[:2])
+	}
+	for _, e := range es[2:] {
+		if e.Change != journal.ChangeRemoved || e.Unit != "harrowmere-1" || e.Level != "normal" || e.Prev == "normal" {
+			t.Errorf("removal entry %+v", e)
+		}
 	}
 }
 
