@@ -392,6 +392,29 @@ func (j *Journal) Query(f Filter, size int, token string) ([]Entry, string, erro
 		}
 		before = b
 	}
+	out, more, err := j.query(&f, size, before)
+	if err != nil {
+		return nil, "", err
+	}
+	next := ""
+	if more {
+		next = makeToken(out[len(out)-1].Seq)
+	}
+	return out, next, nil
+}
+
+// Matching returns up to limit entries that match f, newest first, in
+// one pass over the files (for a download); more reports whether there
+// were others.
+func (j *Journal) Matching(f Filter, limit int) (entries []Entry, more bool, err error) {
+	if err := f.Check(); err != nil {
+		return nil, false, err
+	}
+	return j.query(&f, limit, math.MaxUint64)
+}
+
+// query collects up to size matching entries older than before.
+func (j *Journal) query(f *Filter, size int, before uint64) ([]Entry, bool, error) {
 	j.mu.Lock()
 	keep := j.opts.Keep
 	j.mu.Unlock()
@@ -408,7 +431,7 @@ func (j *Journal) Query(f Filter, size int, token string) ([]Entry, string, erro
 			return true
 		})
 		if err != nil {
-			return nil, "", err
+			return nil, false, err
 		}
 		for k := len(in) - 1; k >= 0; k-- {
 			if len(out) == size {
@@ -418,11 +441,7 @@ func (j *Journal) Query(f Filter, size int, token string) ([]Entry, string, erro
 			out = append(out, in[k])
 		}
 	}
-	next := ""
-	if more {
-		next = makeToken(out[len(out)-1].Seq)
-	}
-	return out, next, nil
+	return out, more, nil
 }
 
 func makeToken(seq uint64) string {

@@ -104,19 +104,13 @@ func (ui *UI) journalPage(w http.ResponseWriter, r *http.Request) {
 
 // journalCSV writes every entry that matches f, newest first.
 func (ui *UI) journalCSV(w http.ResponseWriter, j *journal.Journal, f journal.Filter) {
-	var all []journal.Entry
-	tok := ""
-	for len(all) < maxCSVEntries {
-		es, next, err := j.Query(f, journal.MaxPage, tok)
-		if err != nil {
-			http.Error(w, "The journal could not be read: "+err.Error(), http.StatusBadRequest)
-			return
-		}
-		all = append(all, es...)
-		if next == "" {
-			break
-		}
-		tok = next
+	all, more, err := j.Matching(f, maxCSVEntries)
+	if err != nil {
+		http.Error(w, "The journal could not be read: "+err.Error(), http.StatusBadRequest)
+		return
+	}
+	if more {
+		ui.log.Warn("journal CSV cut at its bound", "entries", maxCSVEntries)
 	}
 	w.Header().Set("Content-Type", "text/csv; charset=utf-8")
 	w.Header().Set("Content-Disposition", fmt.Sprintf(`attachment; filename="genvelope-journal-%s.csv"`, ui.opts.Now().UTC().Format("20060102T150405Z")))
