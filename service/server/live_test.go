@@ -5,6 +5,7 @@ import (
 	"errors"
 	"io"
 	"log/slog"
+	"math"
 	"net/http"
 	"os"
 	"path/filepath"
@@ -331,5 +332,64 @@ func TestNoDataInMetrics(t *testing.T) {
 	}
 	if v, ok := metricValue(fams, "genvelope_unit_data_state", map[string]string{"unit": "brindle-gt3", "state": "fresh"}); !ok || v != 0 {
 		t.Errorf("fresh %v %v, want 0", v, ok)
+	}
+}
+
+// A unit that stops reporting during a field overload, over the running
+// service on the real clock: its field thermal alarm rises with no new
+// sample (the winding is assumed to go on heating, C50.13 (x² − 1)·t),
+// then the unit turns stale and its thermal state unknown, the alarm
+// kept. (A unit that stops below its rating cooling: TestWallClockSupervision
+// in service/ingest.)
+func TestWallClockOverloadThenStale(t *testing.T) {
+	path := fleetWith(t, "alarms:\n  limits:\n    field_thermal: {warning: 0.15, critical: 0.9, on_delay_s: 0}\n    stale_telemetry: {warning: 4, critical: 120}\n")
+	r := start(t, server.Config{FleetPath: path})
+	ctx := ctxT(t)
+	const unit = "larchwater-2" // rated_a 1320 A, no coolant table
+	ev := r.watch(t, &pb.AlarmFilter{UnitIds: []string{unit}})
+	now := time.Now()
+	var batch []*pb.Sample
+	for i := -2; i <= 0; i++ { // 146 %: 0.034 of the capability, below the warning
+		s := sample(unit, now.Add(time.Duration(i)*time.Second), 80, 10, 13.8)
+		s.FieldA = f64(1.46 * 1320)
+		batch = append(batch, s)
+	}
+	r.push(t, ctx, batch...)
+	get := func() *pb.GetUnitResponse {
+		u, err := r.fleet.GetUnit(ctx, &pb.GetUnitRequest{UnitId: unit})
+		if err != nil {
+			t.Fatal(err)
+		}
+		return u
+	}
+	if u := get(); u.FieldThermalUsedRatio >= 0.15 || u.DataState != "fresh" {
+		t.Fatalf("after the samples: %.3f used, %s", u.FieldThermalUsedRatio, u.DataState)
+	}
+	w := ev.next(t, "field_thermal warning without a sample", func(e *pb.AlarmEvent) bool {
+		return is(unit, "field_thermal", pb.AlarmChange_ALARM_CHANGE_LEVEL)(e) && e.Level == pb.AlarmLevel_ALARM_LEVEL_WARNING
+	})
+	if w.Value < 0.15 {
+		t.Errorf("warning at %.3f used", w.Value)
+	}
+	ev.next(t, "stale telemetry", func(e *pb.AlarmEvent) bool {
+		return is(unit, "stale_telemetry", pb.AlarmChange_ALARM_CHANGE_LEVEL)(e) && e.Level >= pb.AlarmLevel_ALARM_LEVEL_WARNING
+	})
+	waitFor(t, "the unit stale", func() bool { return get().DataState == "stale" })
+	u := get()
+	// Heating stops at the stale threshold: 1 s between the samples (the
+	// first is suspect, confirmed by the second) and 4 s held after them.
+	if want := 5 * (1.46*1.46 - 1) / 33.75; !u.ThermalUnknown || math.Abs(u.FieldThermalUsedRatio-want) > 1e-6 {
+		t.Errorf("stale: thermal unknown %v, %.4f used; want unknown and %.4f", u.ThermalUnknown, u.FieldThermalUsedRatio, want)
+	}
+	al, err := pb.NewAlarmServiceClient(r.conn).ListAlarms(ctx, &pb.ListAlarmsRequest{Filter: &pb.AlarmFilter{UnitIds: []string{unit}}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	held := false
+	for _, a := range al.Alarms {
+		held = held || a.Limit == "field_thermal" && a.Level == pb.AlarmLevel_ALARM_LEVEL_WARNING
+	}
+	if !held {
+		t.Errorf("the field thermal alarm did not stay while stale: %v", al.Alarms)
 	}
 }
