@@ -37,7 +37,10 @@ POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
 file again; a file with errors is refused and the running fleet kept.
 SIGTERM or SIGINT stops: in-flight batches are finished and answered.
 AlarmService watches, acknowledges and shelves limit-approach alarms. The
-state file (--state) keeps thermal memory and alarms across restarts.`,
+state file (--state) keeps thermal memory and alarms across restarts; the
+journal (--journal) records every alarm change and operator action, read
+with JournalService, on the page /journal or as CSV. Samples stamped more
+than --max-future ahead or --horizon behind the server clock are refused.`,
 		advises: true,
 		flags: func(fs *flag.FlagSet) func(e env) int {
 			fleetPath := fs.String("fleet", "", "fleet file (YAML)")
