@@ -595,7 +595,7 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		return interval{}, false, false
 	}
 	if none {
-		return interval{}, true, false // no stable operation
+		return interval{}, true, smooth // no stable operation
 	}
 	if moved && top < qTop {
 		iv.top = some(top)
@@ -611,7 +611,8 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 // at interpolates the table at grid coordinates x (along p) and y (along
 // v), both inside the grid: q_stability, the top, whether the top moved
 // at a node around, whether the nearest node has no stable operation,
-// and whether the cell is smooth.
+// and whether the cell is smooth (or, with none, whether no node around
+// has stable operation).
 func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool) {
 	ip, jv := int(x), int(y)
 	if ip == t.np-1 {
@@ -632,7 +633,13 @@ func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool
 		}
 	}
 	if t.low[idx[near]] == tabNone {
-		return 0, 0, false, true, false
+		// No stable operation; trusted without a check when no node
+		// around has any.
+		all := true
+		for _, j := range idx {
+			all = all && t.low[j] == tabNone
+		}
+		return 0, 0, false, true, all
 	}
 	var sw float64
 	for i, j := range idx {
