@@ -318,7 +318,7 @@ func (u *Unit) RotorMode(pt Point) (mode RotorMode, ok bool, err error) {
 			continue
 		}
 		part := 0.0
-		for _, s := range []int{ssW, ssD} {
+		for _, s := range [...]int{ssW, ssD} {
 			part += cabs(cmplx.Conj(vl.At(s, i))*vr.At(s, i)) / cabs(dot)
 		}
 		if part > best {
