@@ -596,3 +596,24 @@ func TestAVRTableOffGrid(t *testing.T) {
 		}
 	}
 }
+
+// Nonsense operating points on the avr basis neither panic nor give a
+// present bound that is NaN.
+func TestAVRNonsensePoints(t *testing.T) {
+	u := benchAVR(t)
+	var h Hint
+	for _, pt := range []Point{{P: 0.5, V: 0}, {P: math.NaN(), V: 1}, {P: 0.5, V: math.NaN()}, {P: 0.5, Q: math.Inf(1), V: 1}, {P: -0.5, V: 1}, {P: 3, V: 1}} {
+		for _, r := range []Result{u.Evaluate(pt, nil), u.Evaluate(pt, &h), u.EvaluateSample(pt, &h)} {
+			// (The field limit is not this basis' business: with v NaN it is
+			// NaN on both bases, left to the input checks of the service.)
+			for _, b := range []Bound{r.QMin, r.Stability, r.Practical, r.StabilityTop} {
+				if b.OK && math.IsNaN(b.V) {
+					t.Errorf("point %+v: a present bound is NaN: %+v", pt, r.Bounds)
+				}
+			}
+		}
+		if _, _, err := u.RotorMode(pt); err != nil && !errors.Is(err, ErrSmallSignal) {
+			t.Errorf("point %+v: rotor mode error %v", pt, err)
+		}
+	}
+}
