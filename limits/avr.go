@@ -368,8 +368,8 @@ func toQ16(q float64) int16 {
 const (
 	tabPMax     = 1.2
 	tabPStep    = 0.05
-	tabVLo      = 0.8
-	tabVHi      = 1.2
+	tabVLo      = 0.85
+	tabVHi      = 1.15
 	tabVStep    = 0.05
 	tabScanStep = 0.2
 	tabTol      = 1e-4
