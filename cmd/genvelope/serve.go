@@ -30,7 +30,7 @@ func serveCommand() command {
 	return command{
 		name:    "serve",
 		summary: "run the service: telemetry over gRPC, metrics and health over HTTP",
-		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR]",
+		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR] [--nats URL[,URL...] [--partitions 0-7]]",
 		about: `Serves TelemetryService and FleetService (with the gRPC health protocol and
 server reflection) on --grpc-listen, and /metrics, /healthz, /readyz and
 POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
@@ -40,7 +40,12 @@ AlarmService watches, acknowledges and shelves limit-approach alarms. The
 state file (--state) keeps thermal memory and alarms across restarts; the
 journal (--journal) records every alarm change and operator action, read
 with JournalService, on the page /journal or as CSV. Samples stamped more
-than --max-future ahead or --horizon behind the server clock are refused.`,
+than --max-future ahead or --horizon behind the server clock are refused.
+With --nats, accepted samples and operator actions are written to a NATS
+JetStream stream before they are acknowledged, every replica builds its
+state from that log, and --state is its checkpoint (the state and the
+stream sequence it includes); --partitions splits the fleet across
+replicas by the FNV-1a hash of the unit id.`,
 		advises: true,
 		flags: func(fs *flag.FlagSet) func(e env) int {
 			fleetPath := fs.String("fleet", "", "fleet file (YAML)")
@@ -54,6 +59,7 @@ than --max-future ahead or --horizon behind the server clock are refused.`,
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
+			nf := addNATSFlags(fs)
 			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
 			fs.Var(logFormat, "log-format", "log format: text or json")
 			return func(e env) int {
@@ -66,11 +72,21 @@ than --max-future ahead or --horizon behind the server clock are refused.`,
 					h = slog.NewJSONHandler(e.stderr, nil)
 				}
 				log := slog.New(h)
-				srv, err := server.New(server.Config{
+				cfg := server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture, Horizon: *horizon}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
 					StatePath: *statePath, JournalPath: *journalPath, JournalMaxBytes: *journalMax,
-				})
+				}
+				if nf.enabled() {
+					dl, err := nf.open(*statePath, log)
+					if err != nil {
+						log.Error("cannot start", "err", err)
+						return exitFailure
+					}
+					defer dl.Close()
+					cfg.Log = dl
+				}
+				srv, err := server.New(cfg)
 				if err != nil {
 					log.Error("cannot start", "err", err)
 					return exitUsage

@@ -332,12 +332,36 @@ func (s *Store) Commit(t *Tally) {
 // server clock, used only for the "too far in the future" check. For a
 // rejected sample, detail says what was wrong in words for the sender.
 func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(now, smp)
+	if res != Accepted {
+		return res, detail
+	}
+	return u.accept(smp, smp.Time.UnixNano(), now, s)
+}
+
+// Check says what Accept would answer for smp now, without recording
+// anything: a replicated service checks a sample before it writes it to
+// its log, and applies it with Accept when it reads it back.
+func (s *Store) Check(now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(now, smp)
+	if res != Accepted {
+		return res, detail
+	}
+	return u.order(smp.Time.UnixNano(), smp)
+}
+
+// precheck runs the checks of a sample that need no unit state.
+func (s *Store) precheck(now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
 	e, ok := sn.byID[smp.UnitID]
-	u := e.u
 	if !ok {
-		return RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
+		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
 	}
+	r, d := s.checkSample(e, now, smp)
+	return e.u, r, d
+}
+
+func (s *Store) checkSample(e entry, now time.Time, smp *Sample) (Result, string) {
 	if smp.Time.IsZero() {
 		return RejectMissingTime, "the sample has no time"
 	}
@@ -360,10 +384,7 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	if smp.Quality == QualityInvalid {
 		return RejectInvalidQuality, "the sample's quality is INVALID"
 	}
-	if r, d := checkValues(e.cfg, e.plaus, smp); r != Accepted {
-		return r, d
-	}
-	return u.accept(smp, t, now, s)
+	return checkValues(e.cfg, e.plaus, smp)
 }
 
 // satAdd returns a + b, saturated at the ends of int64.
@@ -536,24 +557,17 @@ func (u *Unit) accept(smp *Sample, t int64, now time.Time, s *Store) (Result, st
 	maxHold := int64(s.opts.MaxHold)
 	u.mu.Lock()
 	defer u.mu.Unlock()
-	if u.n > 0 {
-		last := u.ring[(u.head+ringSize-1)%ringSize]
-		if t <= last {
-			if u.seen(t) {
-				return Duplicate, ""
-			}
-			// The latest sample was stamped ahead of the clock when it
-			// arrived: it holds the order only up to its arrival, and
-			// a sample stamped after that supersedes it.
-			if !(u.has && u.lastNS > u.recvNS && t > u.recvNS) {
-				return RejectOutOfOrder, u.outOfOrder(smp, last)
-			}
-			for u.n > 0 && u.ring[(u.head+ringSize-1)%ringSize] > t {
-				u.head = (u.head + ringSize - 1) % ringSize
-				u.n--
-			}
-			u.thermNS = min(u.thermNS, t)
+	if r, d := u.orderLocked(t, smp); r != Accepted {
+		return r, d
+	}
+	if u.n > 0 && t <= u.ring[(u.head+ringSize-1)%ringSize] {
+		// Superseding a sample stamped ahead of the clock (orderLocked):
+		// forget the times after t.
+		for u.n > 0 && u.ring[(u.head+ringSize-1)%ringSize] > t {
+			u.head = (u.head + ringSize - 1) % ringSize
+			u.n--
 		}
+		u.thermNS = min(u.thermNS, t)
 	}
 	gap := !u.has || u.stale || t-u.lastNS > maxHold
 	if u.has && !u.stale && t > u.thermNS {
@@ -618,6 +632,35 @@ func (u *Unit) advance(dt int64) {
 	u.field.Advance(u.hField, sec)
 	h.arm += u.armature.H - a0
 	h.field += u.field.H - f0
+}
+
+// order says whether a sample at t is new (Accepted), a Duplicate or out
+// of order for the unit.
+func (u *Unit) order(t int64, smp *Sample) (Result, string) {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	return u.orderLocked(t, smp)
+}
+
+// orderLocked is order with u.mu held. A sample older than the latest
+// is new when the latest was stamped ahead of the clock when it arrived
+// and this one after that moment: the future sample holds the order only
+// up to its arrival, and this one supersedes it.
+func (u *Unit) orderLocked(t int64, smp *Sample) (Result, string) {
+	if u.n == 0 {
+		return Accepted, ""
+	}
+	last := u.ring[(u.head+ringSize-1)%ringSize]
+	if t > last {
+		return Accepted, ""
+	}
+	if u.seen(t) {
+		return Duplicate, ""
+	}
+	if u.has && u.lastNS > u.recvNS && t > u.recvNS {
+		return Accepted, ""
+	}
+	return RejectOutOfOrder, u.outOfOrder(smp, last)
 }
 
 // outOfOrder says why a sample at or before the unit's latest time last

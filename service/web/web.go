@@ -63,6 +63,9 @@ type Options struct {
 	// 2 s.
 	RefreshEvery time.Duration
 	Journal      *journal.Journal // the alarm journal for /journal; nil when none is kept
+	// Actions apply acknowledgements and shelves; default the store
+	// itself (a replicated service passes its log).
+	Actions ingest.Actions
 }
 
 func (o Options) withDefaults() Options {
@@ -109,6 +112,9 @@ type cachedChart struct {
 // New returns the web interface over store.
 func New(store *ingest.Store, opts Options) *UI {
 	opts = opts.withDefaults()
+	if opts.Actions == nil {
+		opts.Actions = ingest.StoreActions{Store: store}
+	}
 	ui := &UI{store: store, opts: opts, log: opts.Logger, charts: map[string]cachedChart{}}
 	ui.trails.init(opts.TrailLength)
 	ui.assets = assetURLs()
