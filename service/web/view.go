@@ -122,14 +122,14 @@ var (
 	stateNoData = dataState{"no data", "st-nodata"}
 )
 
-// stateOf returns the freshness of v at wall-clock now: no data without
-// an accepted sample, stale when the latest arrived longer ago than the
-// unit's stale-telemetry warning threshold.
-func stateOf(v *ingest.View, now time.Time) dataState {
-	switch {
-	case !v.HasSample:
+// stateOf returns the freshness of v as ingest judges it (View.Data): no
+// data without an accepted sample, stale when no sample came within the
+// unit's stale-telemetry warning threshold of wall-clock time.
+func stateOf(v *ingest.View) dataState {
+	switch v.Data {
+	case ingest.NoData:
 		return stateNoData
-	case now.Sub(v.Received).Seconds() > v.Config.Alarms[alarm.StaleTelemetry].Warning:
+	case ingest.DataStale:
 		return stateStale
 	}
 	return stateLive
@@ -334,7 +334,7 @@ func (ui *UI) fleetData() *fleetData {
 		v := u.View()
 		cfg := v.Config
 		r := row{ID: cfg.ID, Name: cfg.DisplayName(), Site: cfg.Site, Href: unitURL(cfg.ID), HasSample: v.HasSample,
-			State: stateOf(&v, now), Alarms: summarize(&v.Alarms, now), Cause: ui.causeOf(&v, now)}
+			State: stateOf(&v), Alarms: summarize(&v.Alarms, now), Cause: ui.causeOf(&v, now)}
 		r.Badge = badgeOf(&r.Alarms, r.State)
 		margin := math.Inf(1)
 		if ev := evaluation(&v); ev != nil {
@@ -477,7 +477,7 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 	v := u.View()
 	cfg := v.Config
 	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID),
-		State: stateOf(&v, now)}
+		State: stateOf(&v)}
 	d.Badge = badgeOf(&d.Alarms, d.State)
 	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
 	r := cfg.Rating
