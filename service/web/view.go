@@ -457,6 +457,7 @@ type thermalRow struct {
 	Current  num // pu of the continuous rating
 	TimeLeft string
 	Level    level
+	Unknown  bool // the unit is stale: its thermal state is not known
 }
 
 // alarmRow is one alarm on the unit page.
@@ -507,6 +508,9 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			} else {
 				mr.Level = levelOf(alarm.Normal)
 			}
+			if d.State == stateStale && mr.Level.Level == alarm.Normal {
+				mr.Level = badgeOf(&alarmSummary{Highest: mr.Level}, stateStale) // old values: never "normal"
+			}
 			if m != nil {
 				mr.Fill = fill(*m)
 			}
@@ -525,6 +529,13 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			tr := thermalRow{Title: w.title, Used: fmtPct(&used, 0), Fill: fill(used), Current: fmtNum(&w.x, 3), Level: d.Alarms.ByKind[w.kind]}
 			if s, ok := w.t.TimeLeft(w.x, w.k); ok {
 				tr.TimeLeft = fmtAge(time.Duration(s * float64(time.Second)))
+			}
+			if v.ThermalUnknown {
+				// Stale: what the winding carries now is not known.
+				tr.Used, tr.Fill, tr.TimeLeft, tr.Unknown = num{Text: "unknown (stale)"}, 0, "", true
+				if tr.Level.Level == alarm.Normal {
+					tr.Level = badgeOf(&alarmSummary{Highest: tr.Level}, stateStale)
+				}
 			}
 			d.Thermal = append(d.Thermal, tr)
 		}

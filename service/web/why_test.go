@@ -46,6 +46,14 @@ func TestOverviewStates(t *testing.T) {
 			if d.Stale != tc.stale || d.NoData != tc.nd {
 				t.Errorf("summary: %d stale, %d no data; want %d, %d", d.Stale, d.NoData, tc.stale, tc.nd)
 			}
+			if tc.want == "stale" {
+				ud := f.ui.unitData(f.store.Unit("harrowmere-1"))
+				for _, th := range ud.Thermal {
+					if th.Used.Text != "unknown (stale)" || th.Level.Word == "normal" {
+						t.Errorf("stale unit's %s: %q, %q; want unknown, never normal", th.Title, th.Used.Text, th.Level.Word)
+					}
+				}
+			}
 			body := f.get(t, "/").body
 			if tc.want != "live" && !strings.Contains(body, `data-state="`+tc.want+`"`) {
 				t.Errorf("the overview does not mark %q", tc.want)

@@ -297,6 +297,13 @@ func TestStaleOnPages(t *testing.T) {
 		t.Errorf("stale unit page: %q", got)
 	}
 	viewportShot(t, tab, dir, "stale-unit.png")
+	if got := eval[string](t, tab, `document.querySelector("table.thermal").textContent.replace(/\s+/g, " ")`); strings.Count(got, "unknown (stale)") != 2 || strings.Contains(got, "normal") {
+		t.Errorf("stale unit's thermal state: %q, want unknown for both windings, never normal", got)
+	}
+	if got := eval[string](t, tab, `document.querySelector("table.margins").textContent.replace(/\s+/g, " ")`); strings.Contains(got, "normal") {
+		t.Errorf("stale unit's margins say normal: %q", got)
+	}
+	screenshot(t, tab, dir, "stale-unit-full.png")
 	for _, e := range consoleErrors() {
 		t.Errorf("browser console: %s", e)
 	}
