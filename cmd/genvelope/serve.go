@@ -43,7 +43,8 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 			httpListen := fs.String("http-listen", defaultHTTPListen, "HTTP listen address (metrics, health, reload)")
 			maxBatch := fs.Int("max-batch", 10000, "most samples one request may carry")
 			maxFuture := fs.Duration("max-future", 5*time.Minute, "how far ahead of the server clock a sample may be stamped")
-			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
+			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener (admin role under --access; see --pprof-listen)")
+			sec := addSecurityFlags(fs)
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
 			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
@@ -61,7 +62,7 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 				srv, err := server.New(server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
-					StatePath: *statePath,
+					StatePath: *statePath, Security: *sec,
 				})
 				if err != nil {
 					log.Error("cannot start", "err", err)

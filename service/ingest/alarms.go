@@ -227,7 +227,7 @@ var (
 func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) error {
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	u.mu.Lock()
 	defer u.mu.Unlock()
@@ -250,7 +250,7 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string) error {
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	u.mu.Lock()
 	defer u.mu.Unlock()

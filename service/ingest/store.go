@@ -47,6 +47,25 @@ type Sample struct {
 	Quality Quality
 }
 
+// ClipID returns a unit id for an answer or a log line: at most 64
+// bytes, cut at a character boundary and marked, so that a huge id is
+// not echoed back whole.
+func ClipID(id string) string {
+	const max = 64
+	if len(id) <= max {
+		return id
+	}
+	cut := max
+	for cut > 0 && id[cut]&0xC0 == 0x80 {
+		cut--
+	}
+	return id[:cut] + "…"
+}
+
+// MaxShelve is the longest an operator may shelve an alarm for, on
+// every path (gRPC and the pages).
+const MaxShelve = 24 * time.Hour
+
 // Result is what became of one sample.
 type Result uint8
 
@@ -62,12 +81,14 @@ const (
 	RejectFuture
 	RejectInvalidQuality
 	RejectMissingTime
+	RejectPermissionDenied // the caller may not push for the unit (access file)
 	NumResults
 )
 
 var resultNames = [NumResults]string{
 	"accepted", "duplicate", "unknown_unit", "not_finite", "out_of_range",
 	"out_of_order", "future", "invalid_quality", "missing_time",
+	"permission_denied",
 }
 
 // String returns the result's name as used in the metrics: "accepted",
@@ -222,7 +243,7 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	e, ok := sn.byID[smp.UnitID]
 	u := e.u
 	if !ok {
-		return RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
+		return RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
 	}
 	if smp.Time.IsZero() {
 		return RejectMissingTime, "the sample has no time"

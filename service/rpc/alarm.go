@@ -21,8 +21,9 @@ import (
 // it is ended.
 const DefaultWatchBuffer = 1024
 
-// MaxShelve is the longest an alarm may be shelved in one call.
-const MaxShelve = 7 * 24 * time.Hour
+// MaxShelve is the longest an alarm may be shelved in one call, the
+// same on every path.
+const MaxShelve = ingest.MaxShelve
 
 // Alarms implements AlarmService.
 type Alarms struct {
@@ -184,7 +185,7 @@ func kindOf(name string) (alarm.Kind, error) {
 		for _, k := range alarm.Kinds() {
 			names = append(names, k.String())
 		}
-		return 0, status.Errorf(codes.InvalidArgument, "limit %q is not an alarm; alarms: %v", name, names)
+		return 0, status.Errorf(codes.InvalidArgument, "limit %q is not an alarm; alarms: %v", ingest.ClipID(name), names)
 	}
 	return k, nil
 }

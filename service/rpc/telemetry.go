@@ -17,6 +17,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
@@ -31,6 +32,7 @@ type Telemetry struct {
 	maxBatch int
 	now      func() time.Time
 	draining <-chan struct{}
+	denied   func(ctx context.Context, n int, unitID string)
 }
 
 // TelemetryOptions configure a Telemetry server.
@@ -41,6 +43,10 @@ type TelemetryOptions struct {
 	// answered, with UNAVAILABLE, so that a graceful stop does not wait
 	// on clients that never close.
 	Draining <-chan struct{}
+	// Denied, when set, hears of the samples of one request refused
+	// because the caller (access.FromContext) may not push for their
+	// units: how many, and the first such unit.
+	Denied func(ctx context.Context, n int, unitID string)
 }
 
 // NewTelemetry returns a TelemetryService over store.
@@ -51,12 +57,12 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Telemetry{store: store, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
+	return &Telemetry{store: store, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining, denied: o.Denied}
 }
 
 // Push takes one batch.
 func (t *Telemetry) Push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
-	return t.push(req)
+	return t.push(ctx, req)
 }
 
 // Stream takes batches and answers each, in order.
@@ -81,7 +87,7 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 		}
 	}()
 	answer := func(req *pb.PushRequest) error {
-		resp, err := t.push(req)
+		resp, err := t.push(ctx, req)
 		if err != nil {
 			return err
 		}
@@ -114,7 +120,7 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	}
 }
 
-func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
+func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
 	if n := len(req.Samples); n > t.maxBatch {
 		st := status.New(codes.InvalidArgument, fmt.Sprintf("batch %d has %d samples, more than the limit of %d: split it", req.Sequence, n, t.maxBatch))
 		if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{{
@@ -128,15 +134,24 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 	now := t.now()
 	resp := &pb.PushResponse{Sequence: req.Sequence}
 	var tally ingest.Tally
+	caller := access.FromContext(ctx) // nil: no access control
+	denied, deniedUnit := 0, ""
 	for i, s := range req.Samples {
 		var smp ingest.Sample
 		res, detail := fromProto(s, &smp)
 		switch {
+		case caller != nil && !caller.Allows(s.UnitId):
+			// Judged first, so that a writer learns nothing of units it
+			// may not push for.
+			res, detail = ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
+			if denied++; denied == 1 {
+				deniedUnit = s.UnitId
+			}
 		case res == ingest.Accepted:
 			res, detail = t.store.Accept(now, &smp)
 		case t.store.Unit(s.UnitId) == nil:
 			// The unit is the first thing a sample is judged by.
-			res, detail = ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
+			res, detail = ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
 		}
 		tally[res]++
 		switch res {
@@ -149,6 +164,9 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 		}
 	}
 	t.store.Commit(&tally)
+	if denied > 0 && t.denied != nil {
+		t.denied(ctx, denied, deniedUnit)
+	}
 	return resp, nil
 }
 
@@ -200,6 +218,8 @@ func reasonProto(r ingest.Result) pb.RejectReason {
 		return pb.RejectReason_REJECT_REASON_INVALID_QUALITY
 	case ingest.RejectMissingTime:
 		return pb.RejectReason_REJECT_REASON_MISSING_TIME
+	case ingest.RejectPermissionDenied:
+		return pb.RejectReason_REJECT_REASON_PERMISSION_DENIED
 	}
 	return pb.RejectReason_REJECT_REASON_UNSPECIFIED
 }

@@ -45,6 +45,9 @@ const (
 	RejectReason_REJECT_REASON_INVALID_QUALITY RejectReason = 6
 	// Sample.time is not set.
 	RejectReason_REJECT_REASON_MISSING_TIME RejectReason = 7
+	// The caller's identity may not push samples for Sample.unit_id (the
+	// access file grants it telemetry_writer for other units only).
+	RejectReason_REJECT_REASON_PERMISSION_DENIED RejectReason = 8
 )
 
 // Enum value maps for RejectReason.
@@ -58,16 +61,18 @@ var (
 		5: "REJECT_REASON_FUTURE",
 		6: "REJECT_REASON_INVALID_QUALITY",
 		7: "REJECT_REASON_MISSING_TIME",
+		8: "REJECT_REASON_PERMISSION_DENIED",
 	}
 	RejectReason_value = map[string]int32{
-		"REJECT_REASON_UNSPECIFIED":     0,
-		"REJECT_REASON_UNKNOWN_UNIT":    1,
-		"REJECT_REASON_NOT_FINITE":      2,
-		"REJECT_REASON_OUT_OF_RANGE":    3,
-		"REJECT_REASON_OUT_OF_ORDER":    4,
-		"REJECT_REASON_FUTURE":          5,
-		"REJECT_REASON_INVALID_QUALITY": 6,
-		"REJECT_REASON_MISSING_TIME":    7,
+		"REJECT_REASON_UNSPECIFIED":       0,
+		"REJECT_REASON_UNKNOWN_UNIT":      1,
+		"REJECT_REASON_NOT_FINITE":        2,
+		"REJECT_REASON_OUT_OF_RANGE":      3,
+		"REJECT_REASON_OUT_OF_ORDER":      4,
+		"REJECT_REASON_FUTURE":            5,
+		"REJECT_REASON_INVALID_QUALITY":   6,
+		"REJECT_REASON_MISSING_TIME":      7,
+		"REJECT_REASON_PERMISSION_DENIED": 8,
 	}
 )
 
@@ -320,7 +325,7 @@ const file_genvelope_v1_telemetry_proto_rawDesc = "" +
 	"\tRejection\x12\x14\n" +
 	"\x05index\x18\x01 \x01(\rR\x05index\x122\n" +
 	"\x06reason\x18\x02 \x01(\x0e2\x1a.genvelope.v1.RejectReasonR\x06reason\x12\x16\n" +
-	"\x06detail\x18\x03 \x01(\tR\x06detail*\x88\x02\n" +
+	"\x06detail\x18\x03 \x01(\tR\x06detail*\xad\x02\n" +
 	"\fRejectReason\x12\x1d\n" +
 	"\x19REJECT_REASON_UNSPECIFIED\x10\x00\x12\x1e\n" +
 	"\x1aREJECT_REASON_UNKNOWN_UNIT\x10\x01\x12\x1c\n" +
@@ -329,7 +334,8 @@ const file_genvelope_v1_telemetry_proto_rawDesc = "" +
 	"\x1aREJECT_REASON_OUT_OF_ORDER\x10\x04\x12\x18\n" +
 	"\x14REJECT_REASON_FUTURE\x10\x05\x12!\n" +
 	"\x1dREJECT_REASON_INVALID_QUALITY\x10\x06\x12\x1e\n" +
-	"\x1aREJECT_REASON_MISSING_TIME\x10\a2\x96\x01\n" +
+	"\x1aREJECT_REASON_MISSING_TIME\x10\a\x12#\n" +
+	"\x1fREJECT_REASON_PERMISSION_DENIED\x10\b2\x96\x01\n" +
 	"\x10TelemetryService\x12=\n" +
 	"\x04Push\x12\x19.genvelope.v1.PushRequest\x1a\x1a.genvelope.v1.PushResponse\x12C\n" +
 	"\x06Stream\x12\x19.genvelope.v1.PushRequest\x1a\x1a.genvelope.v1.PushResponse(\x010\x01B=Z;github.com/genvelope/genvelope/api/genvelope/v1;genvelopev1b\x06proto3"
