@@ -81,6 +81,11 @@ func (a *Alarms) WatchAlarms(req *pb.WatchAlarmsRequest, st grpc.ServerStreaming
 	// between the two; a change may then be seen twice, never missed.
 	w := a.store.Hub().Watch(a.buffer, keep)
 	defer w.Close()
+	// Headers now: the client knows the watch is established (and not
+	// refused) before the first event.
+	if err := st.SendHeader(nil); err != nil {
+		return err
+	}
 	errc := make(chan error, 1)
 	// Sending happens on a goroutine of its own so that a watcher that
 	// stops reading (and so blocks Send) can still be ended on overflow;
