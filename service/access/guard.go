@@ -54,6 +54,9 @@ func (c *Caller) May(role Role, unitID string) bool {
 // Has reports whether the caller has role over at least one unit.
 func (c *Caller) Has(role Role) bool { return c.rights.Has(role) }
 
+// HasAll reports whether the caller has role over every unit.
+func (c *Caller) HasAll(role Role) bool { return c.rights.HasAll(role) }
+
 // Allows is May(TelemetryWriter, unitID): the per-sample check of a push.
 func (c *Caller) Allows(unitID string) bool { return c.May(TelemetryWriter, unitID) }
 

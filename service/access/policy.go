@@ -320,6 +320,31 @@ func (r *Rights) Has(role Role) bool {
 	return false
 }
 
+// HasAll reports whether r grants role over every unit (a grant with no
+// site or unit pattern other than "*"): what fleet-wide reads (the
+// overview, /metrics) need.
+func (r *Rights) HasAll(role Role) bool {
+	if r.all {
+		return true
+	}
+	for i := range r.grants {
+		g := &r.grants[i]
+		if (g.Role == role || (role == Viewer && g.Role == Operator)) && everything(g.Sites) && everything(g.Units) {
+			return true
+		}
+	}
+	return false
+}
+
+func everything(patterns []string) bool {
+	for _, p := range patterns {
+		if p == "*" {
+			return true
+		}
+	}
+	return len(patterns) == 0
+}
+
 // Allows reports whether r grants role over the unit unitID of site. It
 // does not allocate.
 func (r *Rights) Allows(role Role, unitID, site string) bool {

@@ -226,7 +226,7 @@ func TestDrainIdleStream(t *testing.T) {
 func FuzzPushSamples(f *testing.F) {
 	f.Add("harrowmere-1", int64(1_700_000_000), int32(0), 300.0, 120.0, 20.4, 1500.0, 50.0, 310.0, int32(1), true)
 	f.Add("larchwater-2", int64(-62135596801), int32(-1), math.NaN(), math.Inf(1), -1.0, 0.0, 0.0, 0.0, int32(9), false)
-	f.Add("", int64(253402300800), int32(1e9), 1e308, -1e308, 5e-324, -0.0, 1e6, -1e6, int32(-3), true)
+	f.Add("", int64(253402300800), int32(1e9), 1e308, -1e308, 5e-324, math.Copysign(0, -1), 1e6, -1e6, int32(-3), true)
 	data, err := os.ReadFile("../../deploy/examples/fleet.yaml")
 	if err != nil {
 		f.Fatal(err)

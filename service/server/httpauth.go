@@ -53,6 +53,7 @@ type route struct {
 	role   access.Role
 	unit   string // the unit the request is about; "" for any
 	open   bool   // health, readiness and static assets: no identity needed
+	fleet  bool   // a fleet-wide read: the role over every unit
 	action string // an audited action, "" for none
 }
 
@@ -77,7 +78,8 @@ func routeOf(r *http.Request) route {
 		}
 		return route{role: access.Viewer, unit: id}
 	}
-	return route{role: access.Viewer}
+	// The overview, its refresh, /metrics: every unit at once.
+	return route{role: access.Viewer, fleet: true}
 }
 
 func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
@@ -92,8 +94,11 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	rt := routeOf(r)
 	if !rt.open {
 		ok := c.Has(rt.role)
-		if rt.unit != "" {
+		switch {
+		case rt.unit != "":
 			ok = c.May(rt.role, rt.unit)
+		case rt.fleet:
+			ok = c.HasAll(rt.role)
 		}
 		if !ok {
 			reason := access.DenyReason(c)

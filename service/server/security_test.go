@@ -64,6 +64,8 @@ const testAccess = `identities:
     grants: [{role: operator, sites: [harrowmere]}]
   - name: viewer-all
     grants: [{role: viewer}]
+  - name: viewer-larchwater
+    grants: [{role: viewer, sites: [larchwater]}]
   - name: admin
     grants: [{role: admin}]
 `
@@ -102,7 +104,8 @@ func secureServer(t *testing.T, p *pki, mutate func(*server.Config)) (*running, 
 	t.Helper()
 	audit := &auditLog{}
 	webCfg := "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\nbasic_auth_users:\n" +
-		"  viewer-all: " + bcryptHash(t, "lla-reweiv") + "\n  admin: " + bcryptHash(t, "nimda") + "\n"
+		"  viewer-all: " + bcryptHash(t, "lla-reweiv") + "\n  admin: " + bcryptHash(t, "nimda") + "\n" +
+		"  viewer-larchwater: " + bcryptHash(t, "retawhcral-reweiv") + "\n"
 	cfg := server.Config{
 		FleetPath: exampleFleet, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
 		Logger: slog.New(slog.NewTextHandler(io.Discard, nil)),
@@ -389,6 +392,9 @@ func TestHTTPWebConfigAndRights(t *testing.T) {
 		{"viewer acknowledges", "POST", "/units/harrowmere-1/alarms/field/acknowledge", "viewer-all", "", http.StatusForbidden},
 		{"admin reloads", "POST", "/-/reload", "admin", "", http.StatusOK},
 		{"admin reads pages", "GET", "/", "admin", "", http.StatusForbidden},
+		{"site viewer reads its unit", "GET", "/units/larchwater-2", "viewer-larchwater", "", http.StatusOK},
+		{"site viewer reads another site's unit", "GET", "/units/harrowmere-1", "viewer-larchwater", "", http.StatusForbidden},
+		{"site viewer reads the whole fleet", "GET", "/metrics", "viewer-larchwater", "", http.StatusForbidden},
 		{"rebinding host", "GET", "/", "viewer-all", "attacker.example:9471", http.StatusMisdirectedRequest},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
@@ -400,10 +406,11 @@ func TestHTTPWebConfigAndRights(t *testing.T) {
 	if got := audit.find("reload", access.OutcomeDone); len(got) != 1 || got[0].Identity != "admin" {
 		t.Errorf("reload audit %+v, want one by admin", got)
 	}
-	// The viewer's reload and acknowledge, the admin's page, the
-	// rebinding request (the toolkit refuses missing credentials first).
-	if got := len(audit.find("http", access.OutcomeDenied)); got != 4 {
-		t.Errorf("%d HTTP denials audited, want 4", got)
+	// The viewer's reload and acknowledge, the admin's page, the site
+	// viewer's two, the rebinding request (the toolkit refuses missing
+	// credentials first).
+	if got := len(audit.find("http", access.OutcomeDenied)); got != 6 {
+		t.Errorf("%d HTTP denials audited, want 6", got)
 	}
 	code, body := httpsDo(t, p, r, "GET", "/units/harrowmere-1", "viewer-all", "")
 	if code != http.StatusOK || !strings.Contains(body, "Signed in as <strong data-signed-in>viewer-all</strong>") || strings.Contains(body, "/acknowledge") {
