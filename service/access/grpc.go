@@ -130,23 +130,22 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 	}
 	switch r := resp.(type) {
 	case *pb.ListUnitsResponse:
-		kept := r.Units[:0]
-		for _, u := range r.Units {
-			if c.May(Viewer, u.Id) {
-				kept = append(kept, u)
-			}
-		}
-		r.Units = kept
+		r.Units = visible(c, r.Units, (*pb.Unit).GetId)
 	case *pb.ListAlarmsResponse:
-		kept := r.Alarms[:0]
-		for _, a := range r.Alarms {
-			if c.May(Viewer, a.UnitId) {
-				kept = append(kept, a)
-			}
-		}
-		r.Alarms = kept
+		r.Alarms = visible(c, r.Alarms, (*pb.AlarmEvent).GetUnitId)
 	}
 	return resp, err
+}
+
+// visible keeps the items of the units c may view, in place.
+func visible[T any](c *Caller, items []T, unit func(T) string) []T {
+	kept := items[:0]
+	for _, it := range items {
+		if c.May(Viewer, unit(it)) {
+			kept = append(kept, it)
+		}
+	}
+	return kept
 }
 
 func (g *Guard) recordAction(ctx context.Context, c *Caller, action, target string, err error) {

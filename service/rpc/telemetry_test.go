@@ -27,6 +27,12 @@ const waitLong = 60 * time.Second
 
 func exampleStore(t *testing.T) *ingest.Store {
 	t.Helper()
+	return ingest.NewStore(exampleFleet(t), ingest.Options{})
+}
+
+// exampleFleet parses the example fleet file.
+func exampleFleet(t testing.TB) *fleet.Fleet {
+	t.Helper()
 	data, err := os.ReadFile("../../deploy/examples/fleet.yaml")
 	if err != nil {
 		t.Fatal(err)
@@ -35,7 +41,7 @@ func exampleStore(t *testing.T) *ingest.Store {
 	if ds.HasErrors() {
 		t.Fatalf("example fleet: %v", ds)
 	}
-	return ingest.NewStore(fl, ingest.Options{})
+	return fl
 }
 
 // hooked wraps the server side of a stream so that a test can stop it at
@@ -227,14 +233,7 @@ func FuzzPushSamples(f *testing.F) {
 	f.Add("harrowmere-1", int64(1_700_000_000), int32(0), 300.0, 120.0, 20.4, 1500.0, 50.0, 310.0, int32(1), true)
 	f.Add("larchwater-2", int64(-62135596801), int32(-1), math.NaN(), math.Inf(1), -1.0, 0.0, 0.0, 0.0, int32(9), false)
 	f.Add("", int64(253402300800), int32(1e9), 1e308, -1e308, 5e-324, math.Copysign(0, -1), 1e6, -1e6, int32(-3), true)
-	data, err := os.ReadFile("../../deploy/examples/fleet.yaml")
-	if err != nil {
-		f.Fatal(err)
-	}
-	fl, ds := fleet.Parse("fleet.yaml", data)
-	if ds.HasErrors() {
-		f.Fatalf("example fleet: %v", ds)
-	}
+	fl := exampleFleet(f)
 	f.Fuzz(func(t *testing.T, unit string, sec int64, nanos int32, p, q, v, ifd, hz, cool float64, quality int32, optional bool) {
 		store := ingest.NewStore(fl, ingest.Options{})
 		policy, err := access.Parse([]byte("identities: [{name: gw, grants: [{role: telemetry_writer, sites: [harrowmere]}]}]"))

@@ -135,7 +135,7 @@ func secureServer(t *testing.T, p *pki, mutate func(*server.Config)) (*running, 
 
 // httpsDo makes one request to a secureServer as user (password: the
 // name reversed; "" for none) and returns the status and body.
-func httpsDo(t *testing.T, p *pki, r *running, method, path, user, host string) (int, string) {
+func httpsDo(t *testing.T, p *pki, r *running, method, path, user, host string, header ...string) (int, string) {
 	t.Helper()
 	client := &http.Client{Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost"}}}
 	defer client.CloseIdleConnections()
@@ -149,6 +149,9 @@ func httpsDo(t *testing.T, p *pki, r *running, method, path, user, host string) 
 	}
 	if host != "" {
 		req.Host = host
+	}
+	for i := 0; i+1 < len(header); i += 2 {
+		req.Header.Set(header[i], header[i+1])
 	}
 	resp, err := client.Do(req)
 	if err != nil {
@@ -412,6 +415,11 @@ func TestHTTPWebConfigAndRights(t *testing.T) {
 	if got := len(audit.find("http", access.OutcomeDenied)); got != 6 {
 		t.Errorf("%d HTTP denials audited, want 6", got)
 	}
+	// A cross-origin browser request to reload is refused even for the
+	// admin.
+	if code, body := httpsDo(t, p, r, "POST", "/-/reload", "admin", "", "Sec-Fetch-Site", "cross-site", "Origin", "https://attacker.example"); code != http.StatusForbidden {
+		t.Errorf("cross-origin reload: status %d, want 403: %s", code, body)
+	}
 	code, body := httpsDo(t, p, r, "GET", "/units/harrowmere-1", "viewer-all", "")
 	if code != http.StatusOK || !strings.Contains(body, "Signed in as <strong data-signed-in>viewer-all</strong>") || strings.Contains(body, "/acknowledge") {
 		t.Errorf("unit page for the viewer: status %d, signed-in line or action forms wrong", code)
@@ -457,5 +465,24 @@ func TestPlaintextOffLoopbackRefused(t *testing.T) {
 				t.Errorf("genvelope_insecure_plaintext = %v (present %v), want %v", v, ok, want)
 			}
 		})
+	}
+}
+
+// Lists and watches answer only the caller's units.
+func TestGRPCScopedLists(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, nil)
+	conn := dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["op-harrowmere"])
+	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+	defer cancel()
+	resp, err := pb.NewFleetServiceClient(conn).ListUnits(ctx, &pb.ListUnitsRequest{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(resp.Units) != 1 || resp.Units[0].Id != "harrowmere-1" {
+		t.Errorf("op-harrowmere lists %v, want harrowmere-1 only", resp.Units)
+	}
+	if _, err := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "larchwater-2"}); status.Code(err) != codes.PermissionDenied {
+		t.Errorf("op-harrowmere gets larchwater-2: %v, want PERMISSION_DENIED", err)
 	}
 }
