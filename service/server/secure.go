@@ -156,3 +156,12 @@ func webIdentity(r *http.Request) (name string, mayOperate func(unitID string) b
 	}
 	return c.Name, func(id string) bool { return c.May(access.Operator, id) }
 }
+
+// PprofAddr returns the bound address of the profiling listener, or ""
+// when there is none.
+func (s *Server) PprofAddr() string {
+	if s.pprofLn == nil {
+		return ""
+	}
+	return s.pprofLn.Addr().String()
+}

@@ -486,3 +486,25 @@ func TestGRPCScopedLists(t *testing.T) {
 		t.Errorf("op-harrowmere gets larchwater-2: %v, want PERMISSION_DENIED", err)
 	}
 }
+
+// Profiling is on a listener of its own, for the admin role only.
+func TestPprofListenerAdminOnly(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, func(c *server.Config) { c.Security.PprofListen = "127.0.0.1:0" })
+	prof := &running{srv: r.srv, base: "https://" + r.srv.PprofAddr()}
+	for _, tc := range []struct {
+		user, path string
+		want       int
+	}{
+		{"viewer-all", "/debug/pprof/", http.StatusForbidden},
+		{"admin", "/debug/pprof/", http.StatusOK},
+		{"viewer-all", "/metrics", http.StatusNotFound}, // nothing else there
+	} {
+		if code, _ := httpsDo(t, p, prof, "GET", tc.path, tc.user, ""); code != tc.want {
+			t.Errorf("%s GET %s on the profiling listener: %d, want %d", tc.user, tc.path, code, tc.want)
+		}
+	}
+	if code, _ := httpsDo(t, p, r, "GET", "/debug/pprof/", "admin", ""); code == http.StatusOK {
+		t.Error("profiles are served on the main HTTP listener too")
+	}
+}
