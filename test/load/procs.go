@@ -182,7 +182,7 @@ func serveFlags(ctx context.Context, bin string) (map[string]bool, error) {
 
 // startServe starts genvelope serve on ports the kernel picks, reads
 // the bound addresses from its JSON log and waits for /readyz.
-func startServe(ctx context.Context, log *slog.Logger, bin, fleetPath, dir string, pprof, state bool, env []string, timeout time.Duration) (*proc, time.Duration, error) {
+func startServe(ctx context.Context, log *slog.Logger, bin, fleetPath, dir string, pprof, state bool, env []string, timeout time.Duration, extra ...string) (*proc, time.Duration, error) {
 	known, err := serveFlags(ctx, bin)
 	if err != nil {
 		return nil, 0, err
@@ -193,6 +193,7 @@ func startServe(ctx context.Context, log *slog.Logger, bin, fleetPath, dir strin
 		}
 	}
 	args := []string{"serve", "--fleet", fleetPath, "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0", "--log-format", "json"}
+	args = append(args, extra...)
 	if pprof {
 		if !known["pprof"] {
 			return nil, 0, fmt.Errorf("%s serve has no --pprof flag", bin)
@@ -272,14 +273,14 @@ const sinkListenPrefix = "LISTEN "
 
 // startSink re-executes this program (or test binary) as a bare sink
 // and reads the address it bound.
-func startSink(ctx context.Context, log *slog.Logger, dir string, timeout time.Duration) (*proc, error) {
+func startSink(ctx context.Context, log *slog.Logger, dir string, timeout time.Duration, tlsFiles ...string) (*proc, error) {
 	exe, err := os.Executable()
 	if err != nil {
 		return nil, fmt.Errorf("find the harness binary: %w", err)
 	}
 	found := make(chan string, 1)
 	var once sync.Once
-	p, err := startProc("bare sink", exe, []string{sinkFlag, "127.0.0.1:0"}, nil, filepath.Join(dir, "sink.log"), true, func(line string) {
+	p, err := startProc("bare sink", exe, append([]string{sinkFlag, "127.0.0.1:0"}, tlsFiles...), nil, filepath.Join(dir, "sink.log"), true, func(line string) {
 		if a, ok := strings.CutPrefix(line, sinkListenPrefix); ok {
 			once.Do(func() { found <- strings.TrimSpace(a) })
 		}

@@ -14,9 +14,15 @@ import (
 	"net"
 	"os"
 	"path/filepath"
-	"testing"
 	"time"
 )
+
+// Fataler is what the helpers need of a test (testing.TB has it); a
+// program passes its own, which turns Fatal into an error.
+type Fataler interface {
+	Helper()
+	Fatal(args ...any)
+}
 
 // CA is a test certificate authority.
 type CA struct {
@@ -31,7 +37,7 @@ type Leaf struct {
 	TLS             tls.Certificate
 }
 
-func serial(t testing.TB) *big.Int {
+func serial(t Fataler) *big.Int {
 	n, err := rand.Int(rand.Reader, new(big.Int).Lsh(big.NewInt(1), 62))
 	if err != nil {
 		t.Fatal(err)
@@ -40,7 +46,7 @@ func serial(t testing.TB) *big.Int {
 }
 
 // NewCA returns a new authority named cn.
-func NewCA(t testing.TB, cn string) *CA {
+func NewCA(t Fataler, cn string) *CA {
 	t.Helper()
 	key, err := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
 	if err != nil {
@@ -69,7 +75,7 @@ type Options struct {
 }
 
 // Issue returns a certificate signed by ca.
-func (ca *CA) Issue(t testing.TB, o Options) *Leaf {
+func (ca *CA) Issue(t Fataler, o Options) *Leaf {
 	t.Helper()
 	key, err := ecdsa.GenerateKey(elliptic.P256(), rand.Reader)
 	if err != nil {
@@ -103,12 +109,12 @@ func (ca *CA) Issue(t testing.TB, o Options) *Leaf {
 }
 
 // Server returns a server certificate for the loopback names.
-func (ca *CA) Server(t testing.TB) *Leaf {
+func (ca *CA) Server(t Fataler) *Leaf {
 	return ca.Issue(t, Options{CN: "genvelope-test", DNS: []string{"localhost"}, IPs: []net.IP{net.IPv4(127, 0, 0, 1), net.IPv6loopback}, Server: true})
 }
 
 // Client returns a client certificate with subject CN cn.
-func (ca *CA) Client(t testing.TB, cn string) *Leaf { return ca.Issue(t, Options{CN: cn}) }
+func (ca *CA) Client(t Fataler, cn string) *Leaf { return ca.Issue(t, Options{CN: cn}) }
 
 // Pool returns a pool holding ca.
 func (ca *CA) Pool() *x509.CertPool {
@@ -118,7 +124,7 @@ func (ca *CA) Pool() *x509.CertPool {
 }
 
 // Write writes data to dir/name and returns the path.
-func Write(t testing.TB, dir, name string, data []byte) string {
+func Write(t Fataler, dir, name string, data []byte) string {
 	t.Helper()
 	p := filepath.Join(dir, name)
 	// Write then rename, as a certificate renewal does, so a reader never
@@ -135,6 +141,6 @@ func Write(t testing.TB, dir, name string, data []byte) string {
 
 // WriteLeaf writes l as dir/name.crt and dir/name.key and returns both
 // paths.
-func WriteLeaf(t testing.TB, dir, name string, l *Leaf) (certPath, keyPath string) {
+func WriteLeaf(t Fataler, dir, name string, l *Leaf) (certPath, keyPath string) {
 	return Write(t, dir, name+".crt", l.CertPEM), Write(t, dir, name+".key", l.KeyPEM)
 }
