@@ -1,8 +1,15 @@
 package main
 
 import (
+	"crypto/tls"
+	"crypto/x509"
+	"errors"
 	"flag"
+	"fmt"
+	"os"
 	"strings"
+
+	"google.golang.org/grpc/credentials"
 
 	"github.com/genvelope/genvelope/service/server"
 )
@@ -27,4 +34,46 @@ func addSecurityFlags(fs *flag.FlagSet) *server.Security {
 	})
 	fs.StringVar(&sec.PprofListen, "pprof-listen", "", "serve /debug/pprof/ on this `ADDR` of its own (admin role, same web configuration)")
 	return sec
+}
+
+// clientTLS is a gRPC client's TLS settings (replay).
+type clientTLS struct {
+	ca, cert, key, serverName string
+}
+
+// addClientTLSFlags adds a client's TLS flags.
+func addClientTLSFlags(fs *flag.FlagSet) *clientTLS {
+	c := &clientTLS{}
+	fs.StringVar(&c.ca, "tls-ca", "", "connect over TLS, trusting the CA certificates in `FILE` (PEM)")
+	fs.StringVar(&c.cert, "tls-cert", "", "client certificate `FILE` (PEM) for mutual TLS; its CN or SAN is the identity in the service's access file")
+	fs.StringVar(&c.key, "tls-key", "", "client key `FILE` (PEM)")
+	fs.StringVar(&c.serverName, "tls-server-name", "", "the name the service's certificate must carry (default: the target's host)")
+	return c
+}
+
+// creds returns the transport credentials, or nil for plaintext.
+func (c *clientTLS) creds() (credentials.TransportCredentials, error) {
+	if c == nil || (c.ca == "" && c.cert == "" && c.key == "") {
+		return nil, nil
+	}
+	if c.ca == "" {
+		return nil, errors.New("--tls-cert and --tls-key need --tls-ca, the CA that signed the service's certificate")
+	}
+	pem, err := os.ReadFile(c.ca)
+	if err != nil {
+		return nil, fmt.Errorf("--tls-ca: %w", err)
+	}
+	roots := x509.NewCertPool()
+	if !roots.AppendCertsFromPEM(pem) {
+		return nil, fmt.Errorf("--tls-ca %s: no PEM certificate in it", c.ca)
+	}
+	tc := &tls.Config{RootCAs: roots, ServerName: c.serverName, MinVersion: tls.VersionTLS12}
+	if c.cert != "" || c.key != "" {
+		kp, err := tls.LoadX509KeyPair(c.cert, c.key)
+		if err != nil {
+			return nil, fmt.Errorf("--tls-cert/--tls-key: %w", err)
+		}
+		tc.Certificates = []tls.Certificate{kp}
+	}
+	return credentials.NewTLS(tc), nil
 }
