@@ -24,7 +24,7 @@ func TestReplayMutualTLS(t *testing.T) {
 	gwCert, gwKey := testpki.WriteLeaf(t, dir, "gw", ca.Client(t, "gw-harrowmere"))
 	access := testpki.Write(t, dir, "access.yaml", []byte("identities: [{name: gw-harrowmere, grants: [{role: telemetry_writer, sites: [harrowmere]}]}]\n"))
 	srv, err := server.New(server.Config{FleetPath: example, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
-		Logger: slog.New(slog.NewTextHandler(io.Discard, nil)),
+		Logger:   slog.New(slog.NewTextHandler(io.Discard, nil)),
 		Security: server.Security{GRPCTLSCert: srvCert, GRPCTLSKey: srvKey, GRPCClientCA: caPath, AccessFile: access}})
 	if err != nil {
 		t.Fatal(err)
