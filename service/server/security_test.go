@@ -508,3 +508,38 @@ func TestPprofListenerAdminOnly(t *testing.T) {
 		t.Error("profiles are served on the main HTTP listener too")
 	}
 }
+
+// The access file is read again with the fleet: a grant added takes
+// effect at the reload; a file with errors is refused and the running
+// one kept.
+func TestAccessFileReload(t *testing.T) {
+	p := newPKI(t)
+	r, audit := secureServer(t, p, nil)
+	list := func() codes.Code {
+		c := pb.NewFleetServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["stranger"]))
+		ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+		defer cancel()
+		_, err := c.ListUnits(ctx, &pb.ListUnitsRequest{})
+		return status.Code(err)
+	}
+	if got := list(); got != codes.Unauthenticated {
+		t.Fatalf("stranger before the reload: %v", got)
+	}
+	testpki.Write(t, p.dir, "access.yaml", []byte(testAccess+"  - {name: stranger, grants: [{role: viewer}]}\n"))
+	if err := r.srv.Reload(); err != nil {
+		t.Fatalf("Reload: %v", err)
+	}
+	if got := list(); got != codes.OK {
+		t.Fatalf("stranger after the grant: %v", got)
+	}
+	testpki.Write(t, p.dir, "access.yaml", []byte("identities:\n  - {name: stranger, grants: [{role: superuser}]}\n"))
+	if err := r.srv.Reload(); err == nil || !strings.Contains(err.Error(), `role "superuser"`) {
+		t.Fatalf("Reload of a bad access file: %v", err)
+	}
+	if got := list(); got != codes.OK {
+		t.Errorf("stranger after a refused reload: %v, want the running file kept", got)
+	}
+	if got := audit.find("reload", access.OutcomeFailed); len(got) != 1 {
+		t.Errorf("%d failed reloads audited, want 1", len(got))
+	}
+}
