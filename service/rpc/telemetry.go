@@ -29,6 +29,7 @@ type Telemetry struct {
 	pb.UnimplementedTelemetryServiceServer
 
 	store    *ingest.Store
+	log      Log
 	maxBatch int
 	now      func() time.Time
 	draining <-chan struct{}
@@ -43,11 +44,32 @@ type TelemetryOptions struct {
 	// answered, with UNAVAILABLE, so that a graceful stop does not wait
 	// on clients that never close.
 	Draining <-chan struct{}
+	// Log, when set, makes every acknowledgement durable: the samples
+	// that pass the checks are written to the log, and the batch is
+	// answered once they are in it and applied from it.
+	Log Log
 	// Denied, when set, hears of the samples of one request refused
 	// because the caller (access.FromContext) may not push for their
 	// units: how many, and the first such unit.
 	Denied func(ctx context.Context, n int, unitID string)
 }
+
+// Log is the durable path of accepted samples (package durable).
+type Log interface {
+	// Check says what would become of smp, without recording it.
+	Check(now time.Time, smp *ingest.Sample) (ingest.Result, string)
+	// Append starts writing smps to the log; wait returns what applying
+	// each of them from the log gave. Batches appended one after another
+	// enter the log in that order. An error (of either) means the
+	// samples may or may not be in the log: nothing is acknowledged, and
+	// the client resends. wait must be called, with a done ctx to give
+	// up.
+	Append(ctx context.Context, now time.Time, smps []ingest.Sample) (wait func(context.Context) ([]ingest.Result, []string, error), err error)
+}
+
+// streamWindow is how many batches of one stream may be in the log at
+// once, waiting to be answered in order.
+const streamWindow = 8
 
 // NewTelemetry returns a TelemetryService over store.
 func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
@@ -57,7 +79,7 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Telemetry{store: store, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining, denied: o.Denied}
+	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining, denied: o.Denied}
 }
 
 // Push takes one batch.
@@ -86,6 +108,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 			}
 		}
 	}()
+	if t.log != nil {
+		return t.streamLog(st, reqs, errc)
+	}
 	answer := func(req *pb.PushRequest) error {
 		resp, err := t.push(ctx, req)
 		if err != nil {
@@ -121,6 +146,52 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 }
 
 func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
+	if err := t.checkSize(req); err != nil {
+		return nil, err
+	}
+	now := t.now()
+	if t.log != nil {
+		return t.pushLog(ctx, req, now)
+	}
+	resp := &pb.PushResponse{Sequence: req.Sequence}
+	var tally ingest.Tally
+	var d denials
+	caller := access.FromContext(ctx) // nil: no access control
+	for i, s := range req.Samples {
+		var smp ingest.Sample
+		res, detail := t.judge(caller, now, s, &smp, t.store.Accept)
+		tally[res]++
+		d.note(res, s.UnitId)
+		answer(resp, i, res, detail)
+	}
+	t.store.Commit(&tally)
+	t.report(ctx, &d)
+	return resp, nil
+}
+
+// denials counts the samples of one batch refused for want of rights.
+type denials struct {
+	n    int
+	unit string // the first
+}
+
+func (d *denials) note(res ingest.Result, unitID string) {
+	if res == ingest.RejectPermissionDenied {
+		if d.n++; d.n == 1 {
+			d.unit = unitID
+		}
+	}
+}
+
+// report hands a batch's denials to the Denied hook.
+func (t *Telemetry) report(ctx context.Context, d *denials) {
+	if d.n > 0 && t.denied != nil {
+		t.denied(ctx, d.n, d.unit)
+	}
+}
+
+// checkSize refuses a batch larger than the limit.
+func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	if n := len(req.Samples); n > t.maxBatch {
 		st := status.New(codes.InvalidArgument, fmt.Sprintf("batch %d has %d samples, more than the limit of %d: split it", req.Sequence, n, t.maxBatch))
 		if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{{
@@ -129,45 +200,189 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 		}}}); err == nil {
 			st = d
 		}
-		return nil, st.Err()
+		return st.Err()
 	}
-	now := t.now()
-	resp := &pb.PushResponse{Sequence: req.Sequence}
+	return nil
+}
+
+// judge converts s into smp and returns what check says of it. A
+// caller (nil: no access control) that may not push for the unit is
+// refused first, so that a writer learns nothing of units it may not
+// push for.
+func (t *Telemetry) judge(caller *access.Caller, now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+	if caller != nil && !caller.Allows(s.UnitId) {
+		return ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
+	}
+	res, detail := fromProto(s, smp)
+	switch {
+	case res == ingest.Accepted:
+		return check(now, smp)
+	case t.store.Unit(s.UnitId) == nil:
+		// The unit is the first thing a sample is judged by.
+		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
+	}
+	return res, detail
+}
+
+// answer adds the result of sample i to resp.
+func answer(resp *pb.PushResponse, i int, res ingest.Result, detail string) {
+	switch res {
+	case ingest.Accepted:
+		resp.Accepted++
+	case ingest.Duplicate:
+		resp.Duplicates++
+	default:
+		resp.Rejected = append(resp.Rejected, &pb.Rejection{Index: uint32(i), Reason: reasonProto(res), Detail: detail})
+	}
+}
+
+// pushLog takes a batch on the durable path: the samples that pass the
+// checks are written to the log, and the batch is answered only when
+// they are in it; what the log's consumer made of them is the answer
+// (normally accepted; a duplicate or out of order when another replica
+// wrote the same unit's samples in between). Results decided before the
+// log are counted here; those of the log by its consumer, on every
+// replica alike.
+func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.Time) (*pb.PushResponse, error) {
+	finish, err := t.startLog(ctx, req, now)
+	if err != nil {
+		return nil, err
+	}
+	return finish(ctx)
+}
+
+// startLog checks the batch and starts writing what passes to the log;
+// finish waits for the log and builds the answer.
+func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.Time) (finish func(context.Context) (*pb.PushResponse, error), err error) {
+	if err := t.checkSize(req); err != nil {
+		return nil, err
+	}
 	var tally ingest.Tally
-	caller := access.FromContext(ctx) // nil: no access control
-	denied, deniedUnit := 0, ""
+	results := make([]ingest.Result, len(req.Samples))
+	details := make([]string, len(req.Samples))
+	smps := make([]ingest.Sample, 0, len(req.Samples))
+	idx := make([]int, 0, len(req.Samples))
+	var d denials
+	caller := access.FromContext(ctx)
 	for i, s := range req.Samples {
 		var smp ingest.Sample
-		res, detail := fromProto(s, &smp)
-		switch {
-		case caller != nil && !caller.Allows(s.UnitId):
-			// Judged first, so that a writer learns nothing of units it
-			// may not push for.
-			res, detail = ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
-			if denied++; denied == 1 {
-				deniedUnit = s.UnitId
-			}
-		case res == ingest.Accepted:
-			res, detail = t.store.Accept(now, &smp)
-		case t.store.Unit(s.UnitId) == nil:
-			// The unit is the first thing a sample is judged by.
-			res, detail = ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
+		res, detail := t.judge(caller, now, s, &smp, t.log.Check)
+		d.note(res, s.UnitId)
+		if res == ingest.Accepted {
+			smps = append(smps, smp)
+			idx = append(idx, i)
+			continue
 		}
+		results[i], details[i] = res, detail
 		tally[res]++
-		switch res {
-		case ingest.Accepted:
-			resp.Accepted++
-		case ingest.Duplicate:
-			resp.Duplicates++
-		default:
-			resp.Rejected = append(resp.Rejected, &pb.Rejection{Index: uint32(i), Reason: reasonProto(res), Detail: detail})
-		}
 	}
 	t.store.Commit(&tally)
-	if denied > 0 && t.denied != nil {
-		t.denied(ctx, denied, deniedUnit)
+	t.report(ctx, &d)
+	wait := func(context.Context) ([]ingest.Result, []string, error) { return nil, nil, nil }
+	if len(smps) > 0 {
+		if wait, err = t.log.Append(ctx, now, smps); err != nil {
+			return nil, unavailable(req, err)
+		}
 	}
-	return resp, nil
+	return func(ctx context.Context) (*pb.PushResponse, error) {
+		res, det, err := wait(ctx)
+		if err != nil {
+			return nil, unavailable(req, err)
+		}
+		for j, i := range idx {
+			results[i], details[i] = res[j], det[j]
+		}
+		resp := &pb.PushResponse{Sequence: req.Sequence}
+		for i, res := range results {
+			answer(resp, i, res, details[i])
+		}
+		return resp, nil
+	}, nil
+}
+
+func unavailable(req *pb.PushRequest, err error) error {
+	return status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", req.Sequence, err)
+}
+
+// streamLog is Stream on the durable path: up to streamWindow batches
+// are in the log at once, and answered in order as they are applied.
+func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse], reqs <-chan *pb.PushRequest, errc <-chan error) error {
+	ctx := st.Context()
+	pending := make(chan func(context.Context) (*pb.PushResponse, error), streamWindow)
+	sendErr := make(chan error, 1)
+	go func() { // answers in order; ends when pending is closed
+		var failed error
+		dead, cancel := context.WithCancel(ctx)
+		cancel()
+		for finish := range pending {
+			if failed != nil {
+				_, _ = finish(dead) // gives up its wait
+				continue
+			}
+			resp, err := finish(ctx)
+			if err == nil {
+				err = st.Send(resp)
+			}
+			if err != nil {
+				failed = err
+				sendErr <- err
+			}
+		}
+		if failed == nil {
+			sendErr <- nil
+		}
+	}()
+	// end closes the pipeline and returns the first error of the
+	// answers, or err.
+	end := func(err error) error {
+		close(pending)
+		if serr := <-sendErr; serr != nil {
+			return serr
+		}
+		return err
+	}
+	start := func(req *pb.PushRequest) error {
+		finish, err := t.startLog(ctx, req, t.now())
+		if err != nil {
+			return err
+		}
+		select {
+		case pending <- finish:
+			return nil
+		case err := <-sendErr:
+			sendErr <- err // for end
+			_, _ = finish(ctx)
+			return err
+		}
+	}
+	for {
+		select {
+		case req := <-reqs:
+			if err := ctx.Err(); err != nil {
+				return end(err)
+			}
+			if err := start(req); err != nil {
+				return end(err)
+			}
+		case err := <-errc:
+			if errors.Is(err, io.EOF) {
+				return end(nil)
+			}
+			return end(err)
+		case err := <-sendErr:
+			sendErr <- err
+			return end(err)
+		case <-t.draining:
+			select {
+			case req := <-reqs:
+				if err := start(req); err != nil {
+					return end(err)
+				}
+			default:
+			}
+			return end(status.Error(codes.Unavailable, "genvelope is shutting down: reconnect and resend any batch not acknowledged"))
+		}
+	}
 }
 
 // fromProto converts s into smp, or returns the reason it cannot be.

@@ -165,3 +165,12 @@ func (s *Server) PprofAddr() string {
 	}
 	return s.pprofLn.Addr().String()
 }
+
+// guardReload reads the access file again (nothing before the guard is
+// made: a log may replay a reload while the server is being built).
+func (s *Server) guardReload() error {
+	if s.guard == nil {
+		return nil
+	}
+	return s.guard.Reload()
+}

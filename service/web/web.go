@@ -66,6 +66,9 @@ type Options struct {
 	// act on a unit's alarms (the pages hide the actions they may not
 	// take). Nil: anonymous, and everyone may act.
 	Identity func(r *http.Request) (name string, mayOperate func(unitID string) bool)
+	// Actions apply acknowledgements and shelves; default the store
+	// itself (a replicated service passes its log).
+	Actions ingest.Actions
 }
 
 func (o Options) withDefaults() Options {
@@ -115,6 +118,9 @@ type cachedChart struct {
 // New returns the web interface over store.
 func New(store *ingest.Store, opts Options) *UI {
 	opts = opts.withDefaults()
+	if opts.Actions == nil {
+		opts.Actions = ingest.StoreActions{Store: store}
+	}
 	ui := &UI{store: store, opts: opts, log: opts.Logger, charts: map[string]cachedChart{}}
 	ui.trails.init(opts.TrailLength)
 	ui.assets = assetURLs()

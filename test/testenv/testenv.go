@@ -242,3 +242,11 @@ func VmHWM(pid int) int64 {
 	}
 	return 0
 }
+
+// Kill sends SIGKILL and waits until the program is gone.
+func (p *Proc) Kill() {
+	if !p.Exited() {
+		_ = p.cmd.Process.Kill()
+		<-p.done
+	}
+}
