@@ -68,6 +68,10 @@ func (s *Server) secure(reg *prometheus.Registry) ([]grpc.ServerOption, error) {
 		return nil, err
 	}
 	reg.MustRegister(s.guard.Collector())
+	if !s.guard.Enabled() && (!isLoopback(s.cfg.GRPCListen) || !isLoopback(s.cfg.HTTPListen)) {
+		s.log.Warn("no --access file: every client that reaches a listener may push telemetry, act on alarms and reload",
+			"grpc", s.cfg.GRPCListen, "http", s.cfg.HTTPListen)
+	}
 
 	creds, closeCreds, err := grpcCreds(sec)
 	if err != nil {
