@@ -3,6 +3,8 @@ package access
 import (
 	"context"
 	"log/slog"
+	"strings"
+	"sync"
 	"time"
 )
 
@@ -56,4 +58,32 @@ func (as Auditors) Audit(ctx context.Context, e Entry) {
 	for _, a := range as {
 		a.Audit(ctx, e)
 	}
+}
+
+// Memory keeps audit entries in memory, in order (tests; a status
+// page). The zero value is ready.
+type Memory struct {
+	mu      sync.Mutex
+	entries []Entry
+}
+
+// Audit keeps e.
+func (m *Memory) Audit(_ context.Context, e Entry) {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	m.entries = append(m.entries, e)
+}
+
+// Find returns the entries whose action starts with actionPrefix and
+// whose outcome is outcome ("" for any).
+func (m *Memory) Find(actionPrefix, outcome string) []Entry {
+	m.mu.Lock()
+	defer m.mu.Unlock()
+	var out []Entry
+	for _, e := range m.entries {
+		if strings.HasPrefix(e.Action, actionPrefix) && (outcome == "" || e.Outcome == outcome) {
+			out = append(out, e)
+		}
+	}
+	return out
 }

@@ -8,7 +8,6 @@ import (
 	"log/slog"
 	"net/http"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -29,31 +28,6 @@ import (
 	"github.com/genvelope/genvelope/service/server"
 	"github.com/genvelope/genvelope/test/testpki"
 )
-
-// auditLog keeps the audit entries a server hands it.
-type auditLog struct {
-	mu      sync.Mutex
-	entries []access.Entry
-}
-
-func (a *auditLog) Audit(_ context.Context, e access.Entry) {
-	a.mu.Lock()
-	defer a.mu.Unlock()
-	a.entries = append(a.entries, e)
-}
-
-// find returns the entries with the action prefix and outcome.
-func (a *auditLog) find(actionPrefix, outcome string) []access.Entry {
-	a.mu.Lock()
-	defer a.mu.Unlock()
-	var out []access.Entry
-	for _, e := range a.entries {
-		if strings.HasPrefix(e.Action, actionPrefix) && e.Outcome == outcome {
-			out = append(out, e)
-		}
-	}
-	return out
-}
 
 // The access file of these tests: a telemetry gateway for the harrowmere
 // site, an operator of harrowmere, a viewer of everything, an admin.
@@ -100,9 +74,9 @@ func bcryptHash(t *testing.T, pw string) string {
 // secureServer starts a server with mutual TLS on gRPC, TLS and
 // basic-auth users (viewer-all, admin; the password is the name
 // reversed) on HTTP, the access file and an audit log.
-func secureServer(t *testing.T, p *pki, mutate func(*server.Config)) (*running, *auditLog) {
+func secureServer(t *testing.T, p *pki, mutate func(*server.Config)) (*running, *access.Memory) {
 	t.Helper()
-	audit := &auditLog{}
+	audit := &access.Memory{}
 	webCfg := "tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\nbasic_auth_users:\n" +
 		"  viewer-all: " + bcryptHash(t, "lla-reweiv") + "\n  admin: " + bcryptHash(t, "nimda") + "\n" +
 		"  viewer-larchwater: " + bcryptHash(t, "retawhcral-reweiv") + "\n"
@@ -289,7 +263,7 @@ func TestPushPermissionDenied(t *testing.T) {
 			t.Errorf("rejection %d: index %d reason %v, want index %d PERMISSION_DENIED", i, rj.Index, rj.Reason, want)
 		}
 	}
-	if got := len(audit.find("grpc push", access.OutcomeDenied)); got != 1 {
+	if got := len(audit.Find("grpc push", access.OutcomeDenied)); got != 1 {
 		t.Errorf("%d audit entries for the push, want 1 for the batch", got)
 	}
 	fams := scrapeAs(t, p, r)
@@ -345,14 +319,14 @@ func TestGRPCRights(t *testing.T) {
 		}, codes.InvalidArgument},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
-			before := len(audit.find("grpc", access.OutcomeDenied))
+			before := len(audit.Find("grpc", access.OutcomeDenied))
 			c := pb.NewAlarmServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients[tc.who]))
 			ctx, cancel := context.WithTimeout(context.Background(), waitLong)
 			defer cancel()
 			if err := tc.call(ctx, c); status.Code(err) != tc.want {
 				t.Fatalf("got %v, want %v", err, tc.want)
 			}
-			denied := audit.find("grpc", access.OutcomeDenied)
+			denied := audit.Find("grpc", access.OutcomeDenied)
 			if tc.want == codes.PermissionDenied || tc.want == codes.Unauthenticated {
 				if len(denied) != before+1 {
 					t.Fatalf("%d new denials audited, want 1", len(denied)-before)
@@ -363,7 +337,7 @@ func TestGRPCRights(t *testing.T) {
 			}
 		})
 	}
-	done := audit.find("grpc shelve", access.OutcomeDone)
+	done := audit.Find("grpc shelve", access.OutcomeDone)
 	if len(done) != 1 || done[0].Identity != "op-harrowmere" || done[0].Target != "harrowmere-1/field" {
 		t.Errorf("shelve audit entries %+v, want one by op-harrowmere on harrowmere-1/field", done)
 	}
@@ -406,13 +380,13 @@ func TestHTTPWebConfigAndRights(t *testing.T) {
 			}
 		})
 	}
-	if got := audit.find("reload", access.OutcomeDone); len(got) != 1 || got[0].Identity != "admin" {
+	if got := audit.Find("reload", access.OutcomeDone); len(got) != 1 || got[0].Identity != "admin" {
 		t.Errorf("reload audit %+v, want one by admin", got)
 	}
 	// The viewer's reload and acknowledge, the admin's page, the site
 	// viewer's two, the rebinding request (the toolkit refuses missing
 	// credentials first).
-	if got := len(audit.find("http", access.OutcomeDenied)); got != 6 {
+	if got := len(audit.Find("http", access.OutcomeDenied)); got != 6 {
 		t.Errorf("%d HTTP denials audited, want 6", got)
 	}
 	// A cross-origin browser request to reload is refused even for the
@@ -539,7 +513,7 @@ func TestAccessFileReload(t *testing.T) {
 	if got := list(); got != codes.OK {
 		t.Errorf("stranger after a refused reload: %v, want the running file kept", got)
 	}
-	if got := audit.find("reload", access.OutcomeFailed); len(got) != 1 {
+	if got := audit.Find("reload", access.OutcomeFailed); len(got) != 1 {
 		t.Errorf("%d failed reloads audited, want 1", len(got))
 	}
 }

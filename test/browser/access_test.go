@@ -8,7 +8,6 @@ import (
 	"log/slog"
 	"net/http"
 	"strings"
-	"sync"
 	"testing"
 	"time"
 
@@ -22,23 +21,6 @@ import (
 	"github.com/genvelope/genvelope/service/server"
 	"github.com/genvelope/genvelope/test/testpki"
 )
-
-type auditLog struct {
-	mu      sync.Mutex
-	entries []access.Entry
-}
-
-func (a *auditLog) Audit(_ context.Context, e access.Entry) {
-	a.mu.Lock()
-	defer a.mu.Unlock()
-	a.entries = append(a.entries, e)
-}
-
-func (a *auditLog) all() []access.Entry {
-	a.mu.Lock()
-	defer a.mu.Unlock()
-	return append([]access.Entry(nil), a.entries...)
-}
 
 // Signed in over TLS with basic auth: a viewer sees the unit and its
 // alarm but no action; an operator of the unit's site acknowledges it,
@@ -61,7 +43,7 @@ func TestSignedInRights(t *testing.T) {
 		}
 		web += "  " + u + ": " + string(h) + "\n"
 	}
-	audit := &auditLog{}
+	audit := &access.Memory{}
 	srv, err := server.New(server.Config{
 		FleetPath: exampleFleet, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
 		Logger: slog.New(slog.NewTextHandler(io.Discard, nil)),
@@ -146,13 +128,13 @@ func TestSignedInRights(t *testing.T) {
 		t.Error("the page shows the alarm acknowledged, the store does not")
 	}
 	var recorded bool
-	for _, e := range audit.all() {
+	for _, e := range audit.Find("", "") {
 		if e.Action == "web acknowledge" && e.Identity == "op-harrowmere" && e.Outcome == access.OutcomeDone && strings.HasPrefix(e.Target, "harrowmere-1/") {
 			recorded = true
 		}
 	}
 	if !recorded {
-		t.Errorf("no audit entry of op-harrowmere's acknowledgement in %+v", audit.all())
+		t.Errorf("no audit entry of op-harrowmere's acknowledgement in %+v", audit.Find("", ""))
 	}
 	screenshot(t, tab, dir, "operator-acknowledged.png")
 	if errs := consoleErrors(); len(errs) > 0 {
