@@ -26,6 +26,7 @@ type Limits struct {
 	WatchersPerCaller int           // alarm watchers per identity, or per address when anonymous (16)
 	InFlightPerCaller int           // telemetry calls (Push, Stream) at once per identity or address (64)
 	GRPCIdle          time.Duration // a gRPC connection without calls is closed after this (5 min)
+	StreamIdle        time.Duration // a telemetry stream without a batch for this long is ended, UNAVAILABLE (10 min)
 	HTTPRead          time.Duration // whole request, body included (30 s)
 	HTTPWrite         time.Duration // whole answer (60 s)
 	HTTPIdle          time.Duration // keep-alive between requests (120 s)
@@ -48,7 +49,7 @@ func (l Limits) withDefaults() Limits {
 	for _, d := range []struct {
 		v *time.Duration
 		d time.Duration
-	}{{&l.GRPCIdle, 5 * time.Minute}, {&l.HTTPRead, 30 * time.Second}, {&l.HTTPWrite, 60 * time.Second}, {&l.HTTPIdle, 120 * time.Second}} {
+	}{{&l.GRPCIdle, 5 * time.Minute}, {&l.StreamIdle, 10 * time.Minute}, {&l.HTTPRead, 30 * time.Second}, {&l.HTTPWrite, 60 * time.Second}, {&l.HTTPIdle, 120 * time.Second}} {
 		if *d.v <= 0 {
 			*d.v = d.d
 		}
@@ -156,8 +157,30 @@ func (cl *callerLimits) Stream(srv any, ss grpc.ServerStream, info *grpc.StreamS
 			return cl.refuse(ctx, c, info.FullMethod, "telemetry calls", cl.l.InFlightPerCaller)
 		}
 		defer cl.give(cl.perPush, key, nil)
+		ss = &idleStream{ServerStream: ss, idle: cl.l.StreamIdle}
 	}
 	return handler(srv, ss)
+}
+
+// idleStream ends a telemetry stream on which no batch came for idle:
+// RecvMsg then answers UNAVAILABLE, the handler returns, and the stream
+// ends (which also ends the receive left waiting).
+type idleStream struct {
+	grpc.ServerStream
+	idle time.Duration
+}
+
+func (s *idleStream) RecvMsg(m any) error {
+	got := make(chan error, 1)
+	go func() { got <- s.ServerStream.RecvMsg(m) }()
+	t := time.NewTimer(s.idle)
+	defer t.Stop()
+	select {
+	case err := <-got:
+		return err
+	case <-t.C:
+		return status.Errorf(codes.Unavailable, "genvelope: no batch on this stream for %s: it is closed; reconnect when there is telemetry to send", s.idle)
+	}
 }
 
 // Unary is a unary interceptor (after the guard's).

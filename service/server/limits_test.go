@@ -3,6 +3,7 @@ package server_test
 import (
 	"context"
 	"testing"
+	"time"
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/codes"
@@ -69,5 +70,20 @@ func TestCallerCaps(t *testing.T) {
 			cancels[0]() // close the first; the server counts it off when its handler ends
 			waitFor(t, "room for a call after one closed", func() bool { return open() == nil })
 		})
+	}
+}
+
+// A telemetry stream without a batch for StreamIdle is ended with
+// UNAVAILABLE (the client reconnects when it has telemetry).
+func TestIdleTelemetryStreamEnded(t *testing.T) {
+	r := start(t, server.Config{Limits: server.Limits{StreamIdle: 100 * time.Millisecond}})
+	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+	defer cancel()
+	st, err := pb.NewTelemetryServiceClient(r.conn).Stream(ctx)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if _, err := st.Recv(); status.Code(err) != codes.Unavailable {
+		t.Fatalf("idle stream: %v, want UNAVAILABLE", err)
 	}
 }
