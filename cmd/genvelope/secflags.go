@@ -24,7 +24,7 @@ func addSecurityFlags(fs *flag.FlagSet) *server.Security {
 	fs.StringVar(&sec.WebConfig, "web-config", "", "HTTP web configuration `FILE` (Prometheus exporter-toolkit format: tls_server_config, basic_auth_users with bcrypt hashes)")
 	fs.StringVar(&sec.AccessFile, "access", "", "access `FILE` (YAML): identities and their roles over sites and units; re-read with the fleet. Without it everyone may do everything")
 	fs.BoolVar(&sec.InsecurePlaintext, "insecure-plaintext", false, "allow listening on a non-loopback address without TLS (refused otherwise)")
-	fs.Func("http-host", "a host `NAME` the HTTP listener answers to (repeat or comma-separate); loopback names and the listen address are always allowed", func(v string) error {
+	fs.Func("http-host", "a host `NAME` the HTTP listener answers to (repeat or comma-separate); IP addresses, localhost and the listen address are always allowed", func(v string) error {
 		for _, h := range strings.Split(v, ",") {
 			if h = strings.TrimSpace(h); h != "" {
 				sec.HTTPHosts = append(sec.HTTPHosts, h)

@@ -86,7 +86,10 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	c := h.guard.FromHTTP(r, h.basicAuth)
 	ctx := access.NewContext(r.Context(), c)
 	r = r.WithContext(ctx)
-	if !h.hosts[hostOf(r.Host)] {
+	// An IP address as the host is no rebinding (that needs a name the
+	// attacker controls), and is what Prometheus' service discovery
+	// uses.
+	if host := hostOf(r.Host); !h.hosts[host] && net.ParseIP(host) == nil {
 		h.guard.Deny(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.Sanitize(r.Host, 128), access.ReasonHost)
 		http.Error(w, "genvelope: this server does not answer to that host name (see --http-host)", http.StatusMisdirectedRequest)
 		return
