@@ -34,8 +34,11 @@ func methodCheck(fullMethod string) (Role, check) {
 		return Viewer, checkAnyUnit
 	case pb.FleetService_GetUnit_FullMethodName, pb.FleetService_GetEnvelope_FullMethodName:
 		return Viewer, checkUnit
-	case pb.AlarmService_AcknowledgeAlarm_FullMethodName, pb.AlarmService_ShelveAlarm_FullMethodName:
+	case pb.AlarmService_AcknowledgeAlarm_FullMethodName, pb.AlarmService_ShelveAlarm_FullMethodName,
+		pb.JournalService_ResetThermal_FullMethodName, pb.JournalService_DiscardSample_FullMethodName:
 		return Operator, checkUnit
+	case pb.JournalService_ListJournal_FullMethodName:
+		return Viewer, checkAnyUnit // entries of other units are filtered out
 	}
 	switch {
 	case strings.HasPrefix(fullMethod, "/grpc.health.v1.Health/"):
@@ -123,6 +126,16 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 		resp, err := handler(ctx, req)
 		g.recordAction(ctx, c, action, r.UnitId+"/"+clip(r.Limit), err)
 		return resp, err
+	case *pb.ResetThermalRequest:
+		r.Operator, r.Reason = operatorName(c, r.Operator), Sanitize(r.Reason, 200)
+		resp, err := handler(ctx, req)
+		g.recordAction(ctx, c, "grpc reset thermal", clip(r.UnitId), err)
+		return resp, err
+	case *pb.DiscardSampleRequest:
+		r.Operator, r.Reason = operatorName(c, r.Operator), Sanitize(r.Reason, 200)
+		resp, err := handler(ctx, req)
+		g.recordAction(ctx, c, "grpc discard sample", clip(r.UnitId), err)
+		return resp, err
 	}
 	resp, err := handler(ctx, req)
 	if err != nil || c.rights.all {
@@ -133,6 +146,15 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 		r.Units = visible(c, r.Units, (*pb.Unit).GetId)
 	case *pb.ListAlarmsResponse:
 		r.Alarms = visible(c, r.Alarms, (*pb.AlarmEvent).GetUnitId)
+	case *pb.ListJournalResponse:
+		// Fleet-wide entries (reloads) carry no unit and stay.
+		kept := r.Entries[:0]
+		for _, e := range r.Entries {
+			if e.GetUnitId() == "" || c.May(Viewer, e.GetUnitId()) {
+				kept = append(kept, e)
+			}
+		}
+		r.Entries = kept
 	}
 	return resp, err
 }

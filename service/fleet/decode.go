@@ -78,6 +78,7 @@ func unitKeys() []unitKey {
 		{name: "end_region", required: false, decode: (*unitCtx).decodeEndRegion},
 		{name: "coolant", required: false, decode: (*unitCtx).decodeCoolant},
 		{name: "alarms", required: false, decode: (*unitCtx).decodeAlarms},
+		{name: "plausibility", required: false, decode: (*unitCtx).decodePlausibility},
 	}
 }
 

@@ -213,7 +213,7 @@ func (t *Telemetry) judge(caller *access.Caller, now time.Time, s *pb.Sample, sm
 	if caller != nil && !caller.Allows(s.UnitId) {
 		return ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
 	}
-	res, detail := fromProto(s, smp)
+	res, detail := FromProto(s, smp)
 	switch {
 	case res == ingest.Accepted:
 		return check(now, smp)
@@ -385,12 +385,12 @@ func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.Pus
 	}
 }
 
-// fromProto converts s into smp, or returns the reason it cannot be.
-func fromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
+// FromProto converts s into smp, or returns the reason it cannot be.
+func FromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
 	smp.UnitID = s.UnitId
 	if s.Time != nil {
 		if err := s.Time.CheckValid(); err != nil {
-			return ingest.RejectOutOfRange, fmt.Sprintf("time: %v", err)
+			return ingest.RejectOutOfRangeTime, fmt.Sprintf("time (%d s, %d ns since 1970) is outside what a time can hold: %v", s.Time.Seconds, s.Time.Nanos, err)
 		}
 		smp.Time = s.Time.AsTime()
 	}
@@ -433,6 +433,10 @@ func reasonProto(r ingest.Result) pb.RejectReason {
 		return pb.RejectReason_REJECT_REASON_INVALID_QUALITY
 	case ingest.RejectMissingTime:
 		return pb.RejectReason_REJECT_REASON_MISSING_TIME
+	case ingest.RejectOutOfRangeTime:
+		return pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME
+	case ingest.RejectImplausible:
+		return pb.RejectReason_REJECT_REASON_IMPLAUSIBLE
 	case ingest.RejectPermissionDenied:
 		return pb.RejectReason_REJECT_REASON_PERMISSION_DENIED
 	}

@@ -2,6 +2,7 @@ package server
 
 import (
 	"context"
+	"fmt"
 	"log/slog"
 	"net"
 	"net/http"
@@ -13,6 +14,7 @@ import (
 	"google.golang.org/grpc"
 
 	"github.com/genvelope/genvelope/service/access"
+	"github.com/genvelope/genvelope/service/journal"
 	"github.com/genvelope/genvelope/service/metrics"
 	"github.com/genvelope/genvelope/service/rpc"
 )
@@ -50,10 +52,14 @@ func (s *Server) secure(reg *prometheus.Registry) ([]grpc.ServerOption, error) {
 			"grpc", s.cfg.GRPCListen, "grpc_plaintext", grpcPlain, "http", s.cfg.HTTPListen, "http_plaintext", httpPlain || pprofPlain)
 	}
 
-	auditor := access.Auditor(access.LogAuditor{Log: s.log})
-	if sec.Auditor != nil {
-		auditor = access.Auditors{auditor, sec.Auditor}
+	auditors := access.Auditors{access.LogAuditor{Log: s.log}}
+	if s.journal != nil {
+		auditors = append(auditors, journalAuditor{j: s.journal, log: s.log})
 	}
+	if sec.Auditor != nil {
+		auditors = append(auditors, sec.Auditor)
+	}
+	auditor := access.Auditor(auditors)
 	s.guard, err = access.NewGuard(access.Options{
 		Path: sec.AccessFile, Auditor: auditor, Logger: s.log,
 		SiteOf: func(id string) (string, bool) {
@@ -177,4 +183,28 @@ func (s *Server) guardReload() error {
 		return nil
 	}
 	return s.guard.Reload()
+}
+
+// journalAuditor writes denials to the alarm journal (operator actions
+// and reloads are journalled by the store already, with the identity as
+// the operator).
+type journalAuditor struct {
+	j   *journal.Journal
+	log *slog.Logger
+}
+
+func (a journalAuditor) Audit(_ context.Context, e access.Entry) {
+	if e.Outcome != access.OutcomeDenied {
+		return
+	}
+	msg := fmt.Sprintf("%s from %s: %s refused (%s)", e.Identity, e.Source, e.Action, e.Reason)
+	if e.Target != "" {
+		msg += " on " + e.Target
+	}
+	if e.Detail != "" {
+		msg += ": " + e.Detail
+	}
+	if err := a.j.Append(journal.Entry{Time: e.Time, Change: journal.ChangeDenied, Message: msg, Operator: e.Identity}); err != nil {
+		a.log.Error("access denial not journalled", "err", err)
+	}
 }

@@ -7,6 +7,7 @@ import (
 	"io"
 	"log/slog"
 	"net/http"
+	"path/filepath"
 	"strings"
 	"testing"
 	"time"
@@ -25,6 +26,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/service/access"
+	"github.com/genvelope/genvelope/service/journal"
 	"github.com/genvelope/genvelope/service/server"
 	"github.com/genvelope/genvelope/test/testpki"
 )
@@ -240,7 +242,7 @@ func sampleAt(unit string, at time.Time, pMW, qMvar, vKV float64) *pb.Sample {
 // denial is counted and audited.
 func TestPushPermissionDenied(t *testing.T) {
 	p := newPKI(t)
-	r, audit := secureServer(t, p, nil)
+	r, audit := secureServer(t, p, func(c *server.Config) { c.JournalPath = filepath.Join(p.dir, "journal.jsonl") })
 	tel := pb.NewTelemetryServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["gw-harrowmere"]))
 	now := time.Now().Add(-time.Second)
 	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
@@ -265,6 +267,11 @@ func TestPushPermissionDenied(t *testing.T) {
 	}
 	if got := len(audit.Find("grpc push", access.OutcomeDenied)); got != 1 {
 		t.Errorf("%d audit entries for the push, want 1 for the batch", got)
+	}
+	// The denial is in the durable journal too.
+	entries, _, err := r.srv.Journal().Matching(journal.Filter{Changes: []string{journal.ChangeDenied}}, 10)
+	if err != nil || len(entries) != 1 || entries[0].Operator != "gw-harrowmere" || !strings.Contains(entries[0].Message, "permission_denied") {
+		t.Errorf("journal denials %+v (%v), want one by gw-harrowmere", entries, err)
 	}
 	fams := scrapeAs(t, p, r)
 	if v, _ := metricValue(fams, "genvelope_access_denied_total", map[string]string{"reason": "permission_denied"}); v != 2 {

@@ -58,7 +58,7 @@ func TestPrometheusScrape(t *testing.T) {
 	at = time.Now()
 	sec := newSecurity(t, dir)
 	gv := testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
-		"--state", filepath.Join(dir, "state.json"),
+		"--state", filepath.Join(dir, "state.json"), "--journal", filepath.Join(dir, "journal.jsonl"),
 		"--grpc-tls-cert", sec.serverCert, "--grpc-tls-key", sec.serverKey, "--grpc-client-ca", sec.caPath,
 		"--web-config", sec.webConfig, "--access", sec.access)
 	sec.waitReady(t, gv, "https://"+httpAddr+"/readyz")
