@@ -58,7 +58,7 @@ func start(t *testing.T) *svc {
 	bin := testenv.BuildGenvelope(t, root, dir)
 	s := &svc{grpc: testenv.Addr(testenv.FreePort(t)), http: testenv.Addr(testenv.FreePort(t))}
 	s.proc = testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", filepath.Join(root, "deploy", "examples", "fleet.yaml"),
-		"--grpc-listen", s.grpc, "--http-listen", s.http, "--state", "")
+		"--grpc-listen", s.grpc, "--http-listen", s.http, "--state", "", "--journal", "")
 	s.proc.WaitHTTP(t, "http://"+s.http+"/readyz")
 	var err error
 	s.conn, err = grpc.NewClient(s.grpc, grpc.WithTransportCredentials(insecure.NewCredentials()),
