@@ -158,13 +158,13 @@ func (s *service) push(t *testing.T, smps ...sample) {
 // browser starts Chromium, headless, with a fresh profile, and returns a
 // tab's context and the console messages that are errors, read until the
 // test ends.
-func browser(t *testing.T, path string) (context.Context, func() []string) {
+func browser(t *testing.T, path string, extra ...chromedp.ExecAllocatorOption) (context.Context, func() []string) {
 	t.Helper()
-	return browserSized(t, path, viewportWidth, viewportHeight)
+	return browserSized(t, path, viewportWidth, viewportHeight, extra...)
 }
 
 // browserSized is browser with a window of w × h pixels.
-func browserSized(t *testing.T, path string, w, h int) (context.Context, func() []string) {
+func browserSized(t *testing.T, path string, w, h int, extra ...chromedp.ExecAllocatorOption) (context.Context, func() []string) {
 	t.Helper()
 	opts := append(chromedp.DefaultExecAllocatorOptions[:],
 		chromedp.ExecPath(path),
@@ -175,6 +175,7 @@ func browserSized(t *testing.T, path string, w, h int) (context.Context, func() 
 		chromedp.Flag("disable-component-update", true),
 		chromedp.WindowSize(w, h),
 	)
+	opts = append(opts, extra...)
 	ctx, cancel := context.WithTimeout(t.Context(), 3*waitLong)
 	t.Cleanup(cancel)
 	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
