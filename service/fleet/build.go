@@ -51,6 +51,7 @@ func (u *Unit) Params() limits.Params {
 		}
 		p.EndRegion = er
 	}
+	p.UEL = u.uelTmp.curve(b) // TEMPORARY: until the engine's excitation decoder lands
 	if c := u.Coolant; c != nil {
 		co := &limits.Coolant{}
 		for _, pt := range c.Points {

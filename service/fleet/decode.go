@@ -77,6 +77,9 @@ func unitKeys() []unitKey {
 		{name: "stability", required: false, decode: (*unitCtx).decodeStability},
 		{name: "end_region", required: false, decode: (*unitCtx).decodeEndRegion},
 		{name: "coolant", required: false, decode: (*unitCtx).decodeCoolant},
+		{name: "excitation", required: false, decode: (*unitCtx).decodeExcitationTmp},
+		{name: "protection", required: false, decode: (*unitCtx).decodeProtection},
+		{name: "transformer", required: false, decode: (*unitCtx).decodeTransformer},
 		{name: "alarms", required: false, decode: (*unitCtx).decodeAlarms},
 	}
 }
@@ -821,4 +824,5 @@ func (c *unitCtx) crossChecks() {
 			fmtNum(pm.PMaxMW), fmtNum(u.Rating.MVA))
 	}
 	u.Base = limits.Base{MVA: u.Rating.MVA, KV: u.Rating.KV, FrequencyHz: u.Rating.FrequencyHz, IFagA: u.Field.AirGapA}
+	c.protectionCrossChecks()
 }

@@ -72,6 +72,13 @@ type Unit struct {
 	EndRegion  *EndRegion // nil when not given
 	Coolant    *Coolant   // nil when not given
 
+	// The limiters (excitation.oel, scl, vhz_limiter), the protection and
+	// the step-up transformer, for the coordination study.
+	Limiters    Limiters
+	Protection  Protection
+	Transformer *Transformer // nil when not given
+	uelTmp      *tmpUEL      // TEMPORARY: excitation.uel until the engine's decoder lands
+
 	// Alarms are the unit's alarm settings: the fleet's, with the unit's
 	// own alarms: block on top.
 	Alarms [alarm.NumKinds]alarm.Setting
