@@ -144,7 +144,9 @@ func htmlUnitOf(u *Unit) (htmlUnit, error) {
 			return hu, err
 		}
 	}
-	if err := draw("rx", func(w io.Writer) error { return chart.CoordRX(w, fu.ID+": R-X, loss-of-field relay", m, &u.set, fu.Base) }); err != nil {
+	if err := draw("rx", func(w io.Writer) error {
+		return chart.CoordRX(w, fu.ID+": R-X, loss-of-field relay", m, &u.set, fu.Base)
+	}); err != nil {
 		return hu, err
 	}
 	if err := draw("time", func(w io.Writer) error { return chart.CoordTime(w, fu.ID+": time-current", &u.set) }); err != nil {
