@@ -476,7 +476,9 @@ func (t ticks) Ticks(lo, hi float64) []plot.Tick {
 		}
 		label := ""
 		if math.Mod(i, 2) == 0 {
-			label = strconv.FormatFloat(v, 'f', -1, 64)
+			// As many decimals as the step needs: i*half carries the
+			// rounding error of the product (1.2000000000000002).
+			label = strconv.FormatFloat(v, 'f', max(0, -int(math.Floor(math.Log10(step)+1e-9))), 64)
 		}
 		out = append(out, plot.Tick{Value: v, Label: label})
 	}

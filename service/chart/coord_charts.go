@@ -295,6 +295,7 @@ func CoordRX(w io.Writer, title string, m *limits.Unit, s *limits.Settings, base
 	if err := addLine(p, LabelManualRX, circleXY(0, cx*k, r*k, 180), dashed(pal.stability, 1.3, 5, 3)); err != nil {
 		return err
 	}
+	xLo, xHi := -0.6*(hi-lo), 0.6*(hi-lo)
 	var xys plotter.XYs
 	for _, e := range m.Envelope(1, 0, false, 81) {
 		if !e.QMin.OK {
@@ -302,14 +303,15 @@ func CoordRX(w io.Writer, title string, m *limits.Unit, s *limits.Settings, base
 		}
 		if R, X, ok := limits.ApparentImpedance(e.P, e.QMin.V, 1); ok {
 			xys = append(xys, plotter.XY{X: R * k, Y: X * k})
+			xLo, xHi = math.Min(xLo, R*1.05), math.Max(xHi, R*1.05)
+			lo, hi = math.Min(lo, X*1.05), math.Max(hi, X*1.05)
 		}
 	}
 	if err := addLine(p, LabelLowerRX+" at 1.00 pu", xys, solid(pal.practical, 1.6)); err != nil {
 		return err
 	}
-	span := (hi - lo) * k
 	p.Y.Min, p.Y.Max = lo*k, hi*k
-	p.X.Min, p.X.Max = -0.6*span, 0.6*span
+	p.X.Min, p.X.Max = xLo*k, xHi*k
 	p.Legend.Left = false
 	return writeCoordPlot(w, p)
 }

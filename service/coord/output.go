@@ -233,7 +233,7 @@ h1{font-size:22px;margin:0 0 4px}h2{font-size:18px;margin:28px 0 6px;border-bott
 h3{font-size:14px;margin:16px 0 4px}
 .meta{color:#555;font-size:12px}.caution{border-left:4px solid #a04000;background:#fbf3ec;padding:8px 12px;font-size:13px;margin:12px 0}
 table{border-collapse:collapse;font-size:12px;margin:6px 0}th,td{border:1px solid #ccc;padding:3px 6px;text-align:left;vertical-align:top}
-th{background:#e6eef3}.pass{background:#e3f1e6}.fail{background:#f6d5d1;font-weight:bold}.not_applicable{background:#f2f2f2;color:#666}
+th{background:#e6eef3}#summary th{font-size:10px;overflow-wrap:anywhere;max-width:96px}.pass{background:#e3f1e6}.fail{background:#f6d5d1;font-weight:bold}.not_applicable{background:#f2f2f2;color:#666}
 .charts{display:flex;flex-wrap:wrap;gap:8px}.charts svg{width:560px;height:auto;border:1px solid #ddd}
 section.unit{page-break-before:always}
 @media print{body{margin:0}.charts svg{width:48%}}
