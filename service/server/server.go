@@ -126,6 +126,7 @@ func New(cfg Config) (*Server, error) {
 	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
 	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining}))
+	pb.RegisterCoordinationServiceServer(s.grpc, rpc.NewCoordination(s.store))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)
 	reflection.Register(s.grpc)
