@@ -33,7 +33,9 @@ type UnitSnapshot struct {
 	FieldH    float64                  `json:"field_heating_s"`
 	XArmature float64                  `json:"armature_current_pu"` // held until the next sample
 	XField    float64                  `json:"field_current_pu"`
-	Alarms    map[string]alarm.Machine `json:"alarms,omitempty"` // machines not at rest, by limit name
+	Alarms    map[string]alarm.Machine `json:"alarms,omitempty"`         // machines not at rest, by limit name
+	OELUsed   float64                  `json:"oel_used_ratio,omitempty"` // limiter timers (limiters.go)
+	SCLUsed   float64                  `json:"scl_used_ratio,omitempty"`
 }
 
 // SampleSnapshot is the latest accepted sample and when it arrived.
@@ -47,7 +49,8 @@ func (s *Store) Snapshot(now time.Time) *Snapshot {
 	sn := &Snapshot{Format: "genvelope-state", Version: SnapshotVersion, Written: now.UTC(), Units: map[string]UnitSnapshot{}}
 	for _, u := range s.Units() {
 		u.mu.Lock()
-		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.xArm, XField: u.xField}
+		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.xArm, XField: u.xField,
+			OELUsed: u.lim.oel.Used, SCLUsed: u.lim.scl.Used}
 		n := min(u.n, snapshotTimes)
 		for i := n; i > 0; i-- {
 			us.Times = append(us.Times, u.ring[(u.head-i+ringSize)%ringSize])
@@ -92,6 +95,7 @@ func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string) {
 		}
 		u.armature.H, u.field.H = max(0, us.ArmatureH), max(0, us.FieldH)
 		u.xArm, u.xField = us.XArmature, us.XField
+		u.lim.oel.Used, u.lim.scl.Used = min(1, max(0, us.OELUsed)), min(1, max(0, us.SCLUsed))
 		if us.Latest != nil {
 			u.latest, u.recvNS, u.has = us.Latest.Sample, us.Latest.ReceivedUnixNS, true
 			u.evaluate()

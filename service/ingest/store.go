@@ -313,6 +313,8 @@ type Unit struct {
 	accepted        uint64
 
 	alarms [alarm.NumKinds]alarm.Machine
+
+	lim limiterState // the OEL and SCL timers (limiters.go)
 }
 
 // accept records a checked sample: a duplicate when its timestamp is
@@ -338,6 +340,7 @@ func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
 		}
 		u.armature.Advance(u.xArm, dt.Seconds())
 		u.field.Advance(u.xField, dt.Seconds())
+		u.advanceLimiters(dt.Seconds())
 	}
 	u.ring[u.head] = t
 	u.head = (u.head + 1) % ringSize
@@ -386,6 +389,7 @@ func (u *Unit) evaluate() {
 		ifd = pt.Ifd
 	}
 	u.xField = ifd / u.eval.IfdMax
+	u.holdLimiters()
 }
 
 // complete solves what the per-sample evaluation left pending. u.mu
@@ -422,6 +426,7 @@ type View struct {
 	XArmature float64 // per-unit currents of the latest sample against the ratings at the present coolant
 	XField    float64
 	Alarms    [alarm.NumKinds]alarm.Machine
+	Limiters  LimiterView // the OEL and SCL timers, the V/Hz limiter margin
 }
 
 // View returns a consistent copy of the unit's state.
@@ -430,7 +435,7 @@ func (u *Unit) View() View {
 	defer u.mu.Unlock()
 	u.complete()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
-		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms}
+		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Limiters: u.limiterView()}
 	if u.has {
 		v.Latest, v.Eval, v.Point, v.Received = u.latest, u.eval, u.pt, time.Unix(0, u.recvNS)
 	}

@@ -1,0 +1,91 @@
+package ingest
+
+import (
+	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/fleet"
+)
+
+// The regulator's limiter timers, live (coordination.md, "Live"): the
+// OEL's and SCL's inverse-time delays used, advanced on the samples' own
+// timestamps like the thermal accumulators, each holding the previous
+// sample's current until the next; and the V/Hz limiter's margin.
+
+// limiterState is one unit's limiter timers.
+type limiterState struct {
+	cfg      *fleet.Unit // the configuration the curves were taken from
+	oelCurve *limits.InverseTime
+	sclCurve *limits.InverseTime
+	oel, scl limits.LimiterTimer
+	xOEL     float64 // field current of the latest sample, pu of the rated field current
+	xSCL     float64 // armature current of the latest sample, pu of the rated current
+}
+
+// curves takes the limiter curves of cfg when it changed (at start and
+// after a reload), so that the per-sample path allocates nothing.
+func (l *limiterState) curves(cfg *fleet.Unit) {
+	if l.cfg == cfg {
+		return
+	}
+	l.cfg = cfg
+	l.oelCurve, l.sclCurve = cfg.Limiters.OEL.Curve(), cfg.Limiters.SCL.Curve()
+}
+
+// advanceLimiters holds the previous sample's currents for dt seconds.
+// u.mu must be held.
+func (u *Unit) advanceLimiters(dt float64) {
+	l := &u.lim
+	l.curves(u.cfg)
+	l.oel.Advance(l.oelCurve, l.xOEL, dt)
+	l.scl.Advance(l.sclCurve, l.xSCL, dt)
+}
+
+// holdLimiters takes the latest evaluation's currents for the limiters:
+// the OEL acts on the field current (the measured one when the sample
+// has a good one) against the rated field current as set, the SCL on
+// the armature current in pu of rated. u.mu must be held.
+func (u *Unit) holdLimiters() {
+	l := &u.lim
+	l.curves(u.cfg)
+	if r := u.cfg.Model.RatedFieldCurrent(); r > 0 {
+		l.xOEL = u.xField * u.eval.IfdMax / r
+	}
+	l.xSCL = u.eval.I
+}
+
+// LimiterView is the live state of a unit's limiters.
+type LimiterView struct {
+	OEL, SCL LimiterTimerView
+	// VHzMargin is 1 - (v/f)/setpoint of the V/Hz limiter; OK false
+	// without a limiter or a sample.
+	VHzMargin limits.Bound
+}
+
+// LimiterTimerView is one inverse-time limiter's state.
+type LimiterTimerView struct {
+	Configured bool    // the fleet file gives this limiter
+	X          float64 // the current it acts on, pu of its rating
+	Used       float64 // fraction of its inverse-time delay used, 1 is acting
+	Timing     bool    // the current is above its pickup
+	ToActionS  float64 // time to action at the present current, s; meaningful when Timing
+}
+
+// limiterView returns the limiters' state. u.mu must be held.
+func (u *Unit) limiterView() LimiterView {
+	l := &u.lim
+	l.curves(u.cfg)
+	var v LimiterView
+	one := func(c *limits.InverseTime, t limits.LimiterTimer, x float64) LimiterTimerView {
+		if c == nil {
+			return LimiterTimerView{}
+		}
+		tv := LimiterTimerView{Configured: true, X: x, Used: t.Used}
+		tv.ToActionS, tv.Timing = t.TimeToAction(c, x)
+		return tv
+	}
+	v.OEL = one(l.oelCurve, l.oel, l.xOEL)
+	v.SCL = one(l.sclCurve, l.scl, l.xSCL)
+	if vl := u.cfg.Limiters.VHzLimiter; vl != nil && u.has {
+		v.VHzMargin = limits.Bound{V: limits.VHzLimiterMargin(u.pt.V, u.pt.F, vl.SetpointPU), OK: true}
+	}
+	return v
+}
