@@ -47,6 +47,7 @@ type Collector struct {
 	fieldCurrent, loadAngle, cct, thermal, age, sampleTime *family
 	qLimit, accepted, samples, units                       *family
 	alarmLevel, alarmShelved, alarmAcked, transitions      *family
+	limiters                                               limiterFamilies // limiters.go
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -89,6 +90,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	c.cct = d("critical_clearing_time_seconds", "Classical-model critical clearing time of a three-phase fault at the grid side at the latest operating point, s.")
 	c.age = d("telemetry_age_seconds", "Time since the unit's latest sample was accepted, by the server clock, s.")
 	c.sampleTime = d("sample_timestamp_seconds", "Timestamp carried by the unit's latest accepted sample, Unix s.")
+	c.limiters = describeLimiters(d)
 	return c
 }
 
@@ -137,6 +139,7 @@ func (c *Collector) series(out sink) {
 		out.add(c.accepted, float64(v.Accepted), id, site)
 		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
 		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		c.limiters.series(out, &v, id, site)
 		for k := range v.Alarms {
 			m := &v.Alarms[k]
 			name := alarm.Kind(k).String()
