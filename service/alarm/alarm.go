@@ -60,12 +60,15 @@ const (
 	VoltageFrequencyZone // IEC 60034-1 zone B or outside
 	StaleTelemetry       // no sample for a while (wall clock)
 	FieldCurrentMismatch // measured field current far from the model: a sensor or parameter problem
+	OELTimer             // the overexcitation limiter's inverse-time delay running out
+	SCLTimer             // the stator current limiter's inverse-time delay running out
 	NumKinds
 )
 
 var kindNames = [NumKinds]string{
 	"armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz",
 	"armature_thermal", "field_thermal", "voltage_frequency_zone", "stale_telemetry", "field_current_mismatch",
+	"oel", "scl",
 }
 
 // String returns the kind's name, as used in the fleet file, the API and
@@ -128,6 +131,8 @@ var quantities = [NumKinds]Quantity{
 	{"voltage/frequency zone", "", true},
 	{"time since the last sample", "s", true},
 	{"field current disagreement with the model", "", true},
+	{"time before the overexcitation limiter acts", "s", false},
+	{"time before the stator current limiter acts", "s", false},
 }
 
 // QuantityOf returns what kind k's thresholds apply to.
@@ -154,6 +159,9 @@ func Defaults() [NumKinds]Setting {
 	s[VoltageFrequencyZone] = Setting{Warning: 1, Critical: 2, OnDelay: 5 * time.Second, OffDelay: 30 * time.Second}
 	s[StaleTelemetry] = Setting{Warning: 30, Critical: 120}
 	s[FieldCurrentMismatch] = Setting{Warning: 0.10, Critical: 0.20, Deadband: 0.02, OnDelay: 30 * time.Second, OffDelay: 60 * time.Second}
+	// The limiter timers are delays already: no on-delay.
+	limiter := Setting{Warning: 30, Critical: 10, Deadband: 2, OffDelay: 10 * time.Second}
+	s[OELTimer], s[SCLTimer] = limiter, limiter
 	return s
 }
 

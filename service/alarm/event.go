@@ -54,6 +54,7 @@ type Context struct {
 	AgeS               float64
 	Zone               string
 	VPerHzPU           float64
+	OELXPU, SCLXPU     float64 // the currents the limiters act on, pu of their ratings
 }
 
 // Message returns the operator's sentence for a level change of kind k
@@ -91,6 +92,10 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 		return fmt.Sprintf("%s: operating in %s of the voltage/frequency zones %s; limit the time spent there and bring voltage back within ±5 %%.", id, zoneWords(c.Zone), at)
 	case StaleTelemetry:
 		return fmt.Sprintf("%s: no sample for %.0f s; its limits are not being watched; check the SCADA link.", id, c.AgeS)
+	case OELTimer:
+		return fmt.Sprintf("%s: OEL will act in %.0f s at %.2f pu field current %s; reduce excitation (deliver fewer Mvar) before the limiter takes it down.", id, value, c.OELXPU, at)
+	case SCLTimer:
+		return fmt.Sprintf("%s: SCL will act in %.0f s at %.2f pu stator current %s; bring the reactive power towards zero before the limiter does.", id, value, c.SCLXPU, at)
 	case FieldCurrentMismatch:
 		meas := "?"
 		if c.IfdMeasuredA != nil {

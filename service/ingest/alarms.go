@@ -46,6 +46,8 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 			return math.NaN()
 		}
 		return math.Abs(u.cfg.Base.FieldPU(s.FieldA)-e.IfdModel) / e.IfdModel
+	case k == alarm.OELTimer || k == alarm.SCLTimer:
+		return u.limiterQuantity(k)
 	}
 	return math.NaN()
 }
@@ -138,6 +140,8 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 		return ageS, u.cfg.Alarms[k].Warning, "s"
 	case alarm.FieldCurrentMismatch:
 		return smp.FieldA, b.FieldA(e.IfdModel), "A"
+	case alarm.OELTimer, alarm.SCLTimer:
+		return u.limiterQuantity(k), 0, "s"
 	}
 	return math.NaN(), math.NaN(), ""
 }
@@ -166,7 +170,8 @@ func (u *Unit) context() alarm.Context {
 	pt := report.Point(u.cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
 	e := report.New(u.cfg, pt, &u.eval)
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
-		PMaxMW: u.cfg.PrimeMover.PMaxMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
+		PMaxMW: u.cfg.PrimeMover.PMaxMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz,
+		OELXPU: u.lim.xOEL, SCLXPU: u.lim.xSCL}
 	if e.QMaxLimit != nil {
 		c.QMaxLimit = *e.QMaxLimit
 	}

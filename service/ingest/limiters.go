@@ -1,7 +1,10 @@
 package ingest
 
 import (
+	"math"
+
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
@@ -88,4 +91,30 @@ func (u *Unit) limiterView() LimiterView {
 		v.VHzMargin = limits.Bound{V: limits.VHzLimiterMargin(u.pt.V, u.pt.F, vl.SetpointPU), OK: true}
 	}
 	return v
+}
+
+// limiterIdleS is the time to action an alarm sees while a limiter is
+// configured but not timing (its current at or below the pickup): a day,
+// far beyond any threshold, and finite so that the alarm state stays
+// writable to the state file.
+const limiterIdleS = 86400
+
+// limiterQuantity is what the OEL and SCL alarms compare with their
+// thresholds: the time to action, s; NaN without the limiter or a sample.
+// u.mu must be held.
+func (u *Unit) limiterQuantity(k alarm.Kind) float64 {
+	l := &u.lim
+	l.curves(u.cfg)
+	c, t, x := l.oelCurve, l.oel, l.xOEL
+	if k == alarm.SCLTimer {
+		c, t, x = l.sclCurve, l.scl, l.xSCL
+	}
+	if c == nil || !u.has {
+		return math.NaN()
+	}
+	s, timing := t.TimeToAction(c, x)
+	if !timing {
+		return limiterIdleS
+	}
+	return s
 }

@@ -3,8 +3,11 @@ package ingest
 import (
 	"encoding/json"
 	"math"
+	"strings"
 	"testing"
 	"time"
+
+	"github.com/genvelope/genvelope/service/alarm"
 )
 
 // TestOELTimerOnSampleTime: harrowmere-1's OEL (example fleet: pickup
@@ -83,5 +86,42 @@ func TestOELTimerOnSampleTime(t *testing.T) {
 	// The V/Hz limiter margin, 1 - (v/f)/setpoint, at 20 kV and rated frequency.
 	if m := s2.Unit("harrowmere-1").View().Limiters.VHzMargin; !m.OK || math.Abs(m.V-(1-1/1.04)) > 1e-12 {
 		t.Errorf("V/Hz limiter margin %v, want %v", m, 1-1/1.04)
+	}
+}
+
+// TestOELAlarmSentence: held at 1.38 pu field current, harrowmere-1's OEL
+// alarm warns at once (20.6 s to action, under the 30 s default) with
+// the sentence an operator reads, and goes critical when 10 s are left:
+// at 10.6 s of sample time, from t = 15 / ((1.38/1.05)^2 - 1).
+func TestOELAlarmSentence(t *testing.T) {
+	fl := exampleFleet(t)
+	s := NewStore(fl, Options{})
+	w := s.Hub().Watch(64, func(e *alarm.Event) bool { return e.Kind == alarm.OELTimer })
+	defer w.Close()
+	u := fl.Unit("harrowmere-1")
+	ratedA := u.Model.RatedFieldCurrent() * u.Field.AirGapA
+	now := t0.Add(time.Hour)
+	var evs []alarm.Event
+	for i := 0; i <= 12; i++ {
+		smp := good("harrowmere-1", t0.Add(time.Duration(i)*time.Second))
+		smp.FieldA, smp.HasFieldA = 1.38*ratedA, true
+		smp.Coolant, smp.HasCoolant = 414, true
+		s.Accept(now, &smp)
+		for len(w.C) > 0 {
+			evs = append(evs, <-w.C)
+		}
+	}
+	if len(evs) != 2 {
+		t.Fatalf("events %+v, want warning then critical", evs)
+	}
+	law := 15 / ((1.38/1.05)*(1.38/1.05) - 1)
+	if e := evs[0]; e.Level != alarm.Warning || !e.Time.Equal(t0) || e.Units != "s" || math.Abs(e.Actual-law) > 1e-9 {
+		t.Errorf("first event %+v, want a warning at once with %.2f s to action", e, law)
+	}
+	if want := "harrowmere-1: OEL will act in 21 s at 1.38 pu field current at 200.0 MW, 20.00 kV"; !strings.HasPrefix(evs[0].Message, want) {
+		t.Errorf("sentence %q, want it to start %q", evs[0].Message, want)
+	}
+	if e := evs[1]; e.Level != alarm.Critical || !e.Time.Equal(t0.Add(11*time.Second)) {
+		t.Errorf("second event %+v, want critical at 11 s (10 s left at 10.6 s)", e)
 	}
 }

@@ -132,6 +132,8 @@ var kindTitle = [alarm.NumKinds]string{
 	alarm.VoltageFrequencyZone: "Voltage/frequency zone",
 	alarm.StaleTelemetry:       "Telemetry stale",
 	alarm.FieldCurrentMismatch: "Field current vs model",
+	alarm.OELTimer:             "Overexcitation limiter",
+	alarm.SCLTimer:             "Stator current limiter",
 }
 
 // limitName returns the operators' name of a limit given by its name.
