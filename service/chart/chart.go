@@ -63,6 +63,7 @@ type config struct {
 	trail          []Point
 	width, height  vg.Length
 	embedFonts     bool
+	lim            *limiterMarks // coord_marks.go
 }
 
 // WithPrimeMover draws the prime mover's active-power range as lines at
@@ -209,6 +210,15 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		if first != nil && c.label != "" {
 			legend = append(legend, entry{c.label, first})
 		}
+	}
+
+	extra, err := limiterLines(cfg.lim, pts, mva)
+	if err != nil {
+		return err
+	}
+	for _, e := range extra {
+		p.Add(e.line)
+		legend = append(legend, entry{e.label, e.thumb})
 	}
 
 	// The Q range, for the horizontal lines and the axes.

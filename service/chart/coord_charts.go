@@ -57,7 +57,7 @@ func newCoordPalette() coordPalette {
 	rgb := func(r, g, b uint8) color.Color { return color.RGBA{R: r, G: g, B: b, A: 0xff} }
 	return coordPalette{
 		palette:     defaultPalette(),
-		uel:         rgb(0x00, 0x6d, 0x8f),
+		uel:         rgb(0x00, 0x97, 0xa7),
 		zone1:       rgb(0xb0, 0x3a, 0x2e),
 		zone2:       rgb(0xd9, 0x82, 0x2b),
 		fail:        rgb(0xc0, 0x28, 0x1e),

@@ -492,6 +492,11 @@ func drawChart(d *unitData) (template.HTML, error) {
 		}
 		opts = append(opts, chart.WithOperatingPoint(op), chart.WithTrail(trail))
 	}
+	var zones []limits.MhoZone
+	if lof := cfg.Settings().LossOfField; lof != nil {
+		zones = lof.Zones
+	}
+	opts = append(opts, chart.WithLimiters(cfg.Model.Params().UEL, zones, vPU))
 	pts := cfg.Model.Envelope(vPU, coolant, hasCoolant, 41)
 	var buf bytes.Buffer
 	if err := chart.Capability(&buf, title, pts, cfg.Base, opts...); err != nil {
