@@ -41,6 +41,9 @@ func (r *Report) WriteText(w io.Writer) error {
 		if err := tw.Flush(); err != nil {
 			return err
 		}
+		for _, z := range zoneLines(&u) {
+			fmt.Fprintf(&b, "  %s\n", z)
+		}
 	}
 	fmt.Fprintf(&b, "\n%s\n", fleet.Caution)
 	_, err := w.Write(b.Bytes())
@@ -118,14 +121,7 @@ func htmlUnitOf(u *Unit) (htmlUnit, error) {
 	fu := u.fu
 	m := fu.Model
 	hu := htmlUnit{ID: fu.ID, Name: fu.DisplayName(), Site: fu.Site, Basis: m.Params().Basis.String(), Failed: u.Failed(), Checks: u.Checks}
-	for k, v := range limits.StudyVoltages() {
-		z := u.study.Zone2OverStability[k]
-		if z.OK {
-			hu.Zone2 = append(hu.Zone2, fmt.Sprintf("at %.2f pu the manual stability limit lies inside zone 2 from %.1f to %.1f MW", v, z.PLo*fu.Base.MVA, z.PHi*fu.Base.MVA))
-		} else if l := u.set.LossOfField; l != nil && len(l.Zones) >= 2 {
-			hu.Zone2 = append(hu.Zone2, fmt.Sprintf("at %.2f pu the manual stability limit lies nowhere inside zone 2", v))
-		}
-	}
+	hu.Zone2 = zoneLines(u)
 	draw := func(kind string, f func(w io.Writer) error) error {
 		var b bytes.Buffer
 		if err := f(&b); err != nil {
@@ -157,6 +153,35 @@ func htmlUnitOf(u *Unit) (htmlUnit, error) {
 	}
 	hu.Inputs = inputs(fu, &u.set)
 	return hu, nil
+}
+
+// zoneLines reports the loss-of-field zones' P-Q images at each study
+// voltage and where the manual stability limit lies inside zone 2
+// (coordination.md: reported, not a check).
+func zoneLines(u *Unit) []string {
+	l := u.set.LossOfField
+	if l == nil {
+		return nil
+	}
+	mva := u.fu.Base.MVA
+	var out []string
+	for k, v := range limits.StudyVoltages() {
+		var imgs []string
+		for i, z := range l.Zones {
+			cq, r := limits.MhoPQ(z.Offset, z.Diameter, v)
+			imgs = append(imgs, fmt.Sprintf("zone %d circle centre %.1f Mvar, radius %.1f Mvar, top %.1f Mvar at 0 MW", i+1, cq*mva, r*mva, (cq+r)*mva))
+		}
+		line := fmt.Sprintf("at %.2f pu: %s", v, strings.Join(imgs, "; "))
+		if len(l.Zones) >= 2 {
+			if z := u.study.Zone2OverStability[k]; z.OK {
+				line += fmt.Sprintf("; the manual stability limit lies inside zone 2 from %.1f to %.1f MW", z.PLo*mva, z.PHi*mva)
+			} else {
+				line += "; the manual stability limit lies nowhere inside zone 2"
+			}
+		}
+		out = append(out, line)
+	}
+	return out
 }
 
 // inputs lists what the study used, in the file's units.
@@ -252,7 +277,7 @@ its margin is the worst value over the grid, positive when the check holds.</p>
 <table class="checks"><tr><th>check</th><th>status</th><th>margin</th><th>worst (v, P)</th><th>detail</th></tr>
 {{range .Checks}}<tr><td>{{.Name}}</td><td class="{{.Status}}">{{.Status}}</td><td>{{.MarginText}}</td><td>{{.WorstText}}</td><td>{{.Detail}}</td></tr>
 {{end}}</table>
-{{if .Zone2}}<h3>Loss-of-field zone 2 and the manual stability limit (reported, not a check)</h3><ul>{{range .Zone2}}<li>{{.}}</li>{{end}}</ul>{{end}}
+{{if .Zone2}}<h3>Loss-of-field zones in the P-Q plane and the manual stability limit (reported, not a check)</h3><ul>{{range .Zone2}}<li>{{.}}</li>{{end}}</ul>{{end}}
 <h3>Charts</h3>
 <div class="charts">{{range .Charts}}<div class="chart chart-{{.Kind}}">{{.SVG}}</div>{{end}}</div>
 <h3>Inputs used</h3>
