@@ -61,30 +61,15 @@ func coordinate(e env, f *coordinateFlags) int {
 		return failf(e, c, exitFailure, "%v", err)
 	}
 
-	var w io.Writer = e.stdout
-	var file *os.File
-	if f.out != "" {
-		file, err = os.Create(f.out)
-		if err != nil {
-			return failf(e, c, exitFailure, "%v", err)
+	err = writeOutput(f.out, e.stdout, func(w io.Writer) error {
+		switch f.format.v {
+		case "json":
+			return rep.WriteJSON(w)
+		case "html":
+			return rep.WriteHTML(w, coord.Source{FleetFile: f.fleet, Data: data, At: time.Now()})
 		}
-		w = file
-	}
-	bw := bufio.NewWriter(w)
-	switch f.format.v {
-	case "json":
-		err = rep.WriteJSON(bw)
-	case "html":
-		err = rep.WriteHTML(bw, coord.Source{FleetFile: f.fleet, Data: data, At: time.Now()})
-	default:
-		err = rep.WriteText(bw)
-	}
-	if err == nil {
-		err = bw.Flush()
-	}
-	if file != nil {
-		err = errors.Join(err, file.Close())
-	}
+		return rep.WriteText(w)
+	})
 	if err != nil {
 		return failf(e, c, exitFailure, "writing the %s: %v", f.format.v, err)
 	}
@@ -98,4 +83,28 @@ func coordinate(e env, f *coordinateFlags) int {
 		return exitFailure
 	}
 	return exitOK
+}
+
+// writeOutput runs write on a buffered writer to the file out, or to
+// stdout when out is "", and reports any error of the writing, the
+// flushing or the closing.
+func writeOutput(out string, stdout io.Writer, write func(io.Writer) error) error {
+	w := stdout
+	var file *os.File
+	if out != "" {
+		var err error
+		if file, err = os.Create(out); err != nil {
+			return err
+		}
+		w = file
+	}
+	bw := bufio.NewWriter(w)
+	err := write(bw)
+	if err == nil {
+		err = bw.Flush()
+	}
+	if file != nil {
+		err = errors.Join(err, file.Close())
+	}
+	return err
 }

@@ -14,7 +14,6 @@ import (
 	"google.golang.org/protobuf/types/known/timestamppb"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
-	"github.com/genvelope/genvelope/service/state"
 )
 
 // oelUsed scrapes the OEL's used fraction of unit id from /metrics.
@@ -69,20 +68,7 @@ func TestKillDuringOELTiming(t *testing.T) {
 	if resp := s1.push(t, batch...); resp.Accepted != 21 {
 		t.Fatalf("pushing 20 s at 1.2 pu: %v", resp)
 	}
-	deadline := time.Now().Add(waitLong)
-	var written float64
-	for {
-		if sn, err := state.Read(statePath); err == nil {
-			if ts := sn.Units[id].Times; len(ts) > 0 && ts[len(ts)-1] == at(20).UnixNano() {
-				written = sn.Units[id].OELUsed
-				break
-			}
-		}
-		if time.Now().After(deadline) {
-			t.Fatalf("no state file with the sample at 20 s within %s", waitLong)
-		}
-		time.Sleep(50 * time.Millisecond)
-	}
+	written := waitSnapshot(t, statePath, id, at(20)).OELUsed
 	before := s1.oelUsed(t, id)
 	if want := 20 / law; math.Abs(before-want) > 1e-9 || before != written {
 		t.Fatalf("OEL used %g before the kill, %g in the state file; want both %g (20 s of %.2f s)", before, written, want, law)

@@ -22,6 +22,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/service/state"
 )
 
@@ -223,6 +224,26 @@ func overloaded(at time.Time) *pb.Sample {
 	return &pb.Sample{UnitId: unit, Time: timestamppb.New(at), PMw: 80, QMvar: 10, VKv: 13.8, FieldA: &f}
 }
 
+// waitSnapshot waits for a state file whose unit id holds the sample at
+// last (it is written every 5 s) and returns the unit's part of it.
+func waitSnapshot(t *testing.T, statePath, id string, last time.Time) ingest.UnitSnapshot {
+	t.Helper()
+	pushed := time.Now()
+	deadline := pushed.Add(waitLong)
+	for {
+		if sn, err := state.Read(statePath); err == nil {
+			if ts := sn.Units[id].Times; len(ts) > 0 && ts[len(ts)-1] == last.UnixNano() {
+				t.Logf("snapshot with the last sample written %s after the push", time.Since(pushed).Round(10*time.Millisecond))
+				return sn.Units[id]
+			}
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("no state file with the sample at %s within %s", last, waitLong)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+}
+
 // A kill -9 in the middle of a field overload does not give the winding
 // back its short-time capability: after a restart on the same state
 // file the thermal accumulator is where the last snapshot left it (the
@@ -246,23 +267,7 @@ func TestKillDuringFieldOverload(t *testing.T) {
 	if resp := s1.push(t, batch...); resp.Accepted != 21 {
 		t.Fatalf("pushing 20 s of overload: %v", resp)
 	}
-	// Wait for a snapshot that holds the last sample (written every 5 s).
-	pushed := time.Now()
-	var written float64
-	deadline := pushed.Add(waitLong)
-	for {
-		if sn, err := state.Read(statePath); err == nil {
-			if ts := sn.Units[unit].Times; len(ts) > 0 && ts[len(ts)-1] == at(20).UnixNano() {
-				written = sn.Units[unit].FieldH / limits.FieldK
-				break
-			}
-		}
-		if time.Now().After(deadline) {
-			t.Fatalf("no state file with the sample at 20 s within %s", waitLong)
-		}
-		time.Sleep(50 * time.Millisecond)
-	}
-	t.Logf("snapshot with the last sample written %s after the push", time.Since(pushed).Round(10*time.Millisecond))
+	written := waitSnapshot(t, statePath, unit, at(20)).FieldH / limits.FieldK
 	a := s1.unit(t, unit).FieldThermalUsedRatio
 	if want := 20 * (overload*overload - 1) / limits.FieldK; a != written || a < want*(1-1e-9) || a > want*(1+1e-9) {
 		t.Fatalf("field_thermal_used_ratio %g before the kill, %g in the state file; want both %g (20 s at 146 %%)", a, written, want)
