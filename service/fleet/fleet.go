@@ -6,7 +6,8 @@
 //
 // A fleet file has one top-level key, units:, a list of units. Each unit
 // has the keys id, name, site, rating, machine, field, prime_mover, grid,
-// stability, end_region and coolant; see deploy/examples/fleet.yaml.
+// stability, end_region, coolant, excitation, protection and transformer;
+// see deploy/examples/fleet.yaml.
 package fleet
 
 import (

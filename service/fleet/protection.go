@@ -1,6 +1,7 @@
 package fleet
 
 import (
+	"errors"
 	"fmt"
 
 	"go.yaml.in/yaml/v3"
@@ -247,4 +248,25 @@ func (u *Unit) Settings() limits.Settings {
 		s.Transformer = &limits.Transformer{MVA: t.MVA, LVRatio: t.KVLV / u.Rating.KV, XOwnBasePU: t.XPU}
 	}
 	return s
+}
+
+// checkSettings checks the inverse-time curves once more in the engine's
+// form (the decoder has reported what it can see; this catches what only
+// the per-unit form shows).
+func (c *unitCtx) checkSettings() {
+	s := c.u.Settings()
+	for _, k := range []struct {
+		path string
+		it   *limits.InverseTime
+	}{{"excitation.oel", s.OEL}, {"excitation.scl", s.SCL}, {"protection.field_overcurrent", s.FieldOvercurrent}} {
+		if k.it == nil {
+			continue
+		}
+		if err := k.it.Check(k.path); err != nil {
+			var pe *limits.ParamError
+			if errors.As(err, &pe) {
+				c.errorf(c.u.Line(pe.Field), pe.Field, "%s", pe.Reason)
+			}
+		}
+	}
 }
