@@ -125,3 +125,30 @@ func TestOELAlarmSentence(t *testing.T) {
 		t.Errorf("second event %+v, want critical at 11 s (10 s left at 10.6 s)", e)
 	}
 }
+
+// TestAcceptWithLimitersDoesNotAllocate: the limiter timers add nothing
+// to the per-sample path's allocations (the curves are taken once per
+// configuration).
+func TestAcceptWithLimitersDoesNotAllocate(t *testing.T) {
+	fl := exampleFleet(t)
+	s := NewStore(fl, Options{})
+	u := fl.Unit("harrowmere-1")
+	ratedA := u.Model.RatedFieldCurrent() * u.Field.AirGapA
+	now := t0.Add(time.Hour)
+	i := 0
+	smp := good("harrowmere-1", t0)
+	smp.FieldA, smp.HasFieldA = 1.2*ratedA, true
+	smp.Coolant, smp.HasCoolant = 414, true
+	s.Accept(now, &smp)
+	allocs := testing.AllocsPerRun(200, func() {
+		i++
+		smp.Time = t0.Add(time.Duration(i) * 100 * time.Millisecond)
+		s.Accept(now, &smp)
+	})
+	if allocs != 0 {
+		t.Errorf("Accept with the OEL timing: %v allocations per sample, want 0", allocs)
+	}
+	if v := s.Unit("harrowmere-1").View().Limiters.OEL; !v.Timing || v.Used <= 0 {
+		t.Errorf("the OEL is not timing: %+v", v)
+	}
+}
