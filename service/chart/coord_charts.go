@@ -27,7 +27,7 @@ const (
 	LabelZone1         = "loss-of-field zone 1"
 	LabelZone2         = "loss-of-field zone 2"
 	LabelFailing       = "failing check point"
-	LabelManualRX      = "manual stability limit (−jXd … +jXe)"
+	LabelManualRX      = "manual stability limit"
 	LabelLowerRX       = "capability lower boundary"
 	LabelOEL           = "overexcitation limiter (OEL)"
 	LabelFieldRelay    = "field overcurrent relay"
@@ -39,8 +39,9 @@ const (
 	LabelGeneratorVHz  = "generator, 1.05 pu continuous"
 	LabelTransformerLd = "transformer at rated load"
 	LabelTransformerNL = "transformer at no load"
-	coordWidth         = 7.5 * vg.Inch
+	coordWidth         = 9 * vg.Inch
 	coordHeight        = 5.2 * vg.Inch
+	coordLegendWidth   = 2.9 * vg.Inch
 )
 
 // ClassCoordChart is the class of every coordination chart's svg element
@@ -130,7 +131,14 @@ func writeCoordPlot(w io.Writer, p *plot.Plot) error {
 		{X: dc.Min.X, Y: dc.Min.Y}, {X: dc.Max.X, Y: dc.Min.Y},
 		{X: dc.Max.X, Y: dc.Max.Y}, {X: dc.Min.X, Y: dc.Max.Y},
 	})
-	p.Draw(draw.Crop(dc, 0.05*vg.Inch, -0.1*vg.Inch, 0.05*vg.Inch, -0.05*vg.Inch))
+	// The plot on the left, its legend beside it on the right, so that
+	// the legend never hides a curve.
+	lg := p.Legend
+	p.Legend = plot.NewLegend()
+	p.Draw(draw.Crop(dc, 0.05*vg.Inch, -coordLegendWidth, 0.05*vg.Inch, -0.05*vg.Inch))
+	lg.Top, lg.Left = true, true
+	lg.YOffs = -0.35 * vg.Inch
+	lg.Draw(draw.Crop(dc, coordWidth-coordLegendWidth+0.1*vg.Inch, 0, 0, -0.05*vg.Inch))
 	var buf bytes.Buffer
 	if _, err := c.WriteTo(&buf); err != nil {
 		return fmt.Errorf("chart: drawing the SVG: %w", err)
@@ -233,7 +241,7 @@ func CoordPQ(w io.Writer, title string, m *limits.Unit, s *limits.Settings, st *
 			if err != nil {
 				return err
 			}
-			sc.GlyphStyle = draw.GlyphStyle{Color: pal.fail, Radius: vg.Points(3.5), Shape: draw.CrossGlyph{}}
+			sc.GlyphStyle = draw.GlyphStyle{Color: pal.fail, Radius: vg.Points(5), Shape: draw.CrossGlyph{}}
 			p.Add(sc)
 			p.Legend.Add(LabelFailing, sc)
 		}
@@ -285,7 +293,7 @@ func CoordRX(w io.Writer, title string, m *limits.Unit, s *limits.Settings, base
 				label, col = LabelZone2, pal.zone2
 			}
 			xys := circleXY(0, -(z.Offset+z.Diameter/2)*k, z.Diameter/2*k, 180)
-			if err := addLine(p, fmt.Sprintf("%s: offset %.2f, diameter %.2f", label, z.Offset*k, z.Diameter*k), xys, solid(col, 1.6)); err != nil {
+			if err := addLine(p, fmt.Sprintf("%s (%.2f, %.2f)", label, z.Offset*k, z.Diameter*k), xys, solid(col, 1.6)); err != nil {
 				return err
 			}
 			lo = math.Min(lo, -(z.Offset+z.Diameter)*1.1)
