@@ -23,7 +23,7 @@ import (
 
 // Legend labels of the coordination charts.
 const (
-	LabelUEL           = "underexcitation limiter (UEL)"
+	LabelLimiterUEL           = "underexcitation limiter (UEL)"
 	LabelZone1         = "loss-of-field zone 1"
 	LabelZone2         = "loss-of-field zone 2"
 	LabelFailing       = "failing check point"
@@ -202,7 +202,7 @@ func CoordPQ(w io.Writer, title string, m *limits.Unit, s *limits.Settings, st *
 				xys = append(xys, plotter.XY{X: q.V * mva, Y: pp * mva})
 			}
 		}
-		if err := addLine(p, LabelUEL, xys, solid(pal.uel, 2)); err != nil {
+		if err := addLine(p, LabelLimiterUEL, xys, solid(pal.uel, 2)); err != nil {
 			return err
 		}
 	}

@@ -32,13 +32,13 @@ func TestCoordCharts(t *testing.T) {
 		draw func(*bytes.Buffer) error
 		want []string
 	}{
-		{"pq", func(b *bytes.Buffer) error { return CoordPQ(b, "pq", u, s, &st, base, 0.95) }, []string{LabelUEL, LabelZone2, LabelArmature}},
+		{"pq", func(b *bytes.Buffer) error { return CoordPQ(b, "pq", u, s, &st, base, 0.95) }, []string{LabelLimiterUEL, LabelZone2, LabelArmature}},
 		{"rx", func(b *bytes.Buffer) error { return CoordRX(b, "rx", u, s, base) }, []string{LabelManualRX, "secondary Ω (primary Ω)"}},
 		{"time", func(b *bytes.Buffer) error { return CoordTime(b, "time", s) }, []string{LabelOEL, LabelFieldCap, LabelSCL, LabelFieldRelay}},
 		{"vhz", func(b *bytes.Buffer) error { return CoordVHz(b, "vhz", s) }, []string{LabelVHzRelay, LabelTransformerLd, LabelGeneratorVHz}},
 		{"capability", func(b *bytes.Buffer) error {
 			return Capability(b, "cap", u.Envelope(1, 0, false, 41), base, WithLimiters(p.UEL, s.LossOfField.Zones, 1))
-		}, []string{LabelUEL, LabelZone1, LabelZone2}},
+		}, []string{LabelLimiterUEL, LabelZone1, LabelZone2}},
 	}
 	for _, c := range cases {
 		var b bytes.Buffer

@@ -58,7 +58,7 @@ func limiterLines(m *limiterMarks, pts []limits.EnvelopePoint, mva float64) ([]l
 				return nil, fmt.Errorf("chart: UEL: %w", err)
 			}
 			l.LineStyle = solid(pal.uel, 1.8)
-			out = append(out, limiterLine{LabelUEL, l, l})
+			out = append(out, limiterLine{LabelLimiterUEL, l, l})
 		}
 	}
 	for k, z := range m.zones {
