@@ -23,7 +23,7 @@ import (
 
 // Legend labels of the coordination charts.
 const (
-	LabelLimiterUEL           = "underexcitation limiter (UEL)"
+	LabelLimiterUEL    = "underexcitation limiter (UEL)"
 	LabelZone1         = "loss-of-field zone 1"
 	LabelZone2         = "loss-of-field zone 2"
 	LabelFailing       = "failing check point"
