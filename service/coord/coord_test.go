@@ -61,3 +61,35 @@ func TestStudyReport(t *testing.T) {
 		}
 	}
 }
+
+// TestShippedUELsLetFullLoadRun: the invented UEL settings of the shipped
+// fleets leave room to run at full load and unity power factor at rated
+// voltage (q_uel at p_max at most -0.05 pu), as a real setting must; and
+// only the one deliberate miscoordination fails in each.
+func TestShippedUELsLetFullLoadRun(t *testing.T) {
+	for _, c := range []struct{ path, bad string }{
+		{"../../deploy/examples/fleet.yaml", "brindle-gt3"},
+		{"../demo/demo-fleet.yaml", "tillmoor-gt1"},
+	} {
+		f, _, err := fleet.Load(c.path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, u := range f.Units {
+			p := u.Model.Params()
+			if p.UEL == nil {
+				continue
+			}
+			if q := p.UEL.At(p.PMax, 1); !q.OK || q.V > -0.05 {
+				t.Errorf("%s %s: q_uel at p_max, 1.0 pu is %v pu, want at most -0.05", c.path, u.ID, q)
+			}
+		}
+		for _, u := range Study(f).Units {
+			for _, ch := range u.Checks {
+				if (ch.Status == "fail") != (u.Unit == c.bad && ch.Name == "uel_before_loss_of_field") {
+					t.Errorf("%s %s %s: %s", c.path, u.Unit, ch.Name, ch.Status)
+				}
+			}
+		}
+	}
+}
