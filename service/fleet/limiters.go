@@ -163,3 +163,23 @@ func (it *InverseTime) Curve() *limits.InverseTime {
 	}
 	return c
 }
+
+// between returns a rule allowing x in the interval from lo to hi, open
+// or closed at each end.
+func between(lo, hi float64, loOpen, hiOpen bool) func(float64) string {
+	return func(x float64) string {
+		okLo := x > lo || (!loOpen && x == lo)
+		okHi := x < hi || (!hiOpen && x == hi)
+		if okLo && okHi {
+			return ""
+		}
+		l, r := "[", "]"
+		if loOpen {
+			l = "("
+		}
+		if hiOpen {
+			r = ")"
+		}
+		return fmt.Sprintf("must be in %s%s, %s%s", l, fmtNum(lo), fmtNum(hi), r)
+	}
+}
