@@ -23,7 +23,9 @@ type tmpUEL struct {
 }
 
 func (c *unitCtx) decodeExcitationTmp(v *yaml.Node, path string, line int) {
-	keys := append([]string{"uel"}, limiterKeys()...)
+	// The regulator's own keys are accepted and left to the engine's
+	// decoder, so that files written for it read here too.
+	keys := append([]string{"k_a", "t_a_s", "t_r_s", "efd_min_pu", "efd_max_pu", "uel"}, limiterKeys()...)
 	m, ok := c.open(v, path, line, keys...)
 	if !ok {
 		return

@@ -63,17 +63,17 @@ func TestParseProtectionRules(t *testing.T) {
 		line           int
 		field, text    string
 	}{
-		{"zone diameter zero", "diameter_ohm: 16.5", "diameter_ohm: 0", 21, "protection.loss_of_field.zones[1].diameter_ohm", "positive diameter"},
-		{"zone offset negative", "{offset_ohm: 2.1, diameter_ohm: 33.0", "{offset_ohm: -1, diameter_ohm: 33.0", 22, "protection.loss_of_field.zones[2].offset_ohm", "must be positive"},
-		{"ohms without ratios", "        ct_ratio: 4000\n        vt_ratio: 175\n", "", 19, "protection.loss_of_field.zones[1]", "needs the relay's ct_ratio and vt_ratio"},
-		{"ohms and pu mixed", "{offset_ohm: 2.1, diameter_ohm: 16.5,", "{offset_ohm: 2.1, diameter_pu: 0.5,", 21, "protection.loss_of_field.zones[1]", "not both"},
-		{"oel ceiling below pickup", "ceiling_pu: 1.6, k_s: 15", "ceiling_pu: 1.02, k_s: 15", 10, "excitation.oel.ceiling_pu", "not above the pickup"},
-		{"oel points and formula", "oel: {pickup_pu: 1.05, ceiling_pu: 1.6, k_s: 15}", "oel: {pickup_pu: 1.05, points: []}", 10, "excitation.oel", "not both"},
-		{"scl time rising", "{current_pu: 1.5, time_s: 15}", "{current_pu: 1.5, time_s: 400}", 14, "excitation.scl.points", "must not rise"},
-		{"vhz stage at rating", "{pickup_pu: 1.10, delay_s: 45}", "{pickup_pu: 1.0, delay_s: 45}", 24, "protection.volts_per_hertz.stages[1].pickup_pu", "must be in (1, 1.5]"},
-		{"transformer far from the generator", "kv_lv: 19.5", "kv_lv: 230", 25, "transformer.kv_lv", "within 20 %"},
-		{"unknown key", "field_overcurrent: {pickup_pu: 1.1, k_s: 40}", "field_overcurrent: {pickup_pu: 1.1, k: 40}", 23, "protection.field_overcurrent.k", "unknown key"},
-		{"vhz limiter missing setpoint", "vhz_limiter: {setpoint_pu: 1.08}", "vhz_limiter: {}", 15, "excitation.vhz_limiter.setpoint_pu", "missing"},
+		{"zone diameter zero", "diameter_ohm: 16.5", "diameter_ohm: 0", 23, "protection.loss_of_field.zones[1].diameter_ohm", "positive diameter"},
+		{"zone offset negative", "{offset_ohm: 2.1, diameter_ohm: 33.0", "{offset_ohm: -1, diameter_ohm: 33.0", 24, "protection.loss_of_field.zones[2].offset_ohm", "must be positive"},
+		{"ohms without ratios", "        ct_ratio: 4000\n        vt_ratio: 175\n", "", 21, "protection.loss_of_field.zones[1]", "needs the relay's ct_ratio and vt_ratio"},
+		{"ohms and pu mixed", "{offset_ohm: 2.1, diameter_ohm: 16.5,", "{offset_ohm: 2.1, diameter_pu: 0.5,", 23, "protection.loss_of_field.zones[1]", "not both"},
+		{"oel ceiling below pickup", "ceiling_pu: 1.6, k_s: 15", "ceiling_pu: 1.02, k_s: 15", 12, "excitation.oel.ceiling_pu", "not above the pickup"},
+		{"oel points and formula", "oel: {pickup_pu: 1.05, ceiling_pu: 1.6, k_s: 15}", "oel: {pickup_pu: 1.05, points: []}", 12, "excitation.oel", "not both"},
+		{"scl time rising", "{current_pu: 1.5, time_s: 15}", "{current_pu: 1.5, time_s: 400}", 16, "excitation.scl.points", "must not rise"},
+		{"vhz stage at rating", "{pickup_pu: 1.10, delay_s: 45}", "{pickup_pu: 1.0, delay_s: 45}", 26, "protection.volts_per_hertz.stages[1].pickup_pu", "must be in (1, 1.5]"},
+		{"transformer far from the generator", "kv_lv: 19.5", "kv_lv: 230", 27, "transformer.kv_lv", "within 20 %"},
+		{"unknown key", "field_overcurrent: {pickup_pu: 1.1, k_s: 40}", "field_overcurrent: {pickup_pu: 1.1, k: 40}", 25, "protection.field_overcurrent.k", "unknown key"},
+		{"vhz limiter missing setpoint", "vhz_limiter: {setpoint_pu: 1.08}", "vhz_limiter: {}", 17, "excitation.vhz_limiter.setpoint_pu", "missing"},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
