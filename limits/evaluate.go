@@ -13,11 +13,19 @@ import "math"
 //
 //	armature         1 - i/i_max
 //	field            1 - i_fd/i_fd_max (the measured field current when the point has one, else the model)
-//	stability        (q - q_practical) / 1 pu
+//	stability        (q - q_practical) / 1 pu; where q_max moved down to the top of the
+//	                 stable interval (StabilityTop), the smaller of that and (top - q) / 1 pu
 //	end_region       (q - q_end) / 1 pu (only with an end-region curve)
 //	prime_mover      (p_max - p) / p_rated, p_max the prime mover's
 //	volts_per_hertz  1 - (v/f)/1.05
-func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, true) }
+//
+// On the avr basis, Evaluate with a hint is the per-sample path and reads
+// the stability limit from the unit's table (within 0.002 pu of the
+// direct computation, see stabTable); with a nil hint it is the direct
+// computation (avrInterval, tens of microseconds).
+func (u *Unit) Evaluate(pt Point, h *Hint) Result {
+	return u.evaluate(pt, h, true, h != nil && u.avrTab != nil)
+}
 
 // EvaluateSample is Evaluate for the per-sample path of a service. Its
 // margins, binding limit, feasibility, lower bound and practical
@@ -25,13 +33,24 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, tru
 // them, it leaves the field-limit curve (and so q_max and its limit) and
 // the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
 // less often than samples arrive.
-func (u *Unit) EvaluateSample(pt Point, h *Hint) Result { return u.evaluate(pt, h, false) }
+func (u *Unit) EvaluateSample(pt Point, h *Hint) Result {
+	return u.evaluate(pt, h, false, h != nil && u.avrTab != nil)
+}
 
 // Complete solves what EvaluateSample left pending in r, the result of
-// point pt; after it r is Evaluate's result, to the root tolerance. It
-// does nothing when nothing is pending.
+// point pt; after it r is Evaluate's result, to the root tolerance (on
+// the avr basis the result of Evaluate with a hint: both read the
+// stability limit from the unit's table). It does nothing when nothing
+// is pending.
 func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.QMaxPending {
+		return
+	}
+	if r.fast {
+		// The avr basis' table answer depends on q_max only through
+		// which checks it needs: the evaluation is done again, as
+		// Evaluate with a hint does it.
+		*r = u.evaluate(pt, nil, true, true)
 		return
 	}
 	r.Field = u.fieldLimit(pt.P, pt.V, r.IfdMax, nil)
@@ -39,12 +58,18 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.Stability.OK && r.QMax.OK {
 		// Left by the warm practical limit; the practical limit is solved
 		// again with it, to the same root.
-		r.Stability, r.Practical = u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, nil)
+		s := u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, false)
+		if s.top.OK || s.err != nil {
+			// q_max itself is unstable: the whole envelope changes.
+			*r = u.evaluate(pt, nil, true, false)
+			return
+		}
+		r.setStability(s)
 	}
 	r.QMaxPending = false
 }
 
-func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
+func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
 	p, q, v := pt.P, pt.Q, pt.V
 	f := pt.F
 	if f == 0 {
@@ -66,7 +91,8 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 		r.CoolantOutside = !inside
 	}
 	r.IMax, r.IfdMax = armF, u.ifdRated*fieldF
-	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full)
+	r.fast = fast
+	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full, r.fast)
 
 	fs := u.field(p, q, v, false)
 	r.IfdModel, r.Ef = fs.ifd, fs.ef
@@ -86,7 +112,12 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 	}
 	r.Margins[LimitField] = some(1 - ifd/r.IfdMax)
 	if r.Practical.OK {
-		r.Margins[LimitStability] = some(q - r.Practical.V)
+		m := q - r.Practical.V
+		if r.StabilityTop.OK {
+			// Above the topmost stable interval the point is unstable too.
+			m = math.Min(m, r.StabilityTop.V-q)
+		}
+		r.Margins[LimitStability] = some(m)
 	}
 	if r.EndRegion.OK {
 		r.Margins[LimitEndRegion] = some(q - r.EndRegion.V)

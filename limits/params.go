@@ -116,6 +116,10 @@ type Unit struct {
 	hasEnd       bool
 	hasCoolant   bool
 	hasTransient bool
+
+	// The avr stability basis.
+	avrTab  *stabTable // q_stability over p and v for the per-sample path; nil on the manual basis
+	avrChar charParts  // the fixed parts of the characteristic polynomial (avr basis)
 }
 
 // New checks p and prepares a Unit. The first inconsistency found is
@@ -213,12 +217,119 @@ func New(p Params) (*Unit, error) {
 		u.p.Coolant = &Coolant{At: slices.Clone(c.At), Armature: slices.Clone(c.Armature), Field: slices.Clone(c.Field)}
 		u.hasCoolant = true
 	}
+	if err := u.prepareAVR(); err != nil {
+		return nil, err
+	}
 	u.ifdModel = u.FieldCurrent(p.PowerFactor, math.Sqrt(1-p.PowerFactor*p.PowerFactor), 1)
 	u.ifdRated = p.IfdRated
 	if u.ifdRated == 0 {
 		u.ifdRated = u.ifdModel
 	}
 	return u, nil
+}
+
+// checkAVR checks the parameters of the avr stability basis (envelope.md,
+// "The linearized model for the avr basis"): the ones the small-signal
+// model needs, in the fleet file's spelling. It is separate from the
+// steady-state checks of New.
+func checkAVR(p *Params) error {
+	bad := func(field, format string, args ...any) error {
+		return &ParamError{Field: field, Reason: fmt.Sprintf(format, args...)}
+	}
+	fin := func(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+	posT := func(x float64) bool { return x > 0 && fin(x) }
+	switch {
+	case p.Basis != BasisManual && p.Basis != BasisAVR:
+		return bad("stability.basis", "must be manual or avr")
+	case !fin(p.ZetaMin) || p.ZetaMin < 0 || p.ZetaMin >= 1:
+		return bad("stability.zeta_min", "must be in [0, 1), got %v", p.ZetaMin)
+	case !fin(p.Td0TransientS) || p.Td0TransientS < 0:
+		return bad("machine.td0_transient_s", "must be a positive time in s when given, got %v", p.Td0TransientS)
+	case !fin(p.DampingPU) || p.DampingPU < 0:
+		return bad("machine.damping_pu", "must be a non-negative damping in pu torque per pu speed, got %v", p.DampingPU)
+	}
+	if e := p.Exciter; e != nil {
+		switch {
+		case !fin(e.KA) || e.KA < 0:
+			return bad("excitation.k_a", "must be a non-negative gain, got %v", e.KA)
+		case !posT(e.TAS):
+			return bad("excitation.t_a_s", "must be a positive time in s, got %v", e.TAS)
+		case !fin(e.TRS) || e.TRS < 0:
+			return bad("excitation.t_r_s", "must be a non-negative time in s, got %v", e.TRS)
+		case !fin(e.EfdMin):
+			return bad("excitation.efd_min_pu", "must be a finite field voltage in pu, got %v", e.EfdMin)
+		case !fin(e.EfdMax) || e.EfdMax < 0 || (e.EfdMax > 0 && e.EfdMax <= e.EfdMin):
+			return bad("excitation.efd_max_pu", "must be above efd_min_pu (%v) when given, got %v", e.EfdMin, e.EfdMax)
+		}
+	}
+	if s := p.Stabilizer; s != nil {
+		switch {
+		case !fin(s.K) || s.K < 0:
+			return bad("stabilizer.k", "must be a non-negative gain, got %v", s.K)
+		case !posT(s.TWS):
+			return bad("stabilizer.t_w_s", "must be a positive washout time in s, got %v", s.TWS)
+		case !fin(s.T1S) || s.T1S < 0:
+			return bad("stabilizer.t1_s", "must be a non-negative time in s, got %v", s.T1S)
+		case !posT(s.T2S):
+			return bad("stabilizer.t2_s", "must be a positive lag time in s (a lead-lag needs t2 > 0), got %v", s.T2S)
+		case !fin(s.T3S) || s.T3S < 0:
+			return bad("stabilizer.t3_s", "must be a non-negative time in s, got %v", s.T3S)
+		case !posT(s.T4S):
+			return bad("stabilizer.t4_s", "must be a positive lag time in s (a lead-lag needs t4 > 0), got %v", s.T4S)
+		}
+	}
+	if p.Basis != BasisAVR {
+		return nil
+	}
+	// What the linearized model needs.
+	switch {
+	case p.Exciter == nil:
+		return bad("excitation", "the avr stability basis needs the exciter (k_a, t_a_s)")
+	case p.Td0TransientS == 0:
+		return bad("machine.td0_transient_s", "the avr stability basis needs T'd0")
+	case p.InertiaHS == 0:
+		return bad("machine.inertia_h_s", "the avr stability basis needs the inertia constant H")
+	case p.XdTransient == 0:
+		return bad("machine.xd_transient", "the avr stability basis needs X'd")
+	}
+	return nil
+}
+
+// DefaultBasis is the stability basis of a unit whose fleet file does
+// not name one (envelope.md, "Stability basis"): avr when the exciter is
+// given, else manual.
+func (p *Params) DefaultBasis() Basis {
+	if p.Exciter != nil {
+		return BasisAVR
+	}
+	return BasisManual
+}
+
+// prepareAVR checks the avr basis' parameters and, on that basis, builds
+// the per-sample table of the stability limit (stabTable), copying the
+// exciter and stabilizer so that the caller's may change.
+func (u *Unit) prepareAVR() error {
+	if err := checkAVR(&u.p); err != nil {
+		return err
+	}
+	if e := u.p.Exciter; e != nil {
+		c := *e
+		u.p.Exciter = &c
+	}
+	if s := u.p.Stabilizer; s != nil {
+		c := *s
+		u.p.Stabilizer = &c
+	}
+	if u.p.Basis != BasisAVR {
+		return nil
+	}
+	u.avrChar = u.charParts()
+	t, err := u.buildStabTable()
+	if err != nil {
+		return &ParamError{Field: "stability.basis", Reason: "the small-signal model could not be solved while preparing the unit: " + err.Error()}
+	}
+	u.avrTab = t
+	return nil
 }
 
 // Params returns the parameters the unit was built from.
@@ -413,6 +524,9 @@ func (u *Unit) UELAt(p, v float64) Bound {
 // limit on the unit's own basis with no practical margin, computed
 // directly (no warm start), at rated coolant. Absent where the point has
 // no stable operation. The coordination study and the reports use it.
+//
+// On the avr basis this is the search of avrInterval (envelope.md,
+// "Which stable interval, and the limit").
 func (u *Unit) StabilityLimit(p, v float64) Bound {
 	return u.Bounds(p, v, 1, 1, nil).Stability
 }

@@ -87,8 +87,16 @@ type Bounds struct {
 	ArmatureUp   Bound // +sqrt((v i_max)^2 - p^2)
 	ArmatureDown Bound // -sqrt((v i_max)^2 - p^2)
 	Field        Bound // q at which the field current reaches its limit
-	Stability    Bound // theoretical steady-state stability limit (manual excitation)
-	Practical    Bound // practical stability limit (with the margin)
+	Stability    Bound // q_stability, the steady-state stability limit on the unit's basis
+	Practical    Bound // practical stability limit (with the margin; = Stability when the margin is 0)
+
+	// StabilityTop is set where q_max itself is unstable: the top of the
+	// topmost stable interval, to which q_max moves (QMaxLimit stability).
+	StabilityTop Bound
+	// StabilityErr is ErrSmallSignal where the avr basis' eigenvalue
+	// solver failed: Stability and Practical are then absent, and the
+	// point is reported infeasible with reason stability.
+	StabilityErr error
 	EndRegion    Bound // stator end-region curve at this voltage
 
 	QMax, QMin           Bound
@@ -115,6 +123,10 @@ type Result struct {
 	// (and, for a salient-pole unit, Stability) are left unsolved;
 	// Complete solves them.
 	QMaxPending bool
+
+	// fast is set when the avr basis' stability limit came from the
+	// unit's table (the per-sample path), so that Complete keeps to it.
+	fast bool
 
 	Binding    Limit // the capability-chart limit (armature to prime mover) with the smallest margin
 	Feasible   bool  // every bound exists at this active power
