@@ -443,3 +443,27 @@ func TestInverseTimeCheck(t *testing.T) {
 		t.Error(err)
 	}
 }
+
+// TestCoordinateOnTheUnitsBasis: uel_above_stability holds the UEL to
+// the stability limit on the unit's own basis. On the avr basis with
+// K_A = 0 that limit is the manual one (envelope.md, an identity of the
+// linearized model), so the check's margin is the closed-form manual
+// circle's, as on the manual basis.
+func TestCoordinateOnTheUnitsBasis(t *testing.T) {
+	p := coordUnit(t, 1.8, 0.2).Params()
+	p.UEL = flatUEL(-0.35, 0)
+	p.Basis, p.Exciter, p.Td0TransientS, p.InertiaHS = BasisAVR, &Exciter{KA: 0, TAS: 0.05}, 6, 4
+	u, err := New(p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	ch := u.Coordinate(&Settings{}).Checks[CheckUELAboveStability]
+	m, v, pw := gridWorst(0.85, func(p, v float64) (float64, bool) {
+		c := v * v / 2 * (1/0.2 - 1/1.8)
+		r := v * v / 2 * (1/0.2 + 1/1.8)
+		return -0.35 - (c - math.Sqrt(r*r-p*p)), p <= v
+	})
+	if ch.Status != StatusPass || math.Abs(ch.Margin-m) > 1e-5 || ch.WorstV != v || math.Abs(ch.WorstP-pw) > 1e-12 {
+		t.Errorf("avr basis, K_A = 0: %v margin %v at (%v, %v), want pass %v at (%v, %v)", ch.Status, ch.Margin, ch.WorstV, ch.WorstP, m, v, pw)
+	}
+}
