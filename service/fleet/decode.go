@@ -81,6 +81,7 @@ func unitKeys() []unitKey {
 		{name: "protection", required: false, decode: (*unitCtx).decodeProtection},
 		{name: "transformer", required: false, decode: (*unitCtx).decodeTransformer},
 		{name: "alarms", required: false, decode: (*unitCtx).decodeAlarms},
+		{name: "plausibility", required: false, decode: (*unitCtx).decodePlausibility},
 	}
 }
 

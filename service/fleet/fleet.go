@@ -75,10 +75,11 @@ type Unit struct {
 
 	// The limiters (excitation.oel, scl, vhz_limiter), the protection and
 	// the step-up transformer, for the coordination study.
-	Limiters    Limiters
-	Protection  Protection
-	Transformer *Transformer // nil when not given
-	uelTmp      *tmpUEL      // TEMPORARY: excitation.uel until the engine's decoder lands
+	Limiters     Limiters
+	Protection   Protection
+	Transformer  *Transformer // nil when not given
+	uelTmp       *tmpUEL      // TEMPORARY: excitation.uel until the engine's decoder lands
+	Plausibility Plausibility // the values it can physically report; zero fields take the defaults
 
 	// Alarms are the unit's alarm settings: the fleet's, with the unit's
 	// own alarms: block on top.

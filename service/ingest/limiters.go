@@ -33,26 +33,38 @@ func (l *limiterState) curves(cfg *fleet.Unit) {
 	l.oelCurve, l.sclCurve = cfg.Limiters.OEL.Curve(), cfg.Limiters.SCL.Curve()
 }
 
-// advanceLimiters holds the previous sample's currents for dt seconds.
-// u.mu must be held.
+// advanceLimiters advances the timers by dt seconds with the currents
+// the thermal memory holds (hArm, hField: the previous sample's, capped,
+// and not taken from a suspect sample until a following one confirms
+// it), so that both run on the same rule: on sample time, and on the
+// wall clock while the unit is silent (Sweep). u.mu must be held.
 func (u *Unit) advanceLimiters(dt float64) {
 	l := &u.lim
 	l.curves(u.cfg)
-	l.oel.Advance(l.oelCurve, l.xOEL, dt)
-	l.scl.Advance(l.sclCurve, l.xSCL, dt)
+	if l.oelCurve == nil && l.sclCurve == nil {
+		return
+	}
+	xOEL, xSCL := u.limiterCurrents(u.hArm, u.hField)
+	l.oel.Advance(l.oelCurve, xOEL, dt)
+	l.scl.Advance(l.sclCurve, xSCL, dt)
 }
 
-// holdLimiters takes the latest evaluation's currents for the limiters:
-// the OEL acts on the field current (the measured one when the sample
-// has a good one) against the rated field current as set, the SCL on
-// the armature current in pu of rated. u.mu must be held.
-func (u *Unit) holdLimiters() {
-	l := &u.lim
-	l.curves(u.cfg)
+// limiterCurrents converts the thermal memory's per-unit currents
+// (against the ratings at the coolant of the latest evaluation) to what
+// the limiters act on: the field current in pu of the rated field
+// current as set, the armature current in pu of rated. u.mu must be held.
+func (u *Unit) limiterCurrents(xArm, xField float64) (xOEL, xSCL float64) {
 	if r := u.cfg.Model.RatedFieldCurrent(); r > 0 {
-		l.xOEL = u.xField * u.eval.IfdMax / r
+		xOEL = xField * u.eval.IfdMax / r
 	}
-	l.xSCL = u.eval.I
+	return xOEL, xArm * u.eval.IMax
+}
+
+// holdLimiters takes the latest evaluation's currents for the limiters'
+// present state (time to action, the alarms). u.mu must be held.
+func (u *Unit) holdLimiters() {
+	u.lim.curves(u.cfg)
+	u.lim.xOEL, u.lim.xSCL = u.limiterCurrents(u.xArm, u.xField)
 }
 
 // LimiterView is the live state of a unit's limiters.
@@ -109,7 +121,9 @@ func (u *Unit) limiterQuantity(k alarm.Kind) float64 {
 	if k == alarm.SCLTimer {
 		c, t, x = l.sclCurve, l.scl, l.xSCL
 	}
-	if c == nil || !u.has {
+	if c == nil || !u.has || u.suspect {
+		// Nothing to watch, or a suspect sample (the first after a gap,
+		// or a jump): the alarm holds its level until a sample confirms.
 		return math.NaN()
 	}
 	s, timing := t.TimeToAction(c, x)

@@ -29,9 +29,11 @@ func TestOELTimerOnSampleTime(t *testing.T) {
 		return smp
 	}
 	s := NewStore(fl, Options{})
-	// Uneven spacing: 0.5 s, 1 s and 2 s steps up to 8 s.
-	var at time.Duration
-	for _, step := range []time.Duration{0, 500, 500, 1000, 2000, 1000, 500, 500, 2000} {
+	// A first sample is suspect (it holds nothing until confirmed), so
+	// the overload starts at -1 s and is counted from 0; then uneven
+	// spacing: 0.5 s, 1 s and 2 s steps up to 8 s.
+	at := -time.Second
+	for _, step := range []time.Duration{0, 1000, 500, 500, 1000, 2000, 1000, 500, 500, 2000} {
 		at += step * time.Millisecond
 		smp := sample(at)
 		if r, d := s.Accept(now, &smp); r != Accepted {
@@ -59,7 +61,7 @@ func TestOELTimerOnSampleTime(t *testing.T) {
 		t.Fatal(err)
 	}
 	s2 := NewStore(exampleFleet(t), Options{})
-	if n, _ := s2.Restore(&sn); n != 3 {
+	if n, _, _ := s2.Restore(&sn); n != 3 {
 		t.Fatalf("restored %d units", n)
 	}
 	check(s2, 8)
@@ -102,7 +104,7 @@ func TestOELAlarmSentence(t *testing.T) {
 	ratedA := u.Model.RatedFieldCurrent() * u.Field.AirGapA
 	now := t0.Add(time.Hour)
 	var evs []alarm.Event
-	for i := 0; i <= 12; i++ {
+	for i := -1; i <= 12; i++ { // the sample at -1 s confirms the overload (a first sample is suspect)
 		smp := good("harrowmere-1", t0.Add(time.Duration(i)*time.Second))
 		smp.FieldA, smp.HasFieldA = 1.38*ratedA, true
 		smp.Coolant, smp.HasCoolant = 414, true
