@@ -90,6 +90,7 @@ func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full bool) (b Bounds,
 		b.Stability, b.Practical = u.stabilityLimits(math.Abs(p), v, b.QMax.V, h)
 	}
 	b.EndRegion = u.endRegionAt(p, v)
+	b.UEL = u.UELAt(p, v)
 	b.lowerBound()
 	return b, false
 }
@@ -109,8 +110,10 @@ func (b *Bounds) upperBound() {
 	}
 }
 
-// lowerBound sets b's lower bound from its armature, practical stability
-// and end-region curves: q_min = max of the three, naming the one that binds.
+// lowerBound sets b's lower bound from its armature, practical stability,
+// end-region and underexcitation-limiter curves: q_min = max of the four,
+// naming the one that binds (envelope.md, "The lower bound"). A UEL curve
+// with no value at this p does not bound q.
 func (b *Bounds) lowerBound() {
 	switch {
 	case !b.ArmatureDown.OK:
@@ -124,6 +127,9 @@ func (b *Bounds) lowerBound() {
 		}
 		if b.EndRegion.OK && b.EndRegion.V > b.QMin.V {
 			b.QMin, b.QMinLimit = b.EndRegion, LimitEndRegion
+		}
+		if b.UEL.OK && b.UEL.V > b.QMin.V {
+			b.QMin, b.QMinLimit = b.UEL, LimitUEL
 		}
 	}
 }
@@ -163,6 +169,7 @@ func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint) (Bounds, 
 		b.Stability, b.Practical = theo, prac
 	}
 	b.EndRegion = u.endRegionAt(p, v)
+	b.UEL = u.UELAt(p, v)
 	b.lowerBound()
 	qMin := b.QMin.V
 	if qMin > qTop {
@@ -263,13 +270,7 @@ func (u *Unit) stabilityLimits(p, v, qTop float64, h *Hint) (theo, prac Bound) {
 	if u.roundStab {
 		return u.roundStability(p, v, qTop)
 	}
-	g := func(q float64) float64 {
-		s := u.stab(p, q, v)
-		if s.degen {
-			return -1
-		}
-		return math.Min(s.ks, s.ef)
-	}
+	g := u.stabFunc(p, v)
 	if hint, ok := h.get(hintStab); ok {
 		if q, slope, ok := warmRoot(g, hint, h.stabSlope, qTop); ok {
 			theo = some(q)
@@ -328,6 +329,19 @@ func (u *Unit) stabilityLimits(p, v, qTop float64, h *Hint) (theo, prac Bound) {
 	return theo, u.practicalLimit(p, v, lo, qTop, h)
 }
 
+// stabFunc returns the function whose sign tells stability on the manual
+// basis at active power p >= 0 and voltage v: min(K_s, E_f), positive
+// where the point is stable.
+func (u *Unit) stabFunc(p, v float64) func(q float64) float64 {
+	return func(q float64) float64 {
+		s := u.stab(p, q, v)
+		if s.degen {
+			return -1
+		}
+		return math.Min(s.ks, s.ef)
+	}
+}
+
 // peakExcess returns the function whose root in q is the practical
 // stability limit at active power p >= 0 and voltage v: the peak of
 // P(delta) at the point's own E_f and V_s, less p and the margin m.
@@ -344,7 +358,17 @@ func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
 
 // practicalLimit returns the lowest q in [qs, qTop] at which the peak of
 // P(delta) at the point's own E_f and V_s is at least p + m.
+//
+// With no margin (m = 0, the default) it is qs itself: P_max - p touches
+// zero there without crossing it (P_max >= P(delta) = p at every stable
+// and unstable equilibrium alike), a double root no search finds to
+// better than the square root of its tolerance, which made the warm and
+// cold paths disagree by 1e-7 pu on weak grids.
 func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
+	if u.marginPU == 0 {
+		h.set(hintPrac, some(qs))
+		return some(qs)
+	}
 	hf := u.peakExcess(p, v)
 	if hint, ok := h.get(hintPrac); ok && hint > qs {
 		if q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop); ok && q > qs {
@@ -375,8 +399,27 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 // theoretical limit. A round rotor has both in closed form and gains
 // nothing from this.
 func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
+	if u.roundStab {
+		return Bound{}, false
+	}
+	if u.marginPU == 0 {
+		// The practical limit is the theoretical one (see practicalLimit):
+		// its own warm root, which is exactly the cold path's.
+		hint, ok := h.get(hintStab)
+		if !ok {
+			return Bound{}, false
+		}
+		q, slope, ok := warmRoot(u.stabFunc(p, v), hint, h.stabSlope, qTop)
+		if !ok {
+			return Bound{}, false
+		}
+		h.stabSlope = slope
+		h.set(hintStab, some(q))
+		h.set(hintPrac, some(q))
+		return some(q), true
+	}
 	hint, ok := h.get(hintPrac)
-	if u.roundStab || !ok {
+	if !ok {
 		return Bound{}, false
 	}
 	hf := u.peakExcess(p, v)
