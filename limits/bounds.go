@@ -444,10 +444,22 @@ func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
 // the lower root. With Xq = Xd this is the textbook steady-state stability
 // circle, centre (0, (v^2/2)(1/Xe - 1/Xd)), radius (v^2/2)(1/Xe + 1/Xd);
 // with Xe = 0 it is the line q = -v^2/Xq.
+//
+// At p = 0 the lower root is q = -v^2/Xq, where E_Q itself is zero: its
+// direction, and so E_f and K_s, jump there, and a bracket started on it
+// closed on the jump instead of on the limit (a salient unit at exactly
+// p = 0 gave -v^2/Xq where p = 0.01 MW gave -v^2/Xd). Just above that q,
+// E_Q lies along V (delta = 0) and E_f = v + Xd q/v < 0: unstable like
+// the perpendicular point, and on the continuous side of the jump, so
+// the start moves there.
 func (u *Unit) perpendicular(p, v float64) (float64, bool) {
 	xq, xe := u.p.Xq, u.p.Xe
 	v2 := v * v
-	return quadLower(xq*xe, -v2*(xq-xe), xq*xe*p*p-v2*v2)
+	q, ok := quadLower(xq*xe, -v2*(xq-xe), xq*xe*p*p-v2*v2)
+	if ok && p == 0 {
+		q = math.Max(q, -v2/xq) + 1e-9*(1+math.Abs(q))
+	}
+	return q, ok
 }
 
 // roundStability is the closed form of both stability limits for a

@@ -184,6 +184,22 @@ func TestCriticalClearingTimeOnlyWhenStable(t *testing.T) {
 	}
 }
 
+// A salient-pole unit at exactly p = 0 has the limit of p -> 0: with
+// K_s = a + 2b > 0 at delta = 0, the limit is E_f = 0, that is
+// q = -v^2/Xd (E_f = v + Xd q/v at p = 0; two-reaction theory). The cold
+// search used to close on q = -v^2/Xq, where E_Q = 0.
+func TestSalientLimitAtZeroPower(t *testing.T) {
+	for _, tc := range []struct{ xd, xq, xe, v float64 }{
+		{0.859, 0.557, 0.862, 0.961}, {1.49, 0.731, 0.437, 1.052}, {1.124, 0.906, 0.095, 1.016}, {1.05, 0.68, 0.18, 1},
+	} {
+		u := salientUnit(t, tc.xd, tc.xq, tc.xe)
+		want := -tc.v * tc.v / tc.xd
+		for _, p := range []float64{0, 3e-5} { // 3e-5 pu: 0.01 MW of a 330 MVA unit
+			near(t, "salient stability limit near p = 0", u.StabilityLimit(p, tc.v).V, want, 1e-4)
+		}
+	}
+}
+
 // New reports every problem at once, in the fleet file's spelling, and
 // checks s12 > 1.2 s10 (the quadratic saturation form needs it; envelope.md).
 func TestNewReportsEveryProblem(t *testing.T) {
