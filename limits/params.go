@@ -143,16 +143,18 @@ func New(p Params) (*Unit, error) {
 	case p.Rotor == Salient && p.Xq >= p.Xd:
 		bad("machine.xq", "a salient-pole rotor needs xq < xd, got xq %v, xd %v", p.Xq, p.Xd)
 	}
-	if !fin(p.Xl) || p.Xl < 0 || p.Xl >= p.Xd {
-		bad("machine.xl", "must be in [0, xd) pu (xd %v), got %v", p.Xd, p.Xl)
+	// Below xd: checked against a valid xd only, so that one wrong xd is one error.
+	xdOK := pos(p.Xd)
+	if !pos(p.Xl) || xdOK && p.Xl >= p.Xd {
+		bad("machine.xl", "must be a positive reactance below xd (%v pu), got %v", p.Xd, p.Xl)
 	}
-	if !fin(p.Xp) || p.Xp < 0 || p.Xp >= p.Xd {
-		bad("machine.xp", "must be in [0, xd) pu (xd %v), got %v", p.Xd, p.Xp)
+	if !pos(p.Xp) || xdOK && p.Xp >= p.Xd {
+		bad("machine.xp", "must be a positive reactance below xd (%v pu), got %v", p.Xd, p.Xp)
 	}
 	if !fin(p.Ra) || p.Ra < 0 || p.Ra > 0.1 {
 		bad("machine.ra", "must be in [0, 0.1] pu, got %v", p.Ra)
 	}
-	if !fin(p.XdTransient) || p.XdTransient < 0 || p.XdTransient >= p.Xd {
+	if !fin(p.XdTransient) || p.XdTransient < 0 || xdOK && p.XdTransient >= p.Xd {
 		bad("machine.xd_transient", "must be in (0, xd) pu (xd %v) when given, got %v", p.Xd, p.XdTransient)
 	}
 	if !fin(p.InertiaHS) || p.InertiaHS < 0 {
@@ -186,11 +188,11 @@ func New(p Params) (*Unit, error) {
 	// The prime mover, in pu of rated MVA.
 	switch {
 	case !pos(p.PMax):
-		bad("prime_mover.p_max_mw", "must be positive, got %v pu of rated MVA", p.PMax)
+		bad("prime_mover.p_max_mw", "must be positive, got %.4g pu of rated MVA", p.PMax)
 	case p.PMax > 1:
-		bad("prime_mover.p_max_mw", "must not exceed the rated MVA; got %v pu of it", p.PMax)
+		bad("prime_mover.p_max_mw", "must not exceed the rated MVA (the prime mover cannot drive more than the generator's rating); got %.4g pu of it", p.PMax)
 	case !fin(p.PMin) || p.PMin < 0 || p.PMin >= p.PMax:
-		bad("prime_mover.p_min_mw", "must be at least 0 and below p_max_mw; got %v pu against p_max %v pu of rated MVA", p.PMin, p.PMax)
+		bad("prime_mover.p_min_mw", "must be at least 0 and below p_max_mw; got %.4g against %.4g pu of rated MVA", p.PMin, p.PMax)
 	}
 	if !fin(p.Xe) || p.Xe < 0 {
 		bad("grid.x_external_pu", "must be a non-negative reactance in pu, got %v", p.Xe)
@@ -219,7 +221,7 @@ func New(p Params) (*Unit, error) {
 		if len(e.P) < 2 || len(e.P) != len(e.Q) {
 			bad("end_region.points", "need at least two points with p_mw and q_mvar, got %d", len(e.P))
 		} else if i := badCurve(e.P, e.Q); i > 0 {
-			bad("end_region.points", "p_mw must be finite and strictly increasing, q_mvar finite; point %d is not", i)
+			bad(fmt.Sprintf("end_region.points[%d]", i), "point %d: p_mw must be finite and above the previous point's, q_mvar finite", i)
 		}
 		if !fin(e.VoltageExponent) || math.Abs(e.VoltageExponent) > 10 {
 			bad("end_region.voltage_exponent", "must be in [-10, 10], got %v", e.VoltageExponent)
@@ -231,13 +233,13 @@ func New(p Params) (*Unit, error) {
 		} else {
 			for i := range c.At {
 				if !fin(c.At[i]) || i > 0 && !(c.At[i] > c.At[i-1]) {
-					bad("coolant.points", "at must be finite and strictly increasing; point %d is not", i+1)
+					bad(fmt.Sprintf("coolant.points[%d].at", i+1), "point %d: at must be finite and above the previous point's (strictly increasing)", i+1)
 					break
 				}
 			}
 			for i := range c.At {
 				if !(c.Armature[i] > 0 && c.Armature[i] <= 2) || !(c.Field[i] > 0 && c.Field[i] <= 2) {
-					bad("coolant.points", "point %d: factors must be in (0, 2], got armature %v, field %v", i+1, c.Armature[i], c.Field[i])
+					bad(fmt.Sprintf("coolant.points[%d]", i+1), "point %d: factors must be in (0, 2], got armature %v, field %v", i+1, c.Armature[i], c.Field[i])
 					break
 				}
 			}
@@ -339,7 +341,7 @@ func checkUEL(c *UEL, bad func(field, format string, args ...any)) {
 		if len(c.P) < 2 || len(c.P) != len(c.Q) {
 			bad("excitation.uel.points", "need at least two points with p_mw and q_mvar, got %d", len(c.P))
 		} else if i := badCurve(c.P, c.Q); i > 0 {
-			bad("excitation.uel.points", "p_mw must be finite and strictly increasing, q_mvar finite; point %d is not", i)
+			bad(fmt.Sprintf("excitation.uel.points[%d]", i), "point %d: p_mw must be finite and above the previous point's, q_mvar finite", i)
 		}
 		if !fin(c.K1) || math.Abs(c.K1) > 10 {
 			bad("excitation.uel.voltage_exponent_p", "must be in [-10, 10], got %v", c.K1)

@@ -39,11 +39,6 @@ func Limits() [numLimits - 1]Limit {
 	return [...]Limit{LimitArmature, LimitField, LimitStability, LimitEndRegion, LimitPrimeMover, LimitVoltsPerHertz, LimitUEL}
 }
 
-// chartLimit reports whether l is drawn on the capability chart and so
-// may bind (envelope.md, "Binding limit"): volts per hertz bounds the
-// excitation, not P and Q.
-func chartLimit(l Limit) bool { return l != NoLimit && l != LimitVoltsPerHertz && l < numLimits }
-
 // Zone is the IEC 60034-1 voltage and frequency operating zone.
 type Zone uint8
 
