@@ -84,7 +84,8 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 	}
 
 	r.Margins[LimitArmature] = some(1 - r.I/r.IMax)
-	r.Margins[LimitField] = some(1 - fieldCurrent(&pt, r.IfdModel)/r.IfdMax)
+	r.FieldCurrent = fieldCurrent(&pt, r.IfdModel)
+	r.Margins[LimitField] = some(1 - r.FieldCurrent/r.IfdMax)
 	if r.Practical.OK {
 		r.Margins[LimitStability] = some(q - r.Practical.V)
 	}

@@ -112,6 +112,10 @@ type Result struct {
 
 	I        float64 // armature current, pu
 	IfdModel float64 // model field current, pu of IFag
+	// FieldCurrent is the field current the field margin is taken at, pu
+	// of IFag: the measured one, the model's, or the larger of the two
+	// when the measurement is doubtful (see Evaluate).
+	FieldCurrent float64
 	Ef       float64 // internal EMF behind Xd (unsaturated), pu
 
 	IMax, IfdMax   float64 // continuous ratings at the present coolant: armature pu, field pu IFag

@@ -125,7 +125,7 @@ var evaluateJSONKeys = []string{
 	"q_practical_stability_mvar", "p_max_mw", "q_headroom_up_mvar", "q_headroom_down_mvar",
 	"margins", "binding_limit", "feasible", "infeasible_limit", "zone", "critical_clearing_time_s",
 	"q_field_mvar", "q_armature_up_mvar", "q_armature_down_mvar", "q_end_region_mvar",
-	"volts_per_hertz_pu", "coolant_outside_table", "caution",
+	"volts_per_hertz_pu", "coolant_outside_table", "caution", "q_uel_mvar", "stability_basis",
 }
 
 func evaluateJSON(t *testing.T, args ...string) map[string]any {
@@ -239,7 +239,7 @@ func TestEnvelopeCSV(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	const header = "p_mw,q_max_mvar,q_max_limit,q_min_mvar,q_min_limit,q_field_mvar,q_armature_up_mvar,q_armature_down_mvar,q_stability_mvar,q_practical_stability_mvar,q_end_region_mvar"
+	const header = "p_mw,q_max_mvar,q_max_limit,q_min_mvar,q_min_limit,q_field_mvar,q_armature_up_mvar,q_armature_down_mvar,q_stability_mvar,q_practical_stability_mvar,q_end_region_mvar,q_uel_mvar"
 	if got := strings.Join(rows[0], ","); got != header {
 		t.Errorf("header\n got %s\nwant %s", got, header)
 	}

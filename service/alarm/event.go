@@ -47,8 +47,8 @@ type Context struct {
 	PMW, QMvar, VKV    float64
 	QMaxMvar, QMinMvar *float64
 	QMaxLimit          string // the limit setting q_max: "field" or "armature"
-	QMinLimit          string // the limit setting q_min: "stability", "end_region" or "armature"
-	PMaxMW             float64
+	QMinLimit          string // the limit setting q_min: "stability", "end_region", "uel" or "armature"
+	PMaxMW, PMinMW     float64
 	IfdMeasuredA       *float64
 	IfdModelA          float64
 	AgeS               float64
@@ -72,8 +72,8 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 				id, *c.QMaxMvar-c.QMvar, *c.QMaxMvar, at)
 		}
 		return fmt.Sprintf("%s: field current at %.0f %% of its rating %s; reduce excitation or move reactive load to other units.", id, 100*(1-value), at)
-	case Stability, EndRegion:
-		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit"}[k]
+	case Stability, EndRegion, UEL:
+		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit", UEL: "underexcitation limiter curve"}[k]
 		if c.QMinMvar == nil {
 			return fmt.Sprintf("%s: no stable underexcited range %s (%s); raise excitation or reduce load now.", id, at, what)
 		}
@@ -81,6 +81,9 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 		return fmt.Sprintf("%s: %.1f Mvar left above the %s (q_min %.1f Mvar) %s; raise excitation or absorb less reactive power.",
 			id, left, what, *c.QMinMvar, at)
 	case PrimeMover:
+		if c.PMW < c.PMinMW {
+			return fmt.Sprintf("%s: %.1f MW is below the prime mover's minimum %.1f MW %s; raise the active-power set point or take the unit off.", id, c.PMW, c.PMinMW, at)
+		}
 		return fmt.Sprintf("%s: %.1f MW left to the prime mover's %.1f MW %s; reduce the active-power set point.", id, c.PMaxMW-c.PMW, c.PMaxMW, at)
 	case VoltsPerHertz:
 		return fmt.Sprintf("%s: volts per hertz %.3f pu against 1.05 pu continuous %s; lower the terminal voltage or check the frequency.", id, c.VPerHzPU, at)

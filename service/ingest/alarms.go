@@ -16,6 +16,7 @@ var marginLimit = [...]limits.Limit{
 	alarm.Armature: limits.LimitArmature, alarm.Field: limits.LimitField,
 	alarm.Stability: limits.LimitStability, alarm.EndRegion: limits.LimitEndRegion,
 	alarm.PrimeMover: limits.LimitPrimeMover, alarm.VoltsPerHertz: limits.LimitVoltsPerHertz,
+	alarm.UEL: limits.LimitUEL,
 }
 
 // quantity returns what alarm kind k of the unit compares with its
@@ -25,7 +26,7 @@ var marginLimit = [...]limits.Limit{
 func (u *Unit) quantity(k alarm.Kind) float64 {
 	e := &u.eval
 	switch {
-	case k <= alarm.VoltsPerHertz:
+	case k <= alarm.VoltsPerHertz || k == alarm.UEL:
 		l := marginLimit[k]
 		if m := e.Margins[l]; m.OK {
 			return m.V
@@ -111,17 +112,19 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 	case alarm.Armature:
 		return e.I * b.CurrentA(), e.IMax * b.CurrentA(), "A"
 	case alarm.Field:
-		ifd := b.FieldA(e.IfdModel)
-		if smp.HasFieldA && smp.Quality == QualityGood {
-			ifd = smp.FieldA
-		}
-		return ifd, b.FieldA(e.IfdMax), "A"
+		return b.FieldA(e.FieldCurrent), b.FieldA(e.IfdMax), "A"
 	case alarm.Stability:
 		return smp.QMvar, mvar(e.Practical), "Mvar"
 	case alarm.EndRegion:
 		return smp.QMvar, mvar(e.EndRegion), "Mvar"
 	case alarm.PrimeMover:
-		return smp.PMW, u.cfg.PrimeMover.PMaxMW, "MW"
+		pm := u.cfg.PrimeMover
+		if smp.PMW-pm.PMinMW < pm.PMaxMW-smp.PMW {
+			return smp.PMW, pm.PMinMW, "MW" // the nearer end: p_min
+		}
+		return smp.PMW, pm.PMaxMW, "MW"
+	case alarm.UEL:
+		return smp.QMvar, mvar(e.UEL), "Mvar"
 	case alarm.VoltsPerHertz:
 		return e.VPerHz, limits.VoltsPerHertzLimit, "pu"
 	case alarm.ArmatureThermal:
@@ -166,7 +169,7 @@ func (u *Unit) context() alarm.Context {
 	pt := report.Point(u.cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
 	e := report.New(u.cfg, pt, &u.eval)
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
-		PMaxMW: u.cfg.PrimeMover.PMaxMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
+		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
 	if e.QMaxLimit != nil {
 		c.QMaxLimit = *e.QMaxLimit
 	}

@@ -373,19 +373,21 @@ func (u *Unit) seen(t int64) bool {
 func (u *Unit) evaluate() {
 	cfg := u.cfg
 	s := &u.latest
-	// A measured field current counts only on a sample of good quality.
-	pt := report.Point(cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA && s.Quality == QualityGood,
+	// A measured field current on a QUESTIONABLE sample, or one far from
+	// the model (beyond the mismatch alarm's warning threshold), is
+	// doubted: the field margin takes the larger of it and the model's.
+	pt := report.Point(cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA,
 		s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
+	pt.IfdDoubtful = s.Quality == QualityQuestionable
+	if set := &cfg.Alarms[alarm.FieldCurrentMismatch]; !set.Disabled {
+		pt.IfdMismatch = set.Warning
+	}
 	// The per-sample evaluation leaves q_max to be solved by the first
 	// reader (complete): samples come far more often than reads.
 	u.eval = cfg.Model.EvaluateSample(pt, &u.hint)
 	u.pt = pt
 	u.xArm = u.eval.I / u.eval.IMax
-	ifd := u.eval.IfdModel
-	if pt.IfdMeasured {
-		ifd = pt.Ifd
-	}
-	u.xField = ifd / u.eval.IfdMax
+	u.xField = u.eval.FieldCurrent / u.eval.IfdMax
 }
 
 // complete solves what the per-sample evaluation left pending. u.mu

@@ -76,7 +76,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	c.alarmAcked = d("alarm_acknowledged", "1 while the unit's active alarm on this limit is acknowledged.", "limit")
 	c.headroom = d("reactive_headroom_vars", "Reactive power the unit can still deliver (direction=up, to q_max) or absorb (direction=down, to q_min) at its present P, voltage and coolant, var; negative outside the envelope.", "direction")
 	c.qLimit = d("reactive_limit_vars", "Reactive power bound at the present P, voltage and coolant, var (bound=upper is q_max, bound=lower is q_min).", "bound")
-	c.margin = d("limit_margin_ratio", "Margin to each limit as a ratio, positive inside the envelope (armature 1 - I/Imax, field 1 - Ifd/Ifd_max, stability and end_region (Q - Q_limit)/S_rated, prime_mover (P_max - P)/P_rated, volts_per_hertz 1 - (V/f)/1.05).", "limit")
+	c.margin = d("limit_margin_ratio", "Margin to each limit as a ratio, positive inside the envelope (armature 1 - I/Imax, field 1 - Ifd/Ifd_max, stability, end_region and uel (Q - Q_limit)/S_rated, prime_mover min(P_max - P, P - P_min)/P_rated, volts_per_hertz 1 - (V/f)/1.05).", "limit")
 	c.binding = d("binding_limit", "The capability limit with the smallest margin at the latest sample (value 1).", "limit")
 	c.feasible = d("envelope_feasible", "1 when every bound of the envelope exists at the present active power, 0 when one does not (see binding_limit).")
 	c.zone = d("voltage_frequency_zone", "IEC 60034-1 operating zone of the latest sample: 0 zone A, 1 zone B, 2 outside both.")

@@ -62,6 +62,8 @@ type Evaluation struct {
 	QStabilityMvar          *float64            `json:"q_stability_mvar"`
 	QPracticalStabilityMvar *float64            `json:"q_practical_stability_mvar"`
 	QEndRegionMvar          *float64            `json:"q_end_region_mvar"`
+	QUELMvar                *float64            `json:"q_uel_mvar"`
+	StabilityBasis          string              `json:"stability_basis"` // "manual" or "avr": what q_stability_mvar assumes
 	PMaxMW                  *float64            `json:"p_max_mw"`
 	Margins                 map[string]*float64 `json:"margins"`
 	BindingLimit            *string             `json:"binding_limit"`
@@ -131,6 +133,8 @@ func New(u *fleet.Unit, pt limits.Point, r *limits.Result) *Evaluation {
 		QStabilityMvar:          bound(r.Stability, mva),
 		QPracticalStabilityMvar: bound(r.Practical, mva),
 		QEndRegionMvar:          bound(r.EndRegion, mva),
+		QUELMvar:                bound(r.UEL, mva),
+		StabilityBasis:          u.Model.Params().Basis.String(),
 		PMaxMW:                  bound(r.PMax, mva),
 		Margins:                 map[string]*float64{},
 		BindingLimit:            limitName(r.Binding),
@@ -181,6 +185,7 @@ type EnvelopePoint struct {
 	QStabilityMvar          *float64 `json:"q_stability_mvar"`
 	QPracticalStabilityMvar *float64 `json:"q_practical_stability_mvar"`
 	QEndRegionMvar          *float64 `json:"q_end_region_mvar"`
+	QUELMvar                *float64 `json:"q_uel_mvar"`
 }
 
 // NewEnvelopePoint converts one engine envelope point of a unit rated mva.
@@ -197,5 +202,6 @@ func NewEnvelopePoint(e limits.EnvelopePoint, mva float64) EnvelopePoint {
 		QStabilityMvar:          bound(e.Stability, mva),
 		QPracticalStabilityMvar: bound(e.Practical, mva),
 		QEndRegionMvar:          bound(e.EndRegion, mva),
+		QUELMvar:                bound(e.UEL, mva),
 	}
 }

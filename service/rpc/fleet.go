@@ -121,6 +121,7 @@ func (f *Fleet) GetEnvelope(ctx context.Context, req *pb.GetEnvelopeRequest) (*p
 			QMaxLimit: limitProto(p.QMaxLimit), QMinLimit: limitProto(p.QMinLimit),
 			QFieldMvar: p.QFieldMvar, QArmatureMvar: p.QArmatureUpMvar, QStabilityMvar: p.QStabilityMvar,
 			QPracticalStabilityMvar: p.QPracticalStabilityMvar, QEndRegionMvar: p.QEndRegionMvar,
+			QUelMvar: p.QUELMvar,
 		}
 	}
 	return resp, nil
@@ -148,7 +149,18 @@ func unitProto(u *fleet.Unit) *pb.Unit {
 		RatedMva: u.Rating.MVA, RatedKv: u.Rating.KV, PowerFactor: u.Rating.PowerFactor,
 		FrequencyHz: u.Rating.FrequencyHz, PMaxMw: u.PrimeMover.PMaxMW, PMinMw: u.PrimeMover.PMinMW,
 		IfagA: u.Field.AirGapA, RatedFieldA: u.Model.RatedFieldCurrent() * u.Field.AirGapA,
+		StabilityBasis: basisProto(u.Stability.Basis),
 	}
+}
+
+func basisProto(b limits.Basis) pb.StabilityBasis {
+	switch b {
+	case limits.BasisManual:
+		return pb.StabilityBasis_STABILITY_BASIS_MANUAL
+	case limits.BasisAVR:
+		return pb.StabilityBasis_STABILITY_BASIS_AVR
+	}
+	return pb.StabilityBasis_STABILITY_BASIS_UNSPECIFIED
 }
 
 func sampleProto(s *ingest.Sample) *pb.Sample {
@@ -180,6 +192,8 @@ func limitProto(name *string) pb.Limit {
 		return pb.Limit_LIMIT_PRIME_MOVER
 	case "volts_per_hertz":
 		return pb.Limit_LIMIT_VOLTS_PER_HERTZ
+	case "uel":
+		return pb.Limit_LIMIT_UEL
 	}
 	return pb.Limit_LIMIT_UNSPECIFIED
 }
@@ -210,6 +224,7 @@ func EvaluationProto(e *report.Evaluation) *pb.Evaluation {
 		VoltsPerHertzPu: val(e.VoltsPerHertzPU), CriticalClearingTimeS: e.CriticalClearingTimeS,
 		CoolantOutsideTable:  e.CoolantOutsideTable,
 		ArmatureRatingFactor: e.ArmatureRatingFactor, FieldRatingFactor: e.FieldRatingFactor,
+		QUelMvar: e.QUELMvar,
 	}
 	for _, l := range limits.Limits() {
 		name := l.String()

@@ -106,6 +106,7 @@ var limitTitle = map[string]string{
 	"end_region":      "Stator end region",
 	"prime_mover":     "Prime mover",
 	"volts_per_hertz": "Volts per hertz",
+	"uel":             "Underexcitation limiter",
 	"none":            "none",
 }
 
@@ -115,8 +116,9 @@ var limitBasis = map[string]string{
 	"field":           "of the field current rating",
 	"stability":       "of rated MVA, above the practical limit",
 	"end_region":      "of rated MVA, above the end-region curve",
-	"prime_mover":     "of rated MW, below p_max",
+	"prime_mover":     "of rated MW, inside p_min to p_max",
 	"volts_per_hertz": "below 1.05 pu continuous",
+	"uel":             "of rated MVA, above the UEL curve",
 }
 
 // kindTitle names the alarms in the operators' words.
@@ -132,6 +134,7 @@ var kindTitle = [alarm.NumKinds]string{
 	alarm.VoltageFrequencyZone: "Voltage/frequency zone",
 	alarm.StaleTelemetry:       "Telemetry stale",
 	alarm.FieldCurrentMismatch: "Field current vs model",
+	alarm.UEL:                  "Underexcitation limiter",
 }
 
 // limitName returns the operators' name of a limit given by its name.
@@ -373,7 +376,10 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID)}
 	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
 	r := cfg.Rating
-	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, cfg.Machine.Rotor)
+	if r.Poles > 0 {
+		d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	}
 	if ev := d.Eval; ev != nil {
 		d.Age = fmtAge(now.Sub(v.Received))
 		d.SampleTime = fmtWhen(v.Latest.Time)
@@ -387,6 +393,10 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			k, _ := alarm.ParseKind(name)
 			mr := marginRow{Name: name, Title: limitTitle[name], Basis: limitBasis[name], Value: fmtPct(m, 1), Level: d.Alarms.ByKind[k],
 				Binding: ev.BindingLimit != nil && *ev.BindingLimit == name}
+			if l == limits.LimitStability {
+				// Which limit this is: with the regulator in service or without.
+				mr.Basis += map[string]string{"avr": " (avr basis: voltage regulator in service)", "manual": " (manual basis: constant field voltage)"}[ev.StabilityBasis]
+			}
 			if m != nil {
 				mr.Fill = fill(*m)
 			}
