@@ -116,7 +116,7 @@ type Result struct {
 	// of IFag: the measured one, the model's, or the larger of the two
 	// when the measurement is doubtful (see Evaluate).
 	FieldCurrent float64
-	Ef       float64 // internal EMF behind Xd (unsaturated), pu
+	Ef           float64 // internal EMF behind Xd (unsaturated), pu
 
 	IMax, IfdMax   float64 // continuous ratings at the present coolant: armature pu, field pu IFag
 	CoolantOutside bool    // the sample's coolant value lies outside the table (clamped)

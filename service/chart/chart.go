@@ -96,7 +96,7 @@ func WithEmbeddedFonts() Option {
 // palette holds the chart's colours: muted, and distinct in grey scale too.
 type palette struct {
 	region, armature, field, stability, practical, endRegion, uel color.Color
-	prime, point, trail, axisZero, grid, text, caption       color.Color
+	prime, point, trail, axisZero, grid, text, caption            color.Color
 }
 
 func defaultPalette() palette {
