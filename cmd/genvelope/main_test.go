@@ -80,7 +80,7 @@ func TestExitCodesAndMessages(t *testing.T) {
 			stdout: []string{"plain-1", fleet.Caution}, stderr: []string{"warning: the nameplate rated field current"}},
 		{name: "evaluate text", args: eval(), code: 0,
 			stdout: []string{"harrowmere-1 (Harrowmere unit 1), site harrowmere", "P 300.0 MW, Q +100.0 Mvar, V 20.00 kV (1.000 pu)", "within limits", "field current limit", "stator end-region limit", fleet.Caution}},
-		{name: "evaluate text outside", args: eval("--q-mvar", "-150"), code: 0, stdout: []string{"OUTSIDE LIMITS: Q below q_min (stability limit) by", "stability exceeded by"}},
+		{name: "evaluate text outside", args: eval("--q-mvar", "-150"), code: 0, stdout: []string{"OUTSIDE LIMITS: Q below q_min (uel limit) by", "uel exceeded by", "end_region exceeded by"}},
 		{name: "evaluate text infeasible", args: []string{"evaluate", "--fleet", minFleet, "--unit", "plain-1", "--p-mw", "105", "--q-mvar", "0", "--v-kv", "11"}, code: 0,
 			stdout: []string{"NO CONTINUOUS OPERATION at this P and V: the armature limit"}},
 		{name: "evaluate coolant without table", args: []string{"evaluate", "--fleet", example, "--unit", "larchwater-2", "--p-mw", "50", "--q-mvar", "0", "--v-kv", "13.8", "--coolant", "20"}, code: 0,

@@ -30,11 +30,14 @@ func TestListUnits(t *testing.T) {
 	// is the file's field.rated_a, given for each unit there.
 	want := []*pb.Unit{
 		{Id: "brindle-gt3", Name: "Brindle Flats gas turbine 3", Site: "brindle-flats", Rotor: pb.Rotor_ROTOR_ROUND,
-			RatedMva: 160, RatedKv: 15, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 136, PMinMw: 40, IfagA: 520, RatedFieldA: 1610},
+			RatedMva: 160, RatedKv: 15, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 136, PMinMw: 40, IfagA: 520, RatedFieldA: 1610,
+			StabilityBasis: pb.StabilityBasis_STABILITY_BASIS_AVR},
 		{Id: "harrowmere-1", Name: "Harrowmere unit 1", Site: "harrowmere", Rotor: pb.Rotor_ROTOR_ROUND,
-			RatedMva: 390, RatedKv: 20, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 335, PMinMw: 120, IfagA: 1050, RatedFieldA: 3150},
+			RatedMva: 390, RatedKv: 20, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 335, PMinMw: 120, IfagA: 1050, RatedFieldA: 3150,
+			StabilityBasis: pb.StabilityBasis_STABILITY_BASIS_AVR},
 		{Id: "larchwater-2", Name: "Larchwater unit 2", Site: "larchwater", Rotor: pb.Rotor_ROTOR_SALIENT,
-			RatedMva: 120, RatedKv: 13.8, PowerFactor: 0.9, FrequencyHz: 50, PMaxMw: 110, PMinMw: 20, IfagA: 680, RatedFieldA: 1320},
+			RatedMva: 120, RatedKv: 13.8, PowerFactor: 0.9, FrequencyHz: 50, PMaxMw: 110, PMinMw: 20, IfagA: 680, RatedFieldA: 1320,
+			StabilityBasis: pb.StabilityBasis_STABILITY_BASIS_AVR},
 	}
 	var ids []string
 	for _, u := range resp.Units {
@@ -172,7 +175,7 @@ func TestGetUnit(t *testing.T) {
 				order = append(order, m.Limit)
 			}
 			wantOrder := []pb.Limit{pb.Limit_LIMIT_ARMATURE, pb.Limit_LIMIT_FIELD, pb.Limit_LIMIT_STABILITY,
-				pb.Limit_LIMIT_END_REGION, pb.Limit_LIMIT_PRIME_MOVER, pb.Limit_LIMIT_VOLTS_PER_HERTZ}
+				pb.Limit_LIMIT_END_REGION, pb.Limit_LIMIT_PRIME_MOVER, pb.Limit_LIMIT_VOLTS_PER_HERTZ, pb.Limit_LIMIT_UEL}
 			if !slices.Equal(order, wantOrder) {
 				t.Errorf("margins for %v, want one per limit in enum order %v", order, wantOrder)
 			}
