@@ -244,3 +244,26 @@ func TestNewCopiesItsInputs(t *testing.T) {
 		t.Errorf("the unit changed with its caller's slices: %+v %+v against %+v %+v", before.EndRegion, before.UEL, after.EndRegion, after.UEL)
 	}
 }
+
+// Evaluate and the per-sample path do not allocate, with a UEL and a
+// measured field current too (the house rule; BenchmarkEvaluate* show it
+// as well).
+func TestEvaluateDoesNotAllocate(t *testing.T) {
+	p := benchSalient(t).Params()
+	p.UEL = &UEL{Shape: UELPoints, P: []float64{0, 0.5, 1}, Q: []float64{-0.5, -0.4, -0.2}, K1: 2, K2: 2}
+	u := mustNew(t, p)
+	pts := tracking(256)
+	var h Hint
+	i := 0
+	n := testing.AllocsPerRun(500, func() {
+		pt := pts[i%len(pts)]
+		pt.Ifd, pt.IfdMeasured, pt.IfdMismatch = 2, true, 0.1
+		r := u.EvaluateSample(pt, &h)
+		u.Complete(&r, pt)
+		sink = u.Evaluate(pt, &h)
+		i++
+	})
+	if n != 0 {
+		t.Errorf("%v allocations per sample, want 0", n)
+	}
+}
