@@ -166,8 +166,7 @@ func (u *Unit) context() alarm.Context {
 	}
 	u.complete()
 	s := &u.latest
-	pt := report.Point(u.cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
-	e := report.New(u.cfg, pt, &u.eval)
+	e := report.New(u.cfg, u.pt, &u.eval)
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
 		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
 	if e.QMaxLimit != nil {

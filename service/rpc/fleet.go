@@ -53,9 +53,7 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 	resp := &pb.GetUnitResponse{Unit: unitProto(v.Config)}
 	if v.HasSample {
 		resp.Latest = sampleProto(&v.Latest)
-		pt := report.Point(v.Config, v.Latest.PMW, v.Latest.QMvar, v.Latest.VKV, v.Latest.FieldA, v.Latest.HasFieldA,
-			v.Latest.FrequencyHz, v.Latest.HasFreq, v.Latest.Coolant, v.Latest.HasCoolant)
-		resp.Evaluation = EvaluationProto(report.New(v.Config, pt, &v.Eval))
+		resp.Evaluation = EvaluationProto(report.New(v.Config, v.Point, &v.Eval))
 		resp.Received = timestamppb.New(v.Received)
 	}
 	resp.ArmatureThermalUsedRatio = v.Armature.Used(limits.ArmatureK)

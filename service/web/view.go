@@ -190,9 +190,8 @@ func evaluation(v *ingest.View) *report.Evaluation {
 	if !v.HasSample {
 		return nil
 	}
-	s := &v.Latest
-	pt := report.Point(v.Config, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
-	return report.New(v.Config, pt, &v.Eval)
+	// The point as ingest evaluated it (with its field-measurement flags).
+	return report.New(v.Config, v.Point, &v.Eval)
 }
 
 // row is one unit in the fleet table.
