@@ -28,7 +28,12 @@ func drawCase(t *rapid.T, units []*Unit) genCase {
 
 func propUnits(t testing.TB) []*Unit {
 	return []*Unit{benchRound(t), benchSalient(t), general(benchRound(t)),
-		roundUnit(t, 1.9, 0.4, func(p *Params) { p.S10, p.S12 = 0.1, 0.35 })}
+		roundUnit(t, 1.9, 0.4, func(p *Params) { p.S10, p.S12 = 0.1, 0.35 }),
+		// A UEL that crosses the stability limit: the limit binds at low p, the UEL above p = 0.2.
+		roundUnit(t, 1.9, 0.4, func(p *Params) {
+			p.S10, p.S12, p.MarginFraction = 0.1, 0.35, 0
+			p.UEL = &UEL{Shape: UELPoints, P: []float64{0, 0.5, 1}, Q: []float64{-0.6, -0.3, -0.1}, K1: 2, K2: 2}
+		})}
 }
 
 // q_min <= q_max wherever the point is feasible, and the bounds are the
