@@ -92,7 +92,7 @@ func BenchmarkEvaluateSample(b *testing.B) {
 	for _, tc := range []struct {
 		name string
 		u    *Unit
-	}{{"round", benchRound(b)}, {"salient", benchSalient(b)}} {
+	}{{"round", benchRound(b)}, {"salient", benchSalient(b)}, {"avr", benchAVR(b)}} {
 		b.Run(tc.name, func(b *testing.B) {
 			pts := tracking(4096)
 			var h Hint
@@ -101,5 +101,67 @@ func BenchmarkEvaluateSample(b *testing.B) {
 				sink = tc.u.EvaluateSample(pts[i&4095], &h)
 			}
 		})
+	}
+}
+
+// benchAVR is benchRound on the avr basis: a static exciter of moderate
+// gain with a transducer and a speed stabilizer (plausible, not check values).
+func benchAVR(tb testing.TB) *Unit {
+	tb.Helper()
+	p := benchRound(tb).Params()
+	p.Basis, p.Td0TransientS, p.MarginFraction = BasisAVR, 7.5, 0
+	p.Exciter = &Exciter{KA: 100, TAS: 0.02, TRS: 0.015}
+	p.Stabilizer = &Stabilizer{K: 10, TWS: 3, T1S: 0.15, T2S: 0.03, T3S: 0.15, T4S: 0.03}
+	u, err := New(p)
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return u
+}
+
+func BenchmarkEvaluateTrackingAVR(b *testing.B) { benchmarkTracking(b, benchAVR(b)) }
+
+// BenchmarkNewAVR is the cost of preparing one avr unit (its table);
+// a 10,000-unit fleet pays it 10,000 times at load.
+func BenchmarkNewAVR(b *testing.B) {
+	p := benchAVR(b).Params()
+	b.ReportAllocs()
+	for range b.N {
+		if _, err := New(p); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
+// BenchmarkNewAVRZetaMin is New with a damping-ratio criterion, whose
+// table is built on eigenvalues.
+func BenchmarkNewAVRZetaMin(b *testing.B) {
+	p := benchAVR(b).Params()
+	p.ZetaMin = 0.05
+	b.ReportAllocs()
+	for range b.N {
+		if _, err := New(p); err != nil {
+			b.Fatal(err)
+		}
+	}
+}
+
+// BenchmarkStabilityLimitAVR is the direct computation of q_stability
+// on the avr basis (evaluate, envelope and coordinate use it).
+func BenchmarkStabilityLimitAVR(b *testing.B) {
+	u := benchAVR(b)
+	b.ReportAllocs()
+	for i := range b.N {
+		_ = u.StabilityLimit(0.1+0.7*float64(i%8)/8, 1)
+	}
+}
+
+// BenchmarkRotorMode is the rotor mode at one point, as a page or an RPC
+// reads it (an eigen decomposition with both eigenvector sets).
+func BenchmarkRotorMode(b *testing.B) {
+	u := benchAVR(b)
+	b.ReportAllocs()
+	for i := range b.N {
+		_, _, _ = u.RotorMode(Point{P: 0.1 + 0.7*float64(i%8)/8, Q: 0.1, V: 1})
 	}
 }

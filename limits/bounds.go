@@ -62,15 +62,20 @@ func (h *Hint) set(bit uint8, b Bound) {
 // Bounds returns the limit curves at active power p and terminal voltage
 // v (pu), with the armature and field ratings multiplied by the coolant
 // factors armF and fieldF. h may be nil.
+//
+// Bounds is the direct computation on both stability bases (on the avr
+// basis a search of tens of microseconds, see avrInterval); only Evaluate and EvaluateSample with a Hint take the
+// per-sample table (see stabTable).
 func (u *Unit) Bounds(p, v, armF, fieldF float64, h *Hint) Bounds {
-	b, _ := u.bounds(p, v, armF, fieldF, h, true)
+	b, _ := u.bounds(p, v, armF, fieldF, h, true, false)
 	return b
 }
 
 // bounds computes the limit curves. With full false it may leave the
 // field-limit curve, and so q_max, unsolved (deferred true) when nothing
-// else at this point depends on its value: see deferredBounds.
-func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full bool) (b Bounds, deferred bool) {
+// else at this point depends on its value: see deferredBounds. With fast
+// true the avr basis reads its stability limit from the unit's table.
+func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full, fast bool) (b Bounds, deferred bool) {
 	iMax := armF
 	r := v * iMax
 	if math.Abs(p) <= r {
@@ -79,7 +84,7 @@ func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full bool) (b Bounds,
 	}
 	ifdMax := u.ifdRated * fieldF
 	if !full && b.ArmatureUp.OK {
-		if d, ok := u.deferredBounds(p, v, ifdMax, b, h); ok {
+		if d, ok := u.deferredBounds(p, v, ifdMax, b, h, fast); ok {
 			return d, true
 		}
 	}
@@ -87,7 +92,7 @@ func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full bool) (b Bounds,
 	b.upperBound()
 
 	if b.QMax.OK {
-		b.Stability, b.Practical = u.stabilityLimits(math.Abs(p), v, b.QMax.V, h)
+		b.setStability(u.stabilityLimits(math.Abs(p), v, b.QMax.V, b.ArmatureDown.V, h, fast))
 	}
 	b.EndRegion = u.endRegionAt(p, v)
 	b.UEL = u.UELAt(p, v)
@@ -107,6 +112,17 @@ func (b *Bounds) upperBound() {
 		b.QMax, b.QMaxLimit = b.Field, LimitField
 	default:
 		b.QMax, b.QMaxLimit = b.ArmatureUp, LimitArmature
+	}
+}
+
+// setStability puts the stability limits s into b: when q_max itself is
+// unstable, q_max moves down to the top of the topmost stable interval,
+// and the limit that binds it is stability (envelope.md, "Which stable
+// interval, and the limit").
+func (b *Bounds) setStability(s stabLimits) {
+	b.Stability, b.Practical, b.StabilityTop, b.StabilityErr = s.theo, s.prac, s.top, s.err
+	if s.top.OK && (!b.QMax.OK || s.top.V < b.QMax.V) {
+		b.QMax, b.QMaxLimit = s.top, LimitStability
 	}
 }
 
@@ -155,18 +171,18 @@ func (u *Unit) endRegionAt(p, v float64) Bound {
 // of the field model instead of a root. Whenever a limit reaches the top
 // of its search, or that check fails, ok is false and the caller solves
 // the full envelope, so the result is always Bounds' own.
-func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint) (Bounds, bool) {
+func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint, fast bool) (Bounds, bool) {
 	qTop := b.ArmatureUp.V
 	if prac, ok := u.warmPractical(math.Abs(p), v, qTop, h); ok {
 		// The theoretical limit is not needed to place the point: leave
 		// it, like the field limit, to Complete.
 		b.Practical = prac
 	} else {
-		theo, prac := u.stabilityLimits(math.Abs(p), v, qTop, h)
-		if !theo.OK || !prac.OK || theo.V >= qTop {
+		s := u.stabilityLimits(math.Abs(p), v, qTop, b.ArmatureDown.V, h, fast)
+		if !s.theo.OK || !s.prac.OK || s.theo.V >= qTop || s.top.OK || s.err != nil {
 			return b, false
 		}
-		b.Stability, b.Practical = theo, prac
+		b.Stability, b.Practical = s.theo, s.prac
 	}
 	b.EndRegion = u.endRegionAt(p, v)
 	b.UEL = u.UELAt(p, v)
@@ -251,41 +267,72 @@ func (u *Unit) fieldLimit(p, v, ifdMax float64, h *Hint) Bound {
 	return b
 }
 
+// stabLimits are the stability curves at one p and v.
+type stabLimits struct {
+	theo, prac Bound // q_stability and the practical limit
+	top        Bound // when q_max itself is unstable: the top of the topmost stable interval
+	err        error // ErrSmallSignal: the avr basis' eigenvalue solver failed
+}
+
 // stabilityLimits returns the theoretical and the practical steady-state
 // stability limits at active power p >= 0 and voltage v, below qTop (the
-// upper bound q_max). The machine is seen through Xe from the infinite
-// bus with ra = 0 and unsaturated reactances (see stab).
+// upper bound q_max) and down to qBot (the armature lower bound), on the
+// unit's basis, by the topmost-stable-interval rule (envelope.md, "Which
+// stable interval, and the limit"). The machine is seen through Xe from
+// the infinite bus with ra = 0 and unsaturated reactances (see stab).
 //
-// Theoretical limit: the highest q below qTop at which the point is
-// unstable, K_s <= 0 or E_f <= 0. The search is bracketed: at the point
-// where E_Q = V + jXq I is perpendicular to V_s (delta = 90 degrees),
-// K_s = -2b <= 0, so that point is unstable; qTop bounds from above.
+// Manual basis: a point is unstable where K_s <= 0 or E_f <= 0. When
+// qTop is stable the theoretical limit is the highest unstable q below
+// it, bracketed: at the point where E_Q = V + jXq I is perpendicular to
+// V_s (delta = 90 degrees), K_s = -2b <= 0, so that point is unstable;
+// qTop bounds from above. When qTop is unstable the rule's scan finds the
+// topmost stable interval (topInterval).
+//
+// Avr basis: the small-signal rule (avrStable), by the direct scan and
+// bisection, or with fast true from the unit's table (stabTable).
 //
 // Practical limit: the lowest q above the theoretical limit at which the
 // peak of P(delta) at the point's own E_f and V_s exceeds p by the margin
-// m = margin_fraction x rated MW.
+// m = margin_fraction x rated MW; with m = 0 it is the theoretical limit
+// exactly (on the avr basis the point may lie beyond the peak of the
+// manual power-angle curve, which the regulator holds).
 //
-// On a round rotor (Xq = Xd) both curves have closed forms, below.
-func (u *Unit) stabilityLimits(p, v, qTop float64, h *Hint) (theo, prac Bound) {
-	if u.roundStab {
-		return u.roundStability(p, v, qTop)
+// On a round rotor (Xq = Xd) the manual curves have closed forms, below.
+func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) stabLimits {
+	if u.p.Basis == BasisAVR {
+		return u.avrLimits(p, v, qTop, qBot, h, fast)
 	}
-	g := u.stabFunc(p, v)
-	if hint, ok := h.get(hintStab); ok {
-		if q, slope, ok := warmRoot(g, hint, h.stabSlope, qTop); ok {
-			theo = some(q)
-			h.stabSlope = slope
-			h.set(hintStab, theo)
-			return theo, u.practicalLimit(p, v, q, qTop, h)
+	if u.roundStab {
+		return u.roundStability(p, v, qTop, qBot)
+	}
+	g := func(q float64) float64 {
+		s := u.stab(p, q, v)
+		if s.degen {
+			return -1
 		}
+		return math.Min(s.ks, s.ef)
 	}
 	gTop := g(qTop)
-	if gTop <= 0 {
-		theo = some(qTop)
-		h.set(hintStab, theo)
-		h.set(hintPrac, Bound{})
-		return theo, Bound{}
+	if hint, ok := h.get(hintStab); ok && gTop > 0 {
+		if q, slope, ok := warmRoot(g, hint, h.stabSlope, qTop); ok {
+			theo := some(q)
+			h.stabSlope = slope
+			h.set(hintStab, theo)
+			return stabLimits{theo: theo, prac: u.practicalLimit(p, v, q, qTop, h)}
+		}
 	}
+	if gTop <= 0 {
+		// q_max is unstable: the scan of the rule, from the top.
+		iv := topInterval(func(q float64) (bool, error) { return g(q) > 0, nil }, qTop, qBot, scanStep, scanTol)
+		h.set(hintStab, Bound{})
+		h.set(hintPrac, Bound{})
+		res := stabLimits{theo: iv.low, top: iv.top}
+		if iv.low.OK {
+			res.prac = u.practicalLimit(p, v, iv.low.V, iv.top.V, nil)
+		}
+		return res
+	}
+	var theo Bound
 	lo, ok := u.perpendicular(p, v)
 	if ok && lo > qTop {
 		ok = false
@@ -326,20 +373,30 @@ func (u *Unit) stabilityLimits(p, v, qTop float64, h *Hint) (theo, prac Bound) {
 		lo = q
 	}
 	h.set(hintStab, theo)
-	return theo, u.practicalLimit(p, v, lo, qTop, h)
+	return stabLimits{theo: theo, prac: u.practicalLimit(p, v, lo, qTop, h)}
 }
 
-// stabFunc returns the function whose sign tells stability on the manual
-// basis at active power p >= 0 and voltage v: min(K_s, E_f), positive
-// where the point is stable.
-func (u *Unit) stabFunc(p, v float64) func(q float64) float64 {
-	return func(q float64) float64 {
-		s := u.stab(p, q, v)
-		if s.degen {
-			return -1
-		}
-		return math.Min(s.ks, s.ef)
+// avrLimits is stabilityLimits on the avr basis.
+func (u *Unit) avrLimits(p, v, qTop, qBot float64, h *Hint, fast bool) stabLimits {
+	var iv interval
+	if fast && u.avrTab != nil {
+		iv = u.fastInterval(p, v, qTop, qBot)
+	} else {
+		iv = u.avrInterval(p, v, qTop, qBot)
 	}
+	res := stabLimits{theo: iv.low, top: iv.top, err: iv.err}
+	if !iv.low.OK {
+		return res
+	}
+	if u.marginPU == 0 {
+		res.prac = iv.low
+		return res
+	}
+	if iv.top.OK {
+		qTop = iv.top.V
+	}
+	res.prac = u.practicalLimit(p, v, iv.low.V, qTop, h)
+	return res
 }
 
 // peakExcess returns the function whose root in q is the practical
@@ -367,6 +424,8 @@ func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
 func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 	if u.marginPU == 0 {
 		h.set(hintPrac, some(qs))
+		// With m = 0 the practical limit is q_stability exactly
+		// (envelope.md, "Practical margin"), on both bases.
 		return some(qs)
 	}
 	hf := u.peakExcess(p, v)
@@ -399,27 +458,12 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 // theoretical limit. A round rotor has both in closed form and gains
 // nothing from this.
 func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
-	if u.roundStab {
+	hint, ok := h.get(hintPrac)
+	if u.roundStab || u.p.Basis == BasisAVR || u.marginPU == 0 || !ok {
 		return Bound{}, false
 	}
-	if u.marginPU == 0 {
-		// The practical limit is the theoretical one (see practicalLimit):
-		// its own warm root, which is exactly the cold path's.
-		hint, ok := h.get(hintStab)
-		if !ok {
-			return Bound{}, false
-		}
-		q, slope, ok := warmRoot(u.stabFunc(p, v), hint, h.stabSlope, qTop)
-		if !ok {
-			return Bound{}, false
-		}
-		h.stabSlope = slope
-		h.set(hintStab, some(q))
-		h.set(hintPrac, some(q))
-		return some(q), true
-	}
-	hint, ok := h.get(hintPrac)
-	if !ok {
+	if s := u.stab(p, qTop, v); s.degen || !(s.ks > 0 && s.ef > 0) {
+		// q_max itself is unstable: the topmost stable interval lies below it.
 		return Bound{}, false
 	}
 	hf := u.peakExcess(p, v)
@@ -462,18 +506,21 @@ func (u *Unit) perpendicular(p, v float64) (float64, bool) {
 	return q, ok
 }
 
-// roundStability is the closed form of both stability limits for a
-// round rotor (Xq = Xd = X). The total angle delta between E and V_s
-// satisfies Im(E conj V_s) = p (X + Xe) and
+// roundStability is the closed form of both stability limits on the
+// manual basis for a round rotor (Xq = Xd = X). The total angle delta
+// between E and V_s satisfies Im(E conj V_s) = p (X + Xe) and
 //
 //	Re(E conj V_s) = v^2 + (X - Xe) q - X Xe (q^2 + p^2)/v^2,
 //
 // and P(delta) = P_max sin(delta) with P_max = E_f V_s/(X + Xe). The
-// theoretical limit is delta = 90 degrees, Re = 0 (see perpendicular).
-// The practical margin P_max - p = m holds where sin(delta) = p/(p + m),
-// that is Re = (X + Xe) sqrt(m^2 + 2pm): the same quadratic with its
-// constant term raised by v^2 (X + Xe) sqrt(m^2 + 2pm), lower root.
-func (u *Unit) roundStability(p, v, qTop float64) (theo, prac Bound) {
+// point is stable where Re > 0 (delta below 90 degrees): between the two
+// roots of the quadratic (see perpendicular), the theoretical limit the
+// lower one; when the upper root lies below qTop, q_max moves down to it
+// (the topmost stable interval). The practical margin P_max - p = m
+// holds where sin(delta) = p/(p + m), that is Re = (X + Xe) sqrt(m^2 + 2pm):
+// the same quadratic with its constant term raised by
+// v^2 (X + Xe) sqrt(m^2 + 2pm), lower root.
+func (u *Unit) roundStability(p, v, qTop, qBot float64) stabLimits {
 	x, xe := u.p.Xd, u.p.Xe
 	v2 := v * v
 	a, b, c := x*xe, -v2*(x-xe), x*xe*p*p-v2*v2
@@ -481,17 +528,27 @@ func (u *Unit) roundStability(p, v, qTop float64) (theo, prac Bound) {
 	if !ok {
 		// Re(E conj V_s) < 0 for every q: the angle exceeds 90 degrees
 		// whatever the excitation, so the unit cannot carry p through Xe.
-		return some(qTop), Bound{}
+		return stabLimits{theo: some(qTop)}
 	}
 	if qs >= qTop {
-		return some(qTop), Bound{}
+		return stabLimits{theo: some(qTop)}
 	}
-	theo = some(qs)
+	var res stabLimits
+	if a > 0 {
+		if qu := (-b + math.Sqrt(math.Max(b*b-4*a*c, 0))) / (2 * a); qu < qTop {
+			if qu <= qBot {
+				return stabLimits{theo: some(qTop)}
+			}
+			res.top, qTop = some(qu), qu
+		}
+	}
+	res.theo = some(qs)
 	m := u.marginPU
 	rr := (x + xe) * math.Sqrt(m*m+2*p*m)
 	qp, ok := quadLower(a, b, c+v2*rr)
 	if !ok || qp > qTop {
-		return theo, Bound{}
+		return res
 	}
-	return theo, some(math.Max(qp, qs))
+	res.prac = some(math.Max(qp, qs))
+	return res
 }

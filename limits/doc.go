@@ -19,13 +19,33 @@
 //   - armature heating: p^2 + q^2 <= (v i_max)^2 (Bounds)
 //   - field heating: i_fd(p, q, v) <= i_fd_max, two-reaction model with
 //     quadratic saturation at the Potier voltage (field, fieldLimit)
-//   - theoretical and practical steady-state stability through the
-//     external reactance Xe (stabilityLimits, roundStability)
+//   - steady-state stability through the external reactance Xe on the
+//     unit's basis (stabilityLimits): manual, the field voltage held
+//     constant (K_s > 0, E_f > 0; roundStability in closed form), or avr,
+//     the voltage regulator in service (below)
 //   - stator end-region heating from the maker's curve (Bounds)
 //   - the prime mover's active-power range (Evaluate)
 //   - volts per hertz and the IEC 60034-1 voltage/frequency zones (zone.go)
 //   - short-time thermal capability, IEEE C50.13 (Thermal)
 //   - the classical-model critical clearing time (CriticalClearingTime)
+//
+// The avr basis (Params.Basis, envelope.md "The linearized model for the
+// avr basis") is small-signal stability of the Heffron-Phillips model of
+// de Mello and Concordia (1969): a one-axis machine on an infinite bus
+// through Xe, a single time constant exciter (K_A, T_A), an optional
+// voltage transducer (T_R) and an optional speed-input stabilizer
+// (washout and two lead-lag stages). HeffronPhillips gives the constants
+// K1..K6 at an operating point; the state matrix's eigenvalues (gonum
+// mat.Eigen) decide stability: no eigenvalue with Re > 1e-7 s^-1, the
+// electromechanical modes (0.1 to 3 Hz) damped at least Params.ZetaMin,
+// and E_fd0 at least the exciter's floor. On both bases the limit is the
+// bottom of the topmost stable interval below q_max, found by a downward
+// scan in 0.02 pu steps and bisection (topInterval); where q_max itself
+// is unstable it moves down to the top of that interval (QMaxLimit
+// stability). RotorMode gives the rotor mode's frequency and damping
+// ratio at a point, solved when called. An eigen solver failure is
+// ErrSmallSignal in Bounds.StabilityErr, with the point infeasible for
+// reason stability; never NaN.
 //
 // Where a source is marked "(from memory)" the value or wording was
 // recalled, not re-read from the standard.
@@ -34,6 +54,13 @@
 // curves are closed forms where they exist (round-rotor stability, the
 // armature circle) and otherwise warm-started iterations from the unit's
 // previous solution (Hint): Newton steps on the field limit, a bracketed
-// Brent search on the salient-pole stability limits. Evaluate does not
-// allocate.
+// Brent search on the salient-pole stability limits. On the avr basis the
+// direct search (a Routh-Hurwitz scan confirmed by eigenvalues) takes
+// tens of microseconds, so New builds a table of the limit over p and v
+// per unit, and the per-sample path (Evaluate and
+// EvaluateSample with a Hint) interpolates it, checking the answer with
+// two Routh-Hurwitz tests of the characteristic polynomial where the
+// table is not smooth (stabTable, fastInterval): within 0.002 pu of the
+// direct computation. Bounds, StabilityLimit, Envelope and Evaluate with
+// a nil Hint compute directly. Evaluate does not allocate.
 package limits

@@ -206,24 +206,30 @@ func TestNewReportsEveryProblem(t *testing.T) {
 	p := benchRound(t).Params()
 	p.EndRegion, p.Coolant = nil, nil
 	p.Xe, p.PowerFactor, p.S12, p.ZetaMin = -1, 1.2, 1.1*p.S10, 1
-	p.Stabilizer = &Stabilizer{K: -1, TWS: 10, T1S: 0.2, T2S: 0}
 	_, err := New(p)
 	got := map[string]bool{}
 	for _, pe := range ParamErrors(err) {
 		got[pe.Field] = true
 	}
-	for _, f := range []string{"grid.x_external_pu", "rating.power_factor", "machine.saturation.s12", "stability.zeta_min",
-		"stabilizer.k", "stabilizer.t2_s", "stabilizer"} {
+	for _, f := range []string{"grid.x_external_pu", "rating.power_factor", "machine.saturation.s12", "stability.zeta_min"} {
 		if !got[f] {
 			t.Errorf("no error on %s; got %v", f, err)
 		}
+	}
+	// A lead-lag stage with t2 = 0 is a pure derivative: refused.
+	q := benchRound(t).Params()
+	q.Exciter = &Exciter{KA: 200, TAS: 0.02}
+	q.Stabilizer = &Stabilizer{K: 10, TWS: 10, T1S: 0.2, T2S: 0, T3S: 0.2, T4S: 0.05}
+	_, err = New(q)
+	if pes := ParamErrors(err); len(pes) != 1 || pes[0].Field != "stabilizer.t2_s" {
+		t.Errorf("t2 = 0: %v", err)
 	}
 	var pe *ParamError
 	if !errors.As(err, &pe) {
 		t.Errorf("errors.As finds no ParamError in %v", err)
 	}
 	// A power factor of 1.0 is a valid rating.
-	q := benchRound(t).Params()
+	q = benchRound(t).Params()
 	q.PowerFactor = 1
 	if _, err := New(q); err != nil {
 		t.Errorf("power factor 1.0: %v", err)

@@ -13,14 +13,22 @@ import "math"
 //
 //	armature         1 - i/i_max
 //	field            1 - i_fd/i_fd_max (the measured field current when the point has one, else the model; see fieldCurrent)
-//	stability        (q - q_practical) / 1 pu
+//	stability        (q - q_practical) / 1 pu; where q_max moved down to the top of the
+//	                 stable interval (StabilityTop), the smaller of that and (top - q) / 1 pu
 //	end_region       (q - q_end) / 1 pu (only with an end-region curve)
 //	uel              (q - q_uel) / 1 pu (only with a UEL curve that has a value at p)
 //	prime_mover      min(p_max - p, p - p_min) / p_rated, the prime mover's p_max and p_min
 //	volts_per_hertz  1 - (v/f)/1.05
 //
 // The binding limit is the nearest chart limit by distance (see bind).
-func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, true) }
+//
+// On the avr basis, Evaluate with a hint is the per-sample path and reads
+// the stability limit from the unit's table (within 0.002 pu of the
+// direct computation, see stabTable); with a nil hint it is the direct
+// computation (avrInterval, tens of microseconds).
+func (u *Unit) Evaluate(pt Point, h *Hint) Result {
+	return u.evaluate(pt, h, true, h != nil && u.avrTab != nil)
+}
 
 // EvaluateSample is Evaluate for the per-sample path of a service. Its
 // margins, binding limit, feasibility, lower bound and practical
@@ -28,13 +36,24 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result { return u.evaluate(pt, h, tru
 // them, it leaves the field-limit curve (and so q_max, its limit and the
 // binding limit) and the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
 // less often than samples arrive.
-func (u *Unit) EvaluateSample(pt Point, h *Hint) Result { return u.evaluate(pt, h, false) }
+func (u *Unit) EvaluateSample(pt Point, h *Hint) Result {
+	return u.evaluate(pt, h, false, h != nil && u.avrTab != nil)
+}
 
 // Complete solves what EvaluateSample left pending in r, the result of
-// point pt; after it r is Evaluate's result, to the root tolerance. It
-// does nothing when nothing is pending.
+// point pt; after it r is Evaluate's result, to the root tolerance (on
+// the avr basis the result of Evaluate with a hint: both read the
+// stability limit from the unit's table). It does nothing when nothing
+// is pending.
 func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.QMaxPending {
+		return
+	}
+	if r.fast {
+		// The avr basis' table answer depends on q_max only through
+		// which checks it needs: the evaluation is done again, as
+		// Evaluate with a hint does it.
+		*r = u.evaluate(pt, nil, true, true)
 		return
 	}
 	r.Field = u.fieldLimit(pt.P, pt.V, r.IfdMax, nil)
@@ -42,13 +61,19 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.Stability.OK && r.QMax.OK {
 		// Left by the warm practical limit; the practical limit is solved
 		// again with it, to the same root.
-		r.Stability, r.Practical = u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, nil)
+		s := u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, false)
+		if s.top.OK || s.err != nil {
+			// q_max itself is unstable: the whole envelope changes.
+			*r = u.evaluate(pt, nil, true, false)
+			return
+		}
+		r.setStability(s)
 	}
 	r.QMaxPending = false
 	u.bind(r, pt)
 }
 
-func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
+func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
 	p, q, v := pt.P, pt.Q, pt.V
 	f := pt.F
 	if f == 0 {
@@ -70,7 +95,8 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 		r.CoolantOutside = !inside
 	}
 	r.IMax, r.IfdMax = armF, u.ifdRated*fieldF
-	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full)
+	r.fast = fast
+	r.Bounds, r.QMaxPending = u.bounds(p, v, armF, fieldF, h, full, r.fast)
 
 	fs := u.field(p, q, v, false)
 	r.IfdModel, r.Ef = fs.ifd, fs.ef
@@ -87,7 +113,12 @@ func (u *Unit) evaluate(pt Point, h *Hint, full bool) Result {
 	r.FieldCurrent = fieldCurrent(&pt, r.IfdModel)
 	r.Margins[LimitField] = some(1 - r.FieldCurrent/r.IfdMax)
 	if r.Practical.OK {
-		r.Margins[LimitStability] = some(q - r.Practical.V)
+		m := q - r.Practical.V
+		if r.StabilityTop.OK {
+			// Above the topmost stable interval the point is unstable too.
+			m = math.Min(m, r.StabilityTop.V-q)
+		}
+		r.Margins[LimitStability] = some(m)
 	}
 	if r.EndRegion.OK {
 		r.Margins[LimitEndRegion] = some(q - r.EndRegion.V)
@@ -146,7 +177,7 @@ func (u *Unit) primeMoverDistance(p float64) float64 {
 //
 //	armature     v i_max - sqrt(p^2 + q^2)
 //	field        q_field - q
-//	stability    q - q_practical
+//	stability    q - q_practical (or top - q, see Evaluate)
 //	end region   q - q_end
 //	uel          q - q_uel
 //	prime mover  min(p_max - p, p - p_min)
@@ -170,8 +201,8 @@ func (u *Unit) bind(r *Result, pt Point) {
 	if r.Field.OK {
 		try(LimitField, r.Field.V-q)
 	}
-	if r.Practical.OK {
-		try(LimitStability, q-r.Practical.V)
+	if m := r.Margins[LimitStability]; m.OK {
+		try(LimitStability, m.V) // q - q_practical, or top - q where q_max moved to the stable interval's top
 	}
 	if r.EndRegion.OK {
 		try(LimitEndRegion, q-r.EndRegion.V)

@@ -117,6 +117,10 @@ type Unit struct {
 	hasEnd       bool
 	hasCoolant   bool
 	hasTransient bool
+
+	// The avr stability basis.
+	avrTab  *stabTable // q_stability over p and v for the per-sample path; nil on the manual basis
+	avrChar charParts  // the fixed parts of the characteristic polynomial (avr basis)
 }
 
 // New checks p and prepares a Unit. Every inconsistency found is
@@ -160,12 +164,6 @@ func New(p Params) (*Unit, error) {
 	if !fin(p.InertiaHS) || p.InertiaHS < 0 {
 		bad("machine.inertia_h_s", "must be a positive time in s when given, got %v", p.InertiaHS)
 	}
-	if !fin(p.Td0TransientS) || p.Td0TransientS < 0 {
-		bad("machine.td0_transient_s", "must be a positive time in s when given, got %v", p.Td0TransientS)
-	}
-	if !fin(p.DampingPU) || p.DampingPU < 0 {
-		bad("machine.damping_pu", "must not be negative, got %v", p.DampingPU)
-	}
 	// Saturation: the quadratic form needs 1.2 S(1.2) > S(1.0), else its
 	// A >= 1 puts saturation at or below zero voltage (envelope.md, "Fleet-file findings").
 	switch {
@@ -201,19 +199,10 @@ func New(p Params) (*Unit, error) {
 	if !fin(p.MarginFraction) || p.MarginFraction < 0 || p.MarginFraction >= 1 {
 		bad("stability.margin_fraction", "must be in [0, 1), got %v", p.MarginFraction)
 	}
-	if !fin(p.ZetaMin) || p.ZetaMin < 0 || p.ZetaMin >= 1 {
-		bad("stability.zeta_min", "must be in [0, 1), got %v", p.ZetaMin)
+	// The avr basis' own parameters: checkAVR, reported with the others.
+	if err := checkAVR(&p); err != nil {
+		errs = append(errs, err)
 	}
-	switch p.Basis {
-	case BasisManual:
-	case BasisAVR:
-		if p.Exciter == nil {
-			bad("stability.basis", "the avr basis needs the unit's exciter (excitation: k_a, t_a_s)")
-		}
-	default:
-		bad("stability.basis", "must be manual or avr")
-	}
-	checkRegulator(&p, bad)
 	if c := p.UEL; c != nil {
 		checkUEL(c, bad)
 	}
@@ -275,13 +264,9 @@ func New(p Params) (*Unit, error) {
 		cc.P, cc.Q = slices.Clone(c.P), slices.Clone(c.Q)
 		u.p.UEL = &cc
 	}
-	if e := p.Exciter; e != nil {
-		ee := *e
-		u.p.Exciter = &ee
-	}
-	if s := p.Stabilizer; s != nil {
-		ss := *s
-		u.p.Stabilizer = &ss
+	// The exciter and stabilizer are copied by prepareAVR.
+	if err := u.prepareAVR(); err != nil {
+		return nil, err
 	}
 	u.ifdModel = u.FieldCurrent(p.PowerFactor, math.Sqrt(1-p.PowerFactor*p.PowerFactor), 1)
 	u.ifdRated = p.IfdRated
@@ -354,50 +339,108 @@ func checkUEL(c *UEL, bad func(field, format string, args ...any)) {
 	}
 }
 
-// checkRegulator checks the exciter and stabilizer of the avr basis
-// (envelope.md, "The linearized model"): non-negative gains and times,
-// a positive exciter time constant, and a positive lag in each lead-lag
-// stage that is used (t2 = 0 with t1 > 0 would make the stage a pure
-// derivative; t1 = t2 = 0 is no stage).
-func checkRegulator(p *Params, bad func(field, format string, args ...any)) {
+// checkAVR checks the parameters of the avr stability basis (envelope.md,
+// "The linearized model for the avr basis"): the ones the small-signal
+// model needs, in the fleet file's spelling. It is separate from the
+// steady-state checks of New.
+func checkAVR(p *Params) error {
+	bad := func(field, format string, args ...any) error {
+		return &ParamError{Field: field, Reason: fmt.Sprintf(format, args...)}
+	}
 	fin := func(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+	posT := func(x float64) bool { return x > 0 && fin(x) }
+	switch {
+	case p.Basis != BasisManual && p.Basis != BasisAVR:
+		return bad("stability.basis", "must be manual or avr")
+	case !fin(p.ZetaMin) || p.ZetaMin < 0 || p.ZetaMin >= 1:
+		return bad("stability.zeta_min", "must be in [0, 1), got %v", p.ZetaMin)
+	case !fin(p.Td0TransientS) || p.Td0TransientS < 0:
+		return bad("machine.td0_transient_s", "must be a positive time in s when given, got %v", p.Td0TransientS)
+	case !fin(p.DampingPU) || p.DampingPU < 0:
+		return bad("machine.damping_pu", "must be a non-negative damping in pu torque per pu speed, got %v", p.DampingPU)
+	}
 	if e := p.Exciter; e != nil {
-		if !fin(e.KA) || e.KA < 0 {
-			bad("excitation.k_a", "the regulator gain must not be negative, got %v", e.KA)
-		}
-		if !fin(e.TAS) || !(e.TAS > 0) {
-			bad("excitation.t_a_s", "the exciter time constant must be positive, got %v s", e.TAS)
-		}
-		if !fin(e.TRS) || e.TRS < 0 {
-			bad("excitation.t_r_s", "the transducer time constant must not be negative, got %v s", e.TRS)
-		}
-		if !fin(e.EfdMin) || !fin(e.EfdMax) || e.EfdMax != 0 && e.EfdMax <= e.EfdMin {
-			bad("excitation.efd_max_pu", "the ceiling must be finite and above efd_min_pu (%v), got %v", e.EfdMin, e.EfdMax)
+		switch {
+		case !fin(e.KA) || e.KA < 0:
+			return bad("excitation.k_a", "must be a non-negative gain, got %v", e.KA)
+		case !posT(e.TAS):
+			return bad("excitation.t_a_s", "must be a positive time in s, got %v", e.TAS)
+		case !fin(e.TRS) || e.TRS < 0:
+			return bad("excitation.t_r_s", "must be a non-negative time in s, got %v", e.TRS)
+		case !fin(e.EfdMin):
+			return bad("excitation.efd_min_pu", "must be a finite field voltage in pu, got %v", e.EfdMin)
+		case !fin(e.EfdMax) || e.EfdMax < 0 || (e.EfdMax > 0 && e.EfdMax <= e.EfdMin):
+			return bad("excitation.efd_max_pu", "must be above efd_min_pu (%v) when given, got %v", e.EfdMin, e.EfdMax)
 		}
 	}
 	if s := p.Stabilizer; s != nil {
-		if !fin(s.K) || s.K < 0 {
-			bad("stabilizer.k", "the stabilizer gain must not be negative, got %v", s.K)
-		}
-		if !fin(s.TWS) || !(s.TWS > 0) {
-			bad("stabilizer.t_w_s", "the washout time constant must be positive, got %v s", s.TWS)
-		}
-		for _, st := range []struct {
-			lead, lag         float64
-			leadName, lagName string
-		}{{s.T1S, s.T2S, "t1_s", "t2_s"}, {s.T3S, s.T4S, "t3_s", "t4_s"}} {
-			if !fin(st.lead) || st.lead < 0 {
-				bad("stabilizer."+st.leadName, "a lead time constant must not be negative, got %v s", st.lead)
-			}
-			// Both 0: the stage is not used, (1 + 0 s)/(1 + 0 s) = 1.
-			if !fin(st.lag) || st.lag < 0 || st.lag == 0 && st.lead != 0 {
-				bad("stabilizer."+st.lagName, "the lag of a lead-lag stage must be positive (0 makes the stage a pure derivative; set both to 0 for no stage), got %v s", st.lag)
-			}
-		}
-		if p.Exciter == nil {
-			bad("stabilizer", "a stabilizer acts through the regulator; give the unit's excitation: too")
+		switch {
+		case !fin(s.K) || s.K < 0:
+			return bad("stabilizer.k", "must be a non-negative gain, got %v", s.K)
+		case !posT(s.TWS):
+			return bad("stabilizer.t_w_s", "must be a positive washout time in s, got %v", s.TWS)
+		case !fin(s.T1S) || s.T1S < 0:
+			return bad("stabilizer.t1_s", "must be a non-negative time in s, got %v", s.T1S)
+		case !posT(s.T2S):
+			return bad("stabilizer.t2_s", "must be a positive lag time in s (a lead-lag needs t2 > 0), got %v", s.T2S)
+		case !fin(s.T3S) || s.T3S < 0:
+			return bad("stabilizer.t3_s", "must be a non-negative time in s, got %v", s.T3S)
+		case !posT(s.T4S):
+			return bad("stabilizer.t4_s", "must be a positive lag time in s (a lead-lag needs t4 > 0), got %v", s.T4S)
 		}
 	}
+	if p.Basis != BasisAVR {
+		return nil
+	}
+	// What the linearized model needs.
+	switch {
+	case p.Exciter == nil:
+		return bad("excitation", "the avr stability basis needs the exciter (k_a, t_a_s)")
+	case p.Td0TransientS == 0:
+		return bad("machine.td0_transient_s", "the avr stability basis needs T'd0")
+	case p.InertiaHS == 0:
+		return bad("machine.inertia_h_s", "the avr stability basis needs the inertia constant H")
+	case p.XdTransient == 0:
+		return bad("machine.xd_transient", "the avr stability basis needs X'd")
+	}
+	return nil
+}
+
+// DefaultBasis is the stability basis of a unit whose fleet file does
+// not name one (envelope.md, "Stability basis"): avr when the exciter is
+// given, else manual.
+func (p *Params) DefaultBasis() Basis {
+	if p.Exciter != nil {
+		return BasisAVR
+	}
+	return BasisManual
+}
+
+// prepareAVR checks the avr basis' parameters and, on that basis, builds
+// the per-sample table of the stability limit (stabTable), copying the
+// exciter and stabilizer so that the caller's may change.
+func (u *Unit) prepareAVR() error {
+	if err := checkAVR(&u.p); err != nil {
+		return err
+	}
+	if e := u.p.Exciter; e != nil {
+		c := *e
+		u.p.Exciter = &c
+	}
+	if s := u.p.Stabilizer; s != nil {
+		c := *s
+		u.p.Stabilizer = &c
+	}
+	if u.p.Basis != BasisAVR {
+		return nil
+	}
+	u.avrChar = u.charParts()
+	t, err := u.buildStabTable()
+	if err != nil {
+		return &ParamError{Field: "stability.basis", Reason: "the small-signal model could not be solved while preparing the unit: " + err.Error()}
+	}
+	u.avrTab = t
+	return nil
 }
 
 // Params returns the parameters the unit was built from.
@@ -592,6 +635,9 @@ func (u *Unit) UELAt(p, v float64) Bound {
 // limit on the unit's own basis with no practical margin, computed
 // directly (no warm start), at rated coolant. Absent where the point has
 // no stable operation. The coordination study and the reports use it.
+//
+// On the avr basis this is the search of avrInterval (envelope.md,
+// "Which stable interval, and the limit").
 func (u *Unit) StabilityLimit(p, v float64) Bound {
 	return u.Bounds(p, v, 1, 1, nil).Stability
 }

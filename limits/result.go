@@ -97,8 +97,16 @@ type Bounds struct {
 	ArmatureUp   Bound // +sqrt((v i_max)^2 - p^2)
 	ArmatureDown Bound // -sqrt((v i_max)^2 - p^2)
 	Field        Bound // q at which the field current reaches its limit
-	Stability    Bound // steady-state stability limit on the unit's basis (no practical margin)
-	Practical    Bound // practical stability limit (with the margin)
+	Stability    Bound // q_stability, the steady-state stability limit on the unit's basis
+	Practical    Bound // practical stability limit (with the margin; = Stability when the margin is 0)
+
+	// StabilityTop is set where q_max itself is unstable: the top of the
+	// topmost stable interval, to which q_max moves (QMaxLimit stability).
+	StabilityTop Bound
+	// StabilityErr is ErrSmallSignal where the avr basis' eigenvalue
+	// solver failed: Stability and Practical are then absent, and the
+	// point is reported infeasible with reason stability.
+	StabilityErr error
 	EndRegion    Bound // stator end-region curve at this voltage
 	UEL          Bound // underexcitation limiter curve at this voltage
 
@@ -130,6 +138,10 @@ type Result struct {
 	// (and, for a salient-pole unit, Stability) are left unsolved;
 	// Complete solves them.
 	QMaxPending bool
+
+	// fast is set when the avr basis' stability limit came from the
+	// unit's table (the per-sample path), so that Complete keeps to it.
+	fast bool
 
 	Binding    Limit // the capability-chart limit nearest the point, by distance in pu of rated MVA (see Evaluate)
 	Feasible   bool  // every bound exists at this active power

@@ -79,6 +79,7 @@ func evaluate(e env, f *evaluateFlags) int {
 	pt := report.Point(u, f.pMW.v, f.qMvar.v, f.vKV.v, f.fieldA.v, f.fieldA.set, f.fHz.v, f.fHz.set, f.coolant.v, f.coolant.set)
 	r := u.Model.Evaluate(pt, nil)
 	out := report.New(u, pt, &r)
+	out.SetRotorMode(u, pt)
 	if f.format.v == "json" {
 		enc := json.NewEncoder(e.stdout)
 		enc.SetIndent("", "  ")
@@ -138,6 +139,11 @@ func writeEvaluationText(w io.Writer, u *fleet.Unit, ev *report.Evaluation) erro
 	line("field current", "model %s A of %s A%s", orNone(ev.FieldCurrentModelA, "%.0f"), orNone(ev.FieldCurrentLimitA, "%.0f"), fieldNote)
 	line("load angle", "%s°", orNone(ev.LoadAngleDeg, "%.1f"))
 	line("volts per hertz", "%s pu, zone %s", orNone(ev.VoltsPerHertzPU, "%.3f"), ev.Zone)
+	if m := ev.RotorMode; m != nil {
+		line("rotor mode", "%.2f Hz, damping ratio %.3f (%s basis)", m.FrequencyHz, m.DampingRatio, ev.StabilityBasis)
+	} else {
+		line("rotor mode", "none (%s basis)", ev.StabilityBasis)
+	}
 	line("critical clearing time", "%s", orNone(ev.CriticalClearingTimeS, "%.3f s (classical model)", "not known (needs xd_transient and inertia_h_s, P > 0 and a point stable at constant field voltage)"))
 	if err := tw.Flush(); err != nil {
 		return err

@@ -125,7 +125,7 @@ var evaluateJSONKeys = []string{
 	"q_practical_stability_mvar", "p_max_mw", "q_headroom_up_mvar", "q_headroom_down_mvar",
 	"margins", "binding_limit", "feasible", "infeasible_limit", "zone", "critical_clearing_time_s",
 	"q_field_mvar", "q_armature_up_mvar", "q_armature_down_mvar", "q_end_region_mvar",
-	"volts_per_hertz_pu", "coolant_outside_table", "caution", "q_uel_mvar", "stability_basis",
+	"volts_per_hertz_pu", "coolant_outside_table", "caution", "q_uel_mvar", "stability_basis", "rotor_mode",
 }
 
 func evaluateJSON(t *testing.T, args ...string) map[string]any {

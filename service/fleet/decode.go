@@ -765,14 +765,14 @@ func (c *unitCtx) decodeStabilizer(v *yaml.Node, path string, line int) {
 		return
 	}
 	s := &Stabilizer{}
-	var good [4]bool
+	var good [6]bool
 	s.K, good[0] = c.number(m, "k", true, "the stabilizer gain in pu per pu speed", nil)
 	s.TWS, good[1] = c.number(m, "t_w_s", true, "the washout time constant T_w in s", nil)
 	s.T1S, good[2] = c.number(m, "t1_s", true, "the lead time constant T1 of the first stage in s", nil)
 	s.T2S, good[3] = c.number(m, "t2_s", true, "the lag time constant T2 of the first stage in s", nil)
-	s.T3S, _ = c.number(m, "t3_s", false, "the lead time constant T3 of the second stage in s (0: no second stage)", nil)
-	s.T4S, _ = c.number(m, "t4_s", false, "the lag time constant T4 of the second stage in s (0: no second stage)", nil)
-	if good == [4]bool{true, true, true, true} {
+	s.T3S, good[4] = c.number(m, "t3_s", true, "the lead time constant T3 of the second stage in s (t3_s = t4_s for no second stage)", nil)
+	s.T4S, good[5] = c.number(m, "t4_s", true, "the lag time constant T4 of the second stage in s (t3_s = t4_s for no second stage)", nil)
+	if good == [6]bool{true, true, true, true, true, true} {
 		c.u.Stabilizer = s
 	}
 }

@@ -197,8 +197,7 @@ type UELPoint struct {
 }
 
 // Stabilizer is a speed-input power system stabilizer: gain and time
-// constants in s; t3_s and t4_s are 0 when the second lead-lag stage is
-// not used.
+// constants in s (two lead-lag stages; t3_s = t4_s for one).
 type Stabilizer struct {
 	K, TWS, T1S, T2S, T3S, T4S float64
 }

@@ -530,13 +530,13 @@ func TestParseRegulatorRules(t *testing.T) {
 		want     []want
 	}{
 		{"missing k_a", "      k_a: 200\n", "", []want{{67, "excitation.k_a", E, "missing; give the regulator gain"}}},
-		{"negative gain", "k_a: 200", "k_a: -200", []want{{68, "excitation.k_a", E, "must not be negative, got -200"}}},
-		{"t2 zero", "t2_s: 0.05, t3_s", "t2_s: 0, t3_s", []want{{74, "stabilizer.t2_s", E, "the lag of a lead-lag stage must be positive"}}},
+		{"negative gain", "k_a: 200", "k_a: -200", []want{{68, "excitation.k_a", E, "must be a non-negative gain, got -200"}}},
+		{"t2 zero", "t2_s: 0.05, t3_s", "t2_s: 0, t3_s", []want{{74, "stabilizer.t2_s", E, "must be a positive lag time in s (a lead-lag needs t2 > 0), got 0"}}},
 		{"zeta_min 1", "zeta_min: 0.03", "zeta_min: 1", []want{{75, "stability.zeta_min", E, "must be in [0, 1), got 1"}}},
 		{"zeta_min negative", "zeta_min: 0.03", "zeta_min: -0.1", []want{{75, "stability.zeta_min", E, "must be in [0, 1)"}}},
 		{"unknown basis", "{zeta_min: 0.03}", "{basis: auto}", []want{{75, "stability.basis", E, `must be manual or avr; got "auto"`}}},
 		{"avr without exciter", regulated[strings.Index(regulated, "    excitation:"):], "    stability: {basis: avr}\n",
-			[]want{{67, "stability.basis", E, "the avr basis needs the unit's exciter"}}},
+			[]want{{53, "excitation", E, "the avr stability basis needs the exciter"}}},
 		{"missing t_a_s text", "t_a_s: 0.02", "t_a_s: fast", []want{{69, "excitation.t_a_s", E, "must be a number"}}},
 		{"uel shape", "shape: circle", "shape: ellipse", []want{{73, "excitation.uel.shape", E, `must be circle or points; got "ellipse"`}}},
 		{"uel radius missing", ", radius_mvar: 84", "", []want{{73, "excitation.uel.radius_mvar", E, "missing"}}},
@@ -545,9 +545,12 @@ func TestParseRegulatorRules(t *testing.T) {
 			[]want{{73, "excitation.uel.points[2]", E, "point 2: p_mw must be finite and above the previous point's"}}},
 		{"oel not yet", "      t_r_s: 0.01\n", "      oel: {pickup_pu: 1.05}\n", []want{{70, "excitation.oel", E, "not supported yet"}}},
 		{"power factor 1", "power_factor: 0.9, frequency_hz: 50}\n    machine:\n      rotor: salient\n      xd: 1.05\n      xq: 0.66\n      xl: 0.15\n      xd_transient",
-			"power_factor: 1.0, frequency_hz: 50}\n    machine:\n      rotor: salient\n      xd: 1.05\n      xq: 0.66\n      xl: 0.15\n      xd_transient", nil},
-		{"weak grid: no stable rated point", "x_external_pu: 0.2}", "x_external_pu: 2.5}",
-			[]want{{54, "rating", W, "no stable operation at rated active power on the avr basis"}}},
+			"power_factor: 1.0, frequency_hz: 50}\n    machine:\n      rotor: salient\n      xd: 1.05\n      xq: 0.66\n      xl: 0.15\n      xd_transient",
+			// It validates; at 120 MW, beyond this unit's 108 MW prime mover, the
+			// regulator's model finds no stable point: a warning, the unit is monitored.
+			[]want{{54, "rating", W, "the rated point (120.0 MW, 0.0 Mvar at 13.8 kV): no stable operation at rated active power on the avr basis"}}},
+		{"weak grid: rated point above the stable range", "x_external_pu: 0.2}", "x_external_pu: 2.5}",
+			[]want{{54, "rating", W, "Mvar: the stability limit allows at most"}}}, // which limit and by how much; the numbers are the engine's
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			s := base + edit(t, regulated, tc.old, tc.new)

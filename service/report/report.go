@@ -73,7 +73,31 @@ type Evaluation struct {
 	VoltsPerHertzPU         *float64            `json:"volts_per_hertz_pu"`
 	Zone                    string              `json:"zone"`
 	CriticalClearingTimeS   *float64            `json:"critical_clearing_time_s"`
-	Caution                 string              `json:"caution"`
+	// RotorMode is set by the readers that show it (SetRotorMode): an
+	// eigen decomposition, solved when read, never per sample. Null on
+	// the manual basis.
+	RotorMode *RotorMode `json:"rotor_mode"`
+	Caution   string     `json:"caution"`
+}
+
+// RotorMode is the rotor (electromechanical) mode of the linearized
+// machine with its regulator at an operating point (envelope.md, the avr
+// basis).
+type RotorMode struct {
+	FrequencyHz  float64 `json:"frequency_hz"`
+	DampingRatio float64 `json:"damping_ratio"` // -Re(lambda)/|lambda|; negative when the oscillation grows
+}
+
+// SetRotorMode solves the rotor mode of ev's unit u at pt, the point ev
+// reports, and puts it into ev: nil on the manual basis, where the mode
+// is not oscillatory, or where the eigenvalue solver fails.
+func (ev *Evaluation) SetRotorMode(u *fleet.Unit, pt limits.Point) {
+	ev.RotorMode = nil
+	m, ok, err := u.Model.RotorMode(pt)
+	if !ok || err != nil || math.IsNaN(m.FrequencyHz) || math.IsNaN(m.DampingRatio) {
+		return
+	}
+	ev.RotorMode = &RotorMode{FrequencyHz: m.FrequencyHz, DampingRatio: m.DampingRatio}
 }
 
 // num returns x, or nil when it is not finite.

@@ -53,7 +53,9 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 	resp := &pb.GetUnitResponse{Unit: unitProto(v.Config)}
 	if v.HasSample {
 		resp.Latest = sampleProto(&v.Latest)
-		resp.Evaluation = EvaluationProto(report.New(v.Config, v.Point, &v.Eval))
+		ev := report.New(v.Config, v.Point, &v.Eval)
+		ev.SetRotorMode(v.Config, v.Point)
+		resp.Evaluation = EvaluationProto(ev)
 		resp.Received = timestamppb.New(v.Received)
 	}
 	resp.ArmatureThermalUsedRatio = v.Armature.Used(limits.ArmatureK)
@@ -223,6 +225,9 @@ func EvaluationProto(e *report.Evaluation) *pb.Evaluation {
 		CoolantOutsideTable:  e.CoolantOutsideTable,
 		ArmatureRatingFactor: e.ArmatureRatingFactor, FieldRatingFactor: e.FieldRatingFactor,
 		QUelMvar: e.QUELMvar,
+	}
+	if m := e.RotorMode; m != nil {
+		out.RotorMode = &pb.RotorMode{FrequencyHz: m.FrequencyHz, DampingRatio: m.DampingRatio}
 	}
 	for _, l := range limits.Limits() {
 		name := l.String()

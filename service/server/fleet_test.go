@@ -13,6 +13,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/report"
 	"github.com/genvelope/genvelope/service/rpc"
 	"github.com/genvelope/genvelope/service/server"
@@ -127,8 +128,11 @@ func TestGetUnit(t *testing.T) {
 			b := u.Base
 			pt := limits.Point{P: b.PowerPU(tc.s.PMw), Q: b.PowerPU(tc.s.QMvar), V: b.VoltagePU(tc.s.VKv)}
 			if tc.s.FieldA != nil {
-				pt.Ifd = b.FieldPU(*tc.s.FieldA)
-				pt.IfdMeasured = tc.s.Quality != pb.Quality_QUALITY_QUESTIONABLE // a questionable measurement is not used for the margin
+				// A questionable measurement, or one beyond the mismatch alarm's
+				// warning from the model, counts only when it is the larger.
+				pt.Ifd, pt.IfdMeasured = b.FieldPU(*tc.s.FieldA), true
+				pt.IfdDoubtful = tc.s.Quality == pb.Quality_QUALITY_QUESTIONABLE
+				pt.IfdMismatch = u.Alarms[alarm.FieldCurrentMismatch].Warning
 			}
 			if tc.s.FrequencyHz != nil {
 				pt.F = b.FrequencyPU(*tc.s.FrequencyHz)
@@ -136,8 +140,13 @@ func TestGetUnit(t *testing.T) {
 			if tc.s.Coolant != nil {
 				pt.Coolant, pt.HasCoolant = *tc.s.Coolant, true
 			}
-			res := u.Model.Evaluate(pt, nil)
+			// With a hint, as the service evaluates samples: on the avr basis
+			// that reads the stability limit from the unit's table (limits'
+			// contract: within 0.002 pu of the direct computation).
+			var h limits.Hint
+			res := u.Model.Evaluate(pt, &h)
 			e := report.New(u, pt, &res)
+			e.SetRotorMode(u, pt)
 			want := rpc.EvaluationProto(e)
 			if d := approxEqual(got.Evaluation.ProtoReflect(), want.ProtoReflect(), 1e-9, "evaluation"); d != "" {
 				t.Error(d)

@@ -380,6 +380,7 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 		d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
 	}
 	if ev := d.Eval; ev != nil {
+		ev.SetRotorMode(cfg, v.Point) // an eigen decomposition: on this page only, not on the overview
 		d.Age = fmtAge(now.Sub(v.Received))
 		d.SampleTime = fmtWhen(v.Latest.Time)
 		d.AcceptedCount = v.Accepted
@@ -395,6 +396,9 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			if l == limits.LimitStability {
 				// Which limit this is: with the regulator in service or without.
 				mr.Basis += map[string]string{"avr": " (avr basis: voltage regulator in service)", "manual": " (manual basis: constant field voltage)"}[ev.StabilityBasis]
+				if m := ev.RotorMode; m != nil {
+					mr.Basis += fmt.Sprintf("; rotor mode %.2f Hz, damping ratio %.3f", m.FrequencyHz, m.DampingRatio)
+				}
 			}
 			if m != nil {
 				mr.Fill = fill(*m)

@@ -1,0 +1,650 @@
+package limits
+
+import "math"
+
+// The stability limit on the avr basis: the topmost-stable-interval rule
+// (envelope.md, "Which stable interval, and the limit") over the
+// small-signal test of smallsignal.go, computed directly (a Routh-Hurwitz
+// scan confirmed by eigenvalues), and a per-unit table of it for the
+// per-sample path.
+
+// interval is the outcome of the topmost-stable-interval rule at one p
+// and v.
+type interval struct {
+	top Bound // when q_max itself is unstable: the top of the topmost stable interval below it
+	low Bound // q_stability, the bottom of that interval; absent when no stable q exists
+	err error // the stability test failed (ErrSmallSignal); low and top are then absent
+}
+
+// Scan parameters of the rule: the step of the downward scan (pu, the
+// spec's), the bisection tolerance of the direct computation (pu, the
+// spec's) and how far below the armature lower bound the scan looks for
+// the bottom of the interval (pu, our choice: the limit is then reported
+// at that depth, which only the stability margin's value shows, since
+// the armature binds there).
+const (
+	scanStep  = 0.02
+	scanTol   = 1e-6
+	scanFloor = 1.0
+)
+
+// topInterval applies the rule to stable along q in [qBot, qTop]: scan
+// downward from qTop in steps of step; the first stable q (refined by
+// bisection against the unstable one above it when qTop is unstable) is
+// the top of the topmost stable interval; continue downward to the first
+// unstable q and bisect to tol between it and the last stable one: that
+// is q_stability (the midpoint of the final bracket). No stable q down to
+// qBot: low is absent (infeasible, reason stability). Stable down to
+// qBot - scanFloor: low is reported there.
+func topInterval(stable func(q float64) (bool, error), qTop, qBot, step, tol float64) interval {
+	var iv interval
+	s, err := stable(qTop)
+	if err != nil {
+		return interval{err: err}
+	}
+	q := qTop
+	if !s {
+		found := false
+		for q > qBot {
+			hi := q
+			q = math.Max(q-step, qBot)
+			if s, err = stable(q); err != nil {
+				return interval{err: err}
+			}
+			if s {
+				lo := q
+				if lo, _, err = bisectStable(stable, lo, hi, tol); err != nil {
+					return interval{err: err}
+				}
+				q, found = lo, true
+				iv.top = some(lo)
+				break
+			}
+		}
+		if !found {
+			return iv
+		}
+	}
+	floor := qBot - scanFloor
+	for {
+		if q <= floor {
+			iv.low = some(floor)
+			return iv
+		}
+		hi := q
+		q = math.Max(q-step, floor)
+		if s, err = stable(q); err != nil {
+			return interval{err: err}
+		}
+		if !s {
+			st, un, err := bisectStable(stable, hi, q, tol)
+			if err != nil {
+				return interval{err: err}
+			}
+			iv.low = some(0.5 * (st + un))
+			return iv
+		}
+	}
+}
+
+// bisectStable narrows [a, b] between a stable q (st) and an unstable
+// one (un), in either order, to tol; it returns the final pair.
+func bisectStable(stable func(float64) (bool, error), st, un, tol float64) (float64, float64, error) {
+	for math.Abs(st-un) > tol {
+		m := 0.5 * (st + un)
+		s, err := stable(m)
+		if err != nil {
+			return 0, 0, err
+		}
+		if s {
+			st = m
+		} else {
+			un = m
+		}
+	}
+	return st, un, nil
+}
+
+// avrInterval is the direct computation of the rule on the avr basis at
+// p, v below qTop, down to the armature lower bound qBot. The scan and
+// the bisection run on the Routh-Hurwitz test of the characteristic
+// polynomial (the same verdict as the eigenvalues, some hundred ns
+// against tens of microseconds, TestRouthAgreesWithEigenvalues), and the
+// eigenvalues (gonum mat.Eigen) confirm the answer: stable just above
+// q_stability and unstable just below it (scanTol either side of the
+// bisection's midpoint), the same about a moved top. Where they do not
+// confirm it, where no stable q is found, and always with zeta_min > 0
+// (a damping-ratio rule, which the criterion does not decide), the rule
+// runs on the eigenvalues at every test.
+func (u *Unit) avrInterval(p, v, qTop, qBot float64) interval {
+	eig := func(q float64) (bool, error) { return u.avrStable(p, q, v) }
+	if u.p.ZetaMin == 0 {
+		c := &u.avrChar
+		iv := topInterval(func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }, qTop, qBot, scanStep, scanTol)
+		if iv.err == nil && iv.low.OK && confirm(eig, iv, qTop, qBot) {
+			return iv
+		}
+	}
+	return topInterval(eig, qTop, qBot, scanStep, scanTol)
+}
+
+// confirm checks iv, found by the Routh-Hurwitz test, with the
+// eigenvalues: stable scanTol above q_stability (or at it, when the scan
+// reached its floor) and unstable scanTol below; a moved top stable
+// scanTol below it and unstable scanTol above (or at qTop).
+func confirm(stable func(float64) (bool, error), iv interval, qTop, qBot float64) bool {
+	is := func(q float64, want bool) bool {
+		s, err := stable(q)
+		return err == nil && s == want
+	}
+	if iv.low.V <= qBot-scanFloor {
+		if !is(iv.low.V, true) {
+			return false
+		}
+	} else if !is(iv.low.V+scanTol, true) || !is(iv.low.V-scanTol, false) {
+		return false
+	}
+	if iv.top.OK {
+		return is(iv.top.V-scanTol, true) && is(math.Min(iv.top.V+scanTol, qTop), false)
+	}
+	return is(qTop, true)
+}
+
+// poly is a polynomial in s, ascending coefficients c[0] + c[1] s + ...,
+// of degree n (at most maxSSStates).
+type poly struct {
+	c [maxSSStates + 1]float64
+	n int
+}
+
+func pl(c ...float64) poly {
+	var p poly
+	copy(p.c[:], c)
+	p.n = len(c) - 1
+	return p
+}
+
+func (a poly) mul(b poly) poly {
+	var r poly
+	r.n = a.n + b.n
+	for i := 0; i <= a.n; i++ {
+		for j := 0; j <= b.n; j++ {
+			r.c[i+j] += a.c[i] * b.c[j]
+		}
+	}
+	return r
+}
+
+// charParts are the q-independent pieces of the characteristic
+// polynomial (see charPoly), formed once per unit.
+type charParts struct {
+	m0c1, m0c2, c1, c2, c3, c4, c5 poly
+}
+
+// charPoly returns the characteristic polynomial of the state matrix of
+// stateMatrix, up to a positive factor, from the model's transfer
+// functions (block-diagram reduction of the same equations):
+//
+//	M = (2H/w_s) s^2 + (D/w_s) s + K1, F = 1 + s T'd0 K3,
+//	A = 1 + s T_A, R = 1 + s T_R, Dp = (1 + s T_w)(1 + s T2)(1 + s T4),
+//	Np = (k T_w/w_s) s^2 (1 + s T1)(1 + s T3) (Dp = 1, Np = 0 without a stabilizer)
+//	PE = Dp (F A R + K3 K_A K6), QE = K3 K_A (R Np - K5 Dp) - K3 K4 A R Dp
+//	char(s) = M PE + K2 QE
+//
+// from 2H s dw = -K1 dd - K2 dE'q - D dw, dw = s dd/w_s,
+// F dE'q = K3 (dEfd - K4 dd), A R Dp dEfd = K_A (R Np dd - Dp (K5 dd + K6 dE'q)).
+// K3 depends only on the reactances, so with M = m0 + K1 the polynomial
+// is a sum of seven fixed polynomials weighted by the constants:
+//
+//	char = m0 c1 + K6 m0 c2 + K1 c1 + K1 K6 c2 + K2 c3 - K2 K5 c4 - K2 K4 c5
+//	c1 = F A R Dp, c2 = c4 = K3 K_A Dp, c3 = K3 K_A R Np, c5 = K3 A R Dp.
+func (u *Unit) charParts() charParts {
+	ex, ps := u.p.Exciter, u.p.Stabilizer
+	ws := 2 * math.Pi * u.p.FrequencyHz
+	k3 := (u.p.XdTransient + u.p.Xe) / (u.p.Xd + u.p.Xe)
+	m0 := pl(0, u.p.DampingPU/ws, 2*u.p.InertiaHS/ws)
+	f := pl(1, u.p.Td0TransientS*k3)
+	a := pl(1, ex.TAS)
+	r := pl(1)
+	if ex.TRS > 0 {
+		r = pl(1, ex.TRS)
+	}
+	dp, np := pl(1), pl(0)
+	if ps != nil {
+		dp = pl(1, ps.TWS).mul(pl(1, ps.T2S)).mul(pl(1, ps.T4S))
+		np = pl(0, 0, ps.K*ps.TWS/ws).mul(pl(1, ps.T1S)).mul(pl(1, ps.T3S))
+	}
+	ard := a.mul(r).mul(dp)
+	var c charParts
+	c.c1 = f.mul(ard)
+	c.c2 = pl(k3 * ex.KA).mul(dp)
+	c.c3 = pl(k3 * ex.KA).mul(r).mul(np)
+	c.c4 = c.c2
+	c.c5 = pl(k3).mul(ard)
+	c.m0c1, c.m0c2 = m0.mul(c.c1), m0.mul(c.c2)
+	return c
+}
+
+// charPoly returns the characteristic polynomial at the constants k (see
+// charParts).
+func (c *charParts) charPoly(k *HeffronPhillips) poly {
+	r := c.m0c1
+	w := [...]float64{k.K6, k.K1, k.K1 * k.K6, k.K2, -k.K2 * k.K5, -k.K2 * k.K4}
+	for j, q := range [...]*poly{&c.m0c2, &c.c1, &c.c2, &c.c3, &c.c4, &c.c5} {
+		if q.n > r.n {
+			r.n = q.n
+		}
+		for i := 0; i <= q.n; i++ {
+			r.c[i] += w[j] * q.c[i]
+		}
+	}
+	return r
+}
+
+// hurwitz says whether every root of c has a real part below sigma,
+// by the Routh-Hurwitz criterion on c(z + sigma) (Routh 1877; any control
+// text). sure is false when an entry of the first column is lost to
+// cancellation (within 1e-9 of the terms it is formed from), where the
+// verdict is not to be trusted.
+func hurwitz(c poly, sigma float64) (stable, sure bool) {
+	n := c.n
+	var b [maxSSStates + 1]float64 // descending
+	for i := 0; i <= n; i++ {
+		b[i] = c.c[n-i]
+	}
+	if b[0] < 0 {
+		for i := 0; i <= n; i++ {
+			b[i] = -b[i]
+		}
+	}
+	// Taylor shift: b(z) <- b(z + sigma).
+	for i := 0; sigma != 0 && i < n; i++ {
+		for j := 1; j <= n-i; j++ {
+			b[j] += sigma * b[j-1]
+		}
+	}
+	if b[0] <= 0 {
+		return false, false
+	}
+	// The array's rows in a ring of three: r[i%3] is row i.
+	var r [3][maxSSStates/2 + 2]float64
+	for i := 0; i <= n; i++ {
+		r[i%2][i/2] = b[i]
+	}
+	scale := math.Abs(r[1][0])
+	for row := 1; row <= n; row++ {
+		r0, r1, nx := &r[(row-1)%3], &r[row%3], &r[(row+1)%3]
+		if !(r1[0] > 1e-9*scale) {
+			return false, math.Abs(r1[0]) > 1e-9*scale
+		}
+		f := r0[0] / r1[0]
+		// Row row+1 has (n - row - 1)/2 + 1 entries; the rest are zero.
+		*nx = [maxSSStates/2 + 2]float64{}
+		for j := 0; j <= (n-row-1)/2 && j+1 < len(r0); j++ {
+			nx[j] = r0[j+1] - f*r1[j+1]
+		}
+		scale = math.Abs(r0[1]) + math.Abs(f*r1[1])
+	}
+	return true, true
+}
+
+// avrStableFast is avrStable by the Routh-Hurwitz criterion on the
+// characteristic polynomial instead of eigenvalues: some hundred
+// nanoseconds against some microseconds. It applies the growth rule
+// (every root below 1e-7 s^-1), which with zeta_min = 0 is the whole
+// rule (see modeUnstable); with zeta_min > 0, or where the criterion is
+// not sure, it takes the eigenvalues.
+//
+// With sigma = 0 the criterion tests Re < 0 rather than Re <= 1e-7 s^-1,
+// which the per-sample checks use (they look 0.0019 pu away from the
+// boundary, where the difference does not show).
+func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error) {
+	k := u.heffronPhillips(p, q, v, false)
+	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+		return false, nil
+	}
+	if u.p.ZetaMin == 0 {
+		if s, sure := hurwitz(c.charPoly(&k), sigma); sure {
+			return s, nil
+		}
+	}
+	return u.avrStable(p, q, v)
+}
+
+// avrStableTab is the test of the table's build: the Routh-Hurwitz
+// criterion without the shift first (Re < 0), and with it (Re <= 1e-7
+// s^-1) only where the first is not sure, as at an undamped mode. The two
+// differ only for a mode with 0 <= Re <= 1e-7 s^-1, within some 1e-6 pu
+// of a boundary, far inside the table's tolerance.
+func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
+	k := u.heffronPhillips(p, q, v, false)
+	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+		return false, nil
+	}
+	if u.p.ZetaMin == 0 {
+		cp := c.charPoly(&k)
+		if s, sure := hurwitz(cp, 0); sure {
+			return s, nil
+		}
+		if s, sure := hurwitz(cp, ssGrowth); sure {
+			return s, nil
+		}
+	}
+	return u.avrStable(p, q, v)
+}
+
+// stabTable is q_stability on the avr basis over a grid of p and v,
+// built once in New, for the per-sample path: the rule is applied at
+// every node with the Routh-Hurwitz test, a coarser scan (tabScanStep)
+// and a bisection to tabTol, with continuation along p (nearInterval),
+// and read by bilinear interpolation; see fastInterval for how its
+// answer is used and checked.
+type stabTable struct {
+	np, nv   int
+	pStep    float64 // pu; the p grid starts at 0
+	v0, vInv float64 // first v node, 1/step
+	low      []int16 // q_stability at node (i_v*np + i_p), in steps of tabQuant; tabNone: no stable q
+	top      []int16 // top of the topmost stable interval (the armature circle where that is stable); nil when no node moved
+	moved    []bool  // top lies below the armature circle (q_max moves there); nil when no node moved
+	smooth   []bool  // cell (i_v*(np-1) + i_p) interpolates within tabSmooth, by its second differences
+}
+
+// The table stores q in fixed point: tabQuant pu a step (an error of
+// 5e-5 pu at most, inside the margin of tabSmooth), tabNone for "no
+// stable operation". Two bytes a node keep a 10,000-unit fleet's tables
+// to about 12 MB with the polynomial parts.
+const (
+	tabQuant = 1e-4
+	tabNone  = math.MinInt16
+)
+
+func toQ16(q float64) int16 {
+	return int16(math.Round(math.Max(-3.2, math.Min(3.2, q)) / tabQuant))
+}
+
+// The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
+// Its spacing keeps bilinear interpolation within 0.002 pu of the direct
+// computation over the chart (TestAVRTableAgrees).
+const (
+	tabPMax     = 1.2
+	tabPStep    = 0.05
+	tabVLo      = 0.8
+	tabVHi      = 1.2
+	tabVStep    = 0.05
+	tabScanStep = 0.2
+	tabTol      = 1e-4
+)
+
+// tabCheck is the half-width of the bracket, pu, in which the per-sample
+// path checks the table's answer (see fastInterval): it keeps the fast
+// answer within 0.002 pu of the direct computation.
+const tabCheck = 0.0019
+
+// buildStabTable applies the rule at every node of the grid, below the
+// armature circle at rated current (q_max without the field limit).
+func (u *Unit) buildStabTable() (*stabTable, error) {
+	t := &stabTable{np: int(math.Round(tabPMax/tabPStep)) + 1, nv: int(math.Round((tabVHi-tabVLo)/tabVStep)) + 1,
+		pStep: tabPStep, v0: tabVLo, vInv: 1 / tabVStep}
+	n := t.np * t.nv
+	low, top, moved := make([]float64, n), make([]float64, n), make([]bool, n)
+	c := &u.avrChar
+	for iv := range t.nv {
+		v := tabVLo + float64(iv)*tabVStep
+		for ip := range t.np {
+			p := float64(ip) * tabPStep
+			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+			stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
+			k := iv*t.np + ip
+			var it interval
+			ok := false
+			if ip >= 2 && !moved[k-1] && !moved[k-2] {
+				// Continuation along p: the limit extrapolated from the two
+				// nodes before, kept when q_max (here the armature circle) is
+				// stable and the limit lies within tabNear of the guess.
+				guess := 2*low[k-1] - low[k-2]
+				it, ok = nearInterval(stable, qArm, guess)
+			}
+			if !ok {
+				it = topInterval(stable, qArm, -qArm, tabScanStep, tabTol)
+			}
+			if it.err != nil {
+				return nil, it.err
+			}
+			low[k], top[k] = math.NaN(), qArm
+			if it.low.OK {
+				low[k] = it.low.V
+			}
+			if it.top.OK {
+				top[k], moved[k] = it.top.V, true
+			}
+		}
+	}
+	t.markSmooth(low, top, moved)
+	t.low = make([]int16, n)
+	for k, q := range low {
+		t.low[k] = tabNone
+		if !math.IsNaN(q) {
+			t.low[k] = toQ16(q)
+		}
+	}
+	for k := range moved {
+		if moved[k] {
+			t.top, t.moved = make([]int16, n), moved
+			for k, q := range top {
+				t.top[k] = toQ16(q)
+			}
+			break
+		}
+	}
+	return t, nil
+}
+
+// tabNear is the half-width, pu, of the bracket about the continuation's
+// guess in which buildStabTable looks for the limit first.
+const tabNear = 0.01
+
+// nearInterval looks for q_stability within tabNear of guess: q_max =
+// qTop stable, stable at the bracket's top and unstable at its bottom;
+// ok is false when that does not hold (the caller scans).
+func nearInterval(stable func(float64) (bool, error), qTop, guess float64) (interval, bool) {
+	hi, lo := guess+tabNear, guess-tabNear
+	if math.IsNaN(guess) || hi >= qTop {
+		return interval{}, false
+	}
+	for _, c := range [...]struct {
+		q    float64
+		want bool
+	}{{qTop, true}, {hi, true}, {lo, false}} {
+		if s, err := stable(c.q); err != nil || s != c.want {
+			return interval{}, false
+		}
+	}
+	st, un, err := bisectStable(stable, hi, lo, tabTol)
+	if err != nil {
+		return interval{}, false
+	}
+	return interval{low: some(0.5 * (st + un))}, true
+}
+
+// tabSmooth is the interpolation error, pu, below which a cell is
+// trusted without a check: bilinear interpolation errs by about an
+// eighth of the second difference across the cell in each direction
+// (h^2 |f”|/8), to which the nodes' own error (tabTol/2) adds: 1e-3 +
+// 5e-5 leaves a margin to the 0.002 pu the fast answer is held to.
+const tabSmooth = 1e-3
+
+// markSmooth marks the cells whose four nodes all have stable operation,
+// agree on whether q_max moves, and whose second differences (of
+// q_stability and of the top, along p and v, at the nodes or their inner
+// neighbours on an edge) promise an interpolation error below tabSmooth.
+// A kink or a jump between two nodes shows in the second differences of
+// both, so the cells on either side are checked at every sample instead.
+func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
+	est := make([]float64, len(low)) // the interpolation error about node k
+	d2 := func(f []float64, a, b, c int) float64 {
+		return math.Abs(f[a] - 2*f[b] + f[c])
+	}
+	for iv := range t.nv {
+		for ip := range t.np {
+			cp := min(max(ip, 1), t.np-2)
+			cv := min(max(iv, 1), t.nv-2)
+			kp, kv := iv*t.np+cp, cv*t.np+ip
+			e := d2(low, kp-1, kp, kp+1) + d2(low, kv-t.np, kv, kv+t.np)
+			if moved[kp-1] || moved[kp] || moved[kp+1] || moved[kv-t.np] || moved[kv] || moved[kv+t.np] {
+				// The top is interpolated only where it moved.
+				e += d2(top, kp-1, kp, kp+1) + d2(top, kv-t.np, kv, kv+t.np)
+			}
+			if math.IsNaN(e) {
+				e = math.Inf(1)
+			}
+			est[iv*t.np+ip] = e / 8
+		}
+	}
+	t.smooth = make([]bool, (t.np-1)*(t.nv-1))
+	for iv := range t.nv - 1 {
+		for ip := range t.np - 1 {
+			k := iv*t.np + ip
+			ok := true
+			for _, j := range [4]int{k, k + 1, k + t.np, k + t.np + 1} {
+				ok = ok && est[j] < tabSmooth && moved[j] == moved[k]
+			}
+			t.smooth[iv*(t.np-1)+ip] = ok
+		}
+	}
+}
+
+// fastInterval is the rule's answer for the per-sample path at p >= 0,
+// v, below qTop and down to qBot. In a cell of the table marked smooth
+// it is the interpolation alone. In other cells the answer is checked
+// with two Routh-Hurwitz tests: stable tabCheck above the interpolated
+// q_stability and unstable tabCheck below it (and the same about a moved
+// top), which puts the limit within tabCheck of the answer. Where the
+// check fails, the table has no answer (outside its grid, no stable
+// operation, a stable interval above q_max), or the Routh test is not
+// sure, the rule itself is applied with the Routh-Hurwitz test (the
+// direct computation's scan, some tens of microseconds), bisected to
+// fastTol so that Complete and Evaluate agree to it whatever q_max each
+// starts from.
+func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
+	c := &u.avrChar
+	iv, ok, smooth := u.avrTab.lookup(p, v, qTop)
+	if ok && smooth {
+		return iv
+	}
+	check := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, 0) }
+	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) &&
+		(!iv.top.OK || bracketHolds(check, iv.top.V, qTop, false)) {
+		return iv
+	}
+	stable := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }
+	return topInterval(stable, qTop, qBot, scanStep, fastTol)
+}
+
+// fastTol is the bisection tolerance of the per-sample path's own scan, pu.
+const fastTol = 1e-8
+
+// bracketHolds says whether a stability boundary lies within tabCheck of
+// q (at most up to qTop): for a bottom (q_stability) stable just above
+// and unstable just below, for a moved top the other way round.
+func bracketHolds(stable func(float64) (bool, error), q, qTop float64, bottom bool) bool {
+	sLo, err1 := stable(q - tabCheck)
+	sHi, err2 := stable(math.Min(q+tabCheck, qTop))
+	return err1 == nil && err2 == nil && sLo != sHi && sHi == bottom
+}
+
+// lookup interpolates the table at p >= 0 and v below q_max = qTop; ok
+// is false outside the grid. Where the four nodes around the point
+// disagree on feasibility, the nearest node decides, and the feasible
+// nodes are interpolated among themselves; q_max moves when a node
+// around the point moves and the interpolated top lies below qTop.
+//
+// A voltage off the grid is extrapolated along v from the three rows at
+// the grid's edge (Newton's backward-difference formula, quadratic),
+// never as smooth: the caller checks it.
+func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
+	x := p / t.pStep
+	y := (v - t.v0) * t.vInv
+	if !(x >= 0) || x > float64(t.np-1) || math.IsNaN(y) {
+		return interval{}, false, false
+	}
+	var low, top float64
+	moved, none := false, false
+	switch last := float64(t.nv - 1); {
+	case y >= 0 && y <= last:
+		low, top, moved, none, smooth = t.at(x, y)
+	case y > last && y-last <= 2 || y < 0 && y >= -2:
+		// d rows beyond the edge row e, with rows e-s and e-2s inside.
+		e, s, d := last, 1.0, y-last
+		if y < 0 {
+			e, s, d = 0, -1, -y
+		}
+		var f [3]float64
+		var g [3]float64
+		for i := range f {
+			l, tp, mv, nn, _ := t.at(x, e-s*float64(i))
+			if nn {
+				return interval{}, false, false
+			}
+			f[i], g[i], moved = l, tp, moved || mv
+		}
+		ext := func(f [3]float64) float64 {
+			return f[0] + d*(f[0]-f[1]) + d*(d+1)/2*(f[0]-2*f[1]+f[2])
+		}
+		low, top = ext(f), ext(g)
+	default:
+		return interval{}, false, false
+	}
+	if none {
+		return interval{}, true, false // no stable operation
+	}
+	if moved && top < qTop {
+		iv.top = some(top)
+		qTop = top
+	}
+	if low >= qTop {
+		return interval{}, true, false // the stable interval lies above q_max
+	}
+	iv.low = some(low)
+	return iv, true, smooth
+}
+
+// at interpolates the table at grid coordinates x (along p) and y (along
+// v), both inside the grid: q_stability, the top, whether the top moved
+// at a node around, whether the nearest node has no stable operation,
+// and whether the cell is smooth.
+func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool) {
+	ip, jv := int(x), int(y)
+	if ip == t.np-1 {
+		ip--
+	}
+	if jv == t.nv-1 {
+		jv--
+	}
+	wx, wy := x-float64(ip), y-float64(jv)
+	k := jv*t.np + ip
+	smooth = t.smooth[jv*(t.np-1)+ip]
+	idx := [4]int{k, k + 1, k + t.np, k + t.np + 1}
+	w := [4]float64{(1 - wx) * (1 - wy), wx * (1 - wy), (1 - wx) * wy, wx * wy}
+	near := 0
+	for i := range w {
+		if w[i] > w[near] {
+			near = i
+		}
+	}
+	if t.low[idx[near]] == tabNone {
+		return 0, 0, false, true, false
+	}
+	var sw float64
+	for i, j := range idx {
+		if t.low[j] == tabNone {
+			continue
+		}
+		low += w[i] * float64(t.low[j])
+		if t.moved != nil {
+			top += w[i] * float64(t.top[j])
+			moved = moved || t.moved[j] && w[i] > 0
+		}
+		sw += w[i]
+	}
+	return low / sw * tabQuant, top / sw * tabQuant, moved, false, smooth
+}
