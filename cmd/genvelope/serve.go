@@ -28,14 +28,19 @@ func serveCommand() command {
 	return command{
 		name:    "serve",
 		summary: "run the service: telemetry over gRPC, metrics and health over HTTP",
-		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR]",
+		usage:   "--fleet FILE [--grpc-listen ADDR] [--http-listen ADDR] [--nats URL[,URL...] [--partitions 0-7]]",
 		about: `Serves TelemetryService and FleetService (with the gRPC health protocol and
 server reflection) on --grpc-listen, and /metrics, /healthz, /readyz and
 POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
 file again; a file with errors is refused and the running fleet kept.
 SIGTERM or SIGINT stops: in-flight batches are finished and answered.
 AlarmService watches, acknowledges and shelves limit-approach alarms. The
-state file (--state) keeps thermal memory and alarms across restarts.`,
+state file (--state) keeps thermal memory and alarms across restarts.
+With --nats, accepted samples and operator actions are written to a NATS
+JetStream stream before they are acknowledged, every replica builds its
+state from that log, and --state is its checkpoint (the state and the
+stream sequence it includes); --partitions splits the fleet across
+replicas by the FNV-1a hash of the unit id.`,
 		advises: true,
 		flags: func(fs *flag.FlagSet) func(e env) int {
 			fleetPath := fs.String("fleet", "", "fleet file (YAML)")
@@ -46,6 +51,7 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
+			nf := addNATSFlags(fs)
 			logFormat := &choice{v: "text", allowed: []string{"text", "json"}}
 			fs.Var(logFormat, "log-format", "log format: text or json")
 			return func(e env) int {
@@ -58,11 +64,21 @@ state file (--state) keeps thermal memory and alarms across restarts.`,
 					h = slog.NewJSONHandler(e.stderr, nil)
 				}
 				log := slog.New(h)
-				srv, err := server.New(server.Config{
+				cfg := server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
 					StatePath: *statePath,
-				})
+				}
+				if nf.enabled() {
+					dl, err := nf.open(*statePath, log)
+					if err != nil {
+						log.Error("cannot start", "err", err)
+						return exitFailure
+					}
+					defer dl.Close()
+					cfg.Log = dl
+				}
+				srv, err := server.New(cfg)
 				if err != nil {
 					log.Error("cannot start", "err", err)
 					return exitUsage

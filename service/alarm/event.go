@@ -2,6 +2,7 @@ package alarm
 
 import (
 	"fmt"
+	"math"
 	"strings"
 	"time"
 )
@@ -49,6 +50,10 @@ type Context struct {
 	QMaxLimit          string // the limit setting q_max: "field" or "armature"
 	QMinLimit          string // the limit setting q_min: "stability", "end_region", "uel" or "armature"
 	PMaxMW, PMinMW     float64
+	// LimitMvar is the alarm's own underexcited limit at the point (the
+	// practical stability limit, the end-region or the UEL curve), Mvar;
+	// NaN when it has no value there. Read for those kinds only.
+	LimitMvar float64
 	IfdMeasuredA       *float64
 	IfdModelA          float64
 	AgeS               float64
@@ -74,12 +79,22 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 		return fmt.Sprintf("%s: field current at %.0f %% of its rating %s; reduce excitation or move reactive load to other units.", id, 100*(1-value), at)
 	case Stability, EndRegion, UEL:
 		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit", UEL: "underexcitation limiter curve"}[k]
-		if c.QMinMvar == nil {
-			return fmt.Sprintf("%s: no stable underexcited range %s (%s); raise excitation or reduce load now.", id, at, what)
+		lim, ok := c.LimitMvar, !math.IsNaN(c.LimitMvar)
+		if c.QMinLimit == k.String() && c.QMinMvar != nil {
+			lim, ok = *c.QMinMvar, true // the limit that sets q_min
 		}
-		left := c.QMvar - *c.QMinMvar
-		return fmt.Sprintf("%s: %.1f Mvar left above the %s (q_min %.1f Mvar) %s; raise excitation or absorb less reactive power.",
-			id, left, what, *c.QMinMvar, at)
+		if !ok {
+			if k == Stability {
+				return fmt.Sprintf("%s: no stable underexcited range %s (%s); raise excitation or reduce load now.", id, at, what)
+			}
+			return fmt.Sprintf("%s: the %s has no value %s.", id, what, at)
+		}
+		left := c.QMvar - lim
+		if left < 0 {
+			return fmt.Sprintf("%s: %.1f Mvar below the %s (%.1f Mvar) %s; raise excitation now.", id, -left, what, lim, at)
+		}
+		return fmt.Sprintf("%s: %.1f Mvar left above the %s (%.1f Mvar) %s; raise excitation or absorb less reactive power.",
+			id, left, what, lim, at)
 	case PrimeMover:
 		if c.PMW < c.PMinMW {
 			return fmt.Sprintf("%s: %.1f MW is below the prime mover's minimum %.1f MW %s; raise the active-power set point or take the unit off.", id, c.PMW, c.PMinMW, at)

@@ -86,6 +86,7 @@ func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Ti
 	ctx.AgeS = ageS
 	ev := u.event(k, alarm.LevelChanged, at, ageS)
 	ev.Prev, ev.Value, ev.Threshold = prev, x, thr
+	ctx.LimitMvar = ev.LimitAt
 	ev.Message = alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx)
 	s.hub.Publish(ev)
 }
@@ -313,6 +314,7 @@ func (s *Store) appendActive(out []alarm.Event, u *Unit) []alarm.Event {
 		}
 		ctx := u.context()
 		ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), s.age(u, s.opts.Now()))
+		ctx.LimitMvar = ev.LimitAt
 		ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
 		out = append(out, ev)
 	}

@@ -218,12 +218,36 @@ func (s *Store) Commit(t *Tally) {
 // server clock, used only for the "too far in the future" check. For a
 // rejected sample, detail says what was wrong in words for the sender.
 func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(now, smp)
+	if res != Accepted {
+		return res, detail
+	}
+	return u.accept(smp, now, s)
+}
+
+// Check says what Accept would answer for smp now, without recording
+// anything: a replicated service checks a sample before it writes it to
+// its log, and applies it with Accept when it reads it back.
+func (s *Store) Check(now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(now, smp)
+	if res != Accepted {
+		return res, detail
+	}
+	return u.order(smp.Time.UnixNano(), smp)
+}
+
+// precheck runs the checks of a sample that need no unit state.
+func (s *Store) precheck(now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
 	e, ok := sn.byID[smp.UnitID]
-	u := e.u
 	if !ok {
-		return RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
+		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
 	}
+	r, d := s.checkSample(e, now, smp)
+	return e.u, r, d
+}
+
+func (s *Store) checkSample(e entry, now time.Time, smp *Sample) (Result, string) {
 	if smp.Time.IsZero() {
 		return RejectMissingTime, "the sample has no time"
 	}
@@ -237,7 +261,7 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 		return RejectFuture, fmt.Sprintf("time %s is %s ahead of the server clock (at most %s)",
 			smp.Time.UTC().Format(time.RFC3339Nano), smp.Time.Sub(now).Round(time.Millisecond), s.opts.MaxFuture)
 	}
-	return u.accept(smp, now, s)
+	return Accepted, ""
 }
 
 // checkValues rejects values that are not finite or not physical for the
@@ -323,15 +347,11 @@ func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
 	t := smp.Time.UnixNano()
 	u.mu.Lock()
 	defer u.mu.Unlock()
+	if r, d := u.orderLocked(t, smp); r != Accepted {
+		return r, d
+	}
 	if u.n > 0 {
 		last := u.ring[(u.head+ringSize-1)%ringSize]
-		if t <= last {
-			if u.seen(t) {
-				return Duplicate, ""
-			}
-			return RejectOutOfOrder, fmt.Sprintf("time %s is older than the unit's latest accepted sample, %s",
-				smp.Time.UTC().Format(time.RFC3339Nano), time.Unix(0, last).UTC().Format(time.RFC3339Nano))
-		}
 		dt := time.Duration(t - last)
 		if dt > maxHold {
 			dt = maxHold
@@ -351,6 +371,30 @@ func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
 	u.evaluate()
 	u.stepAlarms(t, s)
 	return Accepted, ""
+}
+
+// order says whether a sample at t is new (Accepted), a Duplicate or out
+// of order for the unit.
+func (u *Unit) order(t int64, smp *Sample) (Result, string) {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	return u.orderLocked(t, smp)
+}
+
+// orderLocked is order with u.mu held.
+func (u *Unit) orderLocked(t int64, smp *Sample) (Result, string) {
+	if u.n == 0 {
+		return Accepted, ""
+	}
+	last := u.ring[(u.head+ringSize-1)%ringSize]
+	if t > last {
+		return Accepted, ""
+	}
+	if u.seen(t) {
+		return Duplicate, ""
+	}
+	return RejectOutOfOrder, fmt.Sprintf("time %s is older than the unit's latest accepted sample, %s",
+		smp.Time.UTC().Format(time.RFC3339Nano), time.Unix(0, last).UTC().Format(time.RFC3339Nano))
 }
 
 // seen reports whether t is among the remembered timestamps. They are

@@ -28,6 +28,7 @@ const MaxShelve = 7 * 24 * time.Hour
 type Alarms struct {
 	pb.UnimplementedAlarmServiceServer
 	store    *ingest.Store
+	actions  ingest.Actions
 	buffer   int
 	now      func() time.Time
 	draining <-chan struct{}
@@ -38,6 +39,9 @@ type AlarmOptions struct {
 	Buffer   int              // events a watcher may lag; default DefaultWatchBuffer
 	Now      func() time.Time // wall clock; default time.Now
 	Draining <-chan struct{}  // closed at shutdown: watches end with UNAVAILABLE
+	// Actions apply acknowledgements and shelves; default the store
+	// itself (a replicated service passes its log).
+	Actions ingest.Actions
 }
 
 // NewAlarms returns an AlarmService over store.
@@ -48,7 +52,10 @@ func NewAlarms(store *ingest.Store, o AlarmOptions) *Alarms {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Alarms{store: store, buffer: o.Buffer, now: o.Now, draining: o.Draining}
+	if o.Actions == nil {
+		o.Actions = ingest.StoreActions{Store: store}
+	}
+	return &Alarms{store: store, actions: o.Actions, buffer: o.Buffer, now: o.Now, draining: o.Draining}
 }
 
 // filter returns the predicate of f.
@@ -136,7 +143,7 @@ func (a *Alarms) AcknowledgeAlarm(ctx context.Context, req *pb.AcknowledgeAlarmR
 	if err != nil {
 		return nil, err
 	}
-	if err := a.store.Acknowledge(req.UnitId, k, a.now(), req.Operator); err != nil {
+	if err := a.actions.Acknowledge(ctx, req.UnitId, k, a.now(), req.Operator); err != nil {
 		return nil, actionError(err)
 	}
 	return &pb.AcknowledgeAlarmResponse{}, nil
@@ -167,7 +174,7 @@ func (a *Alarms) ShelveAlarm(ctx context.Context, req *pb.ShelveAlarmRequest) (*
 	if req.Reason != "" {
 		by += " (" + req.Reason + ")"
 	}
-	if err := a.store.Shelve(req.UnitId, k, until, now, by); err != nil {
+	if err := a.actions.Shelve(ctx, req.UnitId, k, until, now, by); err != nil {
 		return nil, actionError(err)
 	}
 	resp := &pb.ShelveAlarmResponse{}
@@ -195,6 +202,8 @@ func actionError(err error) error {
 		return status.Error(codes.NotFound, err.Error())
 	case errors.Is(err, ingest.ErrNotActive):
 		return status.Error(codes.FailedPrecondition, err.Error())
+	case errors.Is(err, ingest.ErrUnavailable):
+		return status.Error(codes.Unavailable, err.Error())
 	}
 	return status.Error(codes.Internal, fmt.Sprintf("alarm action: %v", err))
 }

@@ -28,6 +28,7 @@ type Telemetry struct {
 	pb.UnimplementedTelemetryServiceServer
 
 	store    *ingest.Store
+	log      Log
 	maxBatch int
 	now      func() time.Time
 	draining <-chan struct{}
@@ -41,7 +42,28 @@ type TelemetryOptions struct {
 	// answered, with UNAVAILABLE, so that a graceful stop does not wait
 	// on clients that never close.
 	Draining <-chan struct{}
+	// Log, when set, makes every acknowledgement durable: the samples
+	// that pass the checks are written to the log, and the batch is
+	// answered once they are in it and applied from it.
+	Log Log
 }
+
+// Log is the durable path of accepted samples (package durable).
+type Log interface {
+	// Check says what would become of smp, without recording it.
+	Check(now time.Time, smp *ingest.Sample) (ingest.Result, string)
+	// Append starts writing smps to the log; wait returns what applying
+	// each of them from the log gave. Batches appended one after another
+	// enter the log in that order. An error (of either) means the
+	// samples may or may not be in the log: nothing is acknowledged, and
+	// the client resends. wait must be called, with a done ctx to give
+	// up.
+	Append(ctx context.Context, now time.Time, smps []ingest.Sample) (wait func(context.Context) ([]ingest.Result, []string, error), err error)
+}
+
+// streamWindow is how many batches of one stream may be in the log at
+// once, waiting to be answered in order.
+const streamWindow = 8
 
 // NewTelemetry returns a TelemetryService over store.
 func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
@@ -51,12 +73,12 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Telemetry{store: store, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
+	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
 }
 
 // Push takes one batch.
 func (t *Telemetry) Push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
-	return t.push(req)
+	return t.push(ctx, req)
 }
 
 // Stream takes batches and answers each, in order.
@@ -80,8 +102,11 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 			}
 		}
 	}()
+	if t.log != nil {
+		return t.streamLog(st, reqs, errc)
+	}
 	answer := func(req *pb.PushRequest) error {
-		resp, err := t.push(req)
+		resp, err := t.push(ctx, req)
 		if err != nil {
 			return err
 		}
@@ -114,7 +139,28 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	}
 }
 
-func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
+func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
+	if err := t.checkSize(req); err != nil {
+		return nil, err
+	}
+	now := t.now()
+	if t.log != nil {
+		return t.pushLog(ctx, req, now)
+	}
+	resp := &pb.PushResponse{Sequence: req.Sequence}
+	var tally ingest.Tally
+	for i, s := range req.Samples {
+		var smp ingest.Sample
+		res, detail := t.judge(now, s, &smp, t.store.Accept)
+		tally[res]++
+		answer(resp, i, res, detail)
+	}
+	t.store.Commit(&tally)
+	return resp, nil
+}
+
+// checkSize refuses a batch larger than the limit.
+func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	if n := len(req.Samples); n > t.maxBatch {
 		st := status.New(codes.InvalidArgument, fmt.Sprintf("batch %d has %d samples, more than the limit of %d: split it", req.Sequence, n, t.maxBatch))
 		if d, err := st.WithDetails(&errdetails.BadRequest{FieldViolations: []*errdetails.BadRequest_FieldViolation{{
@@ -123,33 +169,179 @@ func (t *Telemetry) push(req *pb.PushRequest) (*pb.PushResponse, error) {
 		}}}); err == nil {
 			st = d
 		}
-		return nil, st.Err()
+		return st.Err()
 	}
-	now := t.now()
-	resp := &pb.PushResponse{Sequence: req.Sequence}
+	return nil
+}
+
+// judge converts s into smp and returns what check says of it.
+func (t *Telemetry) judge(now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+	res, detail := fromProto(s, smp)
+	switch {
+	case res == ingest.Accepted:
+		return check(now, smp)
+	case t.store.Unit(s.UnitId) == nil:
+		// The unit is the first thing a sample is judged by.
+		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
+	}
+	return res, detail
+}
+
+// answer adds the result of sample i to resp.
+func answer(resp *pb.PushResponse, i int, res ingest.Result, detail string) {
+	switch res {
+	case ingest.Accepted:
+		resp.Accepted++
+	case ingest.Duplicate:
+		resp.Duplicates++
+	default:
+		resp.Rejected = append(resp.Rejected, &pb.Rejection{Index: uint32(i), Reason: reasonProto(res), Detail: detail})
+	}
+}
+
+// pushLog takes a batch on the durable path: the samples that pass the
+// checks are written to the log, and the batch is answered only when
+// they are in it; what the log's consumer made of them is the answer
+// (normally accepted; a duplicate or out of order when another replica
+// wrote the same unit's samples in between). Results decided before the
+// log are counted here; those of the log by its consumer, on every
+// replica alike.
+func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.Time) (*pb.PushResponse, error) {
+	finish, err := t.startLog(ctx, req, now)
+	if err != nil {
+		return nil, err
+	}
+	return finish(ctx)
+}
+
+// startLog checks the batch and starts writing what passes to the log;
+// finish waits for the log and builds the answer.
+func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.Time) (finish func(context.Context) (*pb.PushResponse, error), err error) {
+	if err := t.checkSize(req); err != nil {
+		return nil, err
+	}
 	var tally ingest.Tally
+	results := make([]ingest.Result, len(req.Samples))
+	details := make([]string, len(req.Samples))
+	smps := make([]ingest.Sample, 0, len(req.Samples))
+	idx := make([]int, 0, len(req.Samples))
 	for i, s := range req.Samples {
 		var smp ingest.Sample
-		res, detail := fromProto(s, &smp)
-		switch {
-		case res == ingest.Accepted:
-			res, detail = t.store.Accept(now, &smp)
-		case t.store.Unit(s.UnitId) == nil:
-			// The unit is the first thing a sample is judged by.
-			res, detail = ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
+		res, detail := t.judge(now, s, &smp, t.log.Check)
+		if res == ingest.Accepted {
+			smps = append(smps, smp)
+			idx = append(idx, i)
+			continue
 		}
+		results[i], details[i] = res, detail
 		tally[res]++
-		switch res {
-		case ingest.Accepted:
-			resp.Accepted++
-		case ingest.Duplicate:
-			resp.Duplicates++
-		default:
-			resp.Rejected = append(resp.Rejected, &pb.Rejection{Index: uint32(i), Reason: reasonProto(res), Detail: detail})
-		}
 	}
 	t.store.Commit(&tally)
-	return resp, nil
+	wait := func(context.Context) ([]ingest.Result, []string, error) { return nil, nil, nil }
+	if len(smps) > 0 {
+		if wait, err = t.log.Append(ctx, now, smps); err != nil {
+			return nil, unavailable(req, err)
+		}
+	}
+	return func(ctx context.Context) (*pb.PushResponse, error) {
+		res, det, err := wait(ctx)
+		if err != nil {
+			return nil, unavailable(req, err)
+		}
+		for j, i := range idx {
+			results[i], details[i] = res[j], det[j]
+		}
+		resp := &pb.PushResponse{Sequence: req.Sequence}
+		for i, res := range results {
+			answer(resp, i, res, details[i])
+		}
+		return resp, nil
+	}, nil
+}
+
+func unavailable(req *pb.PushRequest, err error) error {
+	return status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", req.Sequence, err)
+}
+
+// streamLog is Stream on the durable path: up to streamWindow batches
+// are in the log at once, and answered in order as they are applied.
+func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse], reqs <-chan *pb.PushRequest, errc <-chan error) error {
+	ctx := st.Context()
+	pending := make(chan func(context.Context) (*pb.PushResponse, error), streamWindow)
+	sendErr := make(chan error, 1)
+	go func() { // answers in order; ends when pending is closed
+		var failed error
+		dead, cancel := context.WithCancel(ctx)
+		cancel()
+		for finish := range pending {
+			if failed != nil {
+				_, _ = finish(dead) // gives up its wait
+				continue
+			}
+			resp, err := finish(ctx)
+			if err == nil {
+				err = st.Send(resp)
+			}
+			if err != nil {
+				failed = err
+				sendErr <- err
+			}
+		}
+		if failed == nil {
+			sendErr <- nil
+		}
+	}()
+	// end closes the pipeline and returns the first error of the
+	// answers, or err.
+	end := func(err error) error {
+		close(pending)
+		if serr := <-sendErr; serr != nil {
+			return serr
+		}
+		return err
+	}
+	start := func(req *pb.PushRequest) error {
+		finish, err := t.startLog(ctx, req, t.now())
+		if err != nil {
+			return err
+		}
+		select {
+		case pending <- finish:
+			return nil
+		case err := <-sendErr:
+			sendErr <- err // for end
+			_, _ = finish(ctx)
+			return err
+		}
+	}
+	for {
+		select {
+		case req := <-reqs:
+			if err := ctx.Err(); err != nil {
+				return end(err)
+			}
+			if err := start(req); err != nil {
+				return end(err)
+			}
+		case err := <-errc:
+			if errors.Is(err, io.EOF) {
+				return end(nil)
+			}
+			return end(err)
+		case err := <-sendErr:
+			sendErr <- err
+			return end(err)
+		case <-t.draining:
+			select {
+			case req := <-reqs:
+				if err := start(req); err != nil {
+					return end(err)
+				}
+			default:
+			}
+			return end(status.Error(codes.Unavailable, "genvelope is shutting down: reconnect and resend any batch not acknowledged"))
+		}
+	}
 }
 
 // fromProto converts s into smp, or returns the reason it cannot be.

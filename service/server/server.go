@@ -57,6 +57,31 @@ type Config struct {
 	ShutdownGrace time.Duration
 
 	Logger *slog.Logger
+
+	// Log, when set, makes the service durable and replicated (package
+	// durable): samples and operator actions are written to it before
+	// they are acknowledged, and the state is built from it. StatePath
+	// is then unused: the log keeps its own checkpoint.
+	Log Log
+}
+
+// Log is a durable, replicated log of telemetry and operator actions
+// (package durable implements it).
+type Log interface {
+	rpc.Log
+	ingest.Actions
+	// Select returns the part of the fleet this replica serves.
+	Select(fl *fleet.Fleet) *fleet.Fleet
+	// Attach restores the log's checkpoint into store; reload reads the
+	// fleet file again on this replica when the log says so.
+	Attach(ctx context.Context, store *ingest.Store, reload func() error) error
+	// Run applies the log until ctx is done.
+	Run(ctx context.Context) error
+	// Reload asks every replica to read its fleet file again.
+	Reload(ctx context.Context) error
+	// Ready says whether the replica has caught up with the log.
+	Ready() (bool, string)
+	Collectors() []prometheus.Collector
 }
 
 // Server is a running genvelope.
@@ -94,7 +119,19 @@ func New(cfg Config) (*Server, error) {
 		return nil, err
 	}
 	s := &Server{cfg: cfg, log: cfg.Logger, draining: make(chan struct{})}
+	if cfg.Log != nil {
+		cfg.StatePath, s.cfg.StatePath = "", ""
+		fl = cfg.Log.Select(fl)
+	}
 	s.store = ingest.NewStore(fl, cfg.Ingest)
+	var actions ingest.Actions = ingest.StoreActions{Store: s.store}
+	var tlog rpc.Log
+	if cfg.Log != nil {
+		if err := cfg.Log.Attach(context.Background(), s.store, s.reloadLocal); err != nil {
+			return nil, err
+		}
+		actions, tlog = cfg.Log, cfg.Log
+	}
 	if cfg.StatePath != "" {
 		if err := state.Load(cfg.StatePath, s.store, s.log, time.Now()); err != nil {
 			return nil, err
@@ -121,11 +158,14 @@ func New(cfg Config) (*Server, error) {
 	s.reloadOK.Set(1)
 	s.reloadTime.SetToCurrentTime()
 	reg.MustRegister(s.reloadSuccess, s.reloadOK, s.reloadTime)
+	if cfg.Log != nil {
+		reg.MustRegister(cfg.Log.Collectors()...)
+	}
 
 	s.grpc = grpc.NewServer(grpc.MaxRecvMsgSize(64 << 20))
-	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining}))
+	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining, Log: tlog}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
-	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining}))
+	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining, Actions: actions}))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)
 	reflection.Register(s.grpc)
@@ -135,7 +175,7 @@ func New(cfg Config) (*Server, error) {
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.HandleFunc("GET /readyz", s.readyz)
 	mux.HandleFunc("POST /-/reload", s.reloadHandler)
-	s.web = web.New(s.store, web.Options{Logger: s.log})
+	s.web = web.New(s.store, web.Options{Logger: s.log, Actions: actions})
 	mux.Handle("/", s.web) // the operator pages: /, /units/{id} and their endpoints
 	if cfg.Pprof {
 		mux.HandleFunc("/debug/pprof/", pprof.Index)
@@ -183,6 +223,21 @@ func (s *Server) Run(ctx context.Context) error {
 		"fleet", s.cfg.FleetPath, "units", len(s.store.Units()))
 
 	var bg sync.WaitGroup
+	// The log is applied until the last batch has been answered: it
+	// stops after gRPC, not with the other background work.
+	logCtx, stopLog := context.WithCancel(context.Background())
+	defer stopLog()
+	logDone := make(chan struct{})
+	if s.cfg.Log != nil {
+		go func() {
+			defer close(logDone)
+			if err := s.cfg.Log.Run(logCtx); err != nil {
+				s.log.Error("log consumer", "err", err)
+			}
+		}()
+	} else {
+		close(logDone)
+	}
 	bgCtx, stopBG := context.WithCancel(ctx)
 	bg.Add(1)
 	go func() {
@@ -223,6 +278,8 @@ func (s *Server) Run(ctx context.Context) error {
 		s.grpc.Stop()
 		<-stopped
 	}
+	stopLog()
+	<-logDone
 	if s.cfg.StatePath != "" {
 		if err := state.Write(s.cfg.StatePath, s.store.Snapshot(time.Now())); err != nil {
 			s.log.Error("final state not saved", "err", err)
@@ -291,13 +348,31 @@ func (s *Server) readyz(w http.ResponseWriter, r *http.Request) {
 		http.Error(w, "not ready", http.StatusServiceUnavailable)
 		return
 	}
+	if s.cfg.Log != nil {
+		ok, why := s.cfg.Log.Ready()
+		if !ok {
+			http.Error(w, "not ready: "+why, http.StatusServiceUnavailable)
+			return
+		}
+		fmt.Fprintf(w, "ready: %d units; %s\n", len(s.store.Units()), why)
+		return
+	}
 	fmt.Fprintf(w, "ready: %d units\n", len(s.store.Units()))
 }
 
 // Reload reads the fleet file again. A file with errors changes
 // nothing: the running fleet keeps serving, and the error is logged,
-// counted and returned.
+// counted and returned. With a log, the reload goes through it so that
+// every replica reloads at the same place in the log.
 func (s *Server) Reload() error {
+	if s.cfg.Log != nil {
+		return s.cfg.Log.Reload(context.Background())
+	}
+	return s.reloadLocal()
+}
+
+// reloadLocal reads the fleet file again on this replica.
+func (s *Server) reloadLocal() error {
 	s.reloadMu.Lock()
 	defer s.reloadMu.Unlock()
 	fl, err := loadFleet(s.cfg.FleetPath)
@@ -306,6 +381,9 @@ func (s *Server) Reload() error {
 		s.reloadOK.Set(0)
 		s.log.Error("fleet reload refused; the running fleet is kept", "file", s.cfg.FleetPath, "err", err)
 		return err
+	}
+	if s.cfg.Log != nil {
+		fl = s.cfg.Log.Select(fl)
 	}
 	s.store.Replace(fl)
 	s.reloadSuccess.WithLabelValues("success").Inc()

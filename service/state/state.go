@@ -29,6 +29,12 @@ func Write(path string, sn *ingest.Snapshot) error {
 	if err != nil {
 		return fmt.Errorf("state: encoding: %w", err)
 	}
+	return WriteFile(path, data)
+}
+
+// WriteFile replaces path with data atomically: a crash at any moment
+// leaves either the old file or the new one.
+func WriteFile(path string, data []byte) error {
 	dir := filepath.Dir(path)
 	f, err := os.CreateTemp(dir, "."+filepath.Base(path)+".*.tmp")
 	if err != nil {

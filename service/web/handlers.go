@@ -264,7 +264,7 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 	var done string
 	switch action {
 	case "acknowledge":
-		err = ui.store.Acknowledge(id, kind, now, by)
+		err = ui.opts.Actions.Acknowledge(r.Context(), id, kind, now, by)
 		done = fmt.Sprintf("%s: %s alarm acknowledged by %s.", id, kindTitle[kind], by)
 	case "shelve":
 		d, perr := time.ParseDuration(r.PostForm.Get("duration"))
@@ -273,10 +273,10 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 			return
 		}
 		until := now.Add(d)
-		err = ui.store.Shelve(id, kind, until, now, by)
+		err = ui.opts.Actions.Shelve(r.Context(), id, kind, until, now, by)
 		done = fmt.Sprintf("%s: %s alarm shelved until %s by %s.", id, kindTitle[kind], fmtClock(until), by)
 	case "unshelve":
-		err = ui.store.Shelve(id, kind, time.Time{}, now, by)
+		err = ui.opts.Actions.Shelve(r.Context(), id, kind, time.Time{}, now, by)
 		done = fmt.Sprintf("%s: %s alarm unshelved by %s.", id, kindTitle[kind], by)
 	default:
 		fail(http.StatusNotFound, fmt.Sprintf("There is no alarm action %q: acknowledge, shelve or unshelve.", action))
@@ -288,6 +288,9 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 		return
 	case errors.Is(err, ingest.ErrUnknownUnit):
 		fail(http.StatusNotFound, fmt.Sprintf("Unit %q is not in the fleet.", id))
+		return
+	case errors.Is(err, ingest.ErrUnavailable):
+		fail(http.StatusServiceUnavailable, "The action could not be recorded (the log is unavailable); nothing was done. Try again.")
 		return
 	case err != nil:
 		ui.log.Error("alarm action failed", "unit", id, "alarm", kind, "action", action, "err", err)

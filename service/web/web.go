@@ -61,6 +61,9 @@ type Options struct {
 	// RefreshEvery is how often the pages ask for fresh numbers; default
 	// 2 s.
 	RefreshEvery time.Duration
+	// Actions apply acknowledgements and shelves; default the store
+	// itself (a replicated service passes its log).
+	Actions ingest.Actions
 }
 
 func (o Options) withDefaults() Options {
@@ -107,6 +110,9 @@ type cachedChart struct {
 // New returns the web interface over store.
 func New(store *ingest.Store, opts Options) *UI {
 	opts = opts.withDefaults()
+	if opts.Actions == nil {
+		opts.Actions = ingest.StoreActions{Store: store}
+	}
 	ui := &UI{store: store, opts: opts, log: opts.Logger, charts: map[string]cachedChart{}}
 	ui.trails.init(opts.TrailLength)
 	ui.assets = assetURLs()

@@ -82,7 +82,9 @@ type config struct {
 	Duration time.Duration `json:"-"`
 	Warmup   time.Duration `json:"-"`
 	Repeat   int           `json:"repeat"`
-	Servers  []string      `json:"servers"` // "bare", "full", in the order loaded
+	Servers  []string      `json:"servers"` // "bare", "full", "nats", in the order loaded
+	// NATSServer is the nats-server program of the "nats" phase.
+	NATSServer string `json:"-"`
 
 	RSS          bool `json:"rss"`
 	Metrics      bool `json:"metrics"`
@@ -142,8 +144,8 @@ func (c *config) check() error {
 		errs = append(errs, errors.New("-servers must name bare, full or both"))
 	}
 	for _, s := range c.Servers {
-		if s != "bare" && s != "full" {
-			errs = append(errs, fmt.Errorf("-servers: %q is neither bare nor full", s))
+		if s != "bare" && s != "full" && s != "nats" {
+			errs = append(errs, fmt.Errorf("-servers: %q is none of bare, full, nats", s))
 		}
 	}
 	if c.MetricsTries < 1 {
@@ -177,7 +179,9 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 	fs.DurationVar(&cfg.Duration, "duration", cfg.Duration, "measured time per phase")
 	fs.DurationVar(&cfg.Warmup, "warmup", cfg.Warmup, "unmeasured time at the start of each phase")
 	fs.IntVar(&cfg.Repeat, "repeat", cfg.Repeat, "times to run the phases (against the same processes)")
-	servers := fs.String("servers", strings.Join(cfg.Servers, ","), "servers to load, in order: bare, full or both")
+	servers := fs.String("servers", strings.Join(cfg.Servers, ","), "servers to load, in order: bare, full, nats (the service over JetStream)")
+	withNATS := fs.Bool("nats", false, "add a phase of the full service over JetStream (serve --nats, a local nats-server started by the harness) after the others: the cost of durability")
+	fs.StringVar(&cfg.NATSServer, "nats-server", "", "nats-server program for -nats (default: from PATH)")
 	fs.BoolVar(&cfg.RSS, "rss", cfg.RSS, "report the service's VmRSS and VmHWM after the phases")
 	fs.BoolVar(&cfg.Metrics, "metrics", cfg.Metrics, "time GET /metrics after the phases")
 	fs.IntVar(&cfg.MetricsTries, "metrics-tries", cfg.MetricsTries, "GET /metrics tries (gzip); one uncompressed try follows")
@@ -215,6 +219,9 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 		if s = strings.TrimSpace(s); s != "" {
 			cfg.Servers = append(cfg.Servers, s)
 		}
+	}
+	if *withNATS && !slices.Contains(cfg.Servers, "nats") {
+		cfg.Servers = append(cfg.Servers, "nats")
 	}
 	if cfg.CPUProfile != "" || cfg.HeapProfile != "" || cfg.MetricsCPUProfile != "" {
 		cfg.Pprof = true
@@ -296,9 +303,9 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 
 	// The children. Whatever happens, they are stopped before run
 	// returns; the normal path stops them itself to check the status.
-	var sinkProc, serveProc *proc
+	var sinkProc, serveProc, natsProc, durableProc *proc
 	defer func() {
-		for _, p := range []*proc{sinkProc, serveProc} {
+		for _, p := range []*proc{sinkProc, serveProc, durableProc, natsProc} {
 			if p != nil && !p.exited() {
 				_, _ = p.stop(cfg.StopWait)
 			}
@@ -309,8 +316,8 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 			return rep, err
 		}
 	}
-	if cfg.has("full") {
-		bin := cfg.Genvelope
+	bin := cfg.Genvelope
+	if cfg.has("full") || cfg.has("nats") {
 		if bin == "" {
 			root := cfg.Root
 			if root == "" {
@@ -324,8 +331,21 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 			}
 			log.Info("built genvelope", "bin", bin, "took", time.Since(t).Round(time.Millisecond))
 		}
+	}
+	if cfg.has("nats") {
+		var url string
+		if natsProc, url, err = startNATS(ctx, log, cfg.NATSServer, dir, cfg.StartWait); err != nil {
+			return rep, err
+		}
+		if durableProc, _, err = startServe(ctx, log, "serve-nats", bin, fi.Path, dir, cfg.Pprof, true, cfg.ServeEnv,
+			[]string{"--nats", url}, cfg.StartWait); err != nil {
+			return rep, err
+		}
+		durableProc.companion = natsProc.pid()
+	}
+	if cfg.has("full") {
 		var took time.Duration
-		if serveProc, took, err = startServe(ctx, log, bin, fi.Path, dir, cfg.Pprof, cfg.State, cfg.ServeEnv, cfg.StartWait); err != nil {
+		if serveProc, took, err = startServe(ctx, log, "serve", bin, fi.Path, dir, cfg.Pprof, cfg.State, cfg.ServeEnv, nil, cfg.StartWait); err != nil {
 			return rep, err
 		}
 		rep.Service = &serviceReport{StartupMS: ms(took)}
@@ -339,20 +359,27 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 		rr := &repetition{Run: r}
 		for _, server := range cfg.Servers {
 			p := sinkProc
-			if server == "full" {
+			switch server {
+			case "full":
 				p = serveProc
+			case "nats":
+				p = durableProc
 			}
 			before := make([]uint64, len(gens))
 			for i, g := range gens {
 				before[i] = g.k
 			}
 			profile := ""
-			if server == "full" && r == 1 && cfg.CPUProfile != "" {
+			// The profile is of the first phase of the in-process service,
+			// or of the one over JetStream when that is the only one.
+			if r == 1 && cfg.CPUProfile != "" && (server == "full" || server == "nats" && !cfg.has("full")) {
 				profile = cfg.CPUProfile
 			}
 			res, err := runPhase(ctx, log, cfg, server, p, gens, profile)
 			if res != nil {
-				if server == "full" {
+				if server == "nats" {
+					rr.NATS = res
+				} else if server == "full" {
 					rr.Full = res
 					for i, g := range gens {
 						fullRounds[i] += (g.k - before[i]) / uint64(len(g.units))
@@ -368,6 +395,12 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 		}
 		if rr.Bare != nil && rr.Full != nil && rr.Bare.SamplesPerS > 0 {
 			rr.Ratio = rr.Full.SamplesPerS / rr.Bare.SamplesPerS
+		}
+		if rr.Bare != nil && rr.NATS != nil && rr.Bare.SamplesPerS > 0 {
+			rr.RatioNATS = rr.NATS.SamplesPerS / rr.Bare.SamplesPerS
+		}
+		if rr.Full != nil && rr.NATS != nil && rr.Full.SamplesPerS > 0 {
+			rr.NATSOverFull = rr.NATS.SamplesPerS / rr.Full.SamplesPerS
 		}
 		if rr.Bare != nil && rr.Full != nil && rr.Bare.SamplesPerCPUS > 0 {
 			rr.CPURatio = rr.Full.SamplesPerCPUS / rr.Bare.SamplesPerCPUS
@@ -419,16 +452,21 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 		}
 	}
 
-	// Stop both and check that they ended well.
-	for _, p := range []*proc{sinkProc, serveProc} {
+	// Stop them all and check that they ended well.
+	for _, p := range []*proc{sinkProc, serveProc, durableProc, natsProc} {
 		if p == nil {
 			continue
 		}
 		code, err := p.stop(cfg.StopWait)
-		if p == sinkProc {
+		switch p {
+		case sinkProc:
 			rep.SinkExit = &code
-		} else {
+		case serveProc:
 			rep.Service.ExitCode = &code
+		case durableProc:
+			rep.DurableExit = &code
+		case natsProc:
+			err = nil // nats-server ends with status 1 on SIGTERM by design
 		}
 		if err != nil {
 			rep.problem("%v", err)
@@ -480,7 +518,7 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 	var srv0, cli0, all0, srv1, cli1, all1 time.Duration
 	var profErr chan error
 	if waitUntil(from) {
-		srv0, _ = readCPU(p.pid())
+		srv0 = p.cpu()
 		cli0 = selfCPU()
 		all0, _ = machineCPU()
 		if cpuProfile != "" {
@@ -492,7 +530,7 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 		}
 	}
 	if waitUntil(to) {
-		srv1, _ = readCPU(p.pid())
+		srv1 = p.cpu()
 		cli1 = selfCPU()
 		all1, _ = machineCPU()
 	}

@@ -9,6 +9,7 @@ import (
 	"fmt"
 	"io"
 	"log/slog"
+	"net"
 	"net/http"
 	"os"
 	"os/exec"
@@ -55,6 +56,9 @@ type proc struct {
 	waitErr error
 
 	grpcAddr, httpAddr string
+	// companion is a process whose CPU counts with this one's (the
+	// nats-server behind a durable service); 0 for none.
+	companion int
 }
 
 // lineWatcher is the stdout or stderr of a child: it copies everything
@@ -121,6 +125,16 @@ func startProc(name, bin string, args, env []string, logPath string, withStdin b
 	return p, nil
 }
 
+// cpu returns the CPU time of the child and its companion.
+func (p *proc) cpu() time.Duration {
+	t, _ := readCPU(p.pid())
+	if p.companion != 0 {
+		c, _ := readCPU(p.companion)
+		t += c
+	}
+	return t
+}
+
 // pid returns the child's process id.
 func (p *proc) pid() int { return p.cmd.Process.Pid }
 
@@ -182,7 +196,7 @@ func serveFlags(ctx context.Context, bin string) (map[string]bool, error) {
 
 // startServe starts genvelope serve on ports the kernel picks, reads
 // the bound addresses from its JSON log and waits for /readyz.
-func startServe(ctx context.Context, log *slog.Logger, bin, fleetPath, dir string, pprof, state bool, env []string, timeout time.Duration) (*proc, time.Duration, error) {
+func startServe(ctx context.Context, log *slog.Logger, name, bin, fleetPath, dir string, pprof, state bool, env, extra []string, timeout time.Duration) (*proc, time.Duration, error) {
 	known, err := serveFlags(ctx, bin)
 	if err != nil {
 		return nil, 0, err
@@ -204,16 +218,17 @@ func startServe(ctx context.Context, log *slog.Logger, bin, fleetPath, dir strin
 	// timestamps than this run sends.
 	if known["state"] {
 		if state {
-			args = append(args, "--state", filepath.Join(dir, "state.json"))
+			args = append(args, "--state", filepath.Join(dir, name+"-state.json"))
 		} else {
 			args = append(args, "--state=")
 		}
 	}
+	args = append(args, extra...)
 	type addrs struct{ grpc, http string }
 	found := make(chan addrs, 1)
 	var once sync.Once
 	start := time.Now()
-	p, err := startProc("genvelope serve", bin, args, env, filepath.Join(dir, "serve.log"), false, func(line string) {
+	p, err := startProc("genvelope serve", bin, args, env, filepath.Join(dir, name+".log"), false, func(line string) {
 		var rec struct {
 			Msg  string `json:"msg"`
 			GRPC string `json:"grpc"`
@@ -263,7 +278,7 @@ func startServe(ctx context.Context, log *slog.Logger, bin, fleetPath, dir strin
 		}
 	}
 	took := time.Since(start)
-	log.Info("genvelope serve ready", "pid", p.pid(), "grpc", p.grpcAddr, "http", p.httpAddr, "startup", took.Round(time.Millisecond))
+	log.Info("genvelope serve ready", "as", name, "pid", p.pid(), "grpc", p.grpcAddr, "http", p.httpAddr, "startup", took.Round(time.Millisecond))
 	return p, took, nil
 }
 
@@ -302,6 +317,46 @@ func startSink(ctx context.Context, log *slog.Logger, dir string, timeout time.D
 	}
 	log.Info("bare sink ready", "pid", p.pid(), "grpc", p.grpcAddr)
 	return p, nil
+}
+
+// startNATS starts a single JetStream node (nats-server from PATH, or
+// bin) on a free loopback port with its store in dir, and waits until
+// it takes connections. It returns the process and its URL.
+func startNATS(ctx context.Context, log *slog.Logger, bin, dir string, timeout time.Duration) (*proc, string, error) {
+	if bin == "" {
+		bin = "nats-server"
+	}
+	path, err := exec.LookPath(bin)
+	if err != nil {
+		return nil, "", fmt.Errorf("-nats needs nats-server (apt-get install nats-server, or -nats-server BIN): %w", err)
+	}
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		return nil, "", err
+	}
+	addr := ln.Addr().String()
+	ln.Close()
+	host, port, _ := net.SplitHostPort(addr)
+	p, err := startProc("nats-server", path, []string{"-js", "-sd", filepath.Join(dir, "jetstream"), "-a", host, "-p", port},
+		nil, filepath.Join(dir, "nats-server.log"), false, func(string) {})
+	if err != nil {
+		return nil, "", err
+	}
+	deadline := time.Now().Add(timeout)
+	for {
+		c, err := net.DialTimeout("tcp", addr, time.Second)
+		if err == nil {
+			c.Close()
+			break
+		}
+		if p.exited() || time.Now().After(deadline) || ctx.Err() != nil {
+			_, _ = p.stop(5 * time.Second)
+			return nil, "", fmt.Errorf("nats-server did not listen on %s (log: %s)", addr, p.logPath)
+		}
+		time.Sleep(20 * time.Millisecond)
+	}
+	log.Info("nats-server ready", "pid", p.pid(), "addr", addr)
+	return p, "nats://" + addr, nil
 }
 
 // memory is a process's resident set, from /proc/PID/status.

@@ -13,6 +13,7 @@ import (
 // it together.
 const (
 	targetRatio      = 0.6
+	targetRatioNATS  = 0.5 // the service over one local JetStream node
 	targetP99MS      = 50
 	targetRSSMiB     = 256
 	targetMetricsMS  = 1000
@@ -32,6 +33,8 @@ type report struct {
 	Service *serviceReport `json:"service,omitempty"`
 	// Exit status of the bare sink after SIGTERM.
 	SinkExit *int `json:"sink_exit_code,omitempty"`
+	// Exit status of the service over JetStream after SIGTERM.
+	DurableExit *int `json:"nats_service_exit_code,omitempty"`
 	// How old the newest sample timestamp was at the end, s (it must stay
 	// positive, or the service rejects samples as from the future).
 	LastSampleAgeS float64 `json:"last_sample_age_s"`
@@ -48,6 +51,11 @@ type repetition struct {
 	Ratio float64      `json:"ratio_full_over_bare,omitempty"`
 	// Full over bare of samples per server CPU second.
 	CPURatio float64 `json:"cpu_ratio_full_over_bare,omitempty"`
+	// The service over JetStream (-nats): its server CPU is genvelope's
+	// and nats-server's together.
+	NATS         *phaseResult `json:"nats,omitempty"`
+	RatioNATS    float64      `json:"ratio_nats_over_bare,omitempty"`
+	NATSOverFull float64      `json:"ratio_nats_over_full,omitempty"` // 1 minus the cost of durability
 }
 
 // spread is the minimum, median and maximum of a figure over the runs.
@@ -84,6 +92,11 @@ type summary struct {
 	// The same ratio of samples per server CPU second.
 	CPURatio  *spread `json:"cpu_ratio_full_over_bare,omitempty"`
 	FullP99MS *spread `json:"full_ack_latency_p99_ms,omitempty"`
+
+	NATSSamplesPerS *spread `json:"nats_samples_per_s,omitempty"`
+	RatioNATS       *spread `json:"ratio_nats_over_bare,omitempty"`
+	NATSOverFull    *spread `json:"ratio_nats_over_full,omitempty"`
+	NATSP99MS       *spread `json:"nats_ack_latency_p99_ms,omitempty"`
 }
 
 // serviceReport is what was seen of the genvelope serve process.
@@ -125,7 +138,7 @@ func (r *report) problem(format string, args ...any) {
 
 // finish checks the counts, totals the runs and weighs the targets.
 func (r *report) finish() {
-	var bare, full, ratio, cpuRatio, p99 []float64
+	var bare, full, ratio, cpuRatio, p99, natsS, natsRatio, natsOverFull, natsP99 []float64
 	for _, rr := range r.Runs {
 		if p := rr.Bare; p != nil {
 			bare = append(bare, p.SamplesPerS)
@@ -134,24 +147,21 @@ func (r *report) finish() {
 			}
 			r.checkPhase(rr.Run, p)
 		}
+		if p := rr.NATS; p != nil {
+			natsS = append(natsS, p.SamplesPerS)
+			natsP99 = append(natsP99, p.LatencyP99MS)
+			r.checkService(rr.Run, p)
+		}
+		if rr.RatioNATS > 0 {
+			natsRatio = append(natsRatio, rr.RatioNATS)
+		}
+		if rr.NATSOverFull > 0 {
+			natsOverFull = append(natsOverFull, rr.NATSOverFull)
+		}
 		if p := rr.Full; p != nil {
 			full = append(full, p.SamplesPerS)
 			p99 = append(p99, p.LatencyP99MS)
-			rejected := 0
-			for _, n := range p.Rejected {
-				rejected += n
-			}
-			if got := p.TotalAccepted + p.Duplicates + rejected; got != p.TotalSent {
-				r.problem("run %d, service: %d samples sent, %d answered (accepted %d + duplicates %d + rejected %d)",
-					rr.Run, p.TotalSent, got, p.TotalAccepted, p.Duplicates, rejected)
-			}
-			if rejected > 0 {
-				r.problem("run %d, service: %d samples rejected: %v; first: %s", rr.Run, rejected, p.Rejected, strings.Join(p.Rejections, "; "))
-			}
-			if p.Duplicates > 0 {
-				r.problem("run %d, service: %d samples taken as duplicates", rr.Run, p.Duplicates)
-			}
-			r.checkPhase(rr.Run, p)
+			r.checkService(rr.Run, p)
 		}
 		if rr.Ratio > 0 {
 			ratio = append(ratio, rr.Ratio)
@@ -160,7 +170,34 @@ func (r *report) finish() {
 			cpuRatio = append(cpuRatio, rr.CPURatio)
 		}
 	}
-	r.Summary = &summary{BareSamplesPerS: spreadOf(bare), FullSamplesPerS: spreadOf(full), Ratio: spreadOf(ratio), CPURatio: spreadOf(cpuRatio), FullP99MS: spreadOf(p99)}
+	r.Summary = &summary{BareSamplesPerS: spreadOf(bare), FullSamplesPerS: spreadOf(full), Ratio: spreadOf(ratio), CPURatio: spreadOf(cpuRatio), FullP99MS: spreadOf(p99),
+		NATSSamplesPerS: spreadOf(natsS), RatioNATS: spreadOf(natsRatio), NATSOverFull: spreadOf(natsOverFull), NATSP99MS: spreadOf(natsP99)}
+	r.finishService()
+}
+
+// checkService checks the answers of a phase of the service (in
+// process or over JetStream).
+func (r *report) checkService(run int, p *phaseResult) {
+	rejected := 0
+	for _, n := range p.Rejected {
+		rejected += n
+	}
+	if got := p.TotalAccepted + p.Duplicates + rejected; got != p.TotalSent {
+		r.problem("run %d, %s: %d samples sent, %d answered (accepted %d + duplicates %d + rejected %d)",
+			run, p.Server, p.TotalSent, got, p.TotalAccepted, p.Duplicates, rejected)
+	}
+	if rejected > 0 {
+		r.problem("run %d, %s: %d samples rejected: %v; first: %s", run, p.Server, rejected, p.Rejected, strings.Join(p.Rejections, "; "))
+	}
+	if p.Duplicates > 0 {
+		r.problem("run %d, %s: %d samples taken as duplicates", run, p.Server, p.Duplicates)
+	}
+	r.checkPhase(run, p)
+}
+
+// finishService checks the service's exit and scrapes, and weighs the
+// targets.
+func (r *report) finishService() {
 	// A child's exit status was checked, and a problem added, when it
 	// was stopped.
 	if s := r.Service; s != nil {
@@ -211,6 +248,14 @@ func (r *report) weighTargets() {
 		r.Targets = append(r.Targets, target{Name: "full/bare samples/s (median)", Want: fmt.Sprintf(">= %.1f", targetRatio),
 			Got: s.Ratio.Median, Status: status(s.Ratio.Median >= targetRatio)})
 	}
+	if s.RatioNATS != nil {
+		r.Targets = append(r.Targets, target{Name: "nats/bare samples/s (median)", Want: fmt.Sprintf(">= %.1f", targetRatioNATS),
+			Got: s.RatioNATS.Median, Status: status(s.RatioNATS.Median >= targetRatioNATS)})
+	}
+	if s.NATSP99MS != nil {
+		r.Targets = append(r.Targets, target{Name: "nats ack latency p99, ms (median)", Want: fmt.Sprintf("<= %d", targetP99MS),
+			Got: s.NATSP99MS.Median, Status: status(s.NATSP99MS.Median <= targetP99MS)})
+	}
 	if s.FullP99MS != nil {
 		r.Targets = append(r.Targets, target{Name: "service ack latency p99, ms (median)", Want: fmt.Sprintf("<= %d", targetP99MS),
 			Got: s.FullP99MS.Median, Status: status(s.FullP99MS.Median <= targetP99MS)})
@@ -249,13 +294,16 @@ func (r *report) writeTable(w io.Writer) {
 		tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
 		fmt.Fprintln(tw, "run\tserver\tsamples/s\tbatches\tp50 ms\tp90 ms\tp99 ms\tmax ms\tsrv cores\tcli cores\tother cores\tsamples/srv cpu s\trejected\tratio\tcpu ratio\t")
 		for _, rr := range r.Runs {
-			for _, p := range []*phaseResult{rr.Bare, rr.Full} {
+			for _, p := range []*phaseResult{rr.Bare, rr.Full, rr.NATS} {
 				if p == nil {
 					continue
 				}
 				ratio, cpuRatio := "", ""
 				if p == rr.Full && rr.Ratio > 0 {
 					ratio = fmt.Sprintf("%.2f", rr.Ratio)
+				}
+				if p == rr.NATS && rr.RatioNATS > 0 {
+					ratio = fmt.Sprintf("%.2f", rr.RatioNATS)
 				}
 				if p == rr.Full && rr.CPURatio > 0 {
 					cpuRatio = fmt.Sprintf("%.2f", rr.CPURatio)
@@ -273,6 +321,12 @@ func (r *report) writeTable(w io.Writer) {
 	if s := r.Summary; s != nil && len(r.Runs) > 1 {
 		fmt.Fprintf(w, "spread over %d runs (min / median / max): bare %s samples/s, full %s samples/s, ratio %s, cpu ratio %s, full p99 %s ms\n",
 			len(r.Runs), s.BareSamplesPerS, s.FullSamplesPerS, s.Ratio, s.CPURatio, s.FullP99MS)
+	}
+	for _, rr := range r.Runs {
+		if rr.NATSOverFull > 0 {
+			fmt.Fprintf(w, "run %d: the service over JetStream takes %.2f of the in-process service's samples/s (cost of durability %.0f %%; its server cores are genvelope's and nats-server's)\n",
+				rr.Run, rr.NATSOverFull, 100*(1-rr.NATSOverFull))
+		}
 	}
 	if sv := r.Service; sv != nil {
 		fmt.Fprintf(w, "service: ready in %.0f ms", sv.StartupMS)
@@ -319,7 +373,7 @@ func (r *report) writeTable(w io.Writer) {
 		}
 	}
 	for _, rr := range r.Runs {
-		for _, p := range []*phaseResult{rr.Bare, rr.Full} {
+		for _, p := range []*phaseResult{rr.Bare, rr.Full, rr.NATS} {
 			if p != nil && len(p.Rejected) > 0 {
 				fmt.Fprintf(w, "run %d %s rejections by reason:", rr.Run, p.Server)
 				for _, k := range slices.Sorted(maps.Keys(p.Rejected)) {

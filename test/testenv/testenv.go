@@ -219,3 +219,11 @@ func Addr(port int) string { return "127.0.0.1:" + strconv.Itoa(port) }
 func RelClose(a, b, tol float64) bool {
 	return a == b || math.Abs(a-b) <= tol*math.Max(math.Abs(a), math.Abs(b))
 }
+
+// Kill sends SIGKILL and waits until the program is gone.
+func (p *Proc) Kill() {
+	if !p.Exited() {
+		_ = p.cmd.Process.Kill()
+		<-p.done
+	}
+}

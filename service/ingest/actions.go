@@ -1,0 +1,35 @@
+package ingest
+
+import (
+	"context"
+	"errors"
+	"time"
+
+	"github.com/genvelope/genvelope/service/alarm"
+)
+
+// Actions are the operator actions on alarms. The store applies them
+// directly (StoreActions); a replicated service writes them to its log
+// first and applies them in log order on every replica.
+type Actions interface {
+	Acknowledge(ctx context.Context, id string, k alarm.Kind, now time.Time, by string) error
+	// Shelve suppresses the alarm until until; a zero until lifts the shelf.
+	Shelve(ctx context.Context, id string, k alarm.Kind, until, now time.Time, by string) error
+}
+
+// StoreActions applies operator actions to the store directly.
+type StoreActions struct{ Store *Store }
+
+// Acknowledge implements Actions.
+func (a StoreActions) Acknowledge(_ context.Context, id string, k alarm.Kind, now time.Time, by string) error {
+	return a.Store.Acknowledge(id, k, now, by)
+}
+
+// Shelve implements Actions.
+func (a StoreActions) Shelve(_ context.Context, id string, k alarm.Kind, until, now time.Time, by string) error {
+	return a.Store.Shelve(id, k, until, now, by)
+}
+
+// ErrUnavailable is returned by Actions that could not be written to the
+// log: nothing was done, and the action may be tried again.
+var ErrUnavailable = errors.New("the log is unavailable")
