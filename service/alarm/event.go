@@ -53,12 +53,12 @@ type Context struct {
 	// LimitMvar is the alarm's own underexcited limit at the point (the
 	// practical stability limit, the end-region or the UEL curve), Mvar;
 	// NaN when it has no value there. Read for those kinds only.
-	LimitMvar float64
-	IfdMeasuredA       *float64
-	IfdModelA          float64
-	AgeS               float64
-	Zone               string
-	VPerHzPU           float64
+	LimitMvar    float64
+	IfdMeasuredA *float64
+	IfdModelA    float64
+	AgeS         float64
+	Zone         string
+	VPerHzPU     float64
 }
 
 // Message returns the operator's sentence for a level change of kind k
