@@ -206,7 +206,7 @@ func (u *Unit) charParts() charParts {
 	f := pl(1, u.p.Td0TransientS*k3)
 	a := pl(1, ex.TAS)
 	r := pl(1)
-	if ex.TRS > 0 {
+	if ex.transducer() {
 		r = pl(1, ex.TRS)
 	}
 	dp, np := pl(1), pl(0)
@@ -368,8 +368,8 @@ func toQ16(q float64) int16 {
 const (
 	tabPMax     = 1.2
 	tabPStep    = 0.05
-	tabVLo      = 0.8
-	tabVHi      = 1.2
+	tabVLo      = 0.85
+	tabVHi      = 1.15
 	tabVStep    = 0.05
 	tabScanStep = 0.2
 	tabTol      = 1e-4
@@ -444,20 +444,27 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 const tabNear = 0.01
 
 // nearInterval looks for q_stability within tabNear of guess: q_max =
-// qTop stable, stable at the bracket's top and unstable at its bottom;
-// ok is false when that does not hold (the caller scans).
+// qTop stable, stable at the points of the coarse scan (tabScanStep) down
+// to the bracket's top and at the top itself, unstable at its bottom; ok
+// is false when that does not hold (the caller scans). The coarse scan
+// catches an unstable band that opens between q_max and the limit as p
+// grows, as the caller's scan would.
 func nearInterval(stable func(float64) (bool, error), qTop, guess float64) (interval, bool) {
 	hi, lo := guess+tabNear, guess-tabNear
 	if math.IsNaN(guess) || hi >= qTop {
 		return interval{}, false
 	}
-	for _, c := range [...]struct {
-		q    float64
-		want bool
-	}{{qTop, true}, {hi, true}, {lo, false}} {
-		if s, err := stable(c.q); err != nil || s != c.want {
+	is := func(q float64, want bool) bool {
+		s, err := stable(q)
+		return err == nil && s == want
+	}
+	for q := qTop; q > hi; q -= tabScanStep {
+		if !is(q, true) {
 			return interval{}, false
 		}
+	}
+	if !is(hi, true) || !is(lo, false) {
+		return interval{}, false
 	}
 	st, un, err := bisectStable(stable, hi, lo, tabTol)
 	if err != nil {
@@ -508,7 +515,9 @@ func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
 			for _, j := range [4]int{k, k + 1, k + t.np, k + t.np + 1} {
 				ok = ok && est[j] < tabSmooth && moved[j] == moved[k]
 			}
-			t.smooth[iv*(t.np-1)+ip] = ok
+			// Near p = 0 the model changes character (sin(delta) -> 0 cuts the
+			// field's coupling to the rotor): the first cell is never trusted.
+			t.smooth[iv*(t.np-1)+ip] = ok && ip > 0
 		}
 	}
 }
@@ -516,9 +525,10 @@ func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
 // fastInterval is the rule's answer for the per-sample path at p >= 0,
 // v, below qTop and down to qBot. In a cell of the table marked smooth
 // it is the interpolation alone. In other cells the answer is checked
-// with two Routh-Hurwitz tests: stable tabCheck above the interpolated
-// q_stability and unstable tabCheck below it (and the same about a moved
-// top), which puts the limit within tabCheck of the answer. Where the
+// with Routh-Hurwitz tests: stable tabCheck above the interpolated
+// q_stability and unstable tabCheck below it, which puts the limit within
+// tabCheck of the answer, and the same about a moved top, or q_max
+// stable where the top does not move. Where the
 // check fails, the table has no answer (outside its grid, no stable
 // operation, a stable interval above q_max), or the Routh test is not
 // sure, the rule itself is applied with the Routh-Hurwitz test (the
@@ -532,8 +542,14 @@ func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 		return iv
 	}
 	check := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, 0) }
-	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) &&
-		(!iv.top.OK || bracketHolds(check, iv.top.V, qTop, false)) {
+	topHolds := func() bool {
+		if iv.top.OK {
+			return bracketHolds(check, iv.top.V, qTop, false)
+		}
+		s, err := check(qTop) // q_max itself stable: it does not move
+		return err == nil && s
+	}
+	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) && topHolds() {
 		return iv
 	}
 	stable := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }
@@ -595,7 +611,7 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		return interval{}, false, false
 	}
 	if none {
-		return interval{}, true, false // no stable operation
+		return interval{}, true, smooth // no stable operation
 	}
 	if moved && top < qTop {
 		iv.top = some(top)
@@ -611,7 +627,8 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 // at interpolates the table at grid coordinates x (along p) and y (along
 // v), both inside the grid: q_stability, the top, whether the top moved
 // at a node around, whether the nearest node has no stable operation,
-// and whether the cell is smooth.
+// and whether the cell is smooth (or, with none, whether no node around
+// has stable operation).
 func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool) {
 	ip, jv := int(x), int(y)
 	if ip == t.np-1 {
@@ -632,7 +649,13 @@ func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool
 		}
 	}
 	if t.low[idx[near]] == tabNone {
-		return 0, 0, false, true, false
+		// No stable operation; trusted without a check when no node
+		// around has any.
+		all := true
+		for _, j := range idx {
+			all = all && t.low[j] == tabNone
+		}
+		return 0, 0, false, true, all
 	}
 	var sw float64
 	for i, j := range idx {

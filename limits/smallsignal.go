@@ -116,6 +116,17 @@ type ssMatrix struct {
 	n int
 }
 
+// minTransducerS is the shortest voltage-transducer time constant, s,
+// that the model keeps as a state: a faster transducer is taken as
+// instantaneous (dVm = dVt). Its pole would lie beyond 10^4 s^-1, far
+// outside the dynamics of interest, and would make the state matrix and
+// the characteristic polynomial too stiff for double precision (our
+// choice; the spec allows T_R = 0).
+const minTransducerS = 1e-4
+
+// transducer says whether the exciter's transducer is a state.
+func (e *Exciter) transducer() bool { return e.TRS >= minTransducerS }
+
 // State indices of the linearized model.
 const (
 	ssW = iota // speed deviation dw
@@ -140,7 +151,7 @@ func (u *Unit) stateMatrix(k *HeffronPhillips) ssMatrix {
 	ex, ps := u.p.Exciter, u.p.Stabilizer
 	n := 4
 	vm := -1
-	if ex.TRS > 0 {
+	if ex.transducer() {
 		vm = 3
 		n++
 	}
@@ -318,7 +329,7 @@ func (u *Unit) RotorMode(pt Point) (mode RotorMode, ok bool, err error) {
 			continue
 		}
 		part := 0.0
-		for _, s := range []int{ssW, ssD} {
+		for _, s := range [...]int{ssW, ssD} {
 			part += cabs(cmplx.Conj(vl.At(s, i))*vr.At(s, i)) / cabs(dot)
 		}
 		if part > best {

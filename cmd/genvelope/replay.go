@@ -20,6 +20,8 @@ import (
 // replayOptions are the flags of genvelope replay.
 type replayOptions struct {
 	target, file string
+	backfill     bool   // evaluate locally against fleetPath, no service
+	fleetPath    string // for --backfill
 	speed        float64
 	batch        int
 	// progressEvery is how often a plain progress line is written when
@@ -31,7 +33,7 @@ func replayCommand() command {
 	return command{
 		name:    "replay",
 		summary: "send recorded telemetry from a CSV file to a running service",
-		usage:   "--target ADDR --file FILE.csv [--speed N] [--batch N]",
+		usage:   "--target ADDR --file FILE.csv [--speed N] [--batch N] | --backfill --fleet FILE --file FILE.csv",
 		about: `Reads FILE.csv (a header row, then one sample per row; columns time, unit,
 p_mw, q_mvar, v_kv and optionally field_a, frequency_hz, coolant, quality,
 in any order; the README gives the layout) and streams the samples to the
@@ -41,6 +43,13 @@ skipped; after a dropped connection the replay reconnects and resends what
 was not acknowledged (the server answers a resent sample as a duplicate).
 The summary counts every row once: accepted, duplicate, rejected by the
 server (with the reason and line) or not readable.
+With --backfill no service is contacted: the rows are evaluated against the
+fleet file given with --fleet, as the service would evaluate them (checks,
+thermal memory, alarms on the rows' own times), in a state of their own,
+and a report gives each unit's least margins, peak thermal use and every
+alarm change. Use it for recorded history: pushing old rows into a running
+service is refused (older than the unit's newest sample, or before its
+horizon).
 Exit status: 0 when every row was accepted or a duplicate, 1 when some were
 rejected or not readable or the replay stopped early, 2 for usage errors
 and files that cannot be used.`,
@@ -50,6 +59,8 @@ and files that cannot be used.`,
 			fs.StringVar(&o.file, "file", "", "the CSV `FILE` to replay")
 			fs.Float64Var(&o.speed, "speed", 0, "replay at N times the pace of the recorded times; 0 as fast as the service answers")
 			fs.IntVar(&o.batch, "batch", replay.DefaultBatch, fmt.Sprintf("rows per batch, 1 to %d", replay.MaxBatch))
+			fs.BoolVar(&o.backfill, "backfill", false, "evaluate the file against --fleet locally, for a report, without a service and without touching live state")
+			fs.StringVar(&o.fleetPath, "fleet", "", "the fleet `FILE`, for --backfill")
 			return func(e env) int {
 				ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
 				defer stop()
@@ -62,6 +73,9 @@ and files that cannot be used.`,
 // runReplay replays o.file to o.target; ctx ends it early.
 func runReplay(ctx context.Context, e env, o replayOptions) int {
 	c := replayCommand()
+	if o.backfill {
+		return runBackfill(ctx, e, c, o)
+	}
 	switch {
 	case o.target == "":
 		return usageError(e, c, "missing --target ADDR, the service's gRPC address")
@@ -154,4 +168,43 @@ func progressBar(p replay.Progress) string {
 	n = max(0, min(width, n))
 	return fmt.Sprintf("[%s%s] %3.0f %%  %d rows read, %d answered",
 		strings.Repeat("#", n), strings.Repeat(".", width-n), 100*p.Fraction, p.Rows, p.Answered)
+}
+
+// runBackfill evaluates o.file against o.fleetPath locally.
+func runBackfill(ctx context.Context, e env, c command, o replayOptions) int {
+	switch {
+	case o.target != "":
+		return usageError(e, c, "--backfill contacts no service: leave out --target")
+	case o.file == "":
+		return usageError(e, c, "missing --file FILE, the CSV file to evaluate")
+	}
+	fl, code := loadFleet(e, c, o.fleetPath)
+	if fl == nil {
+		return code
+	}
+	f, err := os.Open(o.file)
+	if err != nil {
+		if errors.Is(err, os.ErrNotExist) {
+			return failf(e, c, exitUsage, "%s: no such file", o.file)
+		}
+		return failf(e, c, exitFailure, "%v", err)
+	}
+	defer f.Close()
+	b, err := replay.RunBackfill(ctx, fl, o.file, f)
+	var fe *replay.FileError
+	switch {
+	case errors.As(err, &fe):
+		fmt.Fprintln(e.stderr, err)
+		return exitUsage
+	case err != nil:
+		if b != nil {
+			b.Write(e.stdout)
+		}
+		return failf(e, c, exitFailure, "stopped early: %v", err)
+	}
+	b.Write(e.stdout)
+	if !b.OK() {
+		return exitFailure
+	}
+	return exitOK
 }

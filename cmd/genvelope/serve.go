@@ -22,6 +22,8 @@ const (
 	// defaultStatePath is relative to the working directory; an installed
 	// service sets --state under its state directory (/var/lib/genvelope).
 	defaultStatePath = "genvelope-state.json"
+	// defaultJournalPath likewise: the alarm journal.
+	defaultJournalPath = "genvelope-journal.jsonl"
 )
 
 func serveCommand() command {
@@ -35,7 +37,10 @@ POST /-/reload on --http-listen. SIGHUP or POST /-/reload reads the fleet
 file again; a file with errors is refused and the running fleet kept.
 SIGTERM or SIGINT stops: in-flight batches are finished and answered.
 AlarmService watches, acknowledges and shelves limit-approach alarms. The
-state file (--state) keeps thermal memory and alarms across restarts.
+state file (--state) keeps thermal memory and alarms across restarts; the
+journal (--journal) records every alarm change and operator action, read
+with JournalService, on the page /journal or as CSV. Samples stamped more
+than --max-future ahead or --horizon behind the server clock are refused.
 With --nats, accepted samples and operator actions are written to a NATS
 JetStream stream before they are acknowledged, every replica builds its
 state from that log, and --state is its checkpoint (the state and the
@@ -47,7 +52,10 @@ replicas by the FNV-1a hash of the unit id.`,
 			grpcListen := fs.String("grpc-listen", defaultGRPCListen, "gRPC listen address")
 			httpListen := fs.String("http-listen", defaultHTTPListen, "HTTP listen address (metrics, health, reload)")
 			maxBatch := fs.Int("max-batch", 10000, "most samples one request may carry")
-			maxFuture := fs.Duration("max-future", 5*time.Minute, "how far ahead of the server clock a sample may be stamped")
+			maxFuture := fs.Duration("max-future", 5*time.Second, "how far ahead of the server clock a sample may be stamped (clock skew)")
+			horizon := fs.Duration("horizon", 7*24*time.Hour, "how far behind the server clock a sample may be stamped; older history: genvelope replay --backfill")
+			journalPath := fs.String("journal", defaultJournalPath, "alarm journal `FILE`: every alarm change and operator action, rotated (FILE.1 ... FILE.4) past --journal-max-bytes; \"\" keeps none")
+			journalMax := fs.Int64("journal-max-bytes", 8<<20, "size at which the journal is rotated")
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
@@ -66,8 +74,8 @@ replicas by the FNV-1a hash of the unit id.`,
 				log := slog.New(h)
 				cfg := server.Config{
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
-					Ingest: ingest.Options{MaxFuture: *maxFuture}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
-					StatePath: *statePath,
+					Ingest: ingest.Options{MaxFuture: *maxFuture, Horizon: *horizon}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
+					StatePath: *statePath, JournalPath: *journalPath, JournalMaxBytes: *journalMax,
 				}
 				if nf.enabled() {
 					dl, err := nf.open(*statePath, log)

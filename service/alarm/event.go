@@ -40,6 +40,8 @@ type Event struct {
 	Shelved         time.Time // until when the alarm is shelved; zero when it is not
 	Acknowledged    bool      // the active alarm is acknowledged
 	Message         string    // one plain sentence an operator can act on
+	Operator        string    // who acted, for acknowledgements and shelves
+	Removed         bool      // the alarm ended because a reload removed its unit
 }
 
 // Context is the operating point behind an alarm, in engineering units,
@@ -59,6 +61,7 @@ type Context struct {
 	AgeS         float64
 	Zone         string
 	VPerHzPU     float64
+	NoData       bool // the unit has never reported
 }
 
 // Message returns the operator's sentence for a level change of kind k
@@ -73,8 +76,8 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 		return fmt.Sprintf("%s: armature current at %.0f %% of its rating %s; reduce the reactive (or active) load.", id, 100*(1-value), at)
 	case Field:
 		if c.QMaxMvar != nil && c.QMaxLimit == "field" {
-			return fmt.Sprintf("%s: %.1f Mvar left before the field current limit (q_max %.1f Mvar) %s; reduce excitation or move reactive load to other units.",
-				id, *c.QMaxMvar-c.QMvar, *c.QMaxMvar, at)
+			return fmt.Sprintf("%s: %s the field current limit (q_max %.1f Mvar) %s; reduce excitation or move reactive load to other units.",
+				id, leftOrBeyond(*c.QMaxMvar-c.QMvar, "Mvar", "before"), *c.QMaxMvar, at)
 		}
 		return fmt.Sprintf("%s: field current at %.0f %% of its rating %s; reduce excitation or move reactive load to other units.", id, 100*(1-value), at)
 	case Stability, EndRegion, UEL:
@@ -89,17 +92,14 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 			}
 			return fmt.Sprintf("%s: the %s has no value %s.", id, what, at)
 		}
-		left := c.QMvar - lim
-		if left < 0 {
-			return fmt.Sprintf("%s: %.1f Mvar below the %s (%.1f Mvar) %s; raise excitation now.", id, -left, what, lim, at)
-		}
-		return fmt.Sprintf("%s: %.1f Mvar left above the %s (%.1f Mvar) %s; raise excitation or absorb less reactive power.",
-			id, left, what, lim, at)
+		return fmt.Sprintf("%s: %s the %s (%.1f Mvar) %s; raise excitation or absorb less reactive power.",
+			id, leftOrBeyond(c.QMvar-lim, "Mvar", "above"), what, lim, at)
 	case PrimeMover:
 		if c.PMW < c.PMinMW {
-			return fmt.Sprintf("%s: %.1f MW is below the prime mover's minimum %.1f MW %s; raise the active-power set point or take the unit off.", id, c.PMW, c.PMinMW, at)
+			return fmt.Sprintf("%s: %s the prime mover's minimum %.1f MW %s; raise the active-power set point or take the unit off.",
+				id, leftOrBeyond(c.PMW-c.PMinMW, "MW", "above"), c.PMinMW, at)
 		}
-		return fmt.Sprintf("%s: %.1f MW left to the prime mover's %.1f MW %s; reduce the active-power set point.", id, c.PMaxMW-c.PMW, c.PMaxMW, at)
+		return fmt.Sprintf("%s: %s the prime mover's %.1f MW %s; reduce the active-power set point.", id, leftOrBeyond(c.PMaxMW-c.PMW, "MW", "to"), c.PMaxMW, at)
 	case VoltsPerHertz:
 		return fmt.Sprintf("%s: volts per hertz %.3f pu against 1.05 pu continuous %s; lower the terminal voltage or check the frequency.", id, c.VPerHzPU, at)
 	case ArmatureThermal, FieldThermal:
@@ -108,6 +108,9 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 	case VoltageFrequencyZone:
 		return fmt.Sprintf("%s: operating in %s of the voltage/frequency zones %s; limit the time spent there and bring voltage back within ±5 %%.", id, zoneWords(c.Zone), at)
 	case StaleTelemetry:
+		if c.NoData {
+			return fmt.Sprintf("%s: no sample received in the %.0f s since the service started: no data, its limits are not being watched; check the SCADA link.", id, c.AgeS)
+		}
 		return fmt.Sprintf("%s: no sample for %.0f s; its limits are not being watched; check the SCADA link.", id, c.AgeS)
 	case FieldCurrentMismatch:
 		meas := "?"
@@ -118,6 +121,16 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 			id, meas, c.IfdModelA, 100*value, at)
 	}
 	return fmt.Sprintf("%s: %s %s.", id, k, level)
+}
+
+// leftOrBeyond says how far a quantity is from its limit in words that
+// are never negative: "3.8 Mvar left above", or "0.5 Mvar beyond" once
+// past it.
+func leftOrBeyond(left float64, unit, prep string) string {
+	if left < 0 {
+		return fmt.Sprintf("%.1f %s beyond", -left, unit)
+	}
+	return fmt.Sprintf("%.1f %s left %s", left, unit, prep)
 }
 
 func kindTitle(k Kind) string { return strings.ReplaceAll(k.String(), "_", " ") }

@@ -117,7 +117,7 @@ func New(cfg Config) (*Demo, error) {
 		return nil, fmt.Errorf("demo fleet: %w", err)
 	}
 	d.srv, err = server.New(server.Config{FleetPath: path, GRPCListen: cfg.GRPCListen, HTTPListen: cfg.HTTPListen,
-		StatePath: cfg.StatePath, Logger: cfg.Logger})
+		StatePath: cfg.StatePath, JournalPath: filepath.Join(dir, "journal.jsonl"), Logger: cfg.Logger})
 	if err != nil {
 		d.Close()
 		return nil, err

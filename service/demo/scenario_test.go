@@ -3,6 +3,7 @@ package demo
 import (
 	"context"
 	"fmt"
+	"math"
 	"slices"
 	"strings"
 	"testing"
@@ -69,6 +70,10 @@ type dayRun struct {
 	endFieldThermal map[string]float64
 	end             map[string][alarm.NumKinds]alarm.Machine
 	rejected        int
+	// While a unit's field-current mismatch alarm is active: samples
+	// seen, and those whose field margin did not follow the model.
+	mismatchSamples int
+	mismatchWrong   []string
 }
 
 func runDay(t *testing.T, fl *fleet.Fleet, day time.Duration, extra time.Duration) *dayRun {
@@ -109,6 +114,24 @@ func runDay(t *testing.T, fl *fleet.Fleet, day time.Duration, extra time.Duratio
 				seq := r.levels[id][alarm.Kind(k)]
 				if len(seq) == 0 && l != alarm.Normal || len(seq) > 0 && seq[len(seq)-1] != l {
 					r.levels[id][alarm.Kind(k)] = append(seq, l)
+				}
+			}
+			if v.HasSample && v.Alarms[alarm.FieldCurrentMismatch].Level != alarm.Normal {
+				// The frozen reading is doubted: the field margin is the
+				// smaller of the model's (a cold evaluation without the
+				// reading) and the reading's, 1 - i_fd/i_fd_max (envelope.md,
+				// "Margins": the larger of the two field currents).
+				r.mismatchSamples++
+				pt := v.Point
+				pt.IfdMeasured = false
+				model := v.Config.Model.Evaluate(pt, nil)
+				want := model.Margins[limits.LimitField]
+				if v.Point.IfdMeasured {
+					want.V = math.Min(want.V, 1-v.Point.Ifd/model.IfdMax)
+				}
+				got := v.Eval.Margins[limits.LimitField]
+				if !v.Point.IfdDoubtful || got.OK != want.OK || math.Abs(got.V-want.V) > 1e-6 {
+					r.mismatchWrong = append(r.mismatchWrong, fmt.Sprintf("%s t=%d s: field margin %v, want %v, reading doubted %v", id, i, got, want, v.Point.IfdDoubtful))
 				}
 			}
 			ft := v.Field.Used(limits.FieldK)
@@ -201,5 +224,13 @@ func testScenarioDay(t *testing.T, day time.Duration) {
 	}
 	if r.rejected > 0 {
 		t.Errorf("%d samples rejected", r.rejected)
+	}
+	// The frozen-sensor episode: while the mismatch alarm is active the
+	// field margin follows the model, not the frozen reading.
+	if r.mismatchSamples == 0 {
+		t.Error("no sample while the field-current mismatch alarm was active")
+	}
+	if n := len(r.mismatchWrong); n > 0 {
+		t.Errorf("%d samples with the mismatch alarm active trusted the reading alone, e.g.\n%s", n, strings.Join(r.mismatchWrong[:min(n, 5)], "\n"))
 	}
 }

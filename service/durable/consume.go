@@ -91,7 +91,10 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func() err
 			}
 			l.log.Error("CHECKPOINT UNUSABLE: moved aside; the state is rebuilt from the whole log", "err", err, "moved_to", aside)
 		default:
-			restored, unknown := store.Restore(cp.State)
+			restored, unknown, bad := store.Restore(cp.State)
+			for _, b := range bad {
+				l.log.Error("CHECKPOINT ENTRY UNUSABLE: not restored; this unit's state comes from the log alone", "checkpoint", p, "err", b)
+			}
 			l.seq = cp.Sequence
 			for id, lg := range cp.Ledger {
 				if lg != nil {

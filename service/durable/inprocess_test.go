@@ -94,8 +94,10 @@ func TestInProcess(t *testing.T) {
 					if c == 0 {
 						q = 400
 					}
+					// P and V plausible for each unit (390 MVA 20 kV, 13.8 kV, 15 kV).
+					pv := map[string][2]float64{"harrowmere-1": {200, 20.4}, "larchwater-2": {80, 13.8}, "brindle-gt3": {100, 15}}[id]
 					req.Samples = append(req.Samples, &pb.Sample{UnitId: id, Time: timestamppb.New(base.Add(time.Duration(j) * time.Second)),
-						PMw: 200, QMvar: q, VKv: 20.4})
+						PMw: pv[0], QMvar: q, VKv: pv[1]})
 				}
 				if c == 2 {
 					reqs = append(reqs, &req)

@@ -75,6 +75,8 @@ type Unit struct {
 	EndRegion  *EndRegion // nil when not given
 	Coolant    *Coolant   // nil when not given
 
+	Plausibility Plausibility // the values it can physically report; zero fields take the defaults
+
 	// Alarms are the unit's alarm settings: the fleet's, with the unit's
 	// own alarms: block on top.
 	Alarms [alarm.NumKinds]alarm.Setting

@@ -4,10 +4,12 @@ import (
 	"errors"
 	"fmt"
 	"math"
+	"strings"
 	"time"
 
 	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
+	"github.com/genvelope/genvelope/service/journal"
 	"github.com/genvelope/genvelope/service/report"
 )
 
@@ -51,12 +53,18 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 	return math.NaN()
 }
 
-// stepAlarms advances every sample-driven alarm to sample time t. u.mu
-// must be held.
-func (u *Unit) stepAlarms(t int64, s *Store) {
+// stepAlarms advances every sample-driven alarm to sample time t: at a
+// sample, or from Sweep (sweep true) at the sample time the wall clock
+// has reached since the latest sample, with the same quantities, so that
+// on- and off-delays and the thermal alarms go on while telemetry
+// pauses. u.mu must be held.
+func (u *Unit) stepAlarms(t int64, s *Store, sweep bool) {
 	for k := alarm.Kind(0); k < alarm.NumKinds; k++ {
 		x := u.quantity(k)
 		if k == alarm.StaleTelemetry {
+			if sweep {
+				continue // the wall clock's own alarm
+			}
 			x = 0 // a sample just arrived
 		}
 		set := &u.cfg.Alarms[k]
@@ -74,8 +82,11 @@ func (u *Unit) stepAlarms(t int64, s *Store) {
 func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Time, x, ageS float64) {
 	m := &u.alarms[k]
 	s.transitions[k][m.Level].Add(1)
-	if !s.hub.Watched() {
-		return // the sentence and the operating point are for watchers only
+	if m.Level == alarm.Normal {
+		u.raised[k] = ""
+	}
+	if !s.hub.Watched() && s.opts.Journal == nil {
+		return // the sentence and the operating point are for watchers and the journal only
 	}
 	set := &u.cfg.Alarms[k]
 	thr := set.Warning
@@ -88,7 +99,34 @@ func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Ti
 	ev.Prev, ev.Value, ev.Threshold = prev, x, thr
 	ctx.LimitMvar = ev.LimitAt
 	ev.Message = alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx)
+	if m.Level > prev {
+		u.raised[k] = ev.Message // kept while the off-delay holds the alarm
+	}
+	s.publish(ev)
+}
+
+// publish sends ev to the watchers and records it in the journal.
+func (s *Store) publish(ev alarm.Event) {
+	s.record(&ev)
 	s.hub.Publish(ev)
+}
+
+// record writes ev to the journal, if there is one.
+func (s *Store) record(ev *alarm.Event) {
+	j := s.opts.Journal
+	if j == nil {
+		return
+	}
+	e := journal.Entry{Time: ev.Time, Unit: ev.Unit, Site: ev.Site, Limit: ev.Kind.String(), Change: ev.Change.String(),
+		Level: ev.Level.String(), Prev: ev.Prev.String(), Value: journal.Num(ev.Value), Actual: journal.Num(ev.Actual),
+		LimitAt: journal.Num(ev.LimitAt), Units: ev.Units, Message: ev.Message, Operator: ev.Operator}
+	if ev.Change == alarm.LevelChanged {
+		e.Threshold = journal.Num(ev.Threshold)
+	}
+	if ev.Removed {
+		e.Change = journal.ChangeRemoved
+	}
+	_ = j.Append(e) // a failure is logged and counted by the journal
 }
 
 // shelvedUntil is the end of m's shelf, or zero when it is not shelved.
@@ -163,11 +201,12 @@ func (u *Unit) event(k alarm.Kind, change alarm.Change, at time.Time, ageS float
 func (u *Unit) context() alarm.Context {
 	var c alarm.Context
 	if !u.has {
+		c.NoData = true
 		return c
 	}
 	u.complete()
 	s := &u.latest
-	e := report.New(u.cfg, u.pt, &u.eval)
+	e := report.New(u.cfg, u.pt, &u.eval) // the point as evaluated
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
 		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
 	if e.QMaxLimit != nil {
@@ -179,12 +218,22 @@ func (u *Unit) context() alarm.Context {
 	if e.FieldCurrentModelA != nil {
 		c.IfdModelA = *e.FieldCurrentModelA
 	}
+	if s.HasFieldA && c.IfdMeasuredA == nil {
+		ifd := s.FieldA // measured, though not used while the mismatch alarm is active
+		c.IfdMeasuredA = &ifd
+	}
 	return c
 }
 
-// Sweep runs the wall-clock alarms at time now: stale telemetry for
-// every unit (a unit that never reported counts from the store's start),
-// and the expiry of shelves. The server calls it about once a second.
+// Sweep runs the wall-clock supervision at time now, for every unit:
+// stale telemetry (a unit that never reported counts from the store's
+// start); the expiry of shelves; and, while telemetry pauses, the
+// thermal accumulators and the sample-driven alarms advance from the
+// latest sample by the wall clock, holding its values (the excursion is
+// assumed to continue: a winding above its rating keeps heating, one
+// below cools) until the stale-telemetry warning threshold, beyond which
+// the unit is stale and its thermal state unknown. The server calls it
+// about once a second.
 func (s *Store) Sweep(now time.Time) {
 	t := now.UnixNano()
 	for _, u := range s.Units() {
@@ -194,16 +243,33 @@ func (s *Store) Sweep(now time.Time) {
 			last = u.recvNS
 		}
 		age := float64(t-last) / 1e9
+		staleSet := &u.cfg.Alarms[alarm.StaleTelemetry]
 		m := &u.alarms[alarm.StaleTelemetry]
-		if prev, changed := m.Step(t, age, &u.cfg.Alarms[alarm.StaleTelemetry], true); changed {
+		if prev, changed := m.Step(t, age, staleSet, true); changed {
 			s.publishLevel(u, alarm.StaleTelemetry, prev, now, age, age)
+		}
+		if u.has {
+			staleS := staleSet.Warning
+			if !(staleS > 0) {
+				staleS = 30
+			}
+			horizon := u.lastNS + int64(staleS*1e9)
+			tEq := min(u.lastNS+(t-u.recvNS), horizon)
+			if tEq > u.thermNS && !u.stale {
+				u.advance(tEq - u.thermNS)
+				u.thermNS = tEq
+			}
+			if tEq > u.lastNS && !u.stale {
+				u.stepAlarms(tEq, s, true)
+			}
+			u.stale = age >= staleS
 		}
 		for k := range u.alarms {
 			if m := &u.alarms[k]; m.ShelvedUntil != 0 && m.ShelvedUntil <= t {
 				m.ShelvedUntil = 0
 				ev := u.event(alarm.Kind(k), alarm.Unshelved, now, age)
 				ev.Message = fmt.Sprintf("%s: %s alarm no longer shelved (shelf expired).", u.cfg.ID, alarm.Kind(k))
-				s.hub.Publish(ev)
+				s.publish(ev)
 			}
 		}
 		u.mu.Unlock()
@@ -222,16 +288,22 @@ func (s *Store) age(u *Unit, now time.Time) float64 {
 
 // Errors of the operator actions.
 var (
-	ErrUnknownUnit = errors.New("unknown unit")
-	ErrNotActive   = errors.New("the alarm is not active")
+	ErrUnknownUnit   = errors.New("unknown unit")
+	ErrNotActive     = errors.New("the alarm is not active")
+	ErrNoOperator    = errors.New("an operator name is required")
+	ErrUnknownSample = errors.New("no such recent sample")
 )
 
-// Acknowledge records that an operator has seen unit id's alarm k.
+// Acknowledge records that operator by has seen unit id's alarm k.
 func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) error {
+	if strings.TrimSpace(by) == "" {
+		return ErrNoOperator
+	}
 	u := s.Unit(id)
 	if u == nil {
 		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
 	}
+	defer s.syncJournal()
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	m := &u.alarms[k]
@@ -243,18 +315,31 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 	}
 	m.Acknowledged = true
 	ev := u.event(k, alarm.Acknowledged, now, s.age(u, now))
+	ev.Operator = by
 	ev.Message = fmt.Sprintf("%s: %s alarm (%s) acknowledged%s.", id, k, m.Level, byWhom(by))
-	s.hub.Publish(ev)
+	s.publish(ev)
 	return nil
 }
 
+// syncJournal makes the journal's entries durable (after an operator
+// action, which its caller expects recorded).
+func (s *Store) syncJournal() {
+	if j := s.opts.Journal; j != nil {
+		_ = j.Sync()
+	}
+}
+
 // Shelve suppresses unit id's alarm k until the wall-clock time until;
-// a zero until lifts the shelf.
+// a zero until lifts the shelf. by names the operator.
 func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string) error {
+	if strings.TrimSpace(by) == "" {
+		return ErrNoOperator
+	}
 	u := s.Unit(id)
 	if u == nil {
 		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
 	}
+	defer s.syncJournal()
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	m := &u.alarms[k]
@@ -267,14 +352,101 @@ func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string)
 		m.ShelvedUntil = until.UnixNano()
 	}
 	ev := u.event(k, alarm.Shelved, now, s.age(u, now))
+	ev.Operator = by
 	if until.IsZero() {
 		ev.Change = alarm.Unshelved
 		ev.Message = fmt.Sprintf("%s: %s alarm unshelved%s.", id, k, byWhom(by))
 	} else {
 		ev.Message = fmt.Sprintf("%s: %s alarm shelved until %s%s.", id, k, until.UTC().Format(time.RFC3339), byWhom(by))
 	}
-	s.hub.Publish(ev)
+	s.publish(ev)
 	return nil
+}
+
+// ResetThermal clears unit id's thermal accumulators (winding
+// "armature", "field", or "" for both), for an operator who knows the
+// heating they hold is wrong; recorded in the journal with who and why.
+func (s *Store) ResetThermal(id, winding string, now time.Time, by, reason string) error {
+	if strings.TrimSpace(by) == "" {
+		return ErrNoOperator
+	}
+	if winding != "" && winding != "armature" && winding != "field" {
+		return fmt.Errorf("winding %q: give armature, field or nothing for both", winding)
+	}
+	u := s.Unit(id)
+	if u == nil {
+		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+	}
+	u.mu.Lock()
+	a0, f0 := u.armature.H, u.field.H
+	if winding != "field" {
+		u.armature.H = 0
+	}
+	if winding != "armature" {
+		u.field.H = 0
+	}
+	what := "both windings'"
+	if winding != "" {
+		what = "the " + winding + " winding's"
+	}
+	s.recordAction(u, journal.ChangeReset, winding, now, by, fmt.Sprintf("%s: %s short-time thermal memory cleared (armature %.1f s, field %.1f s of heating before)%s%s.",
+		id, what, a0, f0, byWhom(by), because(reason)))
+	u.mu.Unlock()
+	s.syncJournal()
+	return nil
+}
+
+// DiscardSample removes the heating that unit id's sample at time at
+// held into its thermal accumulators (one of the last 16 samples), and
+// stops it heating further when it is the latest; recorded in the
+// journal. The sample stays the unit's latest for the margins.
+func (s *Store) DiscardSample(id string, at, now time.Time, by, reason string) error {
+	if strings.TrimSpace(by) == "" {
+		return ErrNoOperator
+	}
+	u := s.Unit(id)
+	if u == nil {
+		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+	}
+	t := at.UnixNano()
+	u.mu.Lock()
+	var h *heatStep
+	for i := range u.heat {
+		if u.heat[i].discardable && u.heat[i].t == t {
+			h = &u.heat[i]
+		}
+	}
+	if h == nil {
+		u.mu.Unlock()
+		return fmt.Errorf("%w: unit %q has no sample at %s among its last %d", ErrUnknownSample, id, at.UTC().Format(time.RFC3339Nano), heatSize)
+	}
+	u.armature.H = max(0, u.armature.H-h.arm)
+	u.field.H = max(0, u.field.H-h.field)
+	msg := fmt.Sprintf("%s: the thermal effect of the sample at %s discarded (armature %.1f s, field %.1f s of heating)%s%s.",
+		id, at.UTC().Format(time.RFC3339Nano), h.arm, h.field, byWhom(by), because(reason))
+	*h = heatStep{t: t}
+	if t == u.lastNS {
+		u.hArm, u.hField = min(u.hArm, 1), min(u.hField, 1) // it heats no further
+	}
+	s.recordAction(u, journal.ChangeDiscard, "", now, by, msg)
+	u.mu.Unlock()
+	s.syncJournal()
+	return nil
+}
+
+// recordAction journals an operator's change to unit u's state. u.mu
+// must be held.
+func (s *Store) recordAction(u *Unit, change, limit string, now time.Time, by, msg string) {
+	if j := s.opts.Journal; j != nil {
+		_ = j.Append(journal.Entry{Time: now, Unit: u.cfg.ID, Site: u.cfg.Site, Limit: limit, Change: change, Message: msg, Operator: by})
+	}
+}
+
+func because(reason string) string {
+	if strings.TrimSpace(reason) == "" {
+		return ""
+	}
+	return " (" + reason + ")"
 }
 
 func byWhom(by string) string {
@@ -312,10 +484,16 @@ func (s *Store) appendActive(out []alarm.Event, u *Unit) []alarm.Event {
 		if m.Level == alarm.Normal {
 			continue
 		}
-		ctx := u.context()
-		ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), s.age(u, s.opts.Now()))
-		ctx.LimitMvar = ev.LimitAt
-		ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
+		age := s.age(u, s.opts.Now())
+		ev := u.event(alarm.Kind(k), alarm.LevelChanged, time.Unix(0, m.Since), age)
+		if m.Clearing[m.Level-1] && u.raised[k] != "" {
+			ev.Message = u.raised[k] // held by its off-delay: what raised it
+		} else {
+			ctx := u.context()
+			ctx.AgeS = age
+			ctx.LimitMvar = ev.LimitAt
+			ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
+		}
 		out = append(out, ev)
 	}
 	return out

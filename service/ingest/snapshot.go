@@ -1,19 +1,23 @@
 package ingest
 
 import (
+	"crypto/sha256"
+	"encoding/hex"
+	"encoding/json"
+	"fmt"
+	"math"
 	"time"
 
+	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
+	"github.com/genvelope/genvelope/service/fleet"
 )
 
 // SnapshotVersion is the version of the Snapshot layout; a snapshot of
-// another version is not restored.
-const SnapshotVersion = 1
-
-// snapshotTimes is how many recent timestamps of each unit a snapshot
-// keeps, so that a client resending after a restart still gets
-// duplicates for its most recent samples.
-const snapshotTimes = 32
+// another version is not restored. Version 2 keeps each unit's whole
+// duplicate window and carries a checksum; version 1 files are still
+// read.
+const SnapshotVersion = 2
 
 // Snapshot is the state that must survive a restart: what a restart must
 // not forget (a winding just overloaded, an alarm acknowledged or
@@ -23,17 +27,22 @@ type Snapshot struct {
 	Version int                     `json:"version"`
 	Written time.Time               `json:"written"`
 	Units   map[string]UnitSnapshot `json:"units"`
+	// Checksum is the SHA-256, in hex, of the snapshot encoded with an
+	// empty checksum (see Seal): a file changed after it was written is
+	// not restored.
+	Checksum string `json:"checksum,omitempty"`
 }
 
 // UnitSnapshot is one unit's part of a Snapshot.
 type UnitSnapshot struct {
-	Times     []int64                  `json:"times_unix_ns"` // recent accepted sample times, oldest first
+	Times     []int64                  `json:"times_unix_ns"` // recent accepted sample times, oldest first (the whole duplicate window)
 	Latest    *SampleSnapshot          `json:"latest,omitempty"`
 	ArmatureH float64                  `json:"armature_heating_s"`
 	FieldH    float64                  `json:"field_heating_s"`
 	XArmature float64                  `json:"armature_current_pu"` // held until the next sample
 	XField    float64                  `json:"field_current_pu"`
-	Alarms    map[string]alarm.Machine `json:"alarms,omitempty"` // machines not at rest, by limit name
+	ThermalNS int64                    `json:"thermal_unix_ns,omitempty"` // sample time the accumulators had reached
+	Alarms    map[string]alarm.Machine `json:"alarms,omitempty"`          // machines not at rest, by limit name
 }
 
 // SampleSnapshot is the latest accepted sample and when it arrived.
@@ -42,14 +51,52 @@ type SampleSnapshot struct {
 	ReceivedUnixNS int64 `json:"received_unix_ns"`
 }
 
+// Seal sets sn's checksum.
+func (sn *Snapshot) Seal() error {
+	sum, err := sn.sum()
+	if err != nil {
+		return err
+	}
+	sn.Checksum = sum
+	return nil
+}
+
+// Verify reports whether sn's checksum matches its content. A version 1
+// snapshot has none and passes.
+func (sn *Snapshot) Verify() error {
+	if sn.Version < 2 && sn.Checksum == "" {
+		return nil
+	}
+	want := sn.Checksum
+	got, err := sn.sum()
+	if err != nil {
+		return err
+	}
+	if got != want {
+		return fmt.Errorf("checksum mismatch (file says %.12s…, content gives %.12s…): the file was changed after it was written", want, got)
+	}
+	return nil
+}
+
+func (sn *Snapshot) sum() (string, error) {
+	c := *sn
+	c.Checksum = ""
+	data, err := json.Marshal(&c) // map keys sorted: the encoding is deterministic
+	if err != nil {
+		return "", err
+	}
+	h := sha256.Sum256(data)
+	return hex.EncodeToString(h[:]), nil
+}
+
 // Snapshot copies the durable state of every unit.
 func (s *Store) Snapshot(now time.Time) *Snapshot {
 	sn := &Snapshot{Format: "genvelope-state", Version: SnapshotVersion, Written: now.UTC(), Units: map[string]UnitSnapshot{}}
 	for _, u := range s.Units() {
 		u.mu.Lock()
-		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.xArm, XField: u.xField}
-		n := min(u.n, snapshotTimes)
-		for i := n; i > 0; i-- {
+		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.hArm, XField: u.hField, ThermalNS: u.thermNS}
+		us.Times = make([]int64, 0, u.n)
+		for i := u.n; i > 0; i-- {
 			us.Times = append(us.Times, u.ring[(u.head-i+ringSize)%ringSize])
 		}
 		if u.has {
@@ -70,14 +117,23 @@ func (s *Store) Snapshot(now time.Time) *Snapshot {
 }
 
 // Restore puts a snapshot's state back into the store's units, matched
-// by id, and evaluates each restored latest sample again. It returns how
-// many units were restored and the ids in the snapshot that the fleet no
-// longer has.
-func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string) {
+// by id, and evaluates each restored latest sample again. Every unit's
+// entry is checked field by field first (finite, in range, a plausible
+// latest sample): a bad entry is not restored, and said why in bad; the
+// others are. It returns how many units were restored and the ids in
+// the snapshot that the fleet no longer has.
+func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string, bad []error) {
 	for id, us := range sn.Units {
 		u := s.Unit(id)
 		if u == nil {
 			unknown = append(unknown, id)
+			continue
+		}
+		u.mu.Lock()
+		cfg, plaus := u.cfg, u.plaus
+		u.mu.Unlock()
+		if err := checkUnitSnapshot(cfg, &plaus, &us); err != nil {
+			bad = append(bad, fmt.Errorf("unit %q: %w", id, err))
 			continue
 		}
 		u.mu.Lock()
@@ -90,19 +146,69 @@ func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string) {
 			u.head = (u.head + 1) % ringSize
 			u.n = min(u.n+1, ringSize)
 		}
-		u.armature.H, u.field.H = max(0, us.ArmatureH), max(0, us.FieldH)
-		u.xArm, u.xField = us.XArmature, us.XField
+		u.armature.H, u.field.H = us.ArmatureH, us.FieldH
 		if us.Latest != nil {
 			u.latest, u.recvNS, u.has = us.Latest.Sample, us.Latest.ReceivedUnixNS, true
+			u.lastNS = u.latest.Time.UnixNano()
+			u.thermNS = max(u.lastNS, us.ThermalNS)
+			for k, m := range us.Alarms {
+				if k == alarm.FieldCurrentMismatch.String() {
+					u.alarms[alarm.FieldCurrentMismatch] = m // before evaluate: it decides whether the measured field current counts
+				}
+			}
 			u.evaluate()
 		}
+		u.hArm, u.hField = us.XArmature, us.XField
 		for name, m := range us.Alarms {
-			if k, ok := alarm.ParseKind(name); ok && m.Level <= alarm.Critical {
+			if k, ok := alarm.ParseKind(name); ok {
 				u.alarms[k] = m
 			}
 		}
 		u.mu.Unlock()
 		restored++
 	}
-	return restored, unknown
+	return restored, unknown, bad
 }
+
+// checkUnitSnapshot says what is wrong with a unit's saved state, or
+// returns nil.
+func checkUnitSnapshot(cfg *fleet.Unit, plaus *fleet.Plausibility, us *UnitSnapshot) error {
+	switch {
+	case !finite(us.ArmatureH) || us.ArmatureH < 0 || us.ArmatureH > maxRestoredHeatingS:
+		return fmt.Errorf("armature_heating_s %v is not in [0, %g]", us.ArmatureH, maxRestoredHeatingS)
+	case !finite(us.FieldH) || us.FieldH < 0 || us.FieldH > maxRestoredHeatingS:
+		return fmt.Errorf("field_heating_s %v is not in [0, %g]", us.FieldH, maxRestoredHeatingS)
+	case !finite(us.XArmature) || us.XArmature < 0 || us.XArmature > MaxThermalX:
+		return fmt.Errorf("armature_current_pu %v is not in [0, %g]", us.XArmature, MaxThermalX)
+	case !finite(us.XField) || us.XField < 0 || us.XField > MaxThermalX:
+		return fmt.Errorf("field_current_pu %v is not in [0, %g]", us.XField, MaxThermalX)
+	case len(us.Times) > ringSize:
+		return fmt.Errorf("%d times, more than the %d a unit remembers", len(us.Times), ringSize)
+	}
+	for name, m := range us.Alarms {
+		if _, ok := alarm.ParseKind(name); !ok {
+			return fmt.Errorf("alarm %q is not an alarm", name)
+		}
+		if m.Level > alarm.Critical || !finite(m.Value) {
+			return fmt.Errorf("alarm %q: level %d, value %v", name, m.Level, m.Value)
+		}
+	}
+	if l := us.Latest; l != nil {
+		if l.Time.IsZero() || l.Time.Before(minTime) || l.Time.After(maxTime) {
+			return fmt.Errorf("latest sample time %s is outside what the service can represent", l.Time.UTC().Format(time.RFC3339Nano))
+		}
+		if l.Quality > QualityQuestionable {
+			return fmt.Errorf("latest sample quality %d", l.Quality)
+		}
+		if r, d := checkValues(cfg, plaus, &l.Sample); r != Accepted {
+			return fmt.Errorf("latest sample: %s: %s", r, d)
+		}
+	}
+	return nil
+}
+
+// maxRestoredHeatingS bounds a restored heating integral: ten times the
+// larger C50.13 constant, far beyond any alarm.
+const maxRestoredHeatingS = 10 * limits.ArmatureK
+
+func finite(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }

@@ -11,6 +11,8 @@ package ingest
 import (
 	"fmt"
 	"math"
+	"slices"
+	"strings"
 	"sync"
 	"sync/atomic"
 	"time"
@@ -18,6 +20,7 @@ import (
 	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/fleet"
+	"github.com/genvelope/genvelope/service/journal"
 	"github.com/genvelope/genvelope/service/report"
 )
 
@@ -62,12 +65,14 @@ const (
 	RejectFuture
 	RejectInvalidQuality
 	RejectMissingTime
+	RejectOutOfRangeTime // before the horizon, or outside what a time in Unix nanoseconds can hold
+	RejectImplausible    // outside what the machine can physically report (see fleet.Plausibility)
 	NumResults
 )
 
 var resultNames = [NumResults]string{
 	"accepted", "duplicate", "unknown_unit", "not_finite", "out_of_range",
-	"out_of_order", "future", "invalid_quality", "missing_time",
+	"out_of_order", "future", "invalid_quality", "missing_time", "out_of_range_time", "implausible",
 }
 
 // String returns the result's name as used in the metrics: "accepted",
@@ -82,24 +87,52 @@ func (r Result) String() string {
 // Options tune ingest. The zero value takes the defaults.
 type Options struct {
 	// MaxFuture is how far ahead of the server clock a sample may be
-	// stamped. Default 5 minutes.
+	// stamped (clock skew between the plant and the server). Default
+	// 5 s. A sample stamped ahead holds the unit's order only until the
+	// clock reaches it: a later sample stamped after the moment it
+	// arrived supersedes it, so one never locks out the real feed.
 	MaxFuture time.Duration
-	// MaxHold is the longest gap between two samples over which the
-	// thermal accumulators hold the earlier sample's current. A longer
-	// gap counts as MaxHold: what flowed beyond it is not known.
-	// Default 60 s.
+	// Horizon is how far behind the server clock a sample may be
+	// stamped. Default 7 days. Older history is evaluated with
+	// genvelope replay --backfill, not pushed into the live state.
+	Horizon time.Duration
+	// MaxHold is the longest step, in sample time, over which the
+	// thermal accumulators hold a sample's current: a longer gap counts
+	// as MaxHold (what flowed beyond it is not known), and the first
+	// sample after such a gap is suspect. Default 10 s.
 	MaxHold time.Duration
+	// RemovedGrace is how long the state of a unit removed by a reload
+	// is kept, so that a unit removed by mistake and added again comes
+	// back with its thermal memory. Default 1 hour.
+	RemovedGrace time.Duration
+	// Journal, when set, records every alarm transition and operator
+	// action.
+	Journal *journal.Journal
 	// Now is the wall clock, for stale telemetry and shelving; default
 	// time.Now.
 	Now func() time.Time
 }
 
+// MaxThermalX caps the current (pu of the winding's continuous rating)
+// a sample can hold into a thermal accumulator: one sample adds at most
+// (MaxThermalX² − 1) × MaxHold seconds of heating (80 s with the
+// defaults, against K = 37.5 s armature and 33.75 s field of IEEE
+// C50.13), and only once a following sample has confirmed it (see
+// fleet.Plausibility.StepMaxPU).
+const MaxThermalX = 3.0
+
 func (o Options) withDefaults() Options {
 	if o.MaxFuture <= 0 {
-		o.MaxFuture = 5 * time.Minute
+		o.MaxFuture = 5 * time.Second
+	}
+	if o.Horizon <= 0 {
+		o.Horizon = 7 * 24 * time.Hour
 	}
 	if o.MaxHold <= 0 {
-		o.MaxHold = 60 * time.Second
+		o.MaxHold = 10 * time.Second
+	}
+	if o.RemovedGrace <= 0 {
+		o.RemovedGrace = time.Hour
 	}
 	if o.Now == nil {
 		o.Now = time.Now
@@ -117,14 +150,24 @@ type Store struct {
 
 	// Alarm transitions by kind and level reached.
 	transitions [alarm.NumKinds][3]atomic.Uint64
+
+	replaceMu sync.Mutex             // one Replace at a time
+	removed   map[string]removedUnit // units a reload removed, kept for RemovedGrace
+}
+
+// removedUnit is the state of a unit a reload removed, and when.
+type removedUnit struct {
+	u  *Unit
+	at time.Time
 }
 
 // entry is a unit and the configuration it has in this snapshot: ingest
 // reads the configuration before it holds the unit's lock, so it must
 // not read u.cfg, which a reload rewrites.
 type entry struct {
-	u   *Unit
-	cfg *fleet.Unit
+	u     *Unit
+	cfg   *fleet.Unit
+	plaus *fleet.Plausibility // cfg's, with the defaults filled in
 }
 
 type snapshot struct {
@@ -136,7 +179,8 @@ type snapshot struct {
 // NewStore returns a store serving fl, which must have no errors.
 func NewStore(fl *fleet.Fleet, opts Options) *Store {
 	s := &Store{opts: opts.withDefaults(), hub: alarm.NewHub(), startNS: opts.withDefaults().Now().UnixNano()}
-	s.snap.Store(newSnapshot(fl, nil))
+	s.snap.Store(newSnapshot(fl, nil, nil))
+	s.removed = map[string]removedUnit{}
 	return s
 }
 
@@ -155,19 +199,23 @@ func (s *Store) Transitions() [alarm.NumKinds][3]uint64 {
 	return t
 }
 
-func newSnapshot(fl *fleet.Fleet, old *snapshot) *snapshot {
+func newSnapshot(fl *fleet.Fleet, old *snapshot, removed map[string]removedUnit) *snapshot {
 	sn := &snapshot{fleet: fl, byID: make(map[string]entry, len(fl.Units))}
 	for _, cfg := range fl.Units {
 		var u *Unit
 		if old != nil {
 			u = old.byID[cfg.ID].u
 		}
-		if u != nil {
-			u.reconfigure(cfg)
-		} else {
-			u = &Unit{cfg: cfg}
+		if u == nil {
+			u = removed[cfg.ID].u // removed by mistake and back: warm
 		}
-		sn.byID[cfg.ID] = entry{u, cfg}
+		plaus := cfg.Plausibility.Effective()
+		if u != nil {
+			u.reconfigure(cfg, plaus)
+		} else {
+			u = &Unit{cfg: cfg, plaus: plaus}
+		}
+		sn.byID[cfg.ID] = entry{u, cfg, &plaus}
 		sn.units = append(sn.units, u)
 	}
 	return sn
@@ -175,10 +223,76 @@ func newSnapshot(fl *fleet.Fleet, old *snapshot) *snapshot {
 
 // Replace makes fl the served fleet. A unit whose id stays keeps its
 // state (latest sample, thermal memory, timestamps) and is evaluated
-// again against its new parameters; new units start empty; units no
-// longer in the file are dropped.
+// again against its new parameters; new units start empty. A unit no
+// longer in the file has its active alarms ended, each with an event
+// (and a journal entry), and its state is kept for RemovedGrace: added
+// again within it, the unit comes back with its thermal memory. The
+// reload itself is journalled.
 func (s *Store) Replace(fl *fleet.Fleet) {
-	s.snap.Store(newSnapshot(fl, s.snap.Load()))
+	s.replaceMu.Lock()
+	defer s.replaceMu.Unlock()
+	now := s.opts.Now()
+	for id, r := range s.removed {
+		if now.Sub(r.at) > s.opts.RemovedGrace {
+			delete(s.removed, id)
+		}
+	}
+	old := s.snap.Load()
+	sn := newSnapshot(fl, old, s.removed)
+	s.snap.Store(sn)
+	var gone, back []string
+	for id := range sn.byID {
+		if _, ok := s.removed[id]; ok {
+			back = append(back, id)
+			delete(s.removed, id)
+		}
+	}
+	for _, cfg := range old.fleet.Units {
+		if _, ok := sn.byID[cfg.ID]; ok {
+			continue
+		}
+		u := old.byID[cfg.ID].u
+		gone = append(gone, cfg.ID)
+		s.removed[cfg.ID] = removedUnit{u, now}
+		s.endAlarms(u, now)
+	}
+	if j := s.opts.Journal; j != nil {
+		msg := fmt.Sprintf("Fleet file reloaded: %d units.", len(fl.Units))
+		if len(gone) > 0 {
+			msg += fmt.Sprintf(" Removed: %s (their state is kept for %s).", strings.Join(gone, ", "), s.opts.RemovedGrace)
+		}
+		if len(back) > 0 {
+			slices.Sort(back)
+			msg += fmt.Sprintf(" Back with their state: %s.", strings.Join(back, ", "))
+		}
+		_ = j.Append(journal.Entry{Time: now, Change: journal.ChangeReload, Message: msg})
+		_ = j.Sync()
+	}
+}
+
+// endAlarms ends the active alarms of unit u, which a reload removed,
+// each with an event.
+func (s *Store) endAlarms(u *Unit, now time.Time) {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	for k := range u.alarms {
+		m := &u.alarms[k]
+		if m.Level == alarm.Normal && m.ShelvedUntil == 0 {
+			*m = alarm.Machine{}
+			continue
+		}
+		prev := m.Level
+		*m = alarm.Machine{Since: now.UnixNano()}
+		u.raised[k] = ""
+		if prev == alarm.Normal {
+			continue
+		}
+		s.transitions[k][alarm.Normal].Add(1)
+		ev := u.event(alarm.Kind(k), alarm.LevelChanged, now, s.age(u, now))
+		ev.Prev, ev.Removed = prev, true
+		ev.Message = fmt.Sprintf("%s: removed from the fleet file by a reload; its %s alarm (%s) ends with it.", u.cfg.ID, alarm.Kind(k), prev)
+		s.publish(ev)
+	}
 }
 
 // Fleet returns the fleet being served.
@@ -222,7 +336,7 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 	if res != Accepted {
 		return res, detail
 	}
-	return u.accept(smp, now, s)
+	return u.accept(smp, smp.Time.UnixNano(), now, s)
 }
 
 // Check says what Accept would answer for smp now, without recording
@@ -251,23 +365,51 @@ func (s *Store) checkSample(e entry, now time.Time, smp *Sample) (Result, string
 	if smp.Time.IsZero() {
 		return RejectMissingTime, "the sample has no time"
 	}
+	// The time window is checked before any arithmetic with the time:
+	// outside what UnixNano can hold, a time would wrap.
+	if smp.Time.Before(minTime) || smp.Time.After(maxTime) {
+		return RejectOutOfRangeTime, fmt.Sprintf("time %s is outside what the service can represent (%s to %s)",
+			smp.Time.UTC().Format(time.RFC3339Nano), minTime.Format(time.RFC3339), maxTime.Format(time.RFC3339))
+	}
+	// Within the representable range: the rest is integer arithmetic.
+	t, nowNS := smp.Time.UnixNano(), now.UnixNano()
+	if t < satAdd(nowNS, -int64(s.opts.Horizon)) {
+		return RejectOutOfRangeTime, fmt.Sprintf("time %s is more than %s before the server clock (%s); evaluate older history with genvelope replay --backfill",
+			smp.Time.UTC().Format(time.RFC3339Nano), s.opts.Horizon, now.UTC().Format(time.RFC3339))
+	}
+	if t > satAdd(nowNS, int64(s.opts.MaxFuture)) {
+		return RejectFuture, fmt.Sprintf("time %s is ahead of the server clock %s by more than %s (check the sender's clock)",
+			smp.Time.UTC().Format(time.RFC3339Nano), now.UTC().Format(time.RFC3339Nano), s.opts.MaxFuture)
+	}
 	if smp.Quality == QualityInvalid {
 		return RejectInvalidQuality, "the sample's quality is INVALID"
 	}
-	if r, d := checkValues(e.cfg, smp); r != Accepted {
-		return r, d
-	}
-	if smp.Time.Sub(now) > s.opts.MaxFuture {
-		return RejectFuture, fmt.Sprintf("time %s is %s ahead of the server clock (at most %s)",
-			smp.Time.UTC().Format(time.RFC3339Nano), smp.Time.Sub(now).Round(time.Millisecond), s.opts.MaxFuture)
-	}
-	return Accepted, ""
+	return checkValues(e.cfg, e.plaus, smp)
 }
+
+// satAdd returns a + b, saturated at the ends of int64.
+func satAdd(a, b int64) int64 {
+	c := a + b
+	switch {
+	case b > 0 && c < a:
+		return math.MaxInt64
+	case b < 0 && c > a:
+		return math.MinInt64
+	}
+	return c
+}
+
+// minTime and maxTime bound the sample times the service can hold in
+// Unix nanoseconds (about 1677-09-21 to 2262-04-11), with a day to spare.
+var (
+	minTime = time.Unix(0, math.MinInt64).UTC().Add(24 * time.Hour)
+	maxTime = time.Unix(0, math.MaxInt64).UTC().Add(-24 * time.Hour)
+)
 
 // checkValues rejects values that are not finite or not physical for the
 // unit. The ranges are wide: they catch wrong scaling and broken links,
 // not abnormal operation, which is what the envelope is for.
-func checkValues(cfg *fleet.Unit, smp *Sample) (Result, string) {
+func checkValues(cfg *fleet.Unit, p *fleet.Plausibility, smp *Sample) (Result, string) {
 	notFinite := func(x float64) bool { return x-x != 0 } // NaN or ±Inf
 	if notFinite(smp.PMW) || notFinite(smp.QMvar) || notFinite(smp.VKV) ||
 		smp.HasFieldA && notFinite(smp.FieldA) || smp.HasFreq && notFinite(smp.FrequencyHz) ||
@@ -275,20 +417,65 @@ func checkValues(cfg *fleet.Unit, smp *Sample) (Result, string) {
 		return RejectNotFinite, notFiniteDetail(smp)
 	}
 	r := &cfg.Rating
-	sMax := 5 * r.MVA
+	// Values no machine can have; the narrower plausible ranges follow.
 	switch {
-	case math.Abs(smp.PMW) > sMax:
-		return RejectOutOfRange, fmt.Sprintf("p_mw %g is beyond ±%g MW (5 × rated MVA)", smp.PMW, sMax)
-	case math.Abs(smp.QMvar) > sMax:
-		return RejectOutOfRange, fmt.Sprintf("q_mvar %g is beyond ±%g Mvar (5 × rated MVA)", smp.QMvar, sMax)
-	case !(smp.VKV > 0.05*r.KV && smp.VKV <= 2*r.KV):
-		return RejectOutOfRange, fmt.Sprintf("v_kv %g is outside (%g, %g] kV (5 %% to 200 %% of rated)", smp.VKV, 0.05*r.KV, 2*r.KV)
-	case smp.HasFieldA && !(smp.FieldA >= 0 && smp.FieldA <= 10*cfg.Field.AirGapA):
-		return RejectOutOfRange, fmt.Sprintf("field_a %g is outside [0, %g] A (10 × IFag)", smp.FieldA, 10*cfg.Field.AirGapA)
+	case !(smp.VKV > 0):
+		return RejectOutOfRange, fmt.Sprintf("v_kv %g is not positive", smp.VKV)
+	case smp.HasFieldA && !(smp.FieldA >= 0):
+		return RejectOutOfRange, fmt.Sprintf("field_a %g is negative", smp.FieldA)
 	case smp.HasFreq && !(smp.FrequencyHz >= 0.5*r.FrequencyHz && smp.FrequencyHz <= 1.5*r.FrequencyHz):
 		return RejectOutOfRange, fmt.Sprintf("frequency_hz %g is outside [%g, %g] Hz (50 %% to 150 %% of rated)", smp.FrequencyHz, 0.5*r.FrequencyHz, 1.5*r.FrequencyHz)
 	}
+	return checkPlausible(cfg, p, smp)
+}
+
+// checkPlausible rejects values the machine cannot physically report
+// (cfg.Plausibility), naming the likely unit mix-up.
+func checkPlausible(cfg *fleet.Unit, p *fleet.Plausibility, smp *Sample) (Result, string) {
+	r := &cfg.Rating
+	vLo, vHi := p.VoltageMinPU*r.KV, p.VoltageMaxPU*r.KV
+	inV := func(x float64) bool { return x >= vLo && x <= vHi }
+	sMax := p.PowerMaxPU * r.MVA
+	switch {
+	case !inV(smp.VKV):
+		return RejectImplausible, fmt.Sprintf("v_kv %g is outside the plausible %g to %g kV (%g to %g pu of rated %g kV)%s",
+			smp.VKV, vLo, vHi, p.VoltageMinPU, p.VoltageMaxPU, r.KV,
+			hint(smp.VKV, inV, "per unit", "kV", "volts", "line-to-neutral kV"))
+	case math.Abs(smp.PMW) > sMax:
+		return RejectImplausible, fmt.Sprintf("p_mw %g is beyond the plausible ±%g MW (%g × rated MVA)%s", smp.PMW, sMax, p.PowerMaxPU,
+			hint(smp.PMW, func(x float64) bool { return math.Abs(x) <= sMax }, "", "MW", "kW", ""))
+	case math.Abs(smp.QMvar) > sMax:
+		return RejectImplausible, fmt.Sprintf("q_mvar %g is beyond the plausible ±%g Mvar (%g × rated MVA)%s", smp.QMvar, sMax, p.PowerMaxPU,
+			hint(smp.QMvar, func(x float64) bool { return math.Abs(x) <= sMax }, "", "Mvar", "kvar", ""))
+	case smp.HasFieldA && smp.FieldA > p.FieldMaxPU*cfg.Model.RatedFieldCurrent()*cfg.Field.AirGapA:
+		fMax := p.FieldMaxPU * cfg.Model.RatedFieldCurrent() * cfg.Field.AirGapA
+		return RejectImplausible, fmt.Sprintf("field_a %g is above the plausible %.0f A (%g × the rated field current)%s", smp.FieldA, fMax, p.FieldMaxPU,
+			hint(smp.FieldA, func(x float64) bool { return x <= fMax }, "", "A", "mA", ""))
+	}
+	// Armature current, pu of rated: S/V in pu. The voltage is already
+	// known to be plausible.
+	iPU := math.Sqrt(smp.PMW*smp.PMW+smp.QMvar*smp.QMvar) / r.MVA / (smp.VKV / r.KV) // P and Q are bounded above: no overflow
+	if iPU > p.CurrentMaxPU {
+		return RejectImplausible, fmt.Sprintf("armature current %.2f pu (from P %g MW, Q %g Mvar at %g kV) is above the plausible %g pu of rated; check that P, Q and V are in MW, Mvar and line-line kV",
+			iPU, smp.PMW, smp.QMvar, smp.VKV, p.CurrentMaxPU)
+	}
 	return Accepted, ""
+}
+
+// hint names the likely mix-up of an implausible value x, or returns "":
+// per unit (x × rated would do; only for a voltage, where asPU names it),
+// a thousand times too large (x / 1000 would do: sent in small, want
+// big), or line-to-neutral (x × √3 would do).
+func hint(x float64, ok func(float64) bool, asPU, want, small, lineNeutral string) string {
+	switch {
+	case asPU != "" && x > 0.3 && x < 2:
+		return fmt.Sprintf("; it looks like %s: send %s", asPU, want)
+	case small != "" && ok(x/1000) && !ok(x/10):
+		return fmt.Sprintf("; it looks like %s: send %s", small, want)
+	case lineNeutral != "" && ok(x*math.Sqrt(3)):
+		return fmt.Sprintf("; it looks like %s: send %s line to line", lineNeutral, want)
+	}
+	return ""
 }
 
 // notFiniteDetail names the first value of smp that is NaN or infinite.
@@ -319,12 +506,15 @@ type Unit struct {
 	mu sync.Mutex
 
 	cfg    *fleet.Unit
+	plaus  fleet.Plausibility // cfg's, with the defaults filled in
 	hint   limits.Hint
 	has    bool          // a sample has been accepted
 	latest Sample        // the latest accepted sample
 	eval   limits.Result // its evaluation (see complete)
 	pt     limits.Point  // its operating point, per unit
 	recvNS int64         // server time it was accepted, Unix ns
+	lastNS int64         // its time, Unix ns
+	stale  bool          // no sample for the stale-telemetry threshold (set by Sweep)
 
 	// Accepted timestamps, Unix ns, increasing; ring[(head-1) mod
 	// ringSize] is the latest, n of them are valid.
@@ -333,44 +523,115 @@ type Unit struct {
 	n    int
 
 	armature, field limits.Thermal
-	xArm, xField    float64 // per-unit currents of the latest sample, held until the next
-	accepted        uint64
+	xArm, xField    float64 // per-unit currents of the latest sample
+	// The currents held into the accumulators until the next sample:
+	// xArm and xField capped at MaxThermalX, or for a suspect sample
+	// the lower of it and the one before.
+	hArm, hField float64
+	thermNS      int64 // sample time up to which the accumulators have advanced, Unix ns
+	suspect      bool  // the latest sample is suspect (after a gap, or a jump)
+	suspects     uint64
+	heat         [heatSize]heatStep // the heating each recent sample held
+	accepted     uint64
 
 	alarms [alarm.NumKinds]alarm.Machine
+	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
+}
+
+// heatSize is how many recent samples' heating a unit remembers, so
+// that an operator can discard one sample's effect.
+const heatSize = 16
+
+// heatStep is the heating (s of the C50.13 integral) held from the
+// sample at time t.
+type heatStep struct {
+	t           int64
+	arm, field  float64
+	discardable bool
 }
 
 // accept records a checked sample: a duplicate when its timestamp is
 // one the unit has accepted, out of order when it is older than the
 // latest, else evaluated and stored.
-func (u *Unit) accept(smp *Sample, now time.Time, s *Store) (Result, string) {
-	maxHold := s.opts.MaxHold
-	t := smp.Time.UnixNano()
+func (u *Unit) accept(smp *Sample, t int64, now time.Time, s *Store) (Result, string) {
+	maxHold := int64(s.opts.MaxHold)
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	if r, d := u.orderLocked(t, smp); r != Accepted {
 		return r, d
 	}
-	if u.n > 0 {
-		last := u.ring[(u.head+ringSize-1)%ringSize]
-		dt := time.Duration(t - last)
-		if dt > maxHold {
-			dt = maxHold
+	if u.n > 0 && t <= u.ring[(u.head+ringSize-1)%ringSize] {
+		// Superseding a sample stamped ahead of the clock (orderLocked):
+		// forget the times after t.
+		for u.n > 0 && u.ring[(u.head+ringSize-1)%ringSize] > t {
+			u.head = (u.head + ringSize - 1) % ringSize
+			u.n--
 		}
-		u.armature.Advance(u.xArm, dt.Seconds())
-		u.field.Advance(u.xField, dt.Seconds())
+		u.thermNS = min(u.thermNS, t)
 	}
+	gap := !u.has || u.stale || t-u.lastNS > maxHold
+	if u.has && !u.stale && t > u.thermNS {
+		u.advance(min(t-u.thermNS, maxHold))
+	}
+	u.thermNS = max(u.thermNS, t)
 	u.ring[u.head] = t
 	u.head = (u.head + 1) % ringSize
 	if u.n < ringSize {
 		u.n++
 	}
+	prevArm, prevField := u.hArm, u.hField
+	prevXArm, prevXField := u.xArm, u.xField
+	if gap {
+		prevArm, prevField = 1, 1 // after a gap: neither heats nor cools until confirmed
+	}
 	u.latest = *smp
 	u.has = true
+	u.stale = false
 	u.recvNS = now.UnixNano()
+	u.lastNS = t
 	u.accepted++
 	u.evaluate()
-	u.stepAlarms(t, s)
+	// Hold the new currents, capped; a suspect sample (the first after
+	// a gap, or a jump beyond the plausible step) holds no more than
+	// the current before it until a following sample confirms it.
+	step := u.plaus.StepMaxPU
+	xa, xf := min(u.xArm, MaxThermalX), min(u.xField, MaxThermalX)
+	u.suspect = gap || math.Abs(u.xArm-prevXArm) > step || math.Abs(u.xField-prevXField) > step
+	if u.suspect {
+		u.suspects++
+		xa, xf = min(xa, prevArm), min(xf, prevField)
+	}
+	u.hArm, u.hField = nanTo1(xa), nanTo1(xf)
+	u.heat[u.accepted%heatSize] = heatStep{t: t, discardable: true}
+	mismatch := u.alarms[alarm.FieldCurrentMismatch].Level
+	u.stepAlarms(t, s, false)
+	if (mismatch == alarm.Normal) != (u.alarms[alarm.FieldCurrentMismatch].Level == alarm.Normal) {
+		u.evaluate() // the reading starts or stops counting with this very sample
+	}
 	return Accepted, ""
+}
+
+// nanTo1 returns x, or 1 (neither heating nor cooling) when x is NaN.
+func nanTo1(x float64) float64 {
+	if x != x {
+		return 1
+	}
+	return x
+}
+
+// advance runs the accumulators dt ns of sample time with the held
+// currents and books the heating to the latest sample. u.mu must be held.
+func (u *Unit) advance(dt int64) {
+	if dt <= 0 {
+		return
+	}
+	h := &u.heat[u.accepted%heatSize]
+	a0, f0 := u.armature.H, u.field.H
+	sec := float64(dt) / 1e9
+	u.armature.Advance(u.hArm, sec)
+	u.field.Advance(u.hField, sec)
+	h.arm += u.armature.H - a0
+	h.field += u.field.H - f0
 }
 
 // order says whether a sample at t is new (Accepted), a Duplicate or out
@@ -381,7 +642,10 @@ func (u *Unit) order(t int64, smp *Sample) (Result, string) {
 	return u.orderLocked(t, smp)
 }
 
-// orderLocked is order with u.mu held.
+// orderLocked is order with u.mu held. A sample older than the latest
+// is new when the latest was stamped ahead of the clock when it arrived
+// and this one after that moment: the future sample holds the order only
+// up to its arrival, and this one supersedes it.
 func (u *Unit) orderLocked(t int64, smp *Sample) (Result, string) {
 	if u.n == 0 {
 		return Accepted, ""
@@ -393,7 +657,16 @@ func (u *Unit) orderLocked(t int64, smp *Sample) (Result, string) {
 	if u.seen(t) {
 		return Duplicate, ""
 	}
-	return RejectOutOfOrder, fmt.Sprintf("time %s is older than the unit's latest accepted sample, %s",
+	if u.has && u.lastNS > u.recvNS && t > u.recvNS {
+		return Accepted, ""
+	}
+	return RejectOutOfOrder, u.outOfOrder(smp, last)
+}
+
+// outOfOrder says why a sample at or before the unit's latest time last
+// was refused. u.mu must be held.
+func (u *Unit) outOfOrder(smp *Sample, last int64) string {
+	return fmt.Sprintf("time %s is older than the unit's latest accepted sample, %s: a unit's samples must come in time order (to evaluate recorded history, use genvelope replay --backfill)",
 		smp.Time.UTC().Format(time.RFC3339Nano), time.Unix(0, last).UTC().Format(time.RFC3339Nano))
 }
 
@@ -417,12 +690,15 @@ func (u *Unit) seen(t int64) bool {
 func (u *Unit) evaluate() {
 	cfg := u.cfg
 	s := &u.latest
-	// A measured field current on a QUESTIONABLE sample, or one far from
-	// the model (beyond the mismatch alarm's warning threshold), is
-	// doubted: the field margin takes the larger of it and the model's.
+	// A measured field current on a QUESTIONABLE sample, one far from the
+	// model (beyond the mismatch alarm's warning threshold), or one read
+	// while the field-current mismatch alarm is active (a frozen or
+	// drifting sensor) is doubted: the field margin, and the heating of
+	// the winding, take the larger of it and the model's (envelope.md,
+	// "Margins"), as neither can be trusted alone.
 	pt := report.Point(cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA,
 		s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
-	pt.IfdDoubtful = s.Quality == QualityQuestionable
+	pt.IfdDoubtful = s.Quality == QualityQuestionable || u.alarms[alarm.FieldCurrentMismatch].Level != alarm.Normal
 	if set := &cfg.Alarms[alarm.FieldCurrentMismatch]; !set.Disabled {
 		pt.IfdMismatch = set.Warning
 	}
@@ -444,19 +720,43 @@ func (u *Unit) complete() {
 
 // reconfigure gives the unit new parameters after a reload and
 // evaluates its latest sample against them.
-func (u *Unit) reconfigure(cfg *fleet.Unit) {
+func (u *Unit) reconfigure(cfg *fleet.Unit, plaus fleet.Plausibility) {
 	u.mu.Lock()
 	defer u.mu.Unlock()
-	u.cfg = cfg
+	u.cfg, u.plaus = cfg, plaus
 	u.hint = limits.Hint{}
 	if u.has {
 		u.evaluate()
 	}
 }
 
+// DataState says whether a unit's values can be trusted as present.
+type DataState uint8
+
+const (
+	NoData    DataState = iota // the unit has never reported (since the service started, or in the state file)
+	DataFresh                  // samples are arriving
+	DataStale                  // no sample for the stale-telemetry warning threshold: the values shown are old
+	NumDataStates
+)
+
+// String returns "no_data", "fresh" or "stale" (the metrics' state label).
+func (d DataState) String() string {
+	switch d {
+	case NoData:
+		return "no_data"
+	case DataFresh:
+		return "fresh"
+	case DataStale:
+		return "stale"
+	}
+	return fmt.Sprintf("DataState(%d)", uint8(d))
+}
+
 // View is a consistent copy of one unit's state.
 type View struct {
 	Config    *fleet.Unit
+	Data      DataState // no data, fresh or stale
 	HasSample bool
 	Latest    Sample
 	Eval      limits.Result
@@ -467,7 +767,12 @@ type View struct {
 	Field     limits.Thermal
 	XArmature float64 // per-unit currents of the latest sample against the ratings at the present coolant
 	XField    float64
-	Alarms    [alarm.NumKinds]alarm.Machine
+	// ThermalUnknown: the unit is stale, so its thermal state is not
+	// known (shown as "unknown (stale)", never as normal).
+	ThermalUnknown bool
+	Suspect        bool   // the latest sample is suspect (first after a gap, or a jump): its current is not yet held
+	Suspects       uint64 // suspect samples since the service started
+	Alarms         [alarm.NumKinds]alarm.Machine
 }
 
 // View returns a consistent copy of the unit's state.
@@ -476,7 +781,15 @@ func (u *Unit) View() View {
 	defer u.mu.Unlock()
 	u.complete()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
-		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms}
+		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects}
+	switch {
+	case !u.has:
+		v.Data = NoData
+	case u.stale:
+		v.Data, v.ThermalUnknown = DataStale, true
+	default:
+		v.Data = DataFresh
+	}
 	if u.has {
 		v.Latest, v.Eval, v.Point, v.Received = u.latest, u.eval, u.pt, time.Unix(0, u.recvNS)
 	}

@@ -48,6 +48,7 @@ type Collector struct {
 	qLimit, accepted, samples, units                       *family
 	alarmLevel, alarmShelved, alarmAcked, transitions      *family
 	rotorFrequency, rotorDamping                           *family
+	dataState, suspects                                    *family
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -71,6 +72,8 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	c.units = mk("fleet_units", "Units in the fleet being served.", false)
 	c.info = d("unit_info", "Configured generator (value 1), with its display name and rotor kind.", "name", "rotor")
 	c.accepted = mk("unit_samples_accepted_total", "Samples accepted for the unit since the service started.", true, "unit", "site")
+	c.dataState = d("unit_data_state", "1 for the unit's data state, 0 for the others: no_data (never reported), fresh, or stale (no sample for the stale-telemetry warning threshold: its values and thermal state are not known, never normal).", "state")
+	c.suspects = mk("unit_suspect_samples_total", "Samples flagged suspect (the first after a gap, or a jump of current no machine makes): their current is held into the thermal accumulators only once a following sample confirms it.", true, "unit", "site")
 	c.thermal = d("thermal_capacity_used_ratio", "Short-time thermal capability used, H/K (IEEE C50.13 law); 1 is the limit.", "winding")
 	c.alarmLevel = d("alarm_level", "Alarm level of each limit of the unit: 0 normal, 1 warning, 2 critical (after the fleet file's thresholds, deadband and delays).", "limit")
 	c.alarmShelved = d("alarm_shelved", "1 while an operator has shelved the unit's alarm on this limit.", "limit")
@@ -138,6 +141,10 @@ func (c *Collector) series(out sink) {
 		id, site := cfg.ID, cfg.Site
 		out.add(c.info, 1, id, site, cfg.DisplayName(), cfg.Machine.Rotor.String())
 		out.add(c.accepted, float64(v.Accepted), id, site)
+		for st := ingest.NoData; st < ingest.NumDataStates; st++ {
+			out.add(c.dataState, boolFloat(v.Data == st), id, site, st.String())
+		}
+		out.add(c.suspects, float64(v.Suspects), id, site)
 		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
 		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
 		for k := range v.Alarms {

@@ -114,7 +114,7 @@ func (rd *Reader) header(head []string) string {
 		h = strings.TrimSpace(h)
 		c := -1
 		for k, n := range columnNames {
-			if h == n {
+			if strings.EqualFold(h, n) { // "P_MW" and "Time" are meant as p_mw and time
 				c = k
 			}
 		}
@@ -134,6 +134,9 @@ func (rd *Reader) header(head []string) string {
 		}
 	}
 	var msgs []string
+	if len(head) == 1 && strings.Contains(head[0], ";") {
+		return "the header is one field with semicolons in it: this file separates its fields with ';' (as some spreadsheets write for locales with a decimal comma); save it as comma-separated values with a '.' decimal point"
+	}
 	if len(unknown) > 0 {
 		msgs = append(msgs, fmt.Sprintf("unknown column(s) %s; the columns are %s", strings.Join(unknown, ", "), strings.Join(Columns(), ", ")))
 	}
@@ -255,7 +258,7 @@ func (rd *Reader) sample(rec []string) (*pb.Sample, string) {
 		}
 	}
 	if v, ok := cell(colQuality); ok {
-		switch v {
+		switch strings.ToLower(v) {
 		case "good":
 			s.Quality = pb.Quality_QUALITY_GOOD
 		case "questionable":

@@ -17,7 +17,9 @@ func TestHeaderErrors(t *testing.T) {
 		want []string // parts of the message
 	}{
 		{"empty", "", 0, []string{"empty", "header"}},
-		{"unknown columns", "time,unit,p_mw,q_mvar,v_kv,speed_rpm,Field_A\n", 1, []string{`unknown column(s) "speed_rpm", "Field_A"`, "time, unit, p_mw"}},
+		{"unknown columns", "time,unit,p_mw,q_mvar,v_kv,speed_rpm,Field-A\n", 1, []string{`unknown column(s) "speed_rpm", "Field-A"`, "time, unit, p_mw"}},
+		{"same name in another case twice", "Time,unit,P_MW,q_mvar,v_kv,p_mw\n", 1, []string{`column(s) "p_mw" given more than once`}},
+		{"semicolons", "time;unit;p_mw;q_mvar;v_kv\n", 1, []string{"semicolons", "comma-separated"}},
 		{"missing required", "time,unit,p_mw,q_mvar\n", 1, []string{"missing required column(s) v_kv"}},
 		{"missing several", "unit,field_a\n", 1, []string{"missing required column(s) time, p_mw, q_mvar, v_kv"}},
 		{"twice", "time,unit,p_mw,q_mvar,v_kv,p_mw\n", 1, []string{`column(s) "p_mw" given more than once`}},
@@ -45,6 +47,54 @@ func TestHeaderErrors(t *testing.T) {
 // Columns in any order, a byte-order mark and spaces around names,
 // optional cells empty or not, every kind of bad row with its line, and
 // a quoted cell spanning two lines that shifts the lines after it.
+// Header names are matched without regard to case.
+func TestHeaderAnyCase(t *testing.T) {
+	rd, err := NewReader("f.csv", strings.NewReader("TIME,Unit,P_MW,Q_Mvar,V_kV,Quality\n2026-03-01T12:00:00Z,harrowmere-1,300,120,20.4,GOOD\n"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	row, ok, err := rd.Read()
+	if err != nil || !ok || row.Sample.PMw != 300 || row.Sample.VKv != 20.4 || row.Sample.Quality != pb.Quality_QUALITY_GOOD {
+		t.Errorf("row %v %v %v", row, ok, err)
+	}
+}
+
+// FuzzReader: any bytes give a *FileError or rows; every row read is
+// counted once, good or bad, and a good row's sample has a valid time.
+func FuzzReader(f *testing.F) {
+	f.Add([]byte("time,unit,p_mw,q_mvar,v_kv\n2026-03-01T12:00:00Z,harrowmere-1,300,120,20.4\n"))
+	f.Add([]byte("time,unit,p_mw,q_mvar,v_kv\n1000-03-01T12:00:00Z,harrowmere-1,300,120,20.4\n")) // the year-1000 typo
+	f.Add([]byte("time;unit;p_mw;q_mvar;v_kv\n2026-03-01T12:00:00Z;harrowmere-1;300,5;120;20,4\n"))
+	f.Add([]byte("\ufeffTIME,unit,P_MW,q_mvar,v_kv,field_a,quality\n\"2026-03-01T12:00:00Z\",\"a\nb\",1e308,-1e308,NaN,,bad\n,,,\n"))
+	f.Fuzz(func(t *testing.T, data []byte) {
+		rd, err := NewReader("f.csv", strings.NewReader(string(data)))
+		if err != nil {
+			var fe *FileError
+			if !errors.As(err, &fe) {
+				t.Fatalf("header error %v is not a *FileError", err)
+			}
+			return
+		}
+		good := 0
+		for range 10000 {
+			row, ok, err := rd.Read()
+			if err != nil {
+				t.Fatalf("read: %v", err)
+			}
+			if !ok {
+				break
+			}
+			good++
+			if err := row.Sample.Time.CheckValid(); err != nil || row.Line < 2 {
+				t.Fatalf("good row at line %d with time %v: %v", row.Line, row.Sample.Time, err)
+			}
+		}
+		if good+len(rd.Bad()) != rd.Rows() {
+			t.Fatalf("%d good + %d bad != %d rows", good, len(rd.Bad()), rd.Rows())
+		}
+	})
+}
+
 func TestReadRows(t *testing.T) {
 	file := "\ufeff quality , v_kv,unit,time,q_mvar,p_mw,coolant,field_a,frequency_hz\n" + // 1
 		"good,20.4,harrowmere-1,2026-03-01T12:00:00Z,120,300,310,2950,50.01\n" + // 2

@@ -112,6 +112,12 @@ func (s *Summary) Write(w io.Writer) {
 			parts[i] = fmt.Sprintf("%d %s", by[r], r)
 		}
 		fmt.Fprintf(w, "rejected by the server (%s):\n", strings.Join(parts, ", "))
+		if by["out_of_order"] > 0 {
+			fmt.Fprintln(w, "  out_of_order: a row older than the newest sample the service already has for its unit (a live feed is ahead of this file, the file is not in time order for that unit, or it was replayed before); to evaluate recorded history without touching the live state, use genvelope replay --backfill")
+		}
+		if by["out_of_range_time"] > 0 {
+			fmt.Fprintln(w, "  out_of_range_time: a row before the service's horizon (default 7 days) or outside 1678-2262; use genvelope replay --backfill for old history, and check the year")
+		}
 		for _, r := range s.Rejected {
 			fmt.Fprintf(w, "  %s:%d: unit %q: %s: %s\n", s.File, r.Line, r.Unit, r.Reason, r.Detail)
 		}

@@ -202,6 +202,10 @@ func actionError(err error) error {
 		return status.Error(codes.NotFound, err.Error())
 	case errors.Is(err, ingest.ErrNotActive):
 		return status.Error(codes.FailedPrecondition, err.Error())
+	case errors.Is(err, ingest.ErrUnknownSample):
+		return status.Error(codes.NotFound, err.Error())
+	case errors.Is(err, ingest.ErrNoOperator):
+		return badRequest("operator", "an operator name is required: who acts is recorded in the journal")
 	case errors.Is(err, ingest.ErrUnavailable):
 		return status.Error(codes.Unavailable, err.Error())
 	}
@@ -217,7 +221,7 @@ func eventProto(e *alarm.Event) *pb.AlarmEvent {
 		UnitId: e.Unit, Site: e.Site, Limit: e.Kind.String(), Change: pb.AlarmChange(e.Change) + pb.AlarmChange_ALARM_CHANGE_LEVEL,
 		Level: levelProto(e.Level), PreviousLevel: levelProto(e.Prev), Time: timestamppb.New(e.Time),
 		Value: e.Value, Threshold: e.Threshold, Acknowledged: e.Acknowledged, Message: e.Message,
-		Actual: e.Actual, LimitValue: e.LimitAt, Units: e.Units,
+		Actual: e.Actual, LimitValue: e.LimitAt, Units: e.Units, Operator: e.Operator,
 	}
 	if !e.Shelved.IsZero() {
 		out.ShelvedUntil = timestamppb.New(e.Shelved)

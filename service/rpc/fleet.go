@@ -58,6 +58,7 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 		resp.Evaluation = EvaluationProto(ev)
 		resp.Received = timestamppb.New(v.Received)
 	}
+	resp.DataState, resp.ThermalUnknown, resp.LatestSuspect = v.Data.String(), v.ThermalUnknown, v.Suspect
 	resp.ArmatureThermalUsedRatio = v.Armature.Used(limits.ArmatureK)
 	resp.FieldThermalUsedRatio = v.Field.Used(limits.FieldK)
 	if t, ok := v.Armature.TimeLeft(v.XArmature, limits.ArmatureK); ok {

@@ -176,7 +176,7 @@ func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 
 // judge converts s into smp and returns what check says of it.
 func (t *Telemetry) judge(now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
-	res, detail := fromProto(s, smp)
+	res, detail := FromProto(s, smp)
 	switch {
 	case res == ingest.Accepted:
 		return check(now, smp)
@@ -344,12 +344,12 @@ func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.Pus
 	}
 }
 
-// fromProto converts s into smp, or returns the reason it cannot be.
-func fromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
+// FromProto converts s into smp, or returns the reason it cannot be.
+func FromProto(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
 	smp.UnitID = s.UnitId
 	if s.Time != nil {
 		if err := s.Time.CheckValid(); err != nil {
-			return ingest.RejectOutOfRange, fmt.Sprintf("time: %v", err)
+			return ingest.RejectOutOfRangeTime, fmt.Sprintf("time (%d s, %d ns since 1970) is outside what a time can hold: %v", s.Time.Seconds, s.Time.Nanos, err)
 		}
 		smp.Time = s.Time.AsTime()
 	}
@@ -392,6 +392,10 @@ func reasonProto(r ingest.Result) pb.RejectReason {
 		return pb.RejectReason_REJECT_REASON_INVALID_QUALITY
 	case ingest.RejectMissingTime:
 		return pb.RejectReason_REJECT_REASON_MISSING_TIME
+	case ingest.RejectOutOfRangeTime:
+		return pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME
+	case ingest.RejectImplausible:
+		return pb.RejectReason_REJECT_REASON_IMPLAUSIBLE
 	}
 	return pb.RejectReason_REJECT_REASON_UNSPECIFIED
 }

@@ -30,6 +30,7 @@ import (
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/service/fleet"
 	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/journal"
 	"github.com/genvelope/genvelope/service/metrics"
 	"github.com/genvelope/genvelope/service/rpc"
 	"github.com/genvelope/genvelope/service/state"
@@ -51,6 +52,11 @@ type Config struct {
 	// (at most 5 s) and at stop. "" keeps no state.
 	StatePath     string
 	StateInterval time.Duration
+
+	// JournalPath is the alarm journal (every alarm transition and
+	// operator action, rotated at JournalMaxBytes). "" keeps none.
+	JournalPath     string
+	JournalMaxBytes int64
 
 	// ShutdownGrace bounds how long a stop waits for in-flight requests
 	// before closing what is left. Default 10 s.
@@ -97,6 +103,8 @@ type Server struct {
 	grpcLn, httpLn net.Listener
 	draining       chan struct{}
 	ready          atomic.Bool
+	journal        *journal.Journal // nil when none is kept
+	saver          *state.Saver     // nil when no state is kept
 
 	reloadMu      sync.Mutex // one reload at a time
 	reloadSuccess *prometheus.CounterVec
@@ -119,6 +127,12 @@ func New(cfg Config) (*Server, error) {
 		return nil, err
 	}
 	s := &Server{cfg: cfg, log: cfg.Logger, draining: make(chan struct{})}
+	if cfg.JournalPath != "" {
+		if s.journal, err = journal.Open(cfg.JournalPath, journal.Options{MaxBytes: cfg.JournalMaxBytes, Logger: s.log}); err != nil {
+			return nil, err
+		}
+		cfg.Ingest.Journal = s.journal
+	}
 	if cfg.Log != nil {
 		cfg.StatePath, s.cfg.StatePath = "", ""
 		fl = cfg.Log.Select(fl)
@@ -134,8 +148,10 @@ func New(cfg Config) (*Server, error) {
 	}
 	if cfg.StatePath != "" {
 		if err := state.Load(cfg.StatePath, s.store, s.log, time.Now()); err != nil {
+			s.closeJournal()
 			return nil, err
 		}
+		s.saver = state.NewSaver(cfg.StatePath, s.store, s.log)
 	}
 
 	reg := prometheus.NewRegistry()
@@ -158,6 +174,35 @@ func New(cfg Config) (*Server, error) {
 	s.reloadOK.Set(1)
 	s.reloadTime.SetToCurrentTime()
 	reg.MustRegister(s.reloadSuccess, s.reloadOK, s.reloadTime)
+	reg.MustRegister(prometheus.NewCounterFunc(prometheus.CounterOpts{
+		Namespace: metrics.Namespace, Name: "state_save_failures_total",
+		Help: "State file saves that failed (thermal memory and alarm state would be lost at a restart).",
+	}, func() float64 {
+		if s.saver == nil {
+			return 0
+		}
+		total, _ := s.saver.Failures()
+		return float64(total)
+	}))
+	reg.MustRegister(prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+		Namespace: metrics.Namespace, Name: "state_save_failures_in_a_row",
+		Help: fmt.Sprintf("State file saves that failed since the last success; /readyz reports degraded from %d.", state.DegradedAfter),
+	}, func() float64 {
+		if s.saver == nil {
+			return 0
+		}
+		_, n := s.saver.Failures()
+		return float64(n)
+	}))
+	reg.MustRegister(prometheus.NewCounterFunc(prometheus.CounterOpts{
+		Namespace: metrics.Namespace, Name: "journal_write_failures_total",
+		Help: "Alarm journal entries that could not be written.",
+	}, func() float64 {
+		if s.journal == nil {
+			return 0
+		}
+		return float64(s.journal.Failed())
+	}))
 	if cfg.Log != nil {
 		reg.MustRegister(cfg.Log.Collectors()...)
 	}
@@ -166,6 +211,7 @@ func New(cfg Config) (*Server, error) {
 	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining, Log: tlog}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
 	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining, Actions: actions}))
+	pb.RegisterJournalServiceServer(s.grpc, rpc.NewJournal(s.store, s.journal, nil))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)
 	reflection.Register(s.grpc)
@@ -175,7 +221,7 @@ func New(cfg Config) (*Server, error) {
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.HandleFunc("GET /readyz", s.readyz)
 	mux.HandleFunc("POST /-/reload", s.reloadHandler)
-	s.web = web.New(s.store, web.Options{Logger: s.log, Actions: actions})
+	s.web = web.New(s.store, web.Options{Logger: s.log, Actions: actions, Journal: s.journal})
 	mux.Handle("/", s.web) // the operator pages: /, /units/{id} and their endpoints
 	if cfg.Pprof {
 		mux.HandleFunc("/debug/pprof/", pprof.Index)
@@ -187,14 +233,27 @@ func New(cfg Config) (*Server, error) {
 	s.http = &http.Server{Handler: mux, ReadHeaderTimeout: 10 * time.Second}
 
 	if s.grpcLn, err = net.Listen("tcp", cfg.GRPCListen); err != nil {
+		s.closeJournal()
 		return nil, fmt.Errorf("grpc listen on %s: %w", cfg.GRPCListen, err)
 	}
 	if s.httpLn, err = net.Listen("tcp", cfg.HTTPListen); err != nil {
 		s.grpcLn.Close()
+		s.closeJournal()
 		return nil, fmt.Errorf("http listen on %s: %w", cfg.HTTPListen, err)
 	}
 	return s, nil
 }
+
+func (s *Server) closeJournal() {
+	if s.journal != nil {
+		if err := s.journal.Close(); err != nil {
+			s.log.Error("journal not closed cleanly", "err", err)
+		}
+	}
+}
+
+// Journal returns the alarm journal, or nil when none is kept.
+func (s *Server) Journal() *journal.Journal { return s.journal }
 
 // GRPCAddr and HTTPAddr return the bound addresses (useful with port 0).
 func (s *Server) GRPCAddr() string { return s.grpcLn.Addr().String() }
@@ -249,11 +308,18 @@ func (s *Server) Run(ctx context.Context) error {
 		defer bg.Done()
 		s.web.Run(bgCtx) // the charts' operating-point trails
 	}()
-	if s.cfg.StatePath != "" {
+	if s.saver != nil {
 		bg.Add(1)
 		go func() {
 			defer bg.Done()
-			state.Keep(bgCtx, s.cfg.StatePath, s.store, s.cfg.StateInterval, s.log)
+			s.saver.Run(bgCtx, s.cfg.StateInterval)
+		}()
+	}
+	if s.journal != nil {
+		bg.Add(1)
+		go func() {
+			defer bg.Done()
+			s.journal.Run(bgCtx)
 		}()
 	}
 
@@ -280,13 +346,14 @@ func (s *Server) Run(ctx context.Context) error {
 	}
 	stopLog()
 	<-logDone
-	if s.cfg.StatePath != "" {
-		if err := state.Write(s.cfg.StatePath, s.store.Snapshot(time.Now())); err != nil {
+	if s.saver != nil {
+		if err := s.saver.Save(time.Now()); err != nil {
 			s.log.Error("final state not saved", "err", err)
 		} else {
 			s.log.Info("state saved", "state", s.cfg.StatePath)
 		}
 	}
+	s.closeJournal()
 	hctx, cancel := context.WithTimeout(context.Background(), s.cfg.ShutdownGrace)
 	defer cancel()
 	if err := s.http.Shutdown(hctx); err != nil {
@@ -347,6 +414,12 @@ func (s *Server) readyz(w http.ResponseWriter, r *http.Request) {
 	if !s.ready.Load() {
 		http.Error(w, "not ready", http.StatusServiceUnavailable)
 		return
+	}
+	if s.saver != nil {
+		if msg, degraded := s.saver.Degraded(); degraded {
+			http.Error(w, "degraded: "+msg, http.StatusServiceUnavailable)
+			return
+		}
 	}
 	if s.cfg.Log != nil {
 		ok, why := s.cfg.Log.Ready()

@@ -68,7 +68,7 @@ func TestStateSurvivesOrderlyRestart(t *testing.T) {
 	if _, err := ac.AcknowledgeAlarm(ctx, &pb.AcknowledgeAlarmRequest{UnitId: unit, Limit: "prime_mover", Operator: "tester"}); err != nil {
 		t.Fatalf("AcknowledgeAlarm: %v", err)
 	}
-	sh, err := ac.ShelveAlarm(ctx, &pb.ShelveAlarmRequest{UnitId: unit, Limit: "field_thermal", Duration: durationpb.New(time.Hour)})
+	sh, err := ac.ShelveAlarm(ctx, &pb.ShelveAlarmRequest{UnitId: unit, Limit: "field_thermal", Duration: durationpb.New(time.Hour), Operator: "tester"})
 	if err != nil {
 		t.Fatalf("ShelveAlarm: %v", err)
 	}

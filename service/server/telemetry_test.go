@@ -10,6 +10,7 @@ import (
 	"google.golang.org/genproto/googleapis/rpc/errdetails"
 	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
+	"google.golang.org/protobuf/types/known/timestamppb"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/service/ingest"
@@ -18,13 +19,15 @@ import (
 
 // resultOf maps each reject reason of the API to the store's result.
 var resultOf = map[pb.RejectReason]ingest.Result{
-	pb.RejectReason_REJECT_REASON_UNKNOWN_UNIT:    ingest.RejectUnknownUnit,
-	pb.RejectReason_REJECT_REASON_NOT_FINITE:      ingest.RejectNotFinite,
-	pb.RejectReason_REJECT_REASON_OUT_OF_RANGE:    ingest.RejectOutOfRange,
-	pb.RejectReason_REJECT_REASON_OUT_OF_ORDER:    ingest.RejectOutOfOrder,
-	pb.RejectReason_REJECT_REASON_FUTURE:          ingest.RejectFuture,
-	pb.RejectReason_REJECT_REASON_INVALID_QUALITY: ingest.RejectInvalidQuality,
-	pb.RejectReason_REJECT_REASON_MISSING_TIME:    ingest.RejectMissingTime,
+	pb.RejectReason_REJECT_REASON_UNKNOWN_UNIT:      ingest.RejectUnknownUnit,
+	pb.RejectReason_REJECT_REASON_NOT_FINITE:        ingest.RejectNotFinite,
+	pb.RejectReason_REJECT_REASON_OUT_OF_RANGE:      ingest.RejectOutOfRange,
+	pb.RejectReason_REJECT_REASON_OUT_OF_ORDER:      ingest.RejectOutOfOrder,
+	pb.RejectReason_REJECT_REASON_FUTURE:            ingest.RejectFuture,
+	pb.RejectReason_REJECT_REASON_INVALID_QUALITY:   ingest.RejectInvalidQuality,
+	pb.RejectReason_REJECT_REASON_MISSING_TIME:      ingest.RejectMissingTime,
+	pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME: ingest.RejectOutOfRangeTime,
+	pb.RejectReason_REJECT_REASON_IMPLAUSIBLE:       ingest.RejectImplausible,
 }
 
 // Every reject reason over real gRPC, each in a batch with a good sample
@@ -62,11 +65,24 @@ func TestPushRejectReasons(t *testing.T) {
 		{"+Inf frequency", with(func(s *pb.Sample) { s.FrequencyHz = f64(math.Inf(1)) }), false, pb.RejectReason_REJECT_REASON_NOT_FINITE, "frequency_hz"},
 		{"NaN coolant", with(func(s *pb.Sample) { s.Coolant = f64(math.NaN()) }), true, pb.RejectReason_REJECT_REASON_NOT_FINITE, "coolant"},
 		{"zero voltage", with(func(s *pb.Sample) { s.VKv = 0 }), false, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE, "v_kv"},
-		{"absurd P", with(func(s *pb.Sample) { s.PMw = 1e9 }), true, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE, "p_mw"},
-		{"absurd Q", with(func(s *pb.Sample) { s.QMvar = -1e5 }), false, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE, "q_mvar"},
+		{"absurd P", with(func(s *pb.Sample) { s.PMw = 1e9 }), true, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "p_mw"},
+		{"absurd Q", with(func(s *pb.Sample) { s.QMvar = -1e5 }), false, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "q_mvar"},
 		{"5 Hz", with(func(s *pb.Sample) { s.FrequencyHz = f64(5) }), true, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE, "frequency_hz"},
 		{"negative field current", with(func(s *pb.Sample) { s.FieldA = f64(-1) }), false, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE, "field_a"},
-		{"invalid timestamp", with(func(s *pb.Sample) { s.Time.Nanos = 2e9 }), true, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE, "time"},
+		{"invalid timestamp", with(func(s *pb.Sample) { s.Time.Nanos = 2e9 }), true, pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME, "time"},
+		// A one-character typo in the year: before 1678 a time overflows
+		// Unix nanoseconds; rejected before any arithmetic, time named.
+		{"year 1000", with(func(s *pb.Sample) { s.Time = timestamppb.New(time.Date(1000, 3, 1, 12, 0, 0, 0, time.UTC)) }), false,
+			pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME, "1000-03-01T12:00:00Z"},
+		{"before the horizon", with(func(s *pb.Sample) { s.Time = timestamppb.New(time.Now().Add(-8 * 24 * time.Hour)) }), true,
+			pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME, "--backfill"},
+		// Plausibility (fleet.DefaultPlausibility), each naming the mix-up.
+		{"voltage in pu", with(func(s *pb.Sample) { s.VKv = 1.01 }), false, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "it looks like per unit: send kV"},
+		{"voltage in V", with(func(s *pb.Sample) { s.VKv = 20200 }), true, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "it looks like volts: send kV"},
+		{"power in kW", with(func(s *pb.Sample) { s.PMw = 240000 }), false, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "it looks like kW: send MW"},
+		{"reactive power in kvar", with(func(s *pb.Sample) { s.QMvar = 50000 }), true, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "it looks like kvar: send Mvar"},
+		{"field current in mA", with(func(s *pb.Sample) { s.FieldA = f64(2.4e6) }), false, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "it looks like mA: send A"},
+		{"armature current", with(func(s *pb.Sample) { s.PMw, s.QMvar, s.VKv = 500, 400, 10.5 }), true, pb.RejectReason_REJECT_REASON_IMPLAUSIBLE, "armature current"},
 		{"older than the last batch", func(g time.Time) *pb.Sample {
 			return sample(unit, g.Add(-15*time.Second), 240, 50, 20.2) // 5 s before the previous case's good sample
 		}, true, pb.RejectReason_REJECT_REASON_OUT_OF_ORDER, "older"},

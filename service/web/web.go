@@ -38,6 +38,7 @@ import (
 
 	"github.com/genvelope/genvelope/service/fleet"
 	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/journal"
 )
 
 //go:embed templates/*.html
@@ -61,6 +62,7 @@ type Options struct {
 	// RefreshEvery is how often the pages ask for fresh numbers; default
 	// 2 s.
 	RefreshEvery time.Duration
+	Journal      *journal.Journal // the alarm journal for /journal; nil when none is kept
 	// Actions apply acknowledgements and shelves; default the store
 	// itself (a replicated service passes its log).
 	Actions ingest.Actions
@@ -135,6 +137,7 @@ func New(store *ingest.Store, opts Options) *UI {
 	mux.HandleFunc("GET /units/{id}", ui.unitPage)
 	mux.HandleFunc("GET /units/{id}/live", ui.unitLive)
 	mux.HandleFunc("POST /units/{id}/alarms/{kind}/{action}", ui.alarmAction)
+	mux.HandleFunc("GET /journal", ui.journalPage)
 	mux.HandleFunc("/", ui.notFound)
 	ui.handler = http.NewCrossOriginProtection().Handler(securityHeaders(mux))
 	return ui

@@ -24,7 +24,7 @@ func TestNATSUnreachableAtStart(t *testing.T) {
 	dir := t.TempDir()
 	url := "nats://127.0.0.1:" + strings.TrimPrefix(testenv.Addr(testenv.FreePort(t)), "127.0.0.1:")
 	cmd := exec.Command(genvelope(t), "serve", "--fleet", fleetFile(t, dir, 2), "--state", filepath.Join(dir, "s.json"),
-		"--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0", "--nats", url)
+		"--journal", filepath.Join(dir, "journal.jsonl"), "--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0", "--nats", url)
 	out, err := cmd.CombinedOutput()
 	var ee *exec.ExitError
 	if !errorsAs(err, &ee) || ee.ExitCode() != 1 {

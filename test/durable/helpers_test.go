@@ -169,7 +169,7 @@ type replica struct {
 func startReplica(t *testing.T, fleetPath, statePath string, extra ...string) *replica {
 	t.Helper()
 	r := &replica{grpc: testenv.Addr(testenv.FreePort(t)), http: testenv.Addr(testenv.FreePort(t))}
-	r.args = append([]string{"serve", "--fleet", fleetPath, "--state", statePath,
+	r.args = append([]string{"serve", "--fleet", fleetPath, "--state", statePath, "--journal", statePath + ".journal",
 		"--grpc-listen", r.grpc, "--http-listen", r.http}, extra...)
 	r.start(t)
 	conn, err := grpc.NewClient(r.grpc, grpc.WithTransportCredentials(insecure.NewCredentials()),

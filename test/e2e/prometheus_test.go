@@ -55,7 +55,7 @@ func TestPrometheusScrape(t *testing.T) {
 	grpcAddr, httpAddr := testenv.Addr(testenv.FreePort(t)), testenv.Addr(testenv.FreePort(t))
 	at = time.Now()
 	gv := testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
-		"--state", filepath.Join(dir, "state.json"))
+		"--state", filepath.Join(dir, "state.json"), "--journal", filepath.Join(dir, "journal.jsonl"))
 	gv.WaitHTTP(t, "http://"+httpAddr+"/readyz")
 	step("genvelope ready", at)
 

@@ -31,7 +31,7 @@ func TestEncoder(t *testing.T) {
 		t.Fatal(err)
 	}
 	enc := encodeUnits(fi.Fleet, 3)
-	base := time.Now().Add(-30 * 24 * time.Hour).Unix()
+	base := time.Now().Add(-3 * 24 * time.Hour).Unix() // within the service's 7-day horizon
 	gens := partition(enc, 2, base)
 	if len(gens[0].units) != 4 || len(gens[1].units) != 3 {
 		t.Fatalf("partition: %d and %d units, want 4 and 3", len(gens[0].units), len(gens[1].units))

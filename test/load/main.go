@@ -295,7 +295,7 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 	log.Info("synthetic fleet", "units", fi.Units, "sites", fi.Sites, "bytes", fi.Bytes, "parse", fi.parse.Round(time.Millisecond))
 
 	enc := encodeUnits(fi.Fleet, cfg.Seed)
-	base := time.Now().Add(-30 * 24 * time.Hour).Truncate(time.Second).Unix()
+	base := time.Now().Add(-3 * 24 * time.Hour).Truncate(time.Second).Unix() // within the service's 7-day horizon
 	gens := partition(enc, cfg.Streams, base)
 	if err := selfCheck(gens[0], cfg.Batch); err != nil {
 		return nil, fmt.Errorf("the request encoder is broken: %w", err)

@@ -5,6 +5,7 @@ import (
 	"context"
 	"flag"
 	"fmt"
+	"math"
 	"net/http"
 	"os"
 	"os/exec"
@@ -109,7 +110,7 @@ var serving = regexp.MustCompile(`msg="genvelope serving".* grpc=(127\.0\.0\.1:\
 func serve(t *testing.T, fleetPath, statePath string) *service {
 	t.Helper()
 	s := &service{out: &output{}, done: make(chan struct{})}
-	s.cmd = exec.Command(genvelope(t), "serve", "--fleet", fleetPath, "--state", statePath,
+	s.cmd = exec.Command(genvelope(t), "serve", "--fleet", fleetPath, "--state", statePath, "--journal", filepath.Join(filepath.Dir(statePath), "journal.jsonl"),
 		"--grpc-listen", "127.0.0.1:0", "--http-listen", "127.0.0.1:0")
 	s.cmd.Stdout, s.cmd.Stderr = s.out, s.out
 	if err := s.cmd.Start(); err != nil {
@@ -230,46 +231,61 @@ func overloaded(at time.Time) *pb.Sample {
 // pushed between the snapshot and the kill, so here nothing is), the
 // samples from before the kill are duplicates, and the limit is reached
 // at 30 s ± 1 s of overload in total (IEEE C50.13, from memory: field
-// 146 % for 30 s), not 30 s after the restart.
+// 146 % for 30 s), not 30 s after the restart. When the samples stop,
+// the service assumes the overload goes on until the stale-telemetry
+// warning threshold (2 s here): the winding holds 22 s of overload when
+// the unit turns stale.
 func TestKillDuringFieldOverload(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds and runs the binary; skipped under -short")
 	}
-	statePath := filepath.Join(t.TempDir(), "state.json")
-	s1 := serve(t, exampleFleet, statePath)
+	dir := t.TempDir()
+	statePath := filepath.Join(dir, "state.json")
+	example, err := os.ReadFile(exampleFleet)
+	if err != nil {
+		t.Fatal(err)
+	}
+	fleetPath := filepath.Join(dir, "fleet.yaml")
+	if err := os.WriteFile(fleetPath, append([]byte("alarms:\n  limits:\n    stale_telemetry: {warning: 2, critical: 120}\n"), example...), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	const heldS = 20 + 2 // the pushed overload and the 2 s carried on by the wall clock
+	s1 := serve(t, fleetPath, statePath)
 	t0 := time.Now().Add(-10 * time.Minute).Truncate(time.Second)
 	at := func(i int) time.Time { return t0.Add(time.Duration(i) * time.Second) }
 	var batch []*pb.Sample
-	for i := 0; i <= 20; i++ {
+	for i := -1; i <= 20; i++ { // the sample at -1 s confirms the overload (a first sample is suspect)
 		batch = append(batch, overloaded(at(i)))
 	}
-	if resp := s1.push(t, batch...); resp.Accepted != 21 {
+	if resp := s1.push(t, batch...); resp.Accepted != 22 {
 		t.Fatalf("pushing 20 s of overload: %v", resp)
 	}
-	// Wait for a snapshot that holds the last sample (written every 5 s).
+	// Wait for a snapshot that holds the last sample and the unit gone
+	// stale (written every 5 s).
 	pushed := time.Now()
+	want := heldS * (overload*overload - 1) / limits.FieldK
 	var written float64
 	deadline := pushed.Add(waitLong)
 	for {
 		if sn, err := state.Read(statePath); err == nil {
-			if ts := sn.Units[unit].Times; len(ts) > 0 && ts[len(ts)-1] == at(20).UnixNano() {
+			if ts := sn.Units[unit].Times; len(ts) > 0 && ts[len(ts)-1] == at(20).UnixNano() && math.Abs(sn.Units[unit].FieldH/limits.FieldK-want) < 1e-9 {
 				written = sn.Units[unit].FieldH / limits.FieldK
 				break
 			}
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("no state file with the sample at 20 s within %s", waitLong)
+			t.Fatalf("no state file with the sample at 20 s and %g used within %s", want, waitLong)
 		}
 		time.Sleep(50 * time.Millisecond)
 	}
 	t.Logf("snapshot with the last sample written %s after the push", time.Since(pushed).Round(10*time.Millisecond))
 	a := s1.unit(t, unit).FieldThermalUsedRatio
-	if want := 20 * (overload*overload - 1) / limits.FieldK; a != written || a < want*(1-1e-9) || a > want*(1+1e-9) {
-		t.Fatalf("field_thermal_used_ratio %g before the kill, %g in the state file; want both %g (20 s at 146 %%)", a, written, want)
+	if a != written || a < want*(1-1e-9) || a > want*(1+1e-9) {
+		t.Fatalf("field_thermal_used_ratio %g before the kill, %g in the state file; want both %g (%d s at 146 %%)", a, written, want, heldS)
 	}
 	s1.kill(t)
 
-	s2 := serve(t, exampleFleet, statePath)
+	s2 := serve(t, fleetPath, statePath)
 	if !strings.Contains(s2.out.String(), "state restored") {
 		t.Errorf("no \"state restored\" in the restarted service's log")
 	}
@@ -280,10 +296,10 @@ func TestKillDuringFieldOverload(t *testing.T) {
 	if got := g.GetLatest().GetTime().AsTime(); !got.Equal(at(20)) {
 		t.Errorf("latest sample after the restart at %s, want %s", got, at(20))
 	}
-	// The whole overload so far, resent: 21 samples, within the 32 recent
+	// The whole overload so far, resent: 22 samples, within the 256 recent
 	// times a snapshot keeps of each unit.
-	if resp := s2.push(t, batch...); resp.Duplicates != 21 || resp.Accepted != 0 || len(resp.Rejected) != 0 {
-		t.Errorf("resending the 21 samples from before the kill: %v, want 21 duplicates", resp)
+	if resp := s2.push(t, batch...); resp.Duplicates != 22 || resp.Accepted != 0 || len(resp.Rejected) != 0 {
+		t.Errorf("resending the 22 samples from before the kill: %v, want 22 duplicates", resp)
 	}
 	if g := s2.unit(t, unit); g.FieldThermalUsedRatio != a {
 		t.Errorf("field_thermal_used_ratio %g after the resend, want %g: duplicates must not heat", g.FieldThermalUsedRatio, a)

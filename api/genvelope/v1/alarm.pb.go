@@ -181,9 +181,11 @@ type AlarmEvent struct {
 	// nearer zone A edge in kV; seconds since the last sample and the
 	// warning threshold in s; measured and model field current in A. NaN
 	// where a limit does not exist at this active power.
-	Actual        float64 `protobuf:"fixed64,13,opt,name=actual,proto3" json:"actual,omitempty"`
-	LimitValue    float64 `protobuf:"fixed64,14,opt,name=limit_value,json=limitValue,proto3" json:"limit_value,omitempty"`
-	Units         string  `protobuf:"bytes,15,opt,name=units,proto3" json:"units,omitempty"`
+	Actual     float64 `protobuf:"fixed64,13,opt,name=actual,proto3" json:"actual,omitempty"`
+	LimitValue float64 `protobuf:"fixed64,14,opt,name=limit_value,json=limitValue,proto3" json:"limit_value,omitempty"`
+	Units      string  `protobuf:"bytes,15,opt,name=units,proto3" json:"units,omitempty"`
+	// Who acted, for acknowledgements and shelves.
+	Operator      string `protobuf:"bytes,16,opt,name=operator,proto3" json:"operator,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -319,6 +321,13 @@ func (x *AlarmEvent) GetLimitValue() float64 {
 func (x *AlarmEvent) GetUnits() string {
 	if x != nil {
 		return x.Units
+	}
+	return ""
+}
+
+func (x *AlarmEvent) GetOperator() string {
+	if x != nil {
+		return x.Operator
 	}
 	return ""
 }
@@ -583,7 +592,8 @@ type AcknowledgeAlarmRequest struct {
 	UnitId string                 `protobuf:"bytes,1,opt,name=unit_id,json=unitId,proto3" json:"unit_id,omitempty"`
 	// The alarm's limit name (see AlarmEvent.limit).
 	Limit string `protobuf:"bytes,2,opt,name=limit,proto3" json:"limit,omitempty"`
-	// Who acknowledges, for the record.
+	// Who acknowledges, for the record. Required: INVALID_ARGUMENT when
+	// empty.
 	Operator      string `protobuf:"bytes,3,opt,name=operator,proto3" json:"operator,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -685,7 +695,8 @@ type ShelveAlarmRequest struct {
 	Limit string `protobuf:"bytes,2,opt,name=limit,proto3" json:"limit,omitempty"`
 	// How long to shelve for, at most 7 days; zero lifts the shelf.
 	Duration *durationpb.Duration `protobuf:"bytes,3,opt,name=duration,proto3" json:"duration,omitempty"`
-	// Who shelves, and why, for the record.
+	// Who shelves (required: INVALID_ARGUMENT when empty), and why, for
+	// the record.
 	Operator      string `protobuf:"bytes,4,opt,name=operator,proto3" json:"operator,omitempty"`
 	Reason        string `protobuf:"bytes,5,opt,name=reason,proto3" json:"reason,omitempty"`
 	unknownFields protoimpl.UnknownFields
@@ -807,7 +818,7 @@ var File_genvelope_v1_alarm_proto protoreflect.FileDescriptor
 
 const file_genvelope_v1_alarm_proto_rawDesc = "" +
 	"\n" +
-	"\x18genvelope/v1/alarm.proto\x12\fgenvelope.v1\x1a\x1egoogle/protobuf/duration.proto\x1a\x1fgoogle/protobuf/timestamp.proto\"\xa5\x04\n" +
+	"\x18genvelope/v1/alarm.proto\x12\fgenvelope.v1\x1a\x1egoogle/protobuf/duration.proto\x1a\x1fgoogle/protobuf/timestamp.proto\"\xc1\x04\n" +
 	"\n" +
 	"AlarmEvent\x12\x17\n" +
 	"\aunit_id\x18\x01 \x01(\tR\x06unitId\x12\x12\n" +
@@ -826,7 +837,8 @@ const file_genvelope_v1_alarm_proto_rawDesc = "" +
 	"\x06actual\x18\r \x01(\x01R\x06actual\x12\x1f\n" +
 	"\vlimit_value\x18\x0e \x01(\x01R\n" +
 	"limitValue\x12\x14\n" +
-	"\x05units\x18\x0f \x01(\tR\x05units\"u\n" +
+	"\x05units\x18\x0f \x01(\tR\x05units\x12\x1a\n" +
+	"\boperator\x18\x10 \x01(\tR\boperator\"u\n" +
 	"\vAlarmFilter\x12\x19\n" +
 	"\bunit_ids\x18\x01 \x03(\tR\aunitIds\x12\x14\n" +
 	"\x05sites\x18\x02 \x03(\tR\x05sites\x125\n" +

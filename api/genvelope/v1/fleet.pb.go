@@ -173,8 +173,19 @@ type GetUnitResponse struct {
 	// its thermal limit, s. Absent while the current is within its rating.
 	ArmatureThermalTimeLeftS *float64 `protobuf:"fixed64,7,opt,name=armature_thermal_time_left_s,json=armatureThermalTimeLeftS,proto3,oneof" json:"armature_thermal_time_left_s,omitempty"`
 	FieldThermalTimeLeftS    *float64 `protobuf:"fixed64,8,opt,name=field_thermal_time_left_s,json=fieldThermalTimeLeftS,proto3,oneof" json:"field_thermal_time_left_s,omitempty"`
-	unknownFields            protoimpl.UnknownFields
-	sizeCache                protoimpl.SizeCache
+	// Whether the unit's values are present: "no_data" (it never
+	// reported), "fresh", or "stale" (no sample for the stale-telemetry
+	// warning threshold: the values above are old).
+	DataState string `protobuf:"bytes,20,opt,name=data_state,json=dataState,proto3" json:"data_state,omitempty"`
+	// True while the unit is stale: its thermal state is not known (the
+	// ratios above are where they were when telemetry stopped).
+	ThermalUnknown bool `protobuf:"varint,21,opt,name=thermal_unknown,json=thermalUnknown,proto3" json:"thermal_unknown,omitempty"`
+	// True when the latest sample is suspect (the first after a gap, or a
+	// jump of current no machine makes): its current is not held into
+	// the thermal accumulators until a following sample confirms it.
+	LatestSuspect bool `protobuf:"varint,22,opt,name=latest_suspect,json=latestSuspect,proto3" json:"latest_suspect,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *GetUnitResponse) Reset() {
@@ -261,6 +272,27 @@ func (x *GetUnitResponse) GetFieldThermalTimeLeftS() float64 {
 		return *x.FieldThermalTimeLeftS
 	}
 	return 0
+}
+
+func (x *GetUnitResponse) GetDataState() string {
+	if x != nil {
+		return x.DataState
+	}
+	return ""
+}
+
+func (x *GetUnitResponse) GetThermalUnknown() bool {
+	if x != nil {
+		return x.ThermalUnknown
+	}
+	return false
+}
+
+func (x *GetUnitResponse) GetLatestSuspect() bool {
+	if x != nil {
+		return x.LatestSuspect
+	}
+	return false
 }
 
 // GetEnvelopeRequest asks for one unit's capability envelope.
@@ -470,7 +502,7 @@ const file_genvelope_v1_fleet_proto_rawDesc = "" +
 	"\x11ListUnitsResponse\x12(\n" +
 	"\x05units\x18\x01 \x03(\v2\x12.genvelope.v1.UnitR\x05units\")\n" +
 	"\x0eGetUnitRequest\x12\x17\n" +
-	"\aunit_id\x18\x01 \x01(\tR\x06unitId\"\x94\x04\n" +
+	"\aunit_id\x18\x01 \x01(\tR\x06unitId\"\x83\x05\n" +
 	"\x0fGetUnitResponse\x12&\n" +
 	"\x04unit\x18\x01 \x01(\v2\x12.genvelope.v1.UnitR\x04unit\x12,\n" +
 	"\x06latest\x18\x02 \x01(\v2\x14.genvelope.v1.SampleR\x06latest\x128\n" +
@@ -481,7 +513,11 @@ const file_genvelope_v1_fleet_proto_rawDesc = "" +
 	"\x1barmature_thermal_used_ratio\x18\x05 \x01(\x01R\x18armatureThermalUsedRatio\x127\n" +
 	"\x18field_thermal_used_ratio\x18\x06 \x01(\x01R\x15fieldThermalUsedRatio\x12C\n" +
 	"\x1carmature_thermal_time_left_s\x18\a \x01(\x01H\x00R\x18armatureThermalTimeLeftS\x88\x01\x01\x12=\n" +
-	"\x19field_thermal_time_left_s\x18\b \x01(\x01H\x01R\x15fieldThermalTimeLeftS\x88\x01\x01B\x1f\n" +
+	"\x19field_thermal_time_left_s\x18\b \x01(\x01H\x01R\x15fieldThermalTimeLeftS\x88\x01\x01\x12\x1d\n" +
+	"\n" +
+	"data_state\x18\x14 \x01(\tR\tdataState\x12'\n" +
+	"\x0fthermal_unknown\x18\x15 \x01(\bR\x0ethermalUnknown\x12%\n" +
+	"\x0elatest_suspect\x18\x16 \x01(\bR\rlatestSuspectB\x1f\n" +
 	"\x1d_armature_thermal_time_left_sB\x1c\n" +
 	"\x1a_field_thermal_time_left_s\"\xa5\x01\n" +
 	"\x12GetEnvelopeRequest\x12\x17\n" +
