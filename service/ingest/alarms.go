@@ -301,7 +301,7 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 	}
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	defer s.syncJournal()
 	u.mu.Lock()
@@ -337,7 +337,7 @@ func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string)
 	}
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	defer s.syncJournal()
 	u.mu.Lock()

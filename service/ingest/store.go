@@ -50,6 +50,25 @@ type Sample struct {
 	Quality Quality
 }
 
+// ClipID returns a unit id for an answer or a log line: at most 64
+// bytes, cut at a character boundary and marked, so that a huge id is
+// not echoed back whole.
+func ClipID(id string) string {
+	const max = 64
+	if len(id) <= max {
+		return id
+	}
+	cut := max
+	for cut > 0 && id[cut]&0xC0 == 0x80 {
+		cut--
+	}
+	return id[:cut] + "…"
+}
+
+// MaxShelve is the longest an operator may shelve an alarm for, on
+// every path (gRPC and the pages).
+const MaxShelve = 24 * time.Hour
+
 // Result is what became of one sample.
 type Result uint8
 
@@ -65,14 +84,16 @@ const (
 	RejectFuture
 	RejectInvalidQuality
 	RejectMissingTime
-	RejectOutOfRangeTime // before the horizon, or outside what a time in Unix nanoseconds can hold
-	RejectImplausible    // outside what the machine can physically report (see fleet.Plausibility)
+	RejectOutOfRangeTime   // before the horizon, or outside what a time in Unix nanoseconds can hold
+	RejectImplausible      // outside what the machine can physically report (see fleet.Plausibility)
+	RejectPermissionDenied // the caller may not push for the unit (access file)
 	NumResults
 )
 
 var resultNames = [NumResults]string{
 	"accepted", "duplicate", "unknown_unit", "not_finite", "out_of_range",
 	"out_of_order", "future", "invalid_quality", "missing_time", "out_of_range_time", "implausible",
+	"permission_denied",
 }
 
 // String returns the result's name as used in the metrics: "accepted",
@@ -355,7 +376,7 @@ func (s *Store) precheck(now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
 	e, ok := sn.byID[smp.UnitID]
 	if !ok {
-		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
+		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
 	}
 	r, d := s.checkSample(e, now, smp)
 	return e.u, r, d

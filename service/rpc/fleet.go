@@ -135,7 +135,7 @@ func (f *Fleet) unit(id string) (*ingest.Unit, error) {
 	u := f.store.Unit(id)
 	if u == nil {
 		ids := f.store.Fleet().IDs()
-		return nil, status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", id, strings.Join(ids, ", "))
+		return nil, status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", ingest.ClipID(id), strings.Join(ids, ", "))
 	}
 	return u, nil
 }

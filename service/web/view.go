@@ -334,6 +334,8 @@ type unitData struct {
 	Margins  []marginRow
 	Thermal  []thermalRow
 	Headroom struct{ Up, Down, QMax, QMin num }
+
+	User string // the signed-in identity, "" when none (see signIn)
 }
 
 // marginRow is one limit's margin.
@@ -366,6 +368,7 @@ type alarmRow struct {
 	Shelved      bool
 	ShelvedUntil string
 	Action       string // URL prefix of the alarm's POST endpoints
+	CanAct       bool   // the signed-in identity may act on it (see signIn)
 }
 
 func (ui *UI) unitData(u *ingest.Unit) *unitData {
