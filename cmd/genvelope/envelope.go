@@ -154,7 +154,7 @@ func writeEnvelopeJSON(w io.Writer, u *fleet.Unit, f *envelopeFlags, hasCoolant 
 func envelopeCSVHeader() []string {
 	return []string{"p_mw", "q_max_mvar", "q_max_limit", "q_min_mvar", "q_min_limit",
 		"q_field_mvar", "q_armature_up_mvar", "q_armature_down_mvar",
-		"q_stability_mvar", "q_practical_stability_mvar", "q_end_region_mvar"}
+		"q_stability_mvar", "q_practical_stability_mvar", "q_end_region_mvar", "q_uel_mvar"}
 }
 
 func writeEnvelopeCSV(w io.Writer, u *fleet.Unit, pts []limits.EnvelopePoint) error {
@@ -179,7 +179,7 @@ func writeEnvelopeCSV(w io.Writer, u *fleet.Unit, pts []limits.EnvelopePoint) er
 		row := []string{strconv.FormatFloat(p.PMW, 'f', 4, 64),
 			cell(p.QMaxMvar), name(p.QMaxLimit), cell(p.QMinMvar), name(p.QMinLimit),
 			cell(p.QFieldMvar), cell(p.QArmatureUpMvar), cell(p.QArmatureDownMvar),
-			cell(p.QStabilityMvar), cell(p.QPracticalStabilityMvar), cell(p.QEndRegionMvar)}
+			cell(p.QStabilityMvar), cell(p.QPracticalStabilityMvar), cell(p.QEndRegionMvar), cell(p.QUELMvar)}
 		if err := cw.Write(row); err != nil {
 			return err
 		}

@@ -47,7 +47,7 @@ func (l Level) String() string {
 type Kind uint8
 
 // The kinds of alarm, in the order of a unit's machines. The first six
-// watch the margins of package limits of the same name.
+// and UEL watch the margins of package limits of the same name.
 const (
 	Armature Kind = iota
 	Field
@@ -60,6 +60,7 @@ const (
 	VoltageFrequencyZone // IEC 60034-1 zone B or outside
 	StaleTelemetry       // no sample for a while (wall clock)
 	FieldCurrentMismatch // measured field current far from the model: a sensor or parameter problem
+	UEL                  // the margin above the regulator's underexcitation limiter curve
 	OELTimer             // the overexcitation limiter's inverse-time delay running out
 	SCLTimer             // the stator current limiter's inverse-time delay running out
 	NumKinds
@@ -68,6 +69,7 @@ const (
 var kindNames = [NumKinds]string{
 	"armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz",
 	"armature_thermal", "field_thermal", "voltage_frequency_zone", "stale_telemetry", "field_current_mismatch",
+	"uel",
 	"oel", "scl",
 }
 
@@ -131,6 +133,7 @@ var quantities = [NumKinds]Quantity{
 	{"voltage/frequency zone", "", true},
 	{"time since the last sample", "s", true},
 	{"field current disagreement with the model", "", true},
+	{"UEL margin", "pu", false},
 	{"time before the overexcitation limiter acts", "s", false},
 	{"time before the stator current limiter acts", "s", false},
 }
@@ -153,6 +156,7 @@ func Defaults() [NumKinds]Setting {
 	for k := Armature; k <= PrimeMover; k++ {
 		s[k] = margin
 	}
+	s[UEL] = margin
 	s[VoltsPerHertz] = Setting{Warning: 0.01, Critical: 0, Deadband: 0.005, OnDelay: 5 * time.Second, OffDelay: 30 * time.Second}
 	thermal := Setting{Warning: 0.5, Critical: 0.9, Deadband: 0.05, OffDelay: 30 * time.Second}
 	s[ArmatureThermal], s[FieldThermal] = thermal, thermal

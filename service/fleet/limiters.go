@@ -39,9 +39,6 @@ type VHzLimiter struct {
 	SetpointPU float64 // pu of rated V/Hz on the generator base
 }
 
-// limiterKeys are the keys of excitation: that decodeLimiters reads.
-func limiterKeys() []string { return []string{"oel", "scl", "vhz_limiter"} }
-
 // decodeLimiters decodes the oel, scl and vhz_limiter keys of the
 // excitation mapping m at path.
 func (c *unitCtx) decodeLimiters(m *mapping, path string) {

@@ -18,6 +18,7 @@ var marginLimit = [...]limits.Limit{
 	alarm.Armature: limits.LimitArmature, alarm.Field: limits.LimitField,
 	alarm.Stability: limits.LimitStability, alarm.EndRegion: limits.LimitEndRegion,
 	alarm.PrimeMover: limits.LimitPrimeMover, alarm.VoltsPerHertz: limits.LimitVoltsPerHertz,
+	alarm.UEL: limits.LimitUEL,
 }
 
 // quantity returns what alarm kind k of the unit compares with its
@@ -27,7 +28,7 @@ var marginLimit = [...]limits.Limit{
 func (u *Unit) quantity(k alarm.Kind) float64 {
 	e := &u.eval
 	switch {
-	case k <= alarm.VoltsPerHertz:
+	case k <= alarm.VoltsPerHertz || k == alarm.UEL:
 		l := marginLimit[k]
 		if m := e.Margins[l]; m.OK {
 			return m.V
@@ -98,6 +99,7 @@ func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Ti
 	ctx.AgeS = ageS
 	ev := u.event(k, alarm.LevelChanged, at, ageS)
 	ev.Prev, ev.Value, ev.Threshold = prev, x, thr
+	ctx.LimitMvar = ev.LimitAt
 	ev.Message = alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx)
 	if m.Level > prev {
 		u.raised[k] = ev.Message // kept while the off-delay holds the alarm
@@ -151,17 +153,19 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 	case alarm.Armature:
 		return e.I * b.CurrentA(), e.IMax * b.CurrentA(), "A"
 	case alarm.Field:
-		ifd := b.FieldA(e.IfdModel)
-		if u.pt.IfdMeasured {
-			ifd = smp.FieldA
-		}
-		return ifd, b.FieldA(e.IfdMax), "A"
+		return b.FieldA(e.FieldCurrent), b.FieldA(e.IfdMax), "A"
 	case alarm.Stability:
 		return smp.QMvar, mvar(e.Practical), "Mvar"
 	case alarm.EndRegion:
 		return smp.QMvar, mvar(e.EndRegion), "Mvar"
 	case alarm.PrimeMover:
-		return smp.PMW, u.cfg.PrimeMover.PMaxMW, "MW"
+		pm := u.cfg.PrimeMover
+		if smp.PMW-pm.PMinMW < pm.PMaxMW-smp.PMW {
+			return smp.PMW, pm.PMinMW, "MW" // the nearer end: p_min
+		}
+		return smp.PMW, pm.PMaxMW, "MW"
+	case alarm.UEL:
+		return smp.QMvar, mvar(e.UEL), "Mvar"
 	case alarm.VoltsPerHertz:
 		return e.VPerHz, limits.VoltsPerHertzLimit, "pu"
 	case alarm.ArmatureThermal:
@@ -208,7 +212,7 @@ func (u *Unit) context() alarm.Context {
 	s := &u.latest
 	e := report.New(u.cfg, u.pt, &u.eval) // the point as evaluated
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
-		PMaxMW: u.cfg.PrimeMover.PMaxMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz,
+		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz,
 		OELXPU: u.lim.xOEL, SCLXPU: u.lim.xSCL}
 	if e.QMaxLimit != nil {
 		c.QMaxLimit = *e.QMaxLimit
@@ -302,7 +306,7 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 	}
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	defer s.syncJournal()
 	u.mu.Lock()
@@ -338,7 +342,7 @@ func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string)
 	}
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	defer s.syncJournal()
 	u.mu.Lock()
@@ -492,6 +496,7 @@ func (s *Store) appendActive(out []alarm.Event, u *Unit) []alarm.Event {
 		} else {
 			ctx := u.context()
 			ctx.AgeS = age
+			ctx.LimitMvar = ev.LimitAt
 			ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
 		}
 		out = append(out, ev)

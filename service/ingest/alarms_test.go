@@ -1,7 +1,9 @@
 package ingest
 
 import (
+	"fmt"
 	"math"
+	"strings"
 	"testing"
 	"time"
 
@@ -38,12 +40,20 @@ func TestStabilityAlarmEventInEngineeringUnits(t *testing.T) {
 	if got == nil {
 		t.Fatal("no stability alarm")
 	}
-	if got.Level != alarm.Warning || got.Units != "Mvar" || math.Abs(got.LimitAt-qLimit) > 1e-6 {
+	// The service reads an avr unit's limit from its table, within 0.002 pu
+	// of the direct computation (the limits contract).
+	if got.Level != alarm.Warning || got.Units != "Mvar" || math.Abs(got.LimitAt-qLimit) > 0.002*u.Rating.MVA {
 		t.Errorf("event %+v; want a warning with the limit %.3f Mvar", got, qLimit)
 	}
 	// The margin is (Q - q_practical)/S_rated (envelope contract), so Q
 	// in the event is the limit plus margin times rated MVA.
-	if math.Abs(got.Actual-(qLimit+got.Value*u.Rating.MVA)) > 1e-6 {
+	if math.Abs(got.Actual-(got.LimitAt+got.Value*u.Rating.MVA)) > 1e-6 {
 		t.Errorf("Q %.3f Mvar, margin %.4f, limit %.3f: inconsistent", got.Actual, got.Value, got.LimitAt)
+	}
+	// The sentence names the stability limit itself, not q_min (which the
+	// UEL or the end region sets here).
+	if want := fmt.Sprintf("below the practical stability limit (%.1f Mvar)", got.LimitAt); !strings.Contains(got.Message, want) &&
+		!strings.Contains(got.Message, fmt.Sprintf("left above the practical stability limit (%.1f Mvar)", got.LimitAt)) {
+		t.Errorf("message %q does not name the stability limit %.1f Mvar", got.Message, got.LimitAt)
 	}
 }

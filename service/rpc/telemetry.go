@@ -17,6 +17,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
@@ -32,6 +33,7 @@ type Telemetry struct {
 	maxBatch int
 	now      func() time.Time
 	draining <-chan struct{}
+	denied   func(ctx context.Context, n int, unitID string)
 }
 
 // TelemetryOptions configure a Telemetry server.
@@ -46,6 +48,10 @@ type TelemetryOptions struct {
 	// that pass the checks are written to the log, and the batch is
 	// answered once they are in it and applied from it.
 	Log Log
+	// Denied, when set, hears of the samples of one request refused
+	// because the caller (access.FromContext) may not push for their
+	// units: how many, and the first such unit.
+	Denied func(ctx context.Context, n int, unitID string)
 }
 
 // Log is the durable path of accepted samples (package durable).
@@ -73,7 +79,7 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
+	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining, denied: o.Denied}
 }
 
 // Push takes one batch.
@@ -149,14 +155,39 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 	}
 	resp := &pb.PushResponse{Sequence: req.Sequence}
 	var tally ingest.Tally
+	var d denials
+	caller := access.FromContext(ctx) // nil: no access control
 	for i, s := range req.Samples {
 		var smp ingest.Sample
-		res, detail := t.judge(now, s, &smp, t.store.Accept)
+		res, detail := t.judge(caller, now, s, &smp, t.store.Accept)
 		tally[res]++
+		d.note(res, s.UnitId)
 		answer(resp, i, res, detail)
 	}
 	t.store.Commit(&tally)
+	t.report(ctx, &d)
 	return resp, nil
+}
+
+// denials counts the samples of one batch refused for want of rights.
+type denials struct {
+	n    int
+	unit string // the first
+}
+
+func (d *denials) note(res ingest.Result, unitID string) {
+	if res == ingest.RejectPermissionDenied {
+		if d.n++; d.n == 1 {
+			d.unit = unitID
+		}
+	}
+}
+
+// report hands a batch's denials to the Denied hook.
+func (t *Telemetry) report(ctx context.Context, d *denials) {
+	if d.n > 0 && t.denied != nil {
+		t.denied(ctx, d.n, d.unit)
+	}
 }
 
 // checkSize refuses a batch larger than the limit.
@@ -174,15 +205,21 @@ func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	return nil
 }
 
-// judge converts s into smp and returns what check says of it.
-func (t *Telemetry) judge(now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+// judge converts s into smp and returns what check says of it. A
+// caller (nil: no access control) that may not push for the unit is
+// refused first, so that a writer learns nothing of units it may not
+// push for.
+func (t *Telemetry) judge(caller *access.Caller, now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+	if caller != nil && !caller.Allows(s.UnitId) {
+		return ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
+	}
 	res, detail := FromProto(s, smp)
 	switch {
 	case res == ingest.Accepted:
 		return check(now, smp)
 	case t.store.Unit(s.UnitId) == nil:
 		// The unit is the first thing a sample is judged by.
-		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
+		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
 	}
 	return res, detail
 }
@@ -225,9 +262,12 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 	details := make([]string, len(req.Samples))
 	smps := make([]ingest.Sample, 0, len(req.Samples))
 	idx := make([]int, 0, len(req.Samples))
+	var d denials
+	caller := access.FromContext(ctx)
 	for i, s := range req.Samples {
 		var smp ingest.Sample
-		res, detail := t.judge(now, s, &smp, t.log.Check)
+		res, detail := t.judge(caller, now, s, &smp, t.log.Check)
+		d.note(res, s.UnitId)
 		if res == ingest.Accepted {
 			smps = append(smps, smp)
 			idx = append(idx, i)
@@ -237,6 +277,7 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 		tally[res]++
 	}
 	t.store.Commit(&tally)
+	t.report(ctx, &d)
 	wait := func(context.Context) ([]ingest.Result, []string, error) { return nil, nil, nil }
 	if len(smps) > 0 {
 		if wait, err = t.log.Append(ctx, now, smps); err != nil {
@@ -396,6 +437,8 @@ func reasonProto(r ingest.Result) pb.RejectReason {
 		return pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME
 	case ingest.RejectImplausible:
 		return pb.RejectReason_REJECT_REASON_IMPLAUSIBLE
+	case ingest.RejectPermissionDenied:
+		return pb.RejectReason_REJECT_REASON_PERMISSION_DENIED
 	}
 	return pb.RejectReason_REJECT_REASON_UNSPECIFIED
 }

@@ -30,7 +30,7 @@ const (
 // day.
 const (
 	minShelve = time.Minute
-	maxShelve = 24 * time.Hour
+	maxShelve = ingest.MaxShelve
 )
 
 // shelveChoices are the durations the unit page offers.
@@ -52,6 +52,7 @@ type page struct {
 	Status   int
 	Message  string
 	BackHref string
+	User     string // the signed-in identity, "" when none
 }
 
 func (ui *UI) funcs() template.FuncMap {
@@ -139,7 +140,9 @@ func writeJSON(w http.ResponseWriter, status int, v any) {
 }
 
 func (ui *UI) overview(w http.ResponseWriter, r *http.Request) {
-	ui.render(w, "overview.html", ui.newPage("Fleet", "/fleet/live", ui.fleetData()))
+	p := ui.newPage("Fleet", "/fleet/live", ui.fleetData())
+	p.User, _ = ui.opts.Identity(r)
+	ui.render(w, "overview.html", p)
 }
 
 // liveFleet is the overview's refresh: the table body and the summary.
@@ -180,7 +183,9 @@ func (ui *UI) unitPage(w http.ResponseWriter, r *http.Request) {
 	}
 	d := ui.unitData(u)
 	d.Chart = ui.unitChart(d)
-	ui.render(w, "unit.html", ui.newPage(d.Unit.DisplayName(), d.Href+"/live", d))
+	p := ui.newPage(d.Unit.DisplayName(), d.Href+"/live", d)
+	p.User = ui.signIn(r, d)
+	ui.render(w, "unit.html", p)
 }
 
 // liveUnit is the unit page's refresh.
@@ -210,6 +215,7 @@ func (ui *UI) unitLive(w http.ResponseWriter, r *http.Request) {
 	}
 	d := ui.unitData(u)
 	d.Chart = ui.unitChart(d)
+	ui.signIn(r, d)
 	secs, err := ui.fragments("unit.html", d, "unit-status", "unit-tiles", "unit-numbers", "unit-alarms", "unit-chart")
 	if err != nil {
 		ui.log.Error("unit fragments not rendered", "unit", d.Unit.ID, "err", err)
@@ -259,6 +265,9 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	by := operator(r.PostForm.Get("operator"))
+	if name, _ := ui.opts.Identity(r); name != "" {
+		by = name // the authenticated identity, not a typed name
+	}
 	now := ui.opts.Now()
 	var err error
 	var done string

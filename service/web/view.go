@@ -106,6 +106,7 @@ var limitTitle = map[string]string{
 	"end_region":      "Stator end region",
 	"prime_mover":     "Prime mover",
 	"volts_per_hertz": "Volts per hertz",
+	"uel":             "Underexcitation limiter",
 	"none":            "none",
 }
 
@@ -115,8 +116,9 @@ var limitBasis = map[string]string{
 	"field":           "of the field current rating",
 	"stability":       "of rated MVA, above the practical limit",
 	"end_region":      "of rated MVA, above the end-region curve",
-	"prime_mover":     "of rated MW, below p_max",
+	"prime_mover":     "of rated MW, inside p_min to p_max",
 	"volts_per_hertz": "below 1.05 pu continuous",
+	"uel":             "of rated MVA, above the UEL curve",
 }
 
 // kindTitle names the alarms in the operators' words.
@@ -132,6 +134,7 @@ var kindTitle = [alarm.NumKinds]string{
 	alarm.VoltageFrequencyZone: "Voltage/frequency zone",
 	alarm.StaleTelemetry:       "Telemetry stale",
 	alarm.FieldCurrentMismatch: "Field current vs model",
+	alarm.UEL:                  "Underexcitation limiter",
 	alarm.OELTimer:             "Overexcitation limiter",
 	alarm.SCLTimer:             "Stator current limiter",
 }
@@ -189,9 +192,8 @@ func evaluation(v *ingest.View) *report.Evaluation {
 	if !v.HasSample {
 		return nil
 	}
-	s := &v.Latest
-	pt := report.Point(v.Config, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
-	return report.New(v.Config, pt, &v.Eval)
+	// The point as ingest evaluated it (with its field-measurement flags).
+	return report.New(v.Config, v.Point, &v.Eval)
 }
 
 // row is one unit in the fleet table.
@@ -334,6 +336,8 @@ type unitData struct {
 	Margins  []marginRow
 	Thermal  []thermalRow
 	Headroom struct{ Up, Down, QMax, QMin num }
+
+	User string // the signed-in identity, "" when none (see signIn)
 }
 
 // marginRow is one limit's margin.
@@ -366,6 +370,7 @@ type alarmRow struct {
 	Shelved      bool
 	ShelvedUntil string
 	Action       string // URL prefix of the alarm's POST endpoints
+	CanAct       bool   // the signed-in identity may act on it (see signIn)
 }
 
 func (ui *UI) unitData(u *ingest.Unit) *unitData {
@@ -375,8 +380,12 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID)}
 	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
 	r := cfg.Rating
-	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, cfg.Machine.Rotor)
+	if r.Poles > 0 {
+		d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	}
 	if ev := d.Eval; ev != nil {
+		ev.SetRotorMode(cfg, v.Point) // an eigen decomposition: on this page only, not on the overview
 		d.Age = fmtAge(now.Sub(v.Received))
 		d.SampleTime = fmtWhen(v.Latest.Time)
 		d.AcceptedCount = v.Accepted
@@ -389,6 +398,13 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			k, _ := alarm.ParseKind(name)
 			mr := marginRow{Name: name, Title: limitTitle[name], Basis: limitBasis[name], Value: fmtPct(m, 1), Level: d.Alarms.ByKind[k],
 				Binding: ev.BindingLimit != nil && *ev.BindingLimit == name}
+			if l == limits.LimitStability {
+				// Which limit this is: with the regulator in service or without.
+				mr.Basis += map[string]string{"avr": " (avr basis: voltage regulator in service)", "manual": " (manual basis: constant field voltage)"}[ev.StabilityBasis]
+				if m := ev.RotorMode; m != nil {
+					mr.Basis += fmt.Sprintf("; rotor mode %.2f Hz, damping ratio %.3f", m.FrequencyHz, m.DampingRatio)
+				}
+			}
 			if m != nil {
 				mr.Fill = fill(*m)
 			}
@@ -496,7 +512,7 @@ func drawChart(d *unitData) (template.HTML, error) {
 	if lof := cfg.Settings().LossOfField; lof != nil {
 		zones = lof.Zones
 	}
-	opts = append(opts, chart.WithLimiters(cfg.Model.Params().UEL, zones, vPU))
+	opts = append(opts, chart.WithLimiters(nil, zones, vPU))
 	pts := cfg.Model.Envelope(vPU, coolant, hasCoolant, 41)
 	var buf bytes.Buffer
 	if err := chart.Capability(&buf, title, pts, cfg.Base, opts...); err != nil {

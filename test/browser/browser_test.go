@@ -152,7 +152,7 @@ func (s *service) push(t *testing.T, smps ...sample) {
 // browser starts Chromium, headless, with a fresh profile, and returns a
 // tab's context and the console messages that are errors, read until the
 // test ends.
-func browser(t *testing.T, path string) (context.Context, func() []string) {
+func browser(t *testing.T, path string, extra ...chromedp.ExecAllocatorOption) (context.Context, func() []string) {
 	t.Helper()
 	opts := append(chromedp.DefaultExecAllocatorOptions[:],
 		chromedp.ExecPath(path),
@@ -163,6 +163,7 @@ func browser(t *testing.T, path string) (context.Context, func() []string) {
 		chromedp.Flag("disable-component-update", true),
 		chromedp.WindowSize(viewportWidth, viewportHeight),
 	)
+	opts = append(opts, extra...)
 	ctx, cancel := context.WithTimeout(t.Context(), 3*waitLong)
 	t.Cleanup(cancel)
 	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
