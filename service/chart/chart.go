@@ -32,9 +32,10 @@ const (
 	LabelRegion          = "continuous capability region"
 	LabelArmature        = "armature current limit"
 	LabelField           = "field current limit"
-	LabelStability       = "theoretical steady-state stability limit"
+	LabelStability       = "steady-state stability limit"
 	LabelPractical       = "practical stability limit"
 	LabelEndRegion       = "stator end-region limit"
+	LabelUEL             = "underexcitation limiter (UEL)"
 	LabelPMax            = "prime-mover limit p_max"
 	LabelPMin            = "prime-mover limit p_min"
 	LabelOperatingPoint  = "operating point"
@@ -63,6 +64,7 @@ type config struct {
 	trail          []Point
 	width, height  vg.Length
 	embedFonts     bool
+	lim            *limiterMarks // coord_marks.go
 }
 
 // WithPrimeMover draws the prime mover's active-power range as lines at
@@ -94,8 +96,8 @@ func WithEmbeddedFonts() Option {
 
 // palette holds the chart's colours: muted, and distinct in grey scale too.
 type palette struct {
-	region, armature, field, stability, practical, endRegion color.Color
-	prime, point, trail, axisZero, grid, text, caption       color.Color
+	region, armature, field, stability, practical, endRegion, uel color.Color
+	prime, point, trail, axisZero, grid, text, caption            color.Color
 }
 
 func defaultPalette() palette {
@@ -107,6 +109,7 @@ func defaultPalette() palette {
 		stability: rgb(0x80, 0x80, 0x80),
 		practical: rgb(0x6c, 0x34, 0x83),
 		endRegion: rgb(0x11, 0x78, 0x64),
+		uel:       rgb(0xb0, 0x7a, 0x00),
 		prime:     rgb(0x4d, 0x56, 0x5e),
 		point:     rgb(0xc0, 0x28, 0x1e),
 		trail:     rgb(0xe0, 0x8e, 0x6b),
@@ -192,6 +195,7 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		{LabelStability, func(e limits.EnvelopePoint) limits.Bound { return e.Stability }, draw.LineStyle{Color: pal.stability, Width: vg.Points(1.2), Dashes: []vg.Length{vg.Points(5), vg.Points(3)}}},
 		{LabelPractical, func(e limits.EnvelopePoint) limits.Bound { return e.Practical }, draw.LineStyle{Color: pal.practical, Width: vg.Points(1.6)}},
 		{LabelEndRegion, func(e limits.EnvelopePoint) limits.Bound { return e.EndRegion }, draw.LineStyle{Color: pal.endRegion, Width: vg.Points(1.6), Dashes: []vg.Length{vg.Points(7), vg.Points(2), vg.Points(1.5), vg.Points(2)}}},
+		{LabelUEL, func(e limits.EnvelopePoint) limits.Bound { return e.UEL }, draw.LineStyle{Color: pal.uel, Width: vg.Points(1.6), Dashes: []vg.Length{vg.Points(2), vg.Points(2)}}},
 	}
 	for _, c := range curves {
 		var first plot.Thumbnailer
@@ -211,10 +215,19 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		}
 	}
 
+	extra, err := limiterLines(cfg.lim, pts, mva)
+	if err != nil {
+		return err
+	}
+	for _, e := range extra {
+		p.Add(e.line)
+		legend = append(legend, entry{e.label, e.thumb})
+	}
+
 	// The Q range, for the horizontal lines and the axes.
 	qLo, qHi := 0.0, 0.0
 	for _, e := range pts {
-		for _, b := range []limits.Bound{e.ArmatureUp, e.ArmatureDown, e.Field, e.Stability, e.Practical, e.EndRegion} {
+		for _, b := range []limits.Bound{e.ArmatureUp, e.ArmatureDown, e.Field, e.Stability, e.Practical, e.EndRegion, e.UEL} {
 			if b.OK && !math.IsNaN(b.V) && !math.IsInf(b.V, 0) {
 				qLo, qHi = math.Min(qLo, b.V*mva), math.Max(qHi, b.V*mva)
 			}
@@ -501,7 +514,9 @@ func (t ticks) Ticks(lo, hi float64) []plot.Tick {
 		}
 		label := ""
 		if math.Mod(i, 2) == 0 {
-			label = strconv.FormatFloat(v, 'f', -1, 64)
+			// As many decimals as the step needs: i*half carries the
+			// rounding error of the product (1.2000000000000002).
+			label = strconv.FormatFloat(v, 'f', max(0, -int(math.Floor(math.Log10(step)+1e-9))), 64)
 		}
 		out = append(out, plot.Tick{Value: v, Label: label})
 	}

@@ -558,7 +558,8 @@ type Unit struct {
 	alarms [alarm.NumKinds]alarm.Machine
 	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
 
-	trend trend // headroom and nearest margin over the last hours (trend.go)
+	trend trend        // headroom and nearest margin over the last hours (trend.go)
+	lim   limiterState // the OEL and SCL timers (limiters.go)
 }
 
 // heatSize is how many recent samples' heating a unit remembers, so
@@ -654,6 +655,7 @@ func (u *Unit) advance(dt int64) {
 	sec := float64(dt) / 1e9
 	u.armature.Advance(u.hArm, sec)
 	u.field.Advance(u.hField, sec)
+	u.advanceLimiters(sec)
 	h.arm += u.armature.H - a0
 	h.field += u.field.H - f0
 }
@@ -714,28 +716,25 @@ func (u *Unit) seen(t int64) bool {
 func (u *Unit) evaluate() {
 	cfg := u.cfg
 	s := &u.latest
-	// A measured field current counts only on a sample of good quality,
-	// and not while the field-current mismatch alarm says the
-	// transducer disagrees with the model (a frozen or drifting sensor):
-	// then the field margin follows the model.
-	measured := s.HasFieldA && s.Quality == QualityGood && u.alarms[alarm.FieldCurrentMismatch].Level == alarm.Normal
-	pt := report.Point(cfg, report.Reading{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, FieldA: s.FieldA, HasFieldA: measured,
+	// A measured field current on a QUESTIONABLE sample, one far from the
+	// model (beyond the mismatch alarm's warning threshold), or one read
+	// while the field-current mismatch alarm is active (a frozen or
+	// drifting sensor) is doubted: the field margin, and the heating of
+	// the winding, take the larger of it and the model's (envelope.md,
+	// "Margins"), as neither can be trusted alone.
+	pt := report.Point(cfg, report.Reading{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, FieldA: s.FieldA, HasFieldA: s.HasFieldA,
 		FrequencyHz: s.FrequencyHz, HasFrequency: s.HasFreq, Coolant: s.Coolant, HasCoolant: s.HasCoolant})
+	pt.IfdDoubtful = s.Quality == QualityQuestionable || u.alarms[alarm.FieldCurrentMismatch].Level != alarm.Normal
+	if set := &cfg.Alarms[alarm.FieldCurrentMismatch]; !set.Disabled {
+		pt.IfdMismatch = set.Warning
+	}
 	// The per-sample evaluation leaves q_max to be solved by the first
 	// reader (complete): samples come far more often than reads.
 	u.eval = cfg.Model.EvaluateSample(pt, &u.hint)
 	u.pt = pt
 	u.xArm = u.eval.I / u.eval.IMax
-	ifd := u.eval.IfdModel
-	switch {
-	case pt.IfdMeasured:
-		ifd = pt.Ifd
-	case s.HasFieldA && s.Quality == QualityGood:
-		// The mismatch alarm is active: heat the winding with the larger
-		// of the reading and the model, as neither can be trusted alone.
-		ifd = max(ifd, cfg.Base.FieldPU(s.FieldA))
-	}
-	u.xField = ifd / u.eval.IfdMax
+	u.xField = u.eval.FieldCurrent / u.eval.IfdMax
+	u.holdLimiters()
 }
 
 // complete solves what the per-sample evaluation left pending. u.mu
@@ -801,6 +800,7 @@ type View struct {
 	Suspect        bool   // the latest sample is suspect (first after a gap, or a jump): its current is not yet held
 	Suspects       uint64 // suspect samples since the service started
 	Alarms         [alarm.NumKinds]alarm.Machine
+	Limiters       LimiterView // the OEL and SCL timers, the V/Hz limiter margin
 }
 
 // View returns a consistent copy of the unit's state.
@@ -809,7 +809,8 @@ func (u *Unit) View() View {
 	defer u.mu.Unlock()
 	u.complete()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
-		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects}
+		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects,
+		Limiters: u.limiterView()}
 	switch {
 	case !u.has:
 		v.Data = NoData

@@ -50,24 +50,17 @@ func quantize(x float64, ok bool, scale float64) int16 {
 }
 
 // recordTrend adds the unit's latest evaluation, of sample time t (Unix
-// ns), to its trend. A step's point holds the headroom of its first
-// sample (q_max is solved once a step, not once a sample) and the
-// smallest nearest margin of all its samples. u.mu must be held.
+// ns), to its trend. A step's point is its first sample's headroom and
+// nearest margin, with q_max solved (once a step, not once a sample:
+// the per-sample evaluation leaves it pending). u.mu must be held.
 func (u *Unit) recordTrend(t int64) {
 	tr := &u.trend
 	s := t / int64(TrendStep)
 	if t < 0 && t%int64(TrendStep) != 0 {
 		s-- // floor
 	}
-	margin := quantize(u.nearestMargin(), true, trendMarginScale)
 	if tr.has && s <= tr.last {
-		if s == tr.last { // later samples come later in time: s < last does not happen
-			p := &tr.slots[slotIndex(s)]
-			if margin != trendMissing && (p.margin == trendMissing || margin < p.margin) {
-				p.margin = margin
-			}
-		}
-		return
+		return // the step has its point: its first sample's
 	}
 	if !tr.has {
 		tr.has, tr.first = true, s
@@ -78,6 +71,7 @@ func (u *Unit) recordTrend(t int64) {
 	}
 	tr.last = s
 	u.complete()
+	margin := quantize(u.nearestMargin(), true, trendMarginScale)
 	up, down := u.eval.Headroom(u.pt.Q)
 	tr.slots[slotIndex(s)] = trendSlot{
 		up:     quantize(up.V, up.OK, trendHeadroomScale),

@@ -53,8 +53,9 @@ var limitTable = [...]LimitInfo{
 	{limits.LimitField, "field", "Field current", "of the field current rating", SideUpperQ, alarm.Field},
 	{limits.LimitStability, "stability", "Steady-state stability", "of rated MVA, above the practical limit", SideLowerQ, alarm.Stability},
 	{limits.LimitEndRegion, "end_region", "Stator end region", "of rated MVA, above the end-region curve", SideLowerQ, alarm.EndRegion},
-	{limits.LimitPrimeMover, "prime_mover", "Prime mover", "of rated MW, below p_max", SideActive, alarm.PrimeMover},
+	{limits.LimitPrimeMover, "prime_mover", "Prime mover", "of rated MW, inside p_min to p_max", SideActive, alarm.PrimeMover},
 	{limits.LimitVoltsPerHertz, "volts_per_hertz", "Volts per hertz", "below 1.05 pu continuous", SideExcitation, alarm.VoltsPerHertz},
+	{limits.LimitUEL, "uel", "Underexcitation limiter", "of rated MVA, above the UEL curve", SideLowerQ, alarm.UEL},
 }
 
 // Limits returns the table of every limit with a margin, in
@@ -112,6 +113,10 @@ func AlarmTitle(k alarm.Kind) string {
 		return "Telemetry stale"
 	case alarm.FieldCurrentMismatch:
 		return "Field current vs model"
+	case alarm.OELTimer:
+		return "Overexcitation limiter"
+	case alarm.SCLTimer:
+		return "Stator current limiter"
 	}
 	return k.String()
 }

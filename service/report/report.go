@@ -74,6 +74,8 @@ type Evaluation struct {
 	QStabilityMvar          *float64            `json:"q_stability_mvar"`
 	QPracticalStabilityMvar *float64            `json:"q_practical_stability_mvar"`
 	QEndRegionMvar          *float64            `json:"q_end_region_mvar"`
+	QUELMvar                *float64            `json:"q_uel_mvar"`
+	StabilityBasis          string              `json:"stability_basis"` // "manual" or "avr": what q_stability_mvar assumes
 	PMaxMW                  *float64            `json:"p_max_mw"`
 	Margins                 map[string]*float64 `json:"margins"`
 	BindingLimit            *string             `json:"binding_limit"`
@@ -83,7 +85,31 @@ type Evaluation struct {
 	VoltsPerHertzPU         *float64            `json:"volts_per_hertz_pu"`
 	Zone                    string              `json:"zone"`
 	CriticalClearingTimeS   *float64            `json:"critical_clearing_time_s"`
-	Caution                 string              `json:"caution"`
+	// RotorMode is set by the readers that show it (SetRotorMode): an
+	// eigen decomposition, solved when read, never per sample. Null on
+	// the manual basis.
+	RotorMode *RotorMode `json:"rotor_mode"`
+	Caution   string     `json:"caution"`
+}
+
+// RotorMode is the rotor (electromechanical) mode of the linearized
+// machine with its regulator at an operating point (envelope.md, the avr
+// basis).
+type RotorMode struct {
+	FrequencyHz  float64 `json:"frequency_hz"`
+	DampingRatio float64 `json:"damping_ratio"` // -Re(lambda)/|lambda|; negative when the oscillation grows
+}
+
+// SetRotorMode solves the rotor mode of ev's unit u at pt, the point ev
+// reports, and puts it into ev: nil on the manual basis, where the mode
+// is not oscillatory, or where the eigenvalue solver fails.
+func (ev *Evaluation) SetRotorMode(u *fleet.Unit, pt limits.Point) {
+	ev.RotorMode = nil
+	m, ok, err := u.Model.RotorMode(pt)
+	if !ok || err != nil || math.IsNaN(m.FrequencyHz) || math.IsNaN(m.DampingRatio) {
+		return
+	}
+	ev.RotorMode = &RotorMode{FrequencyHz: m.FrequencyHz, DampingRatio: m.DampingRatio}
 }
 
 // num returns x, or nil when it is not finite.
@@ -143,6 +169,8 @@ func New(u *fleet.Unit, pt limits.Point, r *limits.Result) *Evaluation {
 		QStabilityMvar:          bound(r.Stability, mva),
 		QPracticalStabilityMvar: bound(r.Practical, mva),
 		QEndRegionMvar:          bound(r.EndRegion, mva),
+		QUELMvar:                bound(r.UEL, mva),
+		StabilityBasis:          u.Model.Params().Basis.String(),
 		PMaxMW:                  bound(r.PMax, mva),
 		Margins:                 map[string]*float64{},
 		BindingLimit:            limitName(r.Binding),
@@ -193,6 +221,7 @@ type EnvelopePoint struct {
 	QStabilityMvar          *float64 `json:"q_stability_mvar"`
 	QPracticalStabilityMvar *float64 `json:"q_practical_stability_mvar"`
 	QEndRegionMvar          *float64 `json:"q_end_region_mvar"`
+	QUELMvar                *float64 `json:"q_uel_mvar"`
 }
 
 // NewEnvelopePoint converts one engine envelope point of a unit rated mva.
@@ -209,5 +238,6 @@ func NewEnvelopePoint(e limits.EnvelopePoint, mva float64) EnvelopePoint {
 		QStabilityMvar:          bound(e.Stability, mva),
 		QPracticalStabilityMvar: bound(e.Practical, mva),
 		QEndRegionMvar:          bound(e.EndRegion, mva),
+		QUELMvar:                bound(e.UEL, mva),
 	}
 }

@@ -53,9 +53,9 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 	resp := &pb.GetUnitResponse{Unit: unitProto(v.Config)}
 	if v.HasSample {
 		resp.Latest = sampleProto(&v.Latest)
-		// The point as the engine evaluated it: a field current it did not
-		// use (a questionable sample) is not reported as measured.
-		resp.Evaluation = EvaluationProto(report.New(v.Config, v.Point, &v.Eval))
+		ev := report.New(v.Config, v.Point, &v.Eval)
+		ev.SetRotorMode(v.Config, v.Point)
+		resp.Evaluation = EvaluationProto(ev)
 		resp.Received = timestamppb.New(v.Received)
 	}
 	resp.DataState, resp.ThermalUnknown, resp.LatestSuspect = v.Data.String(), v.ThermalUnknown, v.Suspect
@@ -122,6 +122,7 @@ func (f *Fleet) GetEnvelope(ctx context.Context, req *pb.GetEnvelopeRequest) (*p
 			QMaxLimit: limitProto(p.QMaxLimit), QMinLimit: limitProto(p.QMinLimit),
 			QFieldMvar: p.QFieldMvar, QArmatureMvar: p.QArmatureUpMvar, QStabilityMvar: p.QStabilityMvar,
 			QPracticalStabilityMvar: p.QPracticalStabilityMvar, QEndRegionMvar: p.QEndRegionMvar,
+			QUelMvar: p.QUELMvar,
 		}
 	}
 	return resp, nil
@@ -149,7 +150,18 @@ func unitProto(u *fleet.Unit) *pb.Unit {
 		RatedMva: u.Rating.MVA, RatedKv: u.Rating.KV, PowerFactor: u.Rating.PowerFactor,
 		FrequencyHz: u.Rating.FrequencyHz, PMaxMw: u.PrimeMover.PMaxMW, PMinMw: u.PrimeMover.PMinMW,
 		IfagA: u.Field.AirGapA, RatedFieldA: u.Model.RatedFieldCurrent() * u.Field.AirGapA,
+		StabilityBasis: basisProto(u.Stability.Basis),
 	}
+}
+
+func basisProto(b limits.Basis) pb.StabilityBasis {
+	switch b {
+	case limits.BasisManual:
+		return pb.StabilityBasis_STABILITY_BASIS_MANUAL
+	case limits.BasisAVR:
+		return pb.StabilityBasis_STABILITY_BASIS_AVR
+	}
+	return pb.StabilityBasis_STABILITY_BASIS_UNSPECIFIED
 }
 
 func sampleProto(s *ingest.Sample) *pb.Sample {
@@ -203,6 +215,10 @@ func EvaluationProto(e *report.Evaluation) *pb.Evaluation {
 		VoltsPerHertzPu: val(e.VoltsPerHertzPU), CriticalClearingTimeS: e.CriticalClearingTimeS,
 		CoolantOutsideTable:  e.CoolantOutsideTable,
 		ArmatureRatingFactor: e.ArmatureRatingFactor, FieldRatingFactor: e.FieldRatingFactor,
+		QUelMvar: e.QUELMvar,
+	}
+	if m := e.RotorMode; m != nil {
+		out.RotorMode = &pb.RotorMode{FrequencyHz: m.FrequencyHz, DampingRatio: m.DampingRatio}
 	}
 	for _, l := range limits.Limits() {
 		name := report.LimitOf(l).Name

@@ -485,18 +485,22 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 	d.Badge = badgeOf(&d.Alarms, d.State)
 	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
 	r := cfg.Rating
-	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, cfg.Machine.Rotor)
+	if r.Poles > 0 {
+		d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	}
 	if ev := d.Eval; ev != nil {
+		ev.SetRotorMode(cfg, v.Point) // an eigen decomposition: on this page only, not on the overview
 		d.Age = fmtAge(now.Sub(v.Received))
 		d.SampleTime = fmtWhen(v.Latest.Time)
 		d.AcceptedCount = v.Accepted
 		d.Quality = map[ingest.Quality]string{ingest.QualityGood: "good", ingest.QualityQuestionable: "questionable"}[v.Latest.Quality]
 		d.Questionable = v.Latest.Quality == ingest.QualityQuestionable
-		if v.Latest.HasFieldA && !v.Point.IfdMeasured {
+		if v.Latest.HasFieldA && (!v.Point.IfdMeasured || v.Eval.FieldCurrent != v.Point.Ifd) {
 			d.FieldReading = fmtNum(&v.Latest.FieldA, 0).Text + " A"
 			d.FieldUnused = "not used: the model's field current counts"
 			if d.Questionable {
-				d.FieldUnused = "not used: the sample is QUESTIONABLE, the model's field current counts"
+				d.FieldUnused = "not used: the sample is QUESTIONABLE, so the larger of reading and model counts: the model's"
 			}
 		}
 		d.Headroom.Up, d.Headroom.Down = fmtNum(ev.QHeadroomUpMvar, 1), fmtNum(ev.QHeadroomDownMvar, 1)
@@ -513,6 +517,13 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			}
 			if d.State == stateStale && mr.Level.Level == alarm.Normal {
 				mr.Level = badgeOf(&alarmSummary{Highest: mr.Level}, stateStale) // old values: never "normal"
+			}
+			if l == limits.LimitStability {
+				// Which limit this is: with the regulator in service or without.
+				mr.Basis += map[string]string{"avr": " (avr basis: voltage regulator in service)", "manual": " (manual basis: constant field voltage)"}[ev.StabilityBasis]
+				if m := ev.RotorMode; m != nil {
+					mr.Basis += fmt.Sprintf("; rotor mode %.2f Hz, damping ratio %.3f", m.FrequencyHz, m.DampingRatio)
+				}
 			}
 			if m != nil {
 				mr.Fill = fill(*m)
@@ -632,6 +643,11 @@ func drawChart(d *unitData) (template.HTML, error) {
 		}
 		opts = append(opts, chart.WithOperatingPoint(op), chart.WithTrail(trail))
 	}
+	var zones []limits.MhoZone
+	if lof := cfg.Settings().LossOfField; lof != nil {
+		zones = lof.Zones
+	}
+	opts = append(opts, chart.WithLimiters(nil, zones, vPU))
 	pts := cfg.Model.Envelope(vPU, coolant, hasCoolant, 41)
 	var buf bytes.Buffer
 	if err := chart.Capability(&buf, title, pts, cfg.Base, opts...); err != nil {

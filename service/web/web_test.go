@@ -142,7 +142,8 @@ func TestPagesRender(t *testing.T) {
 		overall []string // more for the overview
 	}{
 		{"no samples", func(*testing.T, *fixture) {}, []string{"No data from this unit yet", "rated voltage"}, nil, []string{"never"}},
-		{"samples", func(t *testing.T, f *fixture) { f.normal(t) }, []string{chart.ClassOperatingPoint, `data-value="p_mw"`, "Critical clearing time", "Margins to each limit"},
+		{"samples", func(t *testing.T, f *fixture) { f.normal(t) }, []string{chart.ClassOperatingPoint, `data-value="p_mw"`, "Critical clearing time", "Margins to each limit",
+			"avr basis: voltage regulator in service", "Underexcitation limiter", "rotor mode"},
 			[]string{"No active or shelved alarms"}, []string{"left", "280.0"}},
 		{"alarm", func(t *testing.T, f *fixture) { f.normal(t); f.overField(t) }, nil,
 			[]string{chart.ClassOperatingTrail, "Acknowledge", "OUTSIDE THE ENVELOPE", `data-alarm="field"`, `data-alarm="armature"`}, []string{"lvl-critical", "outside"}},
