@@ -371,7 +371,7 @@ const (
 	tabVLo      = 0.85
 	tabVHi      = 1.15
 	tabVStep    = 0.05
-	tabScanStep = 0.2
+	tabScanStep = scanStep
 	tabTol      = 1e-4
 )
 
@@ -402,10 +402,10 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 				// nodes before, kept when q_max (here the armature circle) is
 				// stable and the limit lies within tabNear of the guess.
 				guess := 2*low[k-1] - low[k-2]
-				it, ok = nearInterval(stable, qArm, guess)
+				it, ok = nearInterval(stable, qArm, guess, -qArm-tabDeep-scanFloor)
 			}
 			if !ok {
-				it = topInterval(stable, qArm, -qArm, tabScanStep, tabTol)
+				it = topInterval(stable, qArm, -qArm-tabDeep, tabScanStep, tabTol)
 			}
 			if it.err != nil {
 				return nil, it.err
@@ -439,6 +439,13 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	return t, nil
 }
 
+// tabDeep is how much deeper than the direct scan the table's build
+// looks for q_stability, pu: the per-sample path cuts the table's answer
+// at the direct scan's floor (scanFloor below the sample's armature lower
+// bound, which a coolant factor above 1 lowers), so the table must hold
+// the limit itself below that floor, not a floor of its own.
+const tabDeep = 0.5
+
 // tabNear is the half-width, pu, of the bracket about the continuation's
 // guess in which buildStabTable looks for the limit first.
 const tabNear = 0.01
@@ -446,12 +453,13 @@ const tabNear = 0.01
 // nearInterval looks for q_stability within tabNear of guess: q_max =
 // qTop stable, stable at the points of the coarse scan (tabScanStep) down
 // to the bracket's top and at the top itself, unstable at its bottom; ok
-// is false when that does not hold (the caller scans). The coarse scan
+// is false when that does not hold or the bracket reaches below floor
+// (the caller scans). The coarse scan
 // catches an unstable band that opens between q_max and the limit as p
 // grows, as the caller's scan would.
-func nearInterval(stable func(float64) (bool, error), qTop, guess float64) (interval, bool) {
+func nearInterval(stable func(float64) (bool, error), qTop, guess, floor float64) (interval, bool) {
 	hi, lo := guess+tabNear, guess-tabNear
-	if math.IsNaN(guess) || hi >= qTop {
+	if math.IsNaN(guess) || hi >= qTop || lo <= floor {
 		return interval{}, false
 	}
 	is := func(q float64, want bool) bool {
@@ -538,9 +546,11 @@ func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
 func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 	c := &u.avrChar
 	iv, ok, smooth := u.avrTab.lookup(p, v, qTop)
-	if ok && smooth {
-		return iv
-	}
+	// Near p = 0 (the table's first cell) the rotor's coupling to the
+	// field vanishes and the limit is not smooth enough in p for the
+	// bracket check to hold it: the rule is applied (tested against the
+	// example and demo fleets, TestFleetAVRFastAnswerAgrees).
+	ok = ok && p >= tabPStep
 	check := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, 0) }
 	topHolds := func() bool {
 		if iv.top.OK {
@@ -548,6 +558,22 @@ func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 		}
 		s, err := check(qTop) // q_max itself stable: it does not move
 		return err == nil && s
+	}
+	// The direct scan stops at its floor, scanFloor below qBot, and
+	// reports q_stability there when the interval reaches it; the table
+	// holds the limit deeper (tabDeep). Within tabCheck of the floor or
+	// below it, the answer is the floor where the model is stable at it
+	// (then the limit lies at or below the floor, or within tabCheck above
+	// it), checked at every sample since the floor is not in the table.
+	if floor := qBot - scanFloor; ok && iv.low.OK && iv.low.V < floor+tabCheck {
+		if s, err := check(floor); err == nil && s && floor < qTop && (smooth || topHolds()) {
+			iv.low = some(floor)
+			return iv
+		}
+		ok = false
+	}
+	if ok && smooth {
+		return iv
 	}
 	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) && topHolds() {
 		return iv
