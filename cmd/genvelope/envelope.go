@@ -1,14 +1,11 @@
 package main
 
 import (
-	"bufio"
 	"encoding/csv"
 	"encoding/json"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
-	"os"
 	"strconv"
 
 	"github.com/genvelope/genvelope/limits"
@@ -86,36 +83,19 @@ func envelope(e env, f *envelopeFlags) int {
 	}
 	pts := u.Model.Envelope(f.vPU.v, f.coolant.v, hasCoolant, f.points)
 
-	var w io.Writer = e.stdout
-	var file *os.File
-	if f.out != "" {
-		var err error
-		file, err = os.Create(f.out)
-		if err != nil {
-			return failf(e, c, exitFailure, "%v", err)
+	err := writeOutput(f.out, e.stdout, func(w io.Writer) error {
+		switch f.format.v {
+		case "json":
+			return writeEnvelopeJSON(w, u, f, hasCoolant, pts)
+		case "csv":
+			return writeEnvelopeCSV(w, u, pts)
 		}
-		w = file
-	}
-	bw := bufio.NewWriter(w)
-	var err error
-	switch f.format.v {
-	case "json":
-		err = writeEnvelopeJSON(bw, u, f, hasCoolant, pts)
-	case "csv":
-		err = writeEnvelopeCSV(bw, u, pts)
-	case "svg":
 		opts := []chart.Option{chart.WithPrimeMover(u.PrimeMover.PMinMW, u.PrimeMover.PMaxMW)}
 		if f.embedFonts {
 			opts = append(opts, chart.WithEmbeddedFonts())
 		}
-		err = chart.Capability(bw, envelopeTitle(u, f, hasCoolant), pts, u.Base, opts...)
-	}
-	if err == nil {
-		err = bw.Flush()
-	}
-	if file != nil {
-		err = errors.Join(err, file.Close())
-	}
+		return chart.Capability(w, envelopeTitle(u, f, hasCoolant), pts, u.Base, opts...)
+	})
 	if err != nil {
 		return failf(e, c, exitFailure, "writing the %s: %v", f.format.v, err)
 	}

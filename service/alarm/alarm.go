@@ -61,6 +61,8 @@ const (
 	StaleTelemetry       // no sample for a while (wall clock)
 	FieldCurrentMismatch // measured field current far from the model: a sensor or parameter problem
 	UEL                  // the margin above the regulator's underexcitation limiter curve
+	OELTimer             // the overexcitation limiter's inverse-time delay running out
+	SCLTimer             // the stator current limiter's inverse-time delay running out
 	NumKinds
 )
 
@@ -68,6 +70,7 @@ var kindNames = [NumKinds]string{
 	"armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz",
 	"armature_thermal", "field_thermal", "voltage_frequency_zone", "stale_telemetry", "field_current_mismatch",
 	"uel",
+	"oel", "scl",
 }
 
 // String returns the kind's name, as used in the fleet file, the API and
@@ -131,6 +134,8 @@ var quantities = [NumKinds]Quantity{
 	{"time since the last sample", "s", true},
 	{"field current disagreement with the model", "", true},
 	{"UEL margin", "pu", false},
+	{"time before the overexcitation limiter acts", "s", false},
+	{"time before the stator current limiter acts", "s", false},
 }
 
 // QuantityOf returns what kind k's thresholds apply to.
@@ -158,6 +163,9 @@ func Defaults() [NumKinds]Setting {
 	s[VoltageFrequencyZone] = Setting{Warning: 1, Critical: 2, OnDelay: 5 * time.Second, OffDelay: 30 * time.Second}
 	s[StaleTelemetry] = Setting{Warning: 30, Critical: 120}
 	s[FieldCurrentMismatch] = Setting{Warning: 0.10, Critical: 0.20, Deadband: 0.02, OnDelay: 30 * time.Second, OffDelay: 60 * time.Second}
+	// The limiter timers are delays already: no on-delay.
+	limiter := Setting{Warning: 30, Critical: 10, Deadband: 2, OffDelay: 10 * time.Second}
+	s[OELTimer], s[SCLTimer] = limiter, limiter
 	return s
 }
 

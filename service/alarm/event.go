@@ -61,7 +61,9 @@ type Context struct {
 	AgeS         float64
 	Zone         string
 	VPerHzPU     float64
-	NoData       bool // the unit has never reported
+	NoData       bool    // the unit has never reported
+	OELXPU       float64 // the currents the limiters act on, pu of their ratings
+	SCLXPU       float64
 }
 
 // Message returns the operator's sentence for a level change of kind k
@@ -112,6 +114,10 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 			return fmt.Sprintf("%s: no sample received in the %.0f s since the service started: no data, its limits are not being watched; check the SCADA link.", id, c.AgeS)
 		}
 		return fmt.Sprintf("%s: no sample for %.0f s; its limits are not being watched; check the SCADA link.", id, c.AgeS)
+	case OELTimer:
+		return fmt.Sprintf("%s: OEL will act in %.0f s at %.2f pu field current %s; reduce excitation (deliver fewer Mvar) before the limiter takes it down.", id, value, c.OELXPU, at)
+	case SCLTimer:
+		return fmt.Sprintf("%s: SCL will act in %.0f s at %.2f pu stator current %s; bring the reactive power towards zero before the limiter does.", id, value, c.SCLXPU, at)
 	case FieldCurrentMismatch:
 		meas := "?"
 		if c.IfdMeasuredA != nil {

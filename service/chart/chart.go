@@ -64,6 +64,7 @@ type config struct {
 	trail          []Point
 	width, height  vg.Length
 	embedFonts     bool
+	lim            *limiterMarks // coord_marks.go
 }
 
 // WithPrimeMover draws the prime mover's active-power range as lines at
@@ -212,6 +213,15 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		if first != nil && c.label != "" {
 			legend = append(legend, entry{c.label, first})
 		}
+	}
+
+	extra, err := limiterLines(cfg.lim, pts, mva)
+	if err != nil {
+		return err
+	}
+	for _, e := range extra {
+		p.Add(e.line)
+		legend = append(legend, entry{e.label, e.thumb})
 	}
 
 	// The Q range, for the horizontal lines and the axes.
@@ -479,7 +489,9 @@ func (t ticks) Ticks(lo, hi float64) []plot.Tick {
 		}
 		label := ""
 		if math.Mod(i, 2) == 0 {
-			label = strconv.FormatFloat(v, 'f', -1, 64)
+			// As many decimals as the step needs: i*half carries the
+			// rounding error of the product (1.2000000000000002).
+			label = strconv.FormatFloat(v, 'f', max(0, -int(math.Floor(math.Log10(step)+1e-9))), 64)
 		}
 		out = append(out, plot.Tick{Value: v, Label: label})
 	}

@@ -111,6 +111,7 @@ func (d *decoder) build(c *unitCtx) {
 	}
 	c.checkRatedPoint(m)
 	c.checkRatedField(m)
+	c.checkSettings()
 	if !c.bad {
 		u.Model = m
 	}

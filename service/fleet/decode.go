@@ -79,6 +79,8 @@ func unitKeys() []unitKey {
 		{name: "stability", required: false, decode: (*unitCtx).decodeStability},
 		{name: "end_region", required: false, decode: (*unitCtx).decodeEndRegion},
 		{name: "coolant", required: false, decode: (*unitCtx).decodeCoolant},
+		{name: "protection", required: false, decode: (*unitCtx).decodeProtection},
+		{name: "transformer", required: false, decode: (*unitCtx).decodeTransformer},
 		{name: "alarms", required: false, decode: (*unitCtx).decodeAlarms},
 		{name: "plausibility", required: false, decode: (*unitCtx).decodePlausibility},
 	}
@@ -433,24 +435,6 @@ func nonNegative(x float64) string {
 		return ""
 	}
 	return "must not be negative"
-}
-
-func between(lo, hi float64, loOpen, hiOpen bool) func(float64) string {
-	return func(x float64) string {
-		okLo := x > lo || (!loOpen && x == lo)
-		okHi := x < hi || (!hiOpen && x == hi)
-		if okLo && okHi {
-			return ""
-		}
-		l, r := "[", "]"
-		if loOpen {
-			l = "("
-		}
-		if hiOpen {
-			r = ")"
-		}
-		return fmt.Sprintf("must be in %s%s, %s%s", l, fmtNum(lo), fmtNum(hi), r)
-	}
 }
 
 func fmtNum(x float64) string { return strconv.FormatFloat(x, 'g', -1, 64) }
@@ -897,4 +881,5 @@ func (c *unitCtx) crossChecks() {
 		u.Stability.Basis = limits.BasisAVR
 	}
 	u.Base = limits.Base{MVA: u.Rating.MVA, KV: u.Rating.KV, FrequencyHz: u.Rating.FrequencyHz, IFagA: u.Field.AirGapA}
+	c.protectionCrossChecks()
 }

@@ -6,8 +6,8 @@
 //
 // A fleet file has one top-level key, units:, a list of units. Each unit
 // has the keys id, name, site, rating, machine, field, prime_mover, grid,
-// excitation, stabilizer, stability, end_region, coolant and alarms; see
-// deploy/examples/fleet.yaml.
+// excitation, stabilizer, stability, end_region, coolant, protection,
+// transformer and alarms; see deploy/examples/fleet.yaml.
 package fleet
 
 import (
@@ -75,6 +75,11 @@ type Unit struct {
 	EndRegion  *EndRegion // nil when not given
 	Coolant    *Coolant   // nil when not given
 
+	// The limiters (excitation.oel, scl, vhz_limiter), the protection and
+	// the step-up transformer, for the coordination study.
+	Limiters     Limiters
+	Protection   Protection
+	Transformer  *Transformer // nil when not given
 	Plausibility Plausibility // the values it can physically report; zero fields take the defaults
 
 	// Alarms are the unit's alarm settings: the fleet's, with the unit's

@@ -543,7 +543,7 @@ func TestParseRegulatorRules(t *testing.T) {
 		{"uel points not increasing", "uel: {shape: circle, center_p_mw: 0, center_q_mvar: 24, radius_mvar: 84, voltage_exponent: 2}",
 			"uel: {shape: points, points: [{p_mw: 0, q_mvar: -30}, {p_mw: 0, q_mvar: -24}]}",
 			[]want{{73, "excitation.uel.points[2]", E, "point 2: p_mw must be finite and above the previous point's"}}},
-		{"oel not yet", "      t_r_s: 0.01\n", "      oel: {pickup_pu: 1.05}\n", []want{{70, "excitation.oel", E, "not supported yet"}}},
+		{"oel without k_s", "      t_r_s: 0.01\n", "      oel: {pickup_pu: 1.05}\n", []want{{70, "excitation.oel.k_s", E, "missing"}}},
 		{"power factor 1", "power_factor: 0.9, frequency_hz: 50}\n    machine:\n      rotor: salient\n      xd: 1.05\n      xq: 0.66\n      xl: 0.15\n      xd_transient",
 			"power_factor: 1.0, frequency_hz: 50}\n    machine:\n      rotor: salient\n      xd: 1.05\n      xq: 0.66\n      xl: 0.15\n      xd_transient",
 			// It validates; at 120 MW, beyond this unit's 108 MW prime mover, the

@@ -49,6 +49,8 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 			return math.NaN()
 		}
 		return math.Abs(u.cfg.Base.FieldPU(s.FieldA)-e.IfdModel) / e.IfdModel
+	case k == alarm.OELTimer || k == alarm.SCLTimer:
+		return u.limiterQuantity(k)
 	}
 	return math.NaN()
 }
@@ -180,6 +182,8 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 		return ageS, u.cfg.Alarms[k].Warning, "s"
 	case alarm.FieldCurrentMismatch:
 		return smp.FieldA, b.FieldA(e.IfdModel), "A"
+	case alarm.OELTimer, alarm.SCLTimer:
+		return u.limiterQuantity(k), 0, "s"
 	}
 	return math.NaN(), math.NaN(), ""
 }
@@ -208,7 +212,8 @@ func (u *Unit) context() alarm.Context {
 	s := &u.latest
 	e := report.New(u.cfg, u.pt, &u.eval) // the point as evaluated
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
-		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
+		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz,
+		OELXPU: u.lim.xOEL, SCLXPU: u.lim.xSCL}
 	if e.QMaxLimit != nil {
 		c.QMaxLimit = *e.QMaxLimit
 	}

@@ -557,6 +557,8 @@ type Unit struct {
 
 	alarms [alarm.NumKinds]alarm.Machine
 	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
+
+	lim limiterState // the OEL and SCL timers (limiters.go)
 }
 
 // heatSize is how many recent samples' heating a unit remembers, so
@@ -651,6 +653,7 @@ func (u *Unit) advance(dt int64) {
 	sec := float64(dt) / 1e9
 	u.armature.Advance(u.hArm, sec)
 	u.field.Advance(u.hField, sec)
+	u.advanceLimiters(sec)
 	h.arm += u.armature.H - a0
 	h.field += u.field.H - f0
 }
@@ -729,6 +732,7 @@ func (u *Unit) evaluate() {
 	u.pt = pt
 	u.xArm = u.eval.I / u.eval.IMax
 	u.xField = u.eval.FieldCurrent / u.eval.IfdMax
+	u.holdLimiters()
 }
 
 // complete solves what the per-sample evaluation left pending. u.mu
@@ -794,6 +798,7 @@ type View struct {
 	Suspect        bool   // the latest sample is suspect (first after a gap, or a jump): its current is not yet held
 	Suspects       uint64 // suspect samples since the service started
 	Alarms         [alarm.NumKinds]alarm.Machine
+	Limiters       LimiterView // the OEL and SCL timers, the V/Hz limiter margin
 }
 
 // View returns a consistent copy of the unit's state.
@@ -802,7 +807,8 @@ func (u *Unit) View() View {
 	defer u.mu.Unlock()
 	u.complete()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
-		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects}
+		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects,
+		Limiters: u.limiterView()}
 	switch {
 	case !u.has:
 		v.Data = NoData

@@ -48,6 +48,7 @@ type Collector struct {
 	qLimit, accepted, samples, units                       *family
 	alarmLevel, alarmShelved, alarmAcked, transitions      *family
 	rotorFrequency, rotorDamping                           *family
+	limiters                                               limiterFamilies // limiters.go
 	dataState, suspects                                    *family
 }
 
@@ -95,6 +96,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	c.rotorDamping = d("rotor_mode_damping_ratio", "Damping ratio of the rotor (electromechanical) mode at the latest operating point, -Re/|lambda| (negative: a growing oscillation; units on the avr stability basis).")
 	c.age = d("telemetry_age_seconds", "Time since the unit's latest sample was accepted, by the server clock, s.")
 	c.sampleTime = d("sample_timestamp_seconds", "Timestamp carried by the unit's latest accepted sample, Unix s.")
+	c.limiters = describeLimiters(d)
 	return c
 }
 
@@ -147,6 +149,7 @@ func (c *Collector) series(out sink) {
 		out.add(c.suspects, float64(v.Suspects), id, site)
 		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
 		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		c.limiters.series(out, &v, id, site)
 		for k := range v.Alarms {
 			m := &v.Alarms[k]
 			name := alarm.Kind(k).String()

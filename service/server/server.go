@@ -228,6 +228,7 @@ func New(cfg Config) (*Server, error) {
 	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining, Denied: s.denied, Log: tlog}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
 	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining, Actions: actions}))
+	pb.RegisterCoordinationServiceServer(s.grpc, rpc.NewCoordination(s.store))
 	pb.RegisterJournalServiceServer(s.grpc, rpc.NewJournal(s.store, s.journal, nil))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)

@@ -135,6 +135,8 @@ var kindTitle = [alarm.NumKinds]string{
 	alarm.StaleTelemetry:       "Telemetry stale",
 	alarm.FieldCurrentMismatch: "Field current vs model",
 	alarm.UEL:                  "Underexcitation limiter",
+	alarm.OELTimer:             "Overexcitation limiter",
+	alarm.SCLTimer:             "Stator current limiter",
 }
 
 // limitName returns the operators' name of a limit given by its name.
@@ -506,6 +508,11 @@ func drawChart(d *unitData) (template.HTML, error) {
 		}
 		opts = append(opts, chart.WithOperatingPoint(op), chart.WithTrail(trail))
 	}
+	var zones []limits.MhoZone
+	if lof := cfg.Settings().LossOfField; lof != nil {
+		zones = lof.Zones
+	}
+	opts = append(opts, chart.WithLimiters(nil, zones, vPU))
 	pts := cfg.Model.Envelope(vPU, coolant, hasCoolant, 41)
 	var buf bytes.Buffer
 	if err := chart.Capability(&buf, title, pts, cfg.Base, opts...); err != nil {
