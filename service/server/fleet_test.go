@@ -141,10 +141,18 @@ func TestGetUnit(t *testing.T) {
 				pt.Coolant, pt.HasCoolant = *tc.s.Coolant, true
 			}
 			// With a hint, as the service evaluates samples: on the avr basis
-			// that reads the stability limit from the unit's table (limits'
-			// contract: within 0.002 pu of the direct computation).
+			// that reads the stability limit from the unit's table, which the
+			// answer must match exactly; that in turn within 0.002 pu of the
+			// direct computation (Evaluate without a hint, limits' contract).
 			var h limits.Hint
 			res := u.Model.Evaluate(pt, &h)
+			direct := u.Model.Evaluate(pt, nil)
+			for _, x := range [][2]limits.Bound{{res.Stability, direct.Stability}, {res.Practical, direct.Practical},
+				{res.StabilityTop, direct.StabilityTop}, {res.QMax, direct.QMax}, {res.QMin, direct.QMin}} {
+				if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 0.002 {
+					t.Errorf("the service's path %+v, the direct computation %+v (pu; the contract is 0.002 pu)", x[0], x[1])
+				}
+			}
 			e := report.New(u, pt, &res)
 			e.SetRotorMode(u, pt)
 			want := rpc.EvaluationProto(e)

@@ -145,10 +145,24 @@ func TestPrometheusScrape(t *testing.T) {
 		Ifd: *last.FieldA / u.Base.IFagA, IfdMeasured: true, Coolant: *last.Coolant, HasCoolant: true,
 	}
 	// With a hint, as the service evaluates samples: on the avr basis that
-	// reads the stability limit from the unit's table (within 0.002 pu of
-	// the direct computation, the limits contract).
+	// reads the stability limit from the unit's table, which the series
+	// must match exactly. That answer in turn is held to the direct
+	// computation (Evaluate without a hint) within 0.002 pu, the limits
+	// contract, for every bound the stability limit enters.
 	var hint limits.Hint
 	res := u.Model.Evaluate(pt, &hint)
+	direct := u.Model.Evaluate(pt, nil)
+	for _, b := range []struct {
+		name          string
+		hinted, exact limits.Bound
+	}{
+		{"q_stability", res.Stability, direct.Stability}, {"practical", res.Practical, direct.Practical},
+		{"stability top", res.StabilityTop, direct.StabilityTop}, {"q_max", res.QMax, direct.QMax}, {"q_min", res.QMin, direct.QMin},
+	} {
+		if b.hinted.OK != b.exact.OK || math.Abs(b.hinted.V-b.exact.V) > 0.002 {
+			t.Errorf("%s: the service's path %+v, the direct computation %+v (pu; the contract is 0.002 pu)", b.name, b.hinted, b.exact)
+		}
+	}
 	if !res.QMax.OK {
 		t.Fatal("the engine has no q_max at the checked sample: choose another")
 	}
