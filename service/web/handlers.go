@@ -272,6 +272,16 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 	if name, _ := ui.opts.Identity(r); name != "" {
 		by = name // the authenticated identity, not a typed name
 	}
+	if action != "acknowledge" && action != "shelve" && action != "unshelve" {
+		fail(http.StatusNotFound, fmt.Sprintf("There is no alarm action %q: acknowledge, shelve or unshelve.", action))
+		return
+	}
+	if by == "" {
+		// The journal records who acted: without a signed-in identity the
+		// operator gives a name.
+		fail(http.StatusBadRequest, "Enter your name in the Operator box first: the journal records who acknowledged or shelved an alarm.")
+		return
+	}
 	now := ui.opts.Now()
 	var err error
 	var done string
@@ -319,7 +329,7 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 }
 
 // operator returns the operator's name from a form field: printable,
-// at most 64 characters, "web" when empty.
+// at most 64 characters; empty when none was given.
 func operator(s string) string {
 	s = strings.Map(func(r rune) rune {
 		if unicode.IsPrint(r) {
@@ -330,10 +340,7 @@ func operator(s string) string {
 	if rs := []rune(s); len(rs) > 64 {
 		s = string(rs[:64])
 	}
-	if s = strings.TrimSpace(s); s == "" {
-		return "web"
-	}
-	return s
+	return strings.TrimSpace(s)
 }
 
 func (ui *UI) notFound(w http.ResponseWriter, r *http.Request) {
