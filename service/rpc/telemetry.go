@@ -150,8 +150,11 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 	resp := &pb.PushResponse{Sequence: req.Sequence}
 	var tally ingest.Tally
 	for i, s := range req.Samples {
-		var smp ingest.Sample
-		res, detail := t.judge(now, s, &smp, t.store.Accept)
+		var smp ingest.Sample // stays on the stack: Accept is called directly
+		res, detail := t.convert(s, &smp)
+		if res == ingest.Accepted {
+			res, detail = t.store.Accept(now, &smp)
+		}
 		tally[res]++
 		answer(resp, i, res, detail)
 	}
@@ -174,13 +177,12 @@ func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	return nil
 }
 
-// judge converts s into smp and returns what check says of it.
-func (t *Telemetry) judge(now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+// convert converts s into smp, or returns the reason it cannot be. It
+// takes no checking function: called through a function value or an
+// interface, the sample would move to the heap, one allocation a sample.
+func (t *Telemetry) convert(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
 	res, detail := FromProto(s, smp)
-	switch {
-	case res == ingest.Accepted:
-		return check(now, smp)
-	case t.store.Unit(s.UnitId) == nil:
+	if res != ingest.Accepted && t.store.Unit(s.UnitId) == nil {
 		// The unit is the first thing a sample is judged by.
 		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
 	}
@@ -226,13 +228,19 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 	smps := make([]ingest.Sample, 0, len(req.Samples))
 	idx := make([]int, 0, len(req.Samples))
 	for i, s := range req.Samples {
-		var smp ingest.Sample
-		res, detail := t.judge(now, s, &smp, t.log.Check)
+		// Converted in its place in smps: passed to the log's Check, an
+		// interface method, a local sample would move to the heap.
+		smps = append(smps, ingest.Sample{})
+		smp := &smps[len(smps)-1]
+		res, detail := t.convert(s, smp)
 		if res == ingest.Accepted {
-			smps = append(smps, smp)
+			res, detail = t.log.Check(now, smp)
+		}
+		if res == ingest.Accepted {
 			idx = append(idx, i)
 			continue
 		}
+		smps = smps[:len(smps)-1]
 		results[i], details[i] = res, detail
 		tally[res]++
 	}

@@ -21,7 +21,7 @@ import (
 
 const waitLong = 60 * time.Second
 
-func exampleStore(t *testing.T) *ingest.Store {
+func exampleStore(t testing.TB) *ingest.Store {
 	t.Helper()
 	data, err := os.ReadFile("../../deploy/examples/fleet.yaml")
 	if err != nil {
