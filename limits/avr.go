@@ -37,6 +37,13 @@ const (
 // qBot: low is absent (infeasible, reason stability). Stable down to
 // qBot - scanFloor: low is reported there.
 func topInterval(stable func(q float64) (bool, error), qTop, qBot, step, tol float64) interval {
+	return topIntervalTo(stable, qTop, qBot, qBot-scanFloor, step, tol)
+}
+
+// topIntervalTo is topInterval with the floor of the downward scan for
+// the interval's bottom given (the table's build looks deeper than the
+// direct scan, tabDeep; the top is looked for down to qBot on both).
+func topIntervalTo(stable func(q float64) (bool, error), qTop, qBot, floor, step, tol float64) interval {
 	var iv interval
 	s, err := stable(qTop)
 	if err != nil {
@@ -65,7 +72,6 @@ func topInterval(stable func(q float64) (bool, error), qTop, qBot, step, tol flo
 			return iv
 		}
 	}
-	floor := qBot - scanFloor
 	for {
 		if q <= floor {
 			iv.low = some(floor)
@@ -335,10 +341,11 @@ func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 
 // stabTable is q_stability on the avr basis over a grid of p and v,
 // built once in New, for the per-sample path: the rule is applied at
-// every node with the Routh-Hurwitz test, a coarser scan (tabScanStep)
-// and a bisection to tabTol, with continuation along p (nearInterval),
-// and read by bilinear interpolation; see fastInterval for how its
-// answer is used and checked.
+// every node with the Routh-Hurwitz test, a scan of tabScanStep and a
+// bisection to tabTol, with continuation along p (nearInterval), and
+// read by bilinear interpolation; see fastInterval for how its answer is
+// used and checked. Cells where the stable set is not one interval
+// (markScan) are not read: the per-sample path applies the rule there.
 type stabTable struct {
 	np, nv   int
 	pStep    float64 // pu; the p grid starts at 0
@@ -347,6 +354,70 @@ type stabTable struct {
 	top      []int16 // top of the topmost stable interval (the armature circle where that is stable); nil when no node moved
 	moved    []bool  // top lies below the armature circle (q_max moves there); nil when no node moved
 	smooth   []bool  // cell (i_v*(np-1) + i_p) interpolates within tabSmooth, by its second differences
+	scan     []bool  // cell (i_v*(np-1) + i_p) has a node with a stable island below q_stability: the per-sample path scans there
+}
+
+// hasIsland says whether stable finds a stable q below the limit low
+// (an unstable band between two stable intervals), scanning down from
+// low to floor in steps of tabIslandStep. Where a node has one, a band can
+// open or close inside the cells about it, moving the topmost interval's
+// bottom by far more than interpolation or the bracket check can tell
+// (high-gain, slow exciters), so those cells are not read from the
+// table. A failed test counts as an island (the cell is scanned).
+func hasIsland(stable func(float64) (bool, error), low, floor float64) bool {
+	for q := low - tabIslandStep; q > floor; q -= tabIslandStep {
+		if s, err := stable(q); err != nil || s {
+			return true
+		}
+	}
+	return false
+}
+
+// markScan marks the cells the per-sample path does not read: those
+// with a node that has a stable island, and those where the rule applied
+// at the cell's centre (at) shows what the four nodes do not: an island,
+// a different answer on feasibility or on whether the top moves, or a
+// limit or top more than tabNear from the nodes' mean (an unstable band
+// that opens or a stable island that rises inside the cell, which the
+// bracket check cannot tell from the boundary below it). A centre more
+// than tabSmooth from that mean makes the cell not smooth.
+func (t *stabTable) markScan(island []bool, low, top []float64, moved []bool, at func(p, v float64) (interval, bool)) error {
+	t.scan = make([]bool, (t.np-1)*(t.nv-1))
+	for iv := range t.nv - 1 {
+		for ip := range t.np - 1 {
+			k, cell := iv*t.np+ip, iv*(t.np-1)+ip
+			idx := [4]int{k, k + 1, k + t.np, k + t.np + 1}
+			if island[idx[0]] || island[idx[1]] || island[idx[2]] || island[idx[3]] {
+				t.scan[cell] = true
+				continue
+			}
+			it, isl := at((float64(ip)+0.5)*t.pStep, t.v0+(float64(iv)+0.5)/t.vInv)
+			if it.err != nil {
+				return it.err
+			}
+			var mLow, mTop float64
+			anyMoved, allOK := false, true
+			for _, j := range idx {
+				mLow += low[j] / 4
+				mTop += top[j] / 4
+				anyMoved = anyMoved || moved[j]
+				allOK = allOK && !math.IsNaN(low[j])
+			}
+			switch {
+			case isl || it.low.OK != allOK || it.top.OK != anyMoved:
+				t.scan[cell] = true
+			case !it.low.OK:
+			default:
+				d := math.Abs(it.low.V - mLow)
+				if it.top.OK {
+					d = math.Max(d, math.Abs(it.top.V-mTop))
+				}
+				t.scan[cell] = d > tabNear
+				t.smooth[cell] = t.smooth[cell] && d <= tabSmooth
+			}
+		}
+	}
+	return nil
 }
 
 // The table stores q in fixed point: tabQuant pu a step (an error of
@@ -364,15 +435,20 @@ func toQ16(q float64) int16 {
 
 // The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
 // Its spacing keeps bilinear interpolation within 0.002 pu of the direct
-// computation over the chart (TestAVRTableAgrees).
+// computation over the chart (TestAVRTableAgrees). The build's scan step
+// tabScanStep (twice the direct scan's, our choice) sees the unstable
+// bands of high-gain slow exciters that a 0.2 pu step missed (a band
+// 0.05-0.3 pu wide between q_max and the limit, TestRandomUnitsFastAnswer);
+// the islands below the limit are looked for at tabIslandStep.
 const (
-	tabPMax     = 1.2
-	tabPStep    = 0.05
-	tabVLo      = 0.85
-	tabVHi      = 1.15
-	tabVStep    = 0.05
-	tabScanStep = 0.2
-	tabTol      = 1e-4
+	tabPMax       = 1.2
+	tabPStep      = 0.05
+	tabVLo        = 0.85
+	tabVHi        = 1.15
+	tabVStep      = 0.05
+	tabScanStep   = 0.04
+	tabIslandStep = 0.1
+	tabTol        = 1e-4
 )
 
 // tabCheck is the half-width of the bracket, pu, in which the per-sample
@@ -386,7 +462,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	t := &stabTable{np: int(math.Round(tabPMax/tabPStep)) + 1, nv: int(math.Round((tabVHi-tabVLo)/tabVStep)) + 1,
 		pStep: tabPStep, v0: tabVLo, vInv: 1 / tabVStep}
 	n := t.np * t.nv
-	low, top, moved := make([]float64, n), make([]float64, n), make([]bool, n)
+	low, top, moved, island := make([]float64, n), make([]float64, n), make([]bool, n), make([]bool, n)
 	c := &u.avrChar
 	for iv := range t.nv {
 		v := tabVLo + float64(iv)*tabVStep
@@ -402,10 +478,10 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 				// nodes before, kept when q_max (here the armature circle) is
 				// stable and the limit lies within tabNear of the guess.
 				guess := 2*low[k-1] - low[k-2]
-				it, ok = nearInterval(stable, qArm, guess)
+				it, ok = nearInterval(stable, qArm, guess, -qArm-tabDeep-scanFloor)
 			}
 			if !ok {
-				it = topInterval(stable, qArm, -qArm, tabScanStep, tabTol)
+				it = topIntervalTo(stable, qArm, -qArm, -qArm-tabDeep-scanFloor, tabScanStep, tabTol)
 			}
 			if it.err != nil {
 				return nil, it.err
@@ -413,6 +489,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 			low[k], top[k] = math.NaN(), qArm
 			if it.low.OK {
 				low[k] = it.low.V
+				island[k] = hasIsland(stable, it.low.V, -qArm-tabDeep-scanFloor)
 			}
 			if it.top.OK {
 				top[k], moved[k] = it.top.V, true
@@ -420,6 +497,14 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 		}
 	}
 	t.markSmooth(low, top, moved)
+	if err := t.markScan(island, low, top, moved, func(p, v float64) (interval, bool) {
+		qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+		stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
+		it := topIntervalTo(stable, qArm, -qArm, -qArm-tabDeep-scanFloor, tabScanStep, tabTol)
+		return it, it.err == nil && it.low.OK && hasIsland(stable, it.low.V, -qArm-tabDeep-scanFloor)
+	}); err != nil {
+		return nil, err
+	}
 	t.low = make([]int16, n)
 	for k, q := range low {
 		t.low[k] = tabNone
@@ -439,6 +524,13 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	return t, nil
 }
 
+// tabDeep is how much deeper than the direct scan the table's build
+// looks for q_stability, pu: the per-sample path cuts the table's answer
+// at the direct scan's floor (scanFloor below the sample's armature lower
+// bound, which a coolant factor above 1 lowers), so the table must hold
+// the limit itself below that floor, not a floor of its own.
+const tabDeep = 0.5
+
 // tabNear is the half-width, pu, of the bracket about the continuation's
 // guess in which buildStabTable looks for the limit first.
 const tabNear = 0.01
@@ -446,12 +538,12 @@ const tabNear = 0.01
 // nearInterval looks for q_stability within tabNear of guess: q_max =
 // qTop stable, stable at the points of the coarse scan (tabScanStep) down
 // to the bracket's top and at the top itself, unstable at its bottom; ok
-// is false when that does not hold (the caller scans). The coarse scan
-// catches an unstable band that opens between q_max and the limit as p
-// grows, as the caller's scan would.
-func nearInterval(stable func(float64) (bool, error), qTop, guess float64) (interval, bool) {
+// is false when that does not hold or the bracket reaches below floor
+// (the caller scans). The scan catches an unstable band that opens
+// between q_max and the limit as p grows, as the caller's scan would.
+func nearInterval(stable func(float64) (bool, error), qTop, guess, floor float64) (interval, bool) {
 	hi, lo := guess+tabNear, guess-tabNear
-	if math.IsNaN(guess) || hi >= qTop {
+	if math.IsNaN(guess) || hi >= qTop || lo <= floor {
 		return interval{}, false
 	}
 	is := func(q float64, want bool) bool {
@@ -538,9 +630,11 @@ func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
 func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 	c := &u.avrChar
 	iv, ok, smooth := u.avrTab.lookup(p, v, qTop)
-	if ok && smooth {
-		return iv
-	}
+	// Near p = 0 (the table's first cell) the rotor's coupling to the
+	// field vanishes and the limit is not smooth enough in p for the
+	// bracket check to hold it: the rule is applied (tested against the
+	// example and demo fleets, TestFleetAVRFastAnswerAgrees).
+	ok = ok && p >= tabPStep
 	check := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, 0) }
 	topHolds := func() bool {
 		if iv.top.OK {
@@ -548,6 +642,24 @@ func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 		}
 		s, err := check(qTop) // q_max itself stable: it does not move
 		return err == nil && s
+	}
+	// The direct scan stops at its floor, scanFloor below qBot, and
+	// reports q_stability there when the interval reaches it; the table
+	// holds the limit deeper (tabDeep), so its answer is cut at the floor.
+	// In a smooth cell the table is within tabSmooth of the limit, and the
+	// cut answer within tabSmooth of the direct one. Elsewhere near or
+	// below the floor the bracket check has no boundary to find (and an
+	// island below an unstable band would pass a test at the floor): the
+	// rule is applied.
+	if floor := qBot - scanFloor; ok && iv.low.OK && iv.low.V < floor+tabCheck {
+		if !smooth {
+			ok = false
+		} else if iv.low.V < floor {
+			iv.low = some(floor)
+		}
+	}
+	if ok && smooth {
+		return iv
 	}
 	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) && topHolds() {
 		return iv
@@ -584,10 +696,10 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		return interval{}, false, false
 	}
 	var low, top float64
-	moved, none := false, false
+	moved, none, scan := false, false, false
 	switch last := float64(t.nv - 1); {
 	case y >= 0 && y <= last:
-		low, top, moved, none, smooth = t.at(x, y)
+		low, top, moved, none, smooth, scan = t.at(x, y)
 	case y > last && y-last <= 2 || y < 0 && y >= -2:
 		// d rows beyond the edge row e, with rows e-s and e-2s inside.
 		e, s, d := last, 1.0, y-last
@@ -597,8 +709,8 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		var f [3]float64
 		var g [3]float64
 		for i := range f {
-			l, tp, mv, nn, _ := t.at(x, e-s*float64(i))
-			if nn {
+			l, tp, mv, nn, _, sc := t.at(x, e-s*float64(i))
+			if nn || sc {
 				return interval{}, false, false
 			}
 			f[i], g[i], moved = l, tp, moved || mv
@@ -608,6 +720,9 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 		}
 		low, top = ext(f), ext(g)
 	default:
+		return interval{}, false, false
+	}
+	if scan {
 		return interval{}, false, false
 	}
 	if none {
@@ -629,7 +744,7 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 // at a node around, whether the nearest node has no stable operation,
 // and whether the cell is smooth (or, with none, whether no node around
 // has stable operation).
-func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool) {
+func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth, scan bool) {
 	ip, jv := int(x), int(y)
 	if ip == t.np-1 {
 		ip--
@@ -639,7 +754,7 @@ func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool
 	}
 	wx, wy := x-float64(ip), y-float64(jv)
 	k := jv*t.np + ip
-	smooth = t.smooth[jv*(t.np-1)+ip]
+	smooth, scan = t.smooth[jv*(t.np-1)+ip], t.scan[jv*(t.np-1)+ip]
 	idx := [4]int{k, k + 1, k + t.np, k + t.np + 1}
 	w := [4]float64{(1 - wx) * (1 - wy), wx * (1 - wy), (1 - wx) * wy, wx * wy}
 	near := 0
@@ -655,7 +770,7 @@ func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool
 		for _, j := range idx {
 			all = all && t.low[j] == tabNone
 		}
-		return 0, 0, false, true, all
+		return 0, 0, false, true, all, scan
 	}
 	var sw float64
 	for i, j := range idx {
@@ -669,5 +784,5 @@ func (t *stabTable) at(x, y float64) (low, top float64, moved, none, smooth bool
 		}
 		sw += w[i]
 	}
-	return low / sw * tabQuant, top / sw * tabQuant, moved, false, smooth
+	return low / sw * tabQuant, top / sw * tabQuant, moved, false, smooth, scan
 }

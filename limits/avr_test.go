@@ -345,15 +345,13 @@ func TestAVRTableAgrees(t *testing.T) {
 }
 
 // fastDiffers compares the direct bounds d with the per-sample ones f:
-// q_max, q_min, the moved top and q_stability within 0.002 pu, present or
-// absent alike. A q_stability below the armature lower bound in both is
-// off the chart (the armature binds; the direct scan reports it at its
-// floor, the table interpolates floors) and is not compared.
+// q_max, q_min, the moved top, q_stability and the practical limit
+// within 0.002 pu, present or absent alike. Below the armature lower
+// bound too: the stability margin shows q_stability there (the direct
+// scan reports it at its floor, scanFloor below that bound, when the
+// interval reaches it).
 func fastDiffers(d, f Bounds) string {
-	pairs := [][2]Bound{{d.QMax, f.QMax}, {d.QMin, f.QMin}, {d.StabilityTop, f.StabilityTop}}
-	if !(d.Stability.OK && f.Stability.OK && d.Stability.V < d.ArmatureDown.V && f.Stability.V < d.ArmatureDown.V) {
-		pairs = append(pairs, [2]Bound{d.Stability, f.Stability})
-	}
+	pairs := [][2]Bound{{d.QMax, f.QMax}, {d.QMin, f.QMin}, {d.StabilityTop, f.StabilityTop}, {d.Stability, f.Stability}, {d.Practical, f.Practical}}
 	for _, x := range pairs {
 		if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 0.002 {
 			return fmt.Sprintf("direct %+v, per-sample %+v", x[0], x[1])
@@ -637,16 +635,15 @@ func TestAVRNonsensePoints(t *testing.T) {
 // constants, grid strength, with and without a stabilizer; a seeded
 // generator, so the test is the same every run) the per-sample answer is
 // within 0.002 pu of the direct computation at random points of the
-// chart, except where the stability boundary has a feature narrower than
-// the table sees: an unstable band or a stable island narrower than its
-// coarse scan (0.2 pu), or a bump of the limit between two nodes (0.05
-// pu of p) in a cell whose nodes look smooth. Those are counted, logged
-// and held to at most 1 % of the points (0.2 % when this was written).
+// chart. Among them are high-gain slow exciters (K_A 150-300, T_A
+// 0.1-0.5 s) whose stable set is not one interval: an unstable band
+// between q_max and the limit, a stable island below it, opening inside
+// a cell of the table (the table's build marks such cells, markScan; a
+// run of 2,000 units found none missed).
 func TestRandomUnitsFastAnswer(t *testing.T) {
 	rng := rand.New(rand.NewPCG(11, 12))
 	round, salient := benchRound(t).Params(), benchSalient(t).Params()
 	const units, points = 400, 8
-	missed := 0
 	for n := range units {
 		p := round
 		if rng.IntN(2) == 1 {
@@ -672,12 +669,8 @@ func TestRandomUnitsFastAnswer(t *testing.T) {
 			d, _ := u.bounds(pp, v, 1, 1, nil, true, false)
 			f, _ := u.bounds(pp, v, 1, 1, nil, true, true)
 			if msg := fastDiffers(d, f); msg != "" {
-				missed++
-				t.Logf("unit %d (K_A %.0f, T_A %.3f, Xe %.2f, stabilizer %v) p %.4f v %.4f: %s", n, p.Exciter.KA, p.Exciter.TAS, p.Xe, p.Stabilizer != nil, pp, v, msg)
+				t.Errorf("unit %d (K_A %.0f, T_A %.3f, Xe %.2f, stabilizer %v) p %.4f v %.4f: %s", n, p.Exciter.KA, p.Exciter.TAS, p.Xe, p.Stabilizer != nil, pp, v, msg)
 			}
 		}
-	}
-	if missed > units*points/100 {
-		t.Errorf("the per-sample answer missed the direct one by more than 0.002 pu at %d of %d points; want at most 1 %%", missed, units*points)
 	}
 }

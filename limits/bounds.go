@@ -97,6 +97,7 @@ func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full, fast bool) (b B
 		b.setStability(s)
 	}
 	b.EndRegion = u.endRegionAt(p, v)
+	b.UEL = u.UELAt(p, v)
 	b.lowerBound()
 	return b, false
 }
@@ -127,8 +128,10 @@ func (b *Bounds) setStability(s stabLimits) {
 	}
 }
 
-// lowerBound sets b's lower bound from its armature, practical stability
-// and end-region curves: q_min = max of the three, naming the one that binds.
+// lowerBound sets b's lower bound from its armature, practical stability,
+// end-region and underexcitation-limiter curves: q_min = max of the four,
+// naming the one that binds (envelope.md, "The lower bound"). A UEL curve
+// with no value at this p does not bound q.
 func (b *Bounds) lowerBound() {
 	switch {
 	case !b.ArmatureDown.OK:
@@ -142,6 +145,9 @@ func (b *Bounds) lowerBound() {
 		}
 		if b.EndRegion.OK && b.EndRegion.V > b.QMin.V {
 			b.QMin, b.QMinLimit = b.EndRegion, LimitEndRegion
+		}
+		if b.UEL.OK && b.UEL.V > b.QMin.V {
+			b.QMin, b.QMinLimit = b.UEL, LimitUEL
 		}
 	}
 }
@@ -182,6 +188,7 @@ func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint, fast bool
 		b.Stability, b.Practical = s.theo, s.prac
 	}
 	b.EndRegion = u.endRegionAt(p, v)
+	b.UEL = u.UELAt(p, v)
 	b.lowerBound()
 	qMin := b.QMin.V
 	if qMin > qTop {
@@ -414,8 +421,15 @@ func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
 
 // practicalLimit returns the lowest q in [qs, qTop] at which the peak of
 // P(delta) at the point's own E_f and V_s is at least p + m.
+//
+// With no margin (m = 0, the default) it is qs itself: P_max - p touches
+// zero there without crossing it (P_max >= P(delta) = p at every stable
+// and unstable equilibrium alike), a double root no search finds to
+// better than the square root of its tolerance, which made the warm and
+// cold paths disagree by 1e-7 pu on weak grids.
 func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
 	if u.marginPU == 0 {
+		h.set(hintPrac, some(qs))
 		// With m = 0 the practical limit is q_stability exactly
 		// (envelope.md, "Practical margin"), on both bases.
 		return some(qs)
@@ -480,10 +494,22 @@ func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
 // the lower root. With Xq = Xd this is the textbook steady-state stability
 // circle, centre (0, (v^2/2)(1/Xe - 1/Xd)), radius (v^2/2)(1/Xe + 1/Xd);
 // with Xe = 0 it is the line q = -v^2/Xq.
+//
+// At p = 0 the lower root is q = -v^2/Xq, where E_Q itself is zero: its
+// direction, and so E_f and K_s, jump there, and a bracket started on it
+// closed on the jump instead of on the limit (a salient unit at exactly
+// p = 0 gave -v^2/Xq where p = 0.01 MW gave -v^2/Xd). Just above that q,
+// E_Q lies along V (delta = 0) and E_f = v + Xd q/v < 0: unstable like
+// the perpendicular point, and on the continuous side of the jump, so
+// the start moves there.
 func (u *Unit) perpendicular(p, v float64) (float64, bool) {
 	xq, xe := u.p.Xq, u.p.Xe
 	v2 := v * v
-	return quadLower(xq*xe, -v2*(xq-xe), xq*xe*p*p-v2*v2)
+	q, ok := quadLower(xq*xe, -v2*(xq-xe), xq*xe*p*p-v2*v2)
+	if ok && p == 0 {
+		q = math.Max(q, -v2/xq) + 1e-9*(1+math.Abs(q))
+	}
+	return q, ok
 }
 
 // roundStability is the closed form of both stability limits on the

@@ -101,8 +101,8 @@ func TestNewRejects(t *testing.T) {
 		{"rating.power_factor", func(p *Params) { p.PowerFactor = 1.1 }},
 		{"rating.power_factor", func(p *Params) { p.PowerFactor = 0 }},
 		{"prime_mover.p_min_mw", func(p *Params) { p.PMin = p.PMax }},
-		{"end_region.points", func(p *Params) { p.EndRegion.P = []float64{0, 0.5, 0.5} }},
-		{"coolant.points", func(p *Params) { p.Coolant.At = []float64{414, 200} }},
+		{"end_region.points[3]", func(p *Params) { p.EndRegion.P = []float64{0, 0.5, 0.5} }},
+		{"coolant.points[2].at", func(p *Params) { p.Coolant.At = []float64{414, 200} }},
 		{"grid.x_external_pu", func(p *Params) { p.Xe = -0.1 }},
 	} {
 		p := good

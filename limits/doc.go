@@ -28,6 +28,10 @@
 //   - volts per hertz and the IEC 60034-1 voltage/frequency zones (zone.go)
 //   - short-time thermal capability, IEEE C50.13 (Thermal)
 //   - the classical-model critical clearing time (CriticalClearingTime)
+//   - the regulator's limiters and the generator protection against the
+//     machine: inverse-time curves, the mho zones' P-Q images, the
+//     coordination checks (protection.go, coordination.go; Coordinate)
+//     and the live limiter timers (LimiterTimer)
 //
 // The avr basis (Params.Basis, envelope.md "The linearized model for the
 // avr basis") is small-signal stability of the Heffron-Phillips model of

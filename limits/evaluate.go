@@ -12,12 +12,15 @@ import "math"
 // Margins, all ratios, positive inside the envelope:
 //
 //	armature         1 - i/i_max
-//	field            1 - i_fd/i_fd_max (the measured field current when the point has one, else the model)
+//	field            1 - i_fd/i_fd_max (the measured field current when the point has one, else the model; see fieldCurrent)
 //	stability        (q - q_practical) / 1 pu; where q_max moved down to the top of the
 //	                 stable interval (StabilityTop), the smaller of that and (top - q) / 1 pu
 //	end_region       (q - q_end) / 1 pu (only with an end-region curve)
-//	prime_mover      (p_max - p) / p_rated, p_max the prime mover's
+//	uel              (q - q_uel) / 1 pu (only with a UEL curve that has a value at p)
+//	prime_mover      min(p_max - p, p - p_min) / p_rated, the prime mover's p_max and p_min
 //	volts_per_hertz  1 - (v/f)/1.05
+//
+// The binding limit is the nearest chart limit by distance (see bind).
 //
 // On the avr basis, Evaluate with a hint is the per-sample path and reads
 // the stability limit from the unit's table (within 0.002 pu of the
@@ -30,8 +33,8 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result {
 // EvaluateSample is Evaluate for the per-sample path of a service. Its
 // margins, binding limit, feasibility, lower bound and practical
 // stability limit are Evaluate's; but where nothing else depends on
-// them, it leaves the field-limit curve (and so q_max and its limit) and
-// the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
+// them, it leaves the field-limit curve (and so q_max, its limit and the
+// binding limit) and the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
 // less often than samples arrive.
 func (u *Unit) EvaluateSample(pt Point, h *Hint) Result {
 	return u.evaluate(pt, h, false, h != nil && u.avrTab != nil)
@@ -68,6 +71,7 @@ func (u *Unit) Complete(r *Result, pt Point) {
 		r.setStability(s)
 	}
 	r.QMaxPending = false
+	u.bind(r, pt)
 }
 
 func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
@@ -107,11 +111,8 @@ func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
 	}
 
 	r.Margins[LimitArmature] = some(1 - r.I/r.IMax)
-	ifd := r.IfdModel
-	if pt.IfdMeasured {
-		ifd = pt.Ifd
-	}
-	r.Margins[LimitField] = some(1 - ifd/r.IfdMax)
+	r.FieldCurrent = fieldCurrent(&pt, r.IfdModel)
+	r.Margins[LimitField] = some(1 - r.FieldCurrent/r.IfdMax)
 	if r.Practical.OK {
 		m := q - r.Practical.V
 		if r.StabilityTop.OK {
@@ -123,7 +124,10 @@ func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
 	if r.EndRegion.OK {
 		r.Margins[LimitEndRegion] = some(q - r.EndRegion.V)
 	}
-	r.Margins[LimitPrimeMover] = some((u.p.PMax - p) * u.invPRated)
+	if r.UEL.OK {
+		r.Margins[LimitUEL] = some(q - r.UEL.V)
+	}
+	r.Margins[LimitPrimeMover] = some(u.primeMoverDistance(p) * u.invPRated)
 	r.VPerHz = v / f
 	r.Margins[LimitVoltsPerHertz] = some(1 - r.VPerHz*(1/VoltsPerHertzLimit))
 	r.Zone = VoltageFrequencyZone(v, f)
@@ -138,20 +142,76 @@ func (u *Unit) evaluate(pt Point, h *Hint, full, fast bool) Result {
 	case !r.Feasible:
 		r.Infeasible = r.QMinLimit
 	}
-	if r.Feasible {
-		// Binding is the nearest of the limits drawn on the capability
-		// chart; volts per hertz bounds the excitation, not P and Q, and
-		// keeps its own margin and zone.
-		best := math.Inf(1)
-		for l := LimitArmature; l <= LimitPrimeMover; l++ {
-			if m := r.Margins[l]; m.OK && m.V < best {
-				best, r.Binding = m.V, l
-			}
-		}
-	} else {
-		r.Binding = r.Infeasible
+	if !r.QMaxPending {
+		u.bind(&r, pt)
 	}
 	return r
+}
+
+// fieldCurrent returns the field current the field margin is taken at,
+// pu of IFag: the measured one when the point has it, else the model's;
+// the larger of the two when the measurement is doubtful (a QUESTIONABLE
+// sample) or disagrees with the model by more than pt.IfdMismatch of the
+// model's (envelope.md, "Margins"): a sensor fault must not hide a
+// heating winding.
+func fieldCurrent(pt *Point, model float64) float64 {
+	if !pt.IfdMeasured {
+		return model
+	}
+	ifd := pt.Ifd
+	doubt := pt.IfdDoubtful || pt.IfdMismatch > 0 && math.Abs(ifd-model) > pt.IfdMismatch*model
+	if doubt && model > ifd {
+		ifd = model
+	}
+	return ifd
+}
+
+// primeMoverDistance returns min(p_max - p, p - p_min) in pu of rated
+// MVA: negative above p_max, below p_min and in reverse power
+// (envelope.md, "Active power bound").
+func (u *Unit) primeMoverDistance(p float64) float64 {
+	return math.Min(u.p.PMax-p, p-u.p.PMin)
+}
+
+// bind sets r.Binding: the capability-chart limit nearest the point, by
+// distance in pu of rated MVA (envelope.md, "Binding limit"):
+//
+//	armature     v i_max - sqrt(p^2 + q^2)
+//	field        q_field - q
+//	stability    q - q_practical (or top - q, see Evaluate)
+//	end region   q - q_end
+//	uel          q - q_uel
+//	prime mover  min(p_max - p, p - p_min)
+//
+// Volts per hertz and the zones never bind. An infeasible point is bound
+// by the limit whose bound is missing. It needs the field curve solved.
+func (u *Unit) bind(r *Result, pt Point) {
+	if !r.Feasible {
+		r.Binding = r.Infeasible
+		return
+	}
+	p, q := pt.P, pt.Q
+	best := math.Inf(1)
+	r.Binding = NoLimit
+	try := func(l Limit, d float64) {
+		if d < best {
+			best, r.Binding = d, l
+		}
+	}
+	try(LimitArmature, pt.V*r.IMax-math.Sqrt(p*p+q*q))
+	if r.Field.OK {
+		try(LimitField, r.Field.V-q)
+	}
+	if m := r.Margins[LimitStability]; m.OK {
+		try(LimitStability, m.V) // q - q_practical, or top - q where q_max moved to the stable interval's top
+	}
+	if r.EndRegion.OK {
+		try(LimitEndRegion, q-r.EndRegion.V)
+	}
+	if r.UEL.OK {
+		try(LimitUEL, q-r.UEL.V)
+	}
+	try(LimitPrimeMover, u.primeMoverDistance(p))
 }
 
 // Headroom returns the reactive headroom at q against the result's

@@ -1,6 +1,7 @@
 package limits
 
 import (
+	"errors"
 	"fmt"
 	"math"
 	"slices"
@@ -122,101 +123,148 @@ type Unit struct {
 	avrChar charParts  // the fixed parts of the characteristic polynomial (avr basis)
 }
 
-// New checks p and prepares a Unit. The first inconsistency found is
-// returned as a *ParamError naming the parameter.
+// New checks p and prepares a Unit. Every inconsistency found is
+// reported: the error is a *ParamError naming the parameter in the fleet
+// file's spelling, or several joined with errors.Join (see ParamErrors).
+// The Unit keeps copies of the curves and tables it is given.
 func New(p Params) (*Unit, error) {
-	bad := func(field, format string, args ...any) (*Unit, error) {
-		return nil, &ParamError{Field: field, Reason: fmt.Sprintf(format, args...)}
+	var errs []error
+	bad := func(field, format string, args ...any) {
+		errs = append(errs, &ParamError{Field: field, Reason: fmt.Sprintf(format, args...)})
 	}
-	pos := func(name string, x float64) bool { return x > 0 && !math.IsInf(x, 0) }
+	pos := func(x float64) bool { return x > 0 && !math.IsInf(x, 0) }
 	fin := func(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+	// The machine's reactances.
 	switch {
 	case p.Rotor != Round && p.Rotor != Salient:
-		return bad("machine.rotor", "must be round or salient")
-	case !pos("xd", p.Xd):
-		return bad("machine.xd", "must be a positive finite reactance in pu, got %v", p.Xd)
-	case !pos("xq", p.Xq):
-		return bad("machine.xq", "must be a positive finite reactance in pu, got %v", p.Xq)
+		bad("machine.rotor", "must be round or salient")
+	case !pos(p.Xd):
+		bad("machine.xd", "must be a positive finite reactance in pu, got %v", p.Xd)
+	case !pos(p.Xq):
+		bad("machine.xq", "must be a positive finite reactance in pu, got %v", p.Xq)
 	case p.Xq > p.Xd:
-		return bad("machine.xq", "xq (%v) must not exceed xd (%v)", p.Xq, p.Xd)
+		bad("machine.xq", "xq (%v) must not exceed xd (%v)", p.Xq, p.Xd)
 	case p.Rotor == Salient && p.Xq >= p.Xd:
-		return bad("machine.xq", "a salient-pole rotor needs xq < xd, got xq %v, xd %v", p.Xq, p.Xd)
-	case !fin(p.Xl) || p.Xl < 0 || p.Xl >= p.Xd:
-		return bad("machine.xl", "must be in [0, xd), got %v", p.Xl)
-	case !fin(p.Xp) || p.Xp < 0 || p.Xp >= p.Xd:
-		return bad("machine.xp", "must be in [0, xd), got %v", p.Xp)
-	case !fin(p.Ra) || p.Ra < 0 || p.Ra > 0.1:
-		return bad("machine.ra", "must be in [0, 0.1] pu, got %v", p.Ra)
-	case !fin(p.XdTransient) || p.XdTransient < 0 || p.XdTransient >= p.Xd:
-		return bad("machine.xd_transient", "must be in (0, xd) when given, got %v", p.XdTransient)
-	case !fin(p.InertiaHS) || p.InertiaHS < 0:
-		return bad("machine.inertia_h_s", "must be a positive time in s when given, got %v", p.InertiaHS)
-	case !fin(p.S10) || !fin(p.S12) || p.S10 < 0 || p.S12 < 0:
-		return bad("machine.saturation", "s10 and s12 must be finite and non-negative, got %v and %v", p.S10, p.S12)
-	case (p.S10 == 0) != (p.S12 == 0):
-		return bad("machine.saturation", "give both s10 and s12 positive, or neither, got %v and %v", p.S10, p.S12)
-	case p.S10 > 0 && p.S12 <= p.S10:
-		return bad("machine.saturation.s12", "s12 (%v) must be greater than s10 (%v)", p.S12, p.S10)
-	case !fin(p.IfdRated) || p.IfdRated < 0:
-		return bad("field.rated_a", "must be a positive current when given, got %v pu of IFag", p.IfdRated)
-	case !(p.PowerFactor > 0 && p.PowerFactor <= 1):
-		return bad("rating.power_factor", "must be in (0, 1], got %v", p.PowerFactor)
-	case !pos("frequency", p.FrequencyHz):
-		return bad("rating.frequency_hz", "must be a positive frequency, got %v", p.FrequencyHz)
-	case !pos("pmax", p.PMax):
-		return bad("prime_mover.p_max_mw", "must be positive, got %v pu", p.PMax)
-	case !fin(p.PMin) || p.PMin < 0 || p.PMin >= p.PMax:
-		return bad("prime_mover.p_min_mw", "must be in [0, p_max_mw), got %v pu against p_max %v pu", p.PMin, p.PMax)
-	case !fin(p.Xe) || p.Xe < 0:
-		return bad("grid.x_external_pu", "must be a non-negative reactance in pu, got %v", p.Xe)
-	case !fin(p.MarginFraction) || p.MarginFraction < 0 || p.MarginFraction >= 1:
-		return bad("stability.margin_fraction", "must be in [0, 1), got %v", p.MarginFraction)
+		bad("machine.xq", "a salient-pole rotor needs xq < xd, got xq %v, xd %v", p.Xq, p.Xd)
 	}
+	// Below xd: checked against a valid xd only, so that one wrong xd is one error.
+	xdOK := pos(p.Xd)
+	if !pos(p.Xl) || xdOK && p.Xl >= p.Xd {
+		bad("machine.xl", "must be a positive reactance below xd (%v pu), got %v", p.Xd, p.Xl)
+	}
+	if !pos(p.Xp) || xdOK && p.Xp >= p.Xd {
+		bad("machine.xp", "must be a positive reactance below xd (%v pu), got %v", p.Xd, p.Xp)
+	}
+	if !fin(p.Ra) || p.Ra < 0 || p.Ra > 0.1 {
+		bad("machine.ra", "must be in [0, 0.1] pu, got %v", p.Ra)
+	}
+	if !fin(p.XdTransient) || p.XdTransient < 0 || xdOK && p.XdTransient >= p.Xd {
+		bad("machine.xd_transient", "must be in (0, xd) pu (xd %v) when given, got %v", p.Xd, p.XdTransient)
+	}
+	if !fin(p.InertiaHS) || p.InertiaHS < 0 {
+		bad("machine.inertia_h_s", "must be a positive time in s when given, got %v", p.InertiaHS)
+	}
+	// Saturation: the quadratic form needs 1.2 S(1.2) > S(1.0), else its
+	// A >= 1 puts saturation at or below zero voltage (envelope.md, "Fleet-file findings").
+	switch {
+	case !fin(p.S10) || !fin(p.S12) || p.S10 < 0 || p.S12 < 0:
+		bad("machine.saturation", "s10 and s12 must be finite and non-negative, got %v and %v", p.S10, p.S12)
+	case (p.S10 == 0) != (p.S12 == 0):
+		bad("machine.saturation", "give both s10 and s12 positive, or neither, got %v and %v", p.S10, p.S12)
+	case p.S10 > 0 && p.S12 <= 1.2*p.S10:
+		bad("machine.saturation.s12", "s12 (%v) must exceed 1.2 x s10 (%v): saturation grows faster than voltage; a smaller s12 puts the knee of the curve at zero voltage", p.S12, 1.2*p.S10)
+	}
+	if !fin(p.IfdRated) || p.IfdRated < 0 {
+		bad("field.rated_a", "must be a positive current when given, got %v pu of IFag", p.IfdRated)
+	}
+	if !(p.PowerFactor > 0 && p.PowerFactor <= 1) {
+		bad("rating.power_factor", "must be in (0, 1], got %v", p.PowerFactor)
+	}
+	if !pos(p.FrequencyHz) {
+		bad("rating.frequency_hz", "must be a positive frequency, got %v", p.FrequencyHz)
+	}
+	// The prime mover, in pu of rated MVA.
+	switch {
+	case !pos(p.PMax):
+		bad("prime_mover.p_max_mw", "must be positive, got %.4g pu of rated MVA", p.PMax)
+	case p.PMax > 1:
+		bad("prime_mover.p_max_mw", "must not exceed the rated MVA (the prime mover cannot drive more than the generator's rating); got %.4g pu of it", p.PMax)
+	case !fin(p.PMin) || p.PMin < 0 || p.PMin >= p.PMax:
+		bad("prime_mover.p_min_mw", "must be at least 0 and below p_max_mw; got %.4g against %.4g pu of rated MVA", p.PMin, p.PMax)
+	}
+	if !fin(p.Xe) || p.Xe < 0 {
+		bad("grid.x_external_pu", "must be a non-negative reactance in pu, got %v", p.Xe)
+	}
+	// The stability basis.
+	if !fin(p.MarginFraction) || p.MarginFraction < 0 || p.MarginFraction >= 1 {
+		bad("stability.margin_fraction", "must be in [0, 1), got %v", p.MarginFraction)
+	}
+	// The avr basis' own parameters: checkAVR, reported with the others.
+	if err := checkAVR(&p); err != nil {
+		errs = append(errs, err)
+	}
+	if c := p.UEL; c != nil {
+		checkUEL(c, bad)
+	}
+	if e := p.EndRegion; e != nil {
+		if len(e.P) < 2 || len(e.P) != len(e.Q) {
+			bad("end_region.points", "need at least two points with p_mw and q_mvar, got %d", len(e.P))
+		} else if i := badCurve(e.P, e.Q); i > 0 {
+			bad(fmt.Sprintf("end_region.points[%d]", i), "point %d: p_mw must be finite and above the previous point's, q_mvar finite", i)
+		}
+		if !fin(e.VoltageExponent) || math.Abs(e.VoltageExponent) > 10 {
+			bad("end_region.voltage_exponent", "must be in [-10, 10], got %v", e.VoltageExponent)
+		}
+	}
+	if c := p.Coolant; c != nil {
+		if len(c.At) < 2 || len(c.At) != len(c.Armature) || len(c.At) != len(c.Field) {
+			bad("coolant.points", "need at least two points, each with at, armature and field; got %d", len(c.At))
+		} else {
+			for i := range c.At {
+				if !fin(c.At[i]) || i > 0 && !(c.At[i] > c.At[i-1]) {
+					bad(fmt.Sprintf("coolant.points[%d].at", i+1), "point %d: at must be finite and above the previous point's (strictly increasing)", i+1)
+					break
+				}
+			}
+			for i := range c.At {
+				if !(c.Armature[i] > 0 && c.Armature[i] <= 2) || !(c.Field[i] > 0 && c.Field[i] <= 2) {
+					bad(fmt.Sprintf("coolant.points[%d]", i+1), "point %d: factors must be in (0, 2], got armature %v, field %v", i+1, c.Armature[i], c.Field[i])
+					break
+				}
+			}
+		}
+	}
+	if len(errs) > 0 {
+		if len(errs) == 1 {
+			return nil, errs[0]
+		}
+		return nil, errors.Join(errs...)
+	}
+
 	u := &Unit{p: p, pRated: p.PowerFactor, invPRated: 1 / p.PowerFactor, marginPU: p.MarginFraction * p.PowerFactor}
 	u.roundStab = p.Xq == p.Xd
 	u.hasTransient = p.XdTransient > 0 && p.InertiaHS > 0
 	if p.S10 > 0 {
 		u.satA, u.satB = SaturationAB(p.S10, p.S12)
 	}
+	// Copies, so that the caller's values may change without changing the unit.
 	if e := p.EndRegion; e != nil {
-		if len(e.P) < 2 || len(e.P) != len(e.Q) {
-			return bad("end_region.points", "need at least two points with p_mw and q_mvar, got %d", len(e.P))
-		}
-		for i := range e.P {
-			if !fin(e.P[i]) || !fin(e.Q[i]) {
-				return bad("end_region.points", "point %d is not finite", i+1)
-			}
-			if i > 0 && e.P[i] <= e.P[i-1] {
-				return bad("end_region.points", "p_mw must be strictly increasing; point %d is not above point %d", i+1, i)
-			}
-		}
-		if !fin(e.VoltageExponent) || math.Abs(e.VoltageExponent) > 10 {
-			return bad("end_region.voltage_exponent", "must be in [-10, 10], got %v", e.VoltageExponent)
-		}
-		if err := u.endRegion.Fit(e.P, e.Q); err != nil {
-			return bad("end_region.points", "%v", err)
+		u.p.EndRegion = &EndRegion{P: slices.Clone(e.P), Q: slices.Clone(e.Q), VoltageExponent: e.VoltageExponent}
+		if err := u.endRegion.Fit(u.p.EndRegion.P, u.p.EndRegion.Q); err != nil {
+			return nil, &ParamError{Field: "end_region.points", Reason: err.Error()}
 		}
 		u.hasEnd = true
 	}
 	if c := p.Coolant; c != nil {
-		if len(c.At) < 2 || len(c.At) != len(c.Armature) || len(c.At) != len(c.Field) {
-			return bad("coolant.points", "need at least two points, each with at, armature and field; got %d", len(c.At))
-		}
-		for i := range c.At {
-			if !fin(c.At[i]) {
-				return bad("coolant.points", "point %d: at is not finite", i+1)
-			}
-			if !(c.Armature[i] > 0 && c.Armature[i] <= 2) || !(c.Field[i] > 0 && c.Field[i] <= 2) {
-				return bad("coolant.points", "point %d: factors must be in (0, 2], got armature %v, field %v", i+1, c.Armature[i], c.Field[i])
-			}
-			if i > 0 && c.At[i] <= c.At[i-1] {
-				return bad("coolant.points", "at must be strictly increasing; point %d is not above point %d", i+1, i)
-			}
-		}
-		// A copy, so that the caller's slices may change without changing the unit.
 		u.p.Coolant = &Coolant{At: slices.Clone(c.At), Armature: slices.Clone(c.Armature), Field: slices.Clone(c.Field)}
 		u.hasCoolant = true
 	}
+	if c := p.UEL; c != nil {
+		cc := *c
+		cc.P, cc.Q = slices.Clone(c.P), slices.Clone(c.Q)
+		u.p.UEL = &cc
+	}
+	// The exciter and stabilizer are copied by prepareAVR.
 	if err := u.prepareAVR(); err != nil {
 		return nil, err
 	}
@@ -226,6 +274,69 @@ func New(p Params) (*Unit, error) {
 		u.ifdRated = u.ifdModel
 	}
 	return u, nil
+}
+
+// ParamErrors returns the *ParamError values err holds: err itself, or
+// the errors joined in it by New.
+func ParamErrors(err error) []*ParamError {
+	var out []*ParamError
+	var walk func(error)
+	walk = func(e error) {
+		if pe, ok := e.(*ParamError); ok {
+			out = append(out, pe)
+			return
+		}
+		if j, ok := e.(interface{ Unwrap() []error }); ok {
+			for _, x := range j.Unwrap() {
+				walk(x)
+			}
+		}
+	}
+	walk(err)
+	return out
+}
+
+// badCurve returns the 1-based index of the first point of a curve whose
+// abscissa is not finite and strictly above the previous one or whose
+// ordinate is not finite; 0 when all are good.
+func badCurve(x, y []float64) int {
+	for i := range x {
+		if math.IsNaN(x[i]) || math.IsInf(x[i], 0) || math.IsNaN(y[i]) || math.IsInf(y[i], 0) || i > 0 && !(x[i] > x[i-1]) {
+			return i + 1
+		}
+	}
+	return 0
+}
+
+// checkUEL checks an underexcitation limiter curve (coordination.md, "Inputs").
+func checkUEL(c *UEL, bad func(field, format string, args ...any)) {
+	fin := func(x float64) bool { return !math.IsNaN(x) && !math.IsInf(x, 0) }
+	switch c.Shape {
+	case UELCircle:
+		if !fin(c.CenterP) || !fin(c.CenterQ) {
+			bad("excitation.uel", "the centre must be finite, got (%v, %v) pu", c.CenterP, c.CenterQ)
+		}
+		if !(c.Radius > 0) || !fin(c.Radius) {
+			bad("excitation.uel.radius_mvar", "must be positive, got %v pu", c.Radius)
+		}
+		if !fin(c.K) || math.Abs(c.K) > 10 {
+			bad("excitation.uel.voltage_exponent", "must be in [-10, 10], got %v", c.K)
+		}
+	case UELPoints:
+		if len(c.P) < 2 || len(c.P) != len(c.Q) {
+			bad("excitation.uel.points", "need at least two points with p_mw and q_mvar, got %d", len(c.P))
+		} else if i := badCurve(c.P, c.Q); i > 0 {
+			bad(fmt.Sprintf("excitation.uel.points[%d]", i), "point %d: p_mw must be finite and above the previous point's, q_mvar finite", i)
+		}
+		if !fin(c.K1) || math.Abs(c.K1) > 10 {
+			bad("excitation.uel.voltage_exponent_p", "must be in [-10, 10], got %v", c.K1)
+		}
+		if !fin(c.K2) || math.Abs(c.K2) > 10 {
+			bad("excitation.uel.voltage_exponent_q", "must be in [-10, 10], got %v", c.K2)
+		}
+	default:
+		bad("excitation.uel.shape", "must be circle or points")
+	}
 }
 
 // checkAVR checks the parameters of the avr stability basis (envelope.md,

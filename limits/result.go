@@ -15,16 +15,17 @@ const (
 	LimitEndRegion           // stator end-region heating
 	LimitPrimeMover          // prime-mover (turbine) active-power capability
 	LimitVoltsPerHertz       // generator volts per hertz, 1.05 pu continuous
+	LimitUEL                 // the regulator's underexcitation limiter curve
 	numLimits
 )
 
 // NumLimits is the length of Result.Margins.
 const NumLimits = int(numLimits)
 
-var limitNames = [...]string{"none", "armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz"}
+var limitNames = [...]string{"none", "armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz", "uel"}
 
 // String returns the limit's name: "armature", "field", "stability",
-// "end_region", "prime_mover", "volts_per_hertz" or "none".
+// "end_region", "prime_mover", "volts_per_hertz", "uel" or "none".
 func (l Limit) String() string {
 	if int(l) < len(limitNames) {
 		return limitNames[l]
@@ -35,7 +36,7 @@ func (l Limit) String() string {
 // Limits returns every limit that has a margin, in Margins order. It is
 // an array, so the scrape-time loops over every unit allocate nothing.
 func Limits() [numLimits - 1]Limit {
-	return [...]Limit{LimitArmature, LimitField, LimitStability, LimitEndRegion, LimitPrimeMover, LimitVoltsPerHertz}
+	return [...]Limit{LimitArmature, LimitField, LimitStability, LimitEndRegion, LimitPrimeMover, LimitVoltsPerHertz, LimitUEL}
 }
 
 // Zone is the IEC 60034-1 voltage and frequency operating zone.
@@ -75,7 +76,16 @@ type Point struct {
 	F float64 // frequency, pu of rated; 0 means rated
 
 	Ifd         float64 // measured field current, pu of IFag
-	IfdMeasured bool    // Ifd holds a good measurement
+	IfdMeasured bool    // Ifd holds a measurement
+
+	// IfdDoubtful marks a measured field current the field margin may not
+	// trust on its own: the sample's quality is QUESTIONABLE. The margin
+	// then takes the larger of the measured and the model field current.
+	IfdDoubtful bool
+	// IfdMismatch is the fraction of the model's field current beyond
+	// which a measurement that disagrees with the model is doubted in the
+	// same way (the mismatch alarm's threshold); 0 means never.
+	IfdMismatch float64
 
 	Coolant    float64 // coolant quantity in the table's unit
 	HasCoolant bool    // Coolant holds a value
@@ -98,6 +108,7 @@ type Bounds struct {
 	// point is reported infeasible with reason stability.
 	StabilityErr error
 	EndRegion    Bound // stator end-region curve at this voltage
+	UEL          Bound // underexcitation limiter curve at this voltage
 
 	QMax, QMin           Bound
 	QMaxLimit, QMinLimit Limit // which limit binds; when the bound is absent, which limit makes it so
@@ -109,7 +120,11 @@ type Result struct {
 
 	I        float64 // armature current, pu
 	IfdModel float64 // model field current, pu of IFag
-	Ef       float64 // internal EMF behind Xd (unsaturated), pu
+	// FieldCurrent is the field current the field margin is taken at, pu
+	// of IFag: the measured one, the model's, or the larger of the two
+	// when the measurement is doubtful (see Evaluate).
+	FieldCurrent float64
+	Ef           float64 // internal EMF behind Xd (unsaturated), pu
 
 	IMax, IfdMax   float64 // continuous ratings at the present coolant: armature pu, field pu IFag
 	CoolantOutside bool    // the sample's coolant value lies outside the table (clamped)
@@ -128,7 +143,7 @@ type Result struct {
 	// unit's table (the per-sample path), so that Complete keeps to it.
 	fast bool
 
-	Binding    Limit // the capability-chart limit (armature to prime mover) with the smallest margin
+	Binding    Limit // the capability-chart limit nearest the point, by distance in pu of rated MVA (see Evaluate)
 	Feasible   bool  // every bound exists at this active power
 	Infeasible Limit // when not feasible, the limit whose bound is missing
 

@@ -14,11 +14,17 @@ import "math"
 // The angle follows from the equal-area criterion and the time from the
 // swing equation (2H/omega_s) d^2(delta)/dt^2 = p while the fault passes
 // no power (textbook; e.g. Kundur, Power System Stability and Control,
-// 1994, ch. 13). The bound is absent when Xd' or H is not known or the
-// unit is not generating (p <= 0); it is 0 where the classical model has
-// no stable post-fault equilibrium (delta_0 >= 90 degrees).
+// 1994, ch. 13). The bound is absent when Xd' or H is not known, the
+// unit is not generating (p <= 0), or the point is not steady-state
+// stable on the manual basis (K_s <= 0 or E_f <= 0; envelope.md: a
+// clearing time of a point that cannot hold its own equilibrium means
+// nothing); it is 0 where the classical model has no stable post-fault
+// equilibrium (delta_0 >= 90 degrees).
 func (u *Unit) CriticalClearingTime(p, q, v float64) Bound {
 	if !u.hasTransient || !(p > 0) {
+		return Bound{}
+	}
+	if s := u.stab(p, q, v); s.degen || !(s.ks > 0 && s.ef > 0) {
 		return Bound{}
 	}
 	xt, xe := u.p.XdTransient, u.p.Xe

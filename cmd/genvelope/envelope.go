@@ -1,14 +1,11 @@
 package main
 
 import (
-	"bufio"
 	"encoding/csv"
 	"encoding/json"
-	"errors"
 	"flag"
 	"fmt"
 	"io"
-	"os"
 	"strconv"
 
 	"github.com/genvelope/genvelope/limits"
@@ -86,36 +83,19 @@ func envelope(e env, f *envelopeFlags) int {
 	}
 	pts := u.Model.Envelope(f.vPU.v, f.coolant.v, hasCoolant, f.points)
 
-	var w io.Writer = e.stdout
-	var file *os.File
-	if f.out != "" {
-		var err error
-		file, err = os.Create(f.out)
-		if err != nil {
-			return failf(e, c, exitFailure, "%v", err)
+	err := writeOutput(f.out, e.stdout, func(w io.Writer) error {
+		switch f.format.v {
+		case "json":
+			return writeEnvelopeJSON(w, u, f, hasCoolant, pts)
+		case "csv":
+			return writeEnvelopeCSV(w, u, pts)
 		}
-		w = file
-	}
-	bw := bufio.NewWriter(w)
-	var err error
-	switch f.format.v {
-	case "json":
-		err = writeEnvelopeJSON(bw, u, f, hasCoolant, pts)
-	case "csv":
-		err = writeEnvelopeCSV(bw, u, pts)
-	case "svg":
 		opts := []chart.Option{chart.WithPrimeMover(u.PrimeMover.PMinMW, u.PrimeMover.PMaxMW)}
 		if f.embedFonts {
 			opts = append(opts, chart.WithEmbeddedFonts())
 		}
-		err = chart.Capability(bw, envelopeTitle(u, f, hasCoolant), pts, u.Base, opts...)
-	}
-	if err == nil {
-		err = bw.Flush()
-	}
-	if file != nil {
-		err = errors.Join(err, file.Close())
-	}
+		return chart.Capability(w, envelopeTitle(u, f, hasCoolant), pts, u.Base, opts...)
+	})
 	if err != nil {
 		return failf(e, c, exitFailure, "writing the %s: %v", f.format.v, err)
 	}
@@ -174,7 +154,7 @@ func writeEnvelopeJSON(w io.Writer, u *fleet.Unit, f *envelopeFlags, hasCoolant 
 func envelopeCSVHeader() []string {
 	return []string{"p_mw", "q_max_mvar", "q_max_limit", "q_min_mvar", "q_min_limit",
 		"q_field_mvar", "q_armature_up_mvar", "q_armature_down_mvar",
-		"q_stability_mvar", "q_practical_stability_mvar", "q_end_region_mvar"}
+		"q_stability_mvar", "q_practical_stability_mvar", "q_end_region_mvar", "q_uel_mvar"}
 }
 
 func writeEnvelopeCSV(w io.Writer, u *fleet.Unit, pts []limits.EnvelopePoint) error {
@@ -199,7 +179,7 @@ func writeEnvelopeCSV(w io.Writer, u *fleet.Unit, pts []limits.EnvelopePoint) er
 		row := []string{strconv.FormatFloat(p.PMW, 'f', 4, 64),
 			cell(p.QMaxMvar), name(p.QMaxLimit), cell(p.QMinMvar), name(p.QMinLimit),
 			cell(p.QFieldMvar), cell(p.QArmatureUpMvar), cell(p.QArmatureDownMvar),
-			cell(p.QStabilityMvar), cell(p.QPracticalStabilityMvar), cell(p.QEndRegionMvar)}
+			cell(p.QStabilityMvar), cell(p.QPracticalStabilityMvar), cell(p.QEndRegionMvar), cell(p.QUELMvar)}
 		if err := cw.Write(row); err != nil {
 			return err
 		}

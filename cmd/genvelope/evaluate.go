@@ -76,9 +76,11 @@ func evaluate(e env, f *evaluateFlags) int {
 	if f.coolant.set && u.Coolant == nil {
 		fmt.Fprintf(e.stderr, "genvelope evaluate: unit %q has no coolant table; --coolant is ignored\n", u.ID)
 	}
-	pt := report.Point(u, f.pMW.v, f.qMvar.v, f.vKV.v, f.fieldA.v, f.fieldA.set, f.fHz.v, f.fHz.set, f.coolant.v, f.coolant.set)
+	pt := report.Point(u, report.Reading{PMW: f.pMW.v, QMvar: f.qMvar.v, VKV: f.vKV.v, FieldA: f.fieldA.v, HasFieldA: f.fieldA.set,
+		FrequencyHz: f.fHz.v, HasFrequency: f.fHz.set, Coolant: f.coolant.v, HasCoolant: f.coolant.set})
 	r := u.Model.Evaluate(pt, nil)
 	out := report.New(u, pt, &r)
+	out.SetRotorMode(u, pt)
 	if f.format.v == "json" {
 		enc := json.NewEncoder(e.stdout)
 		enc.SetIndent("", "  ")
@@ -129,7 +131,7 @@ func writeEvaluationText(w io.Writer, u *fleet.Unit, ev *report.Evaluation) erro
 	}
 	line("reactive range", "%s .. %s Mvar", signedOr(ev.QMinMvar, ev.QMinLimit), signedOr(ev.QMaxMvar, ev.QMaxLimit))
 	line("headroom", "%s Mvar up, %s Mvar down", orNone(ev.QHeadroomUpMvar, "%.1f"), orNone(ev.QHeadroomDownMvar, "%.1f"))
-	line("active power bound", "%s MW (prime mover %.1f MW)", orNone(ev.PMaxMW, "%.1f"), u.PrimeMover.PMaxMW)
+	line("active power bound", "%s MW (prime mover %.1f to %.1f MW)", orNone(ev.PMaxMW, "%.1f"), u.PrimeMover.PMinMW, u.PrimeMover.PMaxMW)
 	line("armature current", "%s pu, %s A of %s A", orNone(ev.ArmatureCurrentPU, "%.3f"), orNone(ev.ArmatureCurrentA, "%.0f"), orNone(ev.ArmatureCurrentLimitA, "%.0f"))
 	fieldNote := ""
 	if ev.FieldCurrentMeasuredA != nil {
@@ -138,7 +140,12 @@ func writeEvaluationText(w io.Writer, u *fleet.Unit, ev *report.Evaluation) erro
 	line("field current", "model %s A of %s A%s", orNone(ev.FieldCurrentModelA, "%.0f"), orNone(ev.FieldCurrentLimitA, "%.0f"), fieldNote)
 	line("load angle", "%s°", orNone(ev.LoadAngleDeg, "%.1f"))
 	line("volts per hertz", "%s pu, zone %s", orNone(ev.VoltsPerHertzPU, "%.3f"), ev.Zone)
-	line("critical clearing time", "%s", orNone(ev.CriticalClearingTimeS, "%.3f s (classical model)", "not known (needs xd_transient and inertia_h_s, and P > 0)"))
+	if m := ev.RotorMode; m != nil {
+		line("rotor mode", "%.2f Hz, damping ratio %.3f (%s basis)", m.FrequencyHz, m.DampingRatio, ev.StabilityBasis)
+	} else {
+		line("rotor mode", "none (%s basis)", ev.StabilityBasis)
+	}
+	line("critical clearing time", "%s", orNone(ev.CriticalClearingTimeS, "%.3f s (classical model)", "not known (needs xd_transient and inertia_h_s, P > 0 and a point stable at constant field voltage)"))
 	if err := tw.Flush(); err != nil {
 		return err
 	}
@@ -150,10 +157,13 @@ func writeEvaluationText(w io.Writer, u *fleet.Unit, ev *report.Evaluation) erro
 	curve("field current limit", ev.QFieldMvar)
 	curve("armature current limit, overexcited", ev.QArmatureUpMvar)
 	curve("armature current limit, underexcited", ev.QArmatureDownMvar)
-	curve("theoretical steady-state stability limit", ev.QStabilityMvar)
+	curve("steady-state stability limit ("+ev.StabilityBasis+" basis)", ev.QStabilityMvar)
 	curve("practical stability limit", ev.QPracticalStabilityMvar)
 	if u.EndRegion != nil {
 		curve("stator end-region limit", ev.QEndRegionMvar)
+	}
+	if u.Excitation != nil && u.Excitation.UEL != nil {
+		curve("underexcitation limiter (UEL)", ev.QUELMvar)
 	}
 
 	b.WriteString("\nmargins\n")
@@ -196,7 +206,7 @@ func signedOr(v *float64, limit *string) string {
 // marginInMvar reports whether a margin is in pu of rated MVA rather than
 // a ratio.
 func marginInMvar(name string) bool {
-	return name == limits.LimitStability.String() || name == limits.LimitEndRegion.String()
+	return name == limits.LimitStability.String() || name == limits.LimitEndRegion.String() || name == limits.LimitUEL.String()
 }
 
 func describeMarginValue(ev *report.Evaluation, name string) string {

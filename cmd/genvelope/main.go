@@ -48,7 +48,7 @@ type command struct {
 }
 
 func commands() []command {
-	return []command{validateCommand(), evaluateCommand(), envelopeCommand(), serveCommand(), demoCommand(), replayCommand()}
+	return []command{validateCommand(), evaluateCommand(), envelopeCommand(), coordinateCommand(), serveCommand(), demoCommand(), replayCommand()}
 }
 
 func findCommand(name string) (command, bool) {

@@ -80,7 +80,7 @@ func TestExitCodesAndMessages(t *testing.T) {
 			stdout: []string{"plain-1", fleet.Caution}, stderr: []string{"warning: the nameplate rated field current"}},
 		{name: "evaluate text", args: eval(), code: 0,
 			stdout: []string{"harrowmere-1 (Harrowmere unit 1), site harrowmere", "P 300.0 MW, Q +100.0 Mvar, V 20.00 kV (1.000 pu)", "within limits", "field current limit", "stator end-region limit", fleet.Caution}},
-		{name: "evaluate text outside", args: eval("--q-mvar", "-150"), code: 0, stdout: []string{"OUTSIDE LIMITS: Q below q_min (stability limit) by", "stability exceeded by"}},
+		{name: "evaluate text outside", args: eval("--q-mvar", "-150"), code: 0, stdout: []string{"OUTSIDE LIMITS: Q below q_min (uel limit) by", "uel exceeded by", "end_region exceeded by"}},
 		{name: "evaluate text infeasible", args: []string{"evaluate", "--fleet", minFleet, "--unit", "plain-1", "--p-mw", "105", "--q-mvar", "0", "--v-kv", "11"}, code: 0,
 			stdout: []string{"NO CONTINUOUS OPERATION at this P and V: the armature limit"}},
 		{name: "evaluate coolant without table", args: []string{"evaluate", "--fleet", example, "--unit", "larchwater-2", "--p-mw", "50", "--q-mvar", "0", "--v-kv", "13.8", "--coolant", "20"}, code: 0,
@@ -125,7 +125,7 @@ var evaluateJSONKeys = []string{
 	"q_practical_stability_mvar", "p_max_mw", "q_headroom_up_mvar", "q_headroom_down_mvar",
 	"margins", "binding_limit", "feasible", "infeasible_limit", "zone", "critical_clearing_time_s",
 	"q_field_mvar", "q_armature_up_mvar", "q_armature_down_mvar", "q_end_region_mvar",
-	"volts_per_hertz_pu", "coolant_outside_table", "caution",
+	"volts_per_hertz_pu", "coolant_outside_table", "caution", "q_uel_mvar", "stability_basis", "rotor_mode",
 }
 
 func evaluateJSON(t *testing.T, args ...string) map[string]any {
@@ -239,7 +239,7 @@ func TestEnvelopeCSV(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
-	const header = "p_mw,q_max_mvar,q_max_limit,q_min_mvar,q_min_limit,q_field_mvar,q_armature_up_mvar,q_armature_down_mvar,q_stability_mvar,q_practical_stability_mvar,q_end_region_mvar"
+	const header = "p_mw,q_max_mvar,q_max_limit,q_min_mvar,q_min_limit,q_field_mvar,q_armature_up_mvar,q_armature_down_mvar,q_stability_mvar,q_practical_stability_mvar,q_end_region_mvar,q_uel_mvar"
 	if got := strings.Join(rows[0], ","); got != header {
 		t.Errorf("header\n got %s\nwant %s", got, header)
 	}

@@ -24,6 +24,7 @@ type replayOptions struct {
 	fleetPath    string // for --backfill
 	speed        float64
 	batch        int
+	tls          *clientTLS
 	// progressEvery is how often a plain progress line is written when
 	// stderr is not a terminal; the bar on a terminal redraws faster.
 	progressEvery time.Duration
@@ -59,6 +60,7 @@ and files that cannot be used.`,
 			fs.StringVar(&o.file, "file", "", "the CSV `FILE` to replay")
 			fs.Float64Var(&o.speed, "speed", 0, "replay at N times the pace of the recorded times; 0 as fast as the service answers")
 			fs.IntVar(&o.batch, "batch", replay.DefaultBatch, fmt.Sprintf("rows per batch, 1 to %d", replay.MaxBatch))
+			o.tls = addClientTLSFlags(fs)
 			fs.BoolVar(&o.backfill, "backfill", false, "evaluate the file against --fleet locally, for a report, without a service and without touching live state")
 			fs.StringVar(&o.fleetPath, "fleet", "", "the fleet `FILE`, for --backfill")
 			return func(e env) int {
@@ -88,7 +90,11 @@ func runReplay(ctx context.Context, e env, o replayOptions) int {
 		return usageError(e, c, "--speed %g: must be 0 (as fast as possible) or a positive factor", o.speed)
 	}
 	log := slog.New(slog.NewTextHandler(e.stderr, &slog.HandlerOptions{Level: slog.LevelWarn}))
-	r, err := replay.New(replay.Config{Target: o.target, File: o.file, Speed: o.speed, Batch: o.batch, Logger: log})
+	creds, err := o.tls.creds()
+	if err != nil {
+		return usageError(e, c, "%v", err)
+	}
+	r, err := replay.New(replay.Config{Target: o.target, File: o.file, Speed: o.speed, Batch: o.batch, Logger: log, Creds: creds})
 	if err != nil {
 		var fe *replay.FileError
 		if errors.As(err, &fe) {

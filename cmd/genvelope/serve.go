@@ -56,7 +56,8 @@ replicas by the FNV-1a hash of the unit id.`,
 			horizon := fs.Duration("horizon", 7*24*time.Hour, "how far behind the server clock a sample may be stamped; older history: genvelope replay --backfill")
 			journalPath := fs.String("journal", defaultJournalPath, "alarm journal `FILE`: every alarm change and operator action, rotated (FILE.1 ... FILE.4) past --journal-max-bytes; \"\" keeps none")
 			journalMax := fs.Int64("journal-max-bytes", 8<<20, "size at which the journal is rotated")
-			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener")
+			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener (admin role under --access; see --pprof-listen)")
+			sec := addSecurityFlags(fs)
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
 			nf := addNATSFlags(fs)
@@ -76,6 +77,7 @@ replicas by the FNV-1a hash of the unit id.`,
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture, Horizon: *horizon}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
 					StatePath: *statePath, JournalPath: *journalPath, JournalMaxBytes: *journalMax,
+					Security: *sec,
 				}
 				if nf.enabled() {
 					dl, err := nf.open(*statePath, log)

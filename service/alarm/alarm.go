@@ -47,7 +47,7 @@ func (l Level) String() string {
 type Kind uint8
 
 // The kinds of alarm, in the order of a unit's machines. The first six
-// watch the margins of package limits of the same name.
+// and UEL watch the margins of package limits of the same name.
 const (
 	Armature Kind = iota
 	Field
@@ -60,12 +60,17 @@ const (
 	VoltageFrequencyZone // IEC 60034-1 zone B or outside
 	StaleTelemetry       // no sample for a while (wall clock)
 	FieldCurrentMismatch // measured field current far from the model: a sensor or parameter problem
+	UEL                  // the margin above the regulator's underexcitation limiter curve
+	OELTimer             // the overexcitation limiter's inverse-time delay running out
+	SCLTimer             // the stator current limiter's inverse-time delay running out
 	NumKinds
 )
 
 var kindNames = [NumKinds]string{
 	"armature", "field", "stability", "end_region", "prime_mover", "volts_per_hertz",
 	"armature_thermal", "field_thermal", "voltage_frequency_zone", "stale_telemetry", "field_current_mismatch",
+	"uel",
+	"oel", "scl",
 }
 
 // String returns the kind's name, as used in the fleet file, the API and
@@ -128,6 +133,9 @@ var quantities = [NumKinds]Quantity{
 	{"voltage/frequency zone", "", true},
 	{"time since the last sample", "s", true},
 	{"field current disagreement with the model", "", true},
+	{"UEL margin", "pu", false},
+	{"time before the overexcitation limiter acts", "s", false},
+	{"time before the stator current limiter acts", "s", false},
 }
 
 // QuantityOf returns what kind k's thresholds apply to.
@@ -148,12 +156,16 @@ func Defaults() [NumKinds]Setting {
 	for k := Armature; k <= PrimeMover; k++ {
 		s[k] = margin
 	}
+	s[UEL] = margin
 	s[VoltsPerHertz] = Setting{Warning: 0.01, Critical: 0, Deadband: 0.005, OnDelay: 5 * time.Second, OffDelay: 30 * time.Second}
 	thermal := Setting{Warning: 0.5, Critical: 0.9, Deadband: 0.05, OffDelay: 30 * time.Second}
 	s[ArmatureThermal], s[FieldThermal] = thermal, thermal
 	s[VoltageFrequencyZone] = Setting{Warning: 1, Critical: 2, OnDelay: 5 * time.Second, OffDelay: 30 * time.Second}
 	s[StaleTelemetry] = Setting{Warning: 30, Critical: 120}
 	s[FieldCurrentMismatch] = Setting{Warning: 0.10, Critical: 0.20, Deadband: 0.02, OnDelay: 30 * time.Second, OffDelay: 60 * time.Second}
+	// The limiter timers are delays already: no on-delay.
+	limiter := Setting{Warning: 30, Critical: 10, Deadband: 2, OffDelay: 10 * time.Second}
+	s[OELTimer], s[SCLTimer] = limiter, limiter
 	return s
 }
 

@@ -2,6 +2,7 @@ package alarm
 
 import (
 	"fmt"
+	"math"
 	"strings"
 	"time"
 )
@@ -49,14 +50,20 @@ type Context struct {
 	PMW, QMvar, VKV    float64
 	QMaxMvar, QMinMvar *float64
 	QMaxLimit          string // the limit setting q_max: "field" or "armature"
-	QMinLimit          string // the limit setting q_min: "stability", "end_region" or "armature"
-	PMaxMW             float64
-	IfdMeasuredA       *float64
-	IfdModelA          float64
-	AgeS               float64
-	Zone               string
-	VPerHzPU           float64
-	NoData             bool // the unit has never reported
+	QMinLimit          string // the limit setting q_min: "stability", "end_region", "uel" or "armature"
+	PMaxMW, PMinMW     float64
+	// LimitMvar is the alarm's own underexcited limit at the point (the
+	// practical stability limit, the end-region or the UEL curve), Mvar;
+	// NaN when it has no value there. Read for those kinds only.
+	LimitMvar    float64
+	IfdMeasuredA *float64
+	IfdModelA    float64
+	AgeS         float64
+	Zone         string
+	VPerHzPU     float64
+	NoData       bool    // the unit has never reported
+	OELXPU       float64 // the currents the limiters act on, pu of their ratings
+	SCLXPU       float64
 }
 
 // Message returns the operator's sentence for a level change of kind k
@@ -75,15 +82,25 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 				id, leftOrBeyond(*c.QMaxMvar-c.QMvar, "Mvar", "before"), *c.QMaxMvar, at)
 		}
 		return fmt.Sprintf("%s: field current at %.0f %% of its rating %s; reduce excitation or move reactive load to other units.", id, 100*(1-value), at)
-	case Stability, EndRegion:
-		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit"}[k]
-		if c.QMinMvar == nil {
-			return fmt.Sprintf("%s: no stable underexcited range %s (%s); raise excitation or reduce load now.", id, at, what)
+	case Stability, EndRegion, UEL:
+		what := map[Kind]string{Stability: "practical stability limit", EndRegion: "stator end-region limit", UEL: "underexcitation limiter curve"}[k]
+		lim, ok := c.LimitMvar, !math.IsNaN(c.LimitMvar)
+		if c.QMinLimit == k.String() && c.QMinMvar != nil {
+			lim, ok = *c.QMinMvar, true // the limit that sets q_min
 		}
-		left := c.QMvar - *c.QMinMvar
-		return fmt.Sprintf("%s: %s the %s (q_min %.1f Mvar) %s; raise excitation or absorb less reactive power.",
-			id, leftOrBeyond(left, "Mvar", "above"), what, *c.QMinMvar, at)
+		if !ok {
+			if k == Stability {
+				return fmt.Sprintf("%s: no stable underexcited range %s (%s); raise excitation or reduce load now.", id, at, what)
+			}
+			return fmt.Sprintf("%s: the %s has no value %s.", id, what, at)
+		}
+		return fmt.Sprintf("%s: %s the %s (%.1f Mvar) %s; raise excitation or absorb less reactive power.",
+			id, leftOrBeyond(c.QMvar-lim, "Mvar", "above"), what, lim, at)
 	case PrimeMover:
+		if c.PMW < c.PMinMW {
+			return fmt.Sprintf("%s: %s the prime mover's minimum %.1f MW %s; raise the active-power set point or take the unit off.",
+				id, leftOrBeyond(c.PMW-c.PMinMW, "MW", "above"), c.PMinMW, at)
+		}
 		return fmt.Sprintf("%s: %s the prime mover's %.1f MW %s; reduce the active-power set point.", id, leftOrBeyond(c.PMaxMW-c.PMW, "MW", "to"), c.PMaxMW, at)
 	case VoltsPerHertz:
 		return fmt.Sprintf("%s: volts per hertz %.3f pu against 1.05 pu continuous %s; lower the terminal voltage or check the frequency.", id, c.VPerHzPU, at)
@@ -97,6 +114,10 @@ func Message(id string, k Kind, level, prev Level, value float64, c *Context) st
 			return fmt.Sprintf("%s: no sample received in the %.0f s since the service started: no data, its limits are not being watched; check the SCADA link.", id, c.AgeS)
 		}
 		return fmt.Sprintf("%s: no sample for %.0f s; its limits are not being watched; check the SCADA link.", id, c.AgeS)
+	case OELTimer:
+		return fmt.Sprintf("%s: OEL will act in %.0f s at %.2f pu field current %s; reduce excitation (deliver fewer Mvar) before the limiter takes it down.", id, value, c.OELXPU, at)
+	case SCLTimer:
+		return fmt.Sprintf("%s: SCL will act in %.0f s at %.2f pu stator current %s; bring the reactive power towards zero before the limiter does.", id, value, c.SCLXPU, at)
 	case FieldCurrentMismatch:
 		meas := "?"
 		if c.IfdMeasuredA != nil {

@@ -32,9 +32,10 @@ const (
 	LabelRegion          = "continuous capability region"
 	LabelArmature        = "armature current limit"
 	LabelField           = "field current limit"
-	LabelStability       = "theoretical steady-state stability limit"
+	LabelStability       = "steady-state stability limit"
 	LabelPractical       = "practical stability limit"
 	LabelEndRegion       = "stator end-region limit"
+	LabelUEL             = "underexcitation limiter (UEL)"
 	LabelPMax            = "prime-mover limit p_max"
 	LabelPMin            = "prime-mover limit p_min"
 	LabelOperatingPoint  = "operating point"
@@ -63,6 +64,7 @@ type config struct {
 	trail          []Point
 	width, height  vg.Length
 	embedFonts     bool
+	lim            *limiterMarks // coord_marks.go
 }
 
 // WithPrimeMover draws the prime mover's active-power range as lines at
@@ -94,8 +96,8 @@ func WithEmbeddedFonts() Option {
 
 // palette holds the chart's colours: muted, and distinct in grey scale too.
 type palette struct {
-	region, armature, field, stability, practical, endRegion color.Color
-	prime, point, trail, axisZero, grid, text, caption       color.Color
+	region, armature, field, stability, practical, endRegion, uel color.Color
+	prime, point, trail, axisZero, grid, text, caption            color.Color
 }
 
 func defaultPalette() palette {
@@ -107,6 +109,7 @@ func defaultPalette() palette {
 		stability: rgb(0x80, 0x80, 0x80),
 		practical: rgb(0x6c, 0x34, 0x83),
 		endRegion: rgb(0x11, 0x78, 0x64),
+		uel:       rgb(0xb0, 0x7a, 0x00),
 		prime:     rgb(0x4d, 0x56, 0x5e),
 		point:     rgb(0xc0, 0x28, 0x1e),
 		trail:     rgb(0xe0, 0x8e, 0x6b),
@@ -192,6 +195,7 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		{LabelStability, func(e limits.EnvelopePoint) limits.Bound { return e.Stability }, draw.LineStyle{Color: pal.stability, Width: vg.Points(1.2), Dashes: []vg.Length{vg.Points(5), vg.Points(3)}}},
 		{LabelPractical, func(e limits.EnvelopePoint) limits.Bound { return e.Practical }, draw.LineStyle{Color: pal.practical, Width: vg.Points(1.6)}},
 		{LabelEndRegion, func(e limits.EnvelopePoint) limits.Bound { return e.EndRegion }, draw.LineStyle{Color: pal.endRegion, Width: vg.Points(1.6), Dashes: []vg.Length{vg.Points(7), vg.Points(2), vg.Points(1.5), vg.Points(2)}}},
+		{LabelUEL, func(e limits.EnvelopePoint) limits.Bound { return e.UEL }, draw.LineStyle{Color: pal.uel, Width: vg.Points(1.6), Dashes: []vg.Length{vg.Points(2), vg.Points(2)}}},
 	}
 	for _, c := range curves {
 		var first plot.Thumbnailer
@@ -211,10 +215,19 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 		}
 	}
 
+	extra, err := limiterLines(cfg.lim, pts, mva)
+	if err != nil {
+		return err
+	}
+	for _, e := range extra {
+		p.Add(e.line)
+		legend = append(legend, entry{e.label, e.thumb})
+	}
+
 	// The Q range, for the horizontal lines and the axes.
 	qLo, qHi := 0.0, 0.0
 	for _, e := range pts {
-		for _, b := range []limits.Bound{e.ArmatureUp, e.ArmatureDown, e.Field, e.Stability, e.Practical, e.EndRegion} {
+		for _, b := range []limits.Bound{e.ArmatureUp, e.ArmatureDown, e.Field, e.Stability, e.Practical, e.EndRegion, e.UEL} {
 			if b.OK && !math.IsNaN(b.V) && !math.IsInf(b.V, 0) {
 				qLo, qHi = math.Min(qLo, b.V*mva), math.Max(qHi, b.V*mva)
 			}
@@ -319,11 +332,29 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 	})
 	capStyle := textStyle(captionFontSize, pal.caption)
 	margin := 0.2 * vg.Inch
-	capLines := wrap(fleet.Caution, capStyle, cfg.width-2*margin)
+	// The caption is measured in Liberation Sans; a viewer without it
+	// draws the fallback (DejaVu Sans is about 12 % wider), so the lines
+	// are wrapped with that much room to spare and are never cut.
+	capLines := wrap(fleet.Caution, capStyle, (cfg.width-2*margin)/fallbackWidthFactor)
 	capHeight := vg.Length(len(capLines))*capStyle.Height("Mg")*1.25 + margin
-	legendW := cfg.width * legendWidthFraction
+	// The legend is as wide as its longest label set in the fallback
+	// font, and at least its share of the width.
+	lgStyle := textStyle(bodyFontSize-1, pal.text)
+	var labelW vg.Length
+	for _, e := range legend {
+		labelW = max(labelW, lgStyle.Width(e.label))
+	}
+	legendW := max(cfg.width*legendWidthFraction, labelW*fallbackWidthFactor+legendThumbnailWidth+3*vg.Points(4)+margin)
+	// The title is centred over the plot: smaller type when it would
+	// reach beyond it in the fallback font.
+	for plotW := cfg.width - legendW - 0.15*vg.Inch; p.Title.TextStyle.Font.Size > 7 &&
+		p.Title.TextStyle.Width(p.Title.Text)*fallbackWidthFactor > plotW; {
+		p.Title.TextStyle.Font.Size -= 0.5
+	}
 
-	plotArea := draw.Crop(dc, 0, -legendW-0.15*vg.Inch, capHeight, 0)
+	// A little room on the left: the rotated axis label, set in a
+	// fallback font, stands out of its measured box.
+	plotArea := draw.Crop(dc, 0.06*vg.Inch, -legendW-0.15*vg.Inch, capHeight, 0)
 	p.Draw(plotArea)
 
 	lg := plot.NewLegend()
@@ -339,10 +370,12 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 	lg.Draw(legendArea)
 
 	capStyle.XAlign, capStyle.YAlign = text.XLeft, text.YBottom
-	y := dc.Min.Y + margin/2
-	for i := len(capLines) - 1; i >= 0; i-- {
-		dc.FillText(capStyle, vg.Point{X: dc.Min.X + margin, Y: y}, capLines[i])
-		y += capStyle.Height("Mg") * 1.25
+	// Written in reading order (the first line at the top), so that the
+	// SVG's text reads as the sentence.
+	lineH := capStyle.Height("Mg") * 1.25
+	for i, line := range capLines {
+		y := dc.Min.Y + margin/2 + vg.Length(len(capLines)-1-i)*lineH
+		dc.FillText(capStyle, vg.Point{X: dc.Min.X + margin, Y: y}, line)
 	}
 
 	var buf bytes.Buffer
@@ -360,6 +393,11 @@ func Capability(w io.Writer, title string, pts []limits.EnvelopePoint, base limi
 	}
 	return nil
 }
+
+// fallbackWidthFactor is how much wider than Liberation Sans the widest
+// usual fallback font sets the same text (DejaVu Sans, measured on the
+// caution sentence: about 1.12), with room to spare.
+const fallbackWidthFactor = 1.2
 
 // fontFallback is the font-family of the chart's text when the fonts are
 // not embedded.
@@ -476,7 +514,9 @@ func (t ticks) Ticks(lo, hi float64) []plot.Tick {
 		}
 		label := ""
 		if math.Mod(i, 2) == 0 {
-			label = strconv.FormatFloat(v, 'f', -1, 64)
+			// As many decimals as the step needs: i*half carries the
+			// rounding error of the product (1.2000000000000002).
+			label = strconv.FormatFloat(v, 'f', max(0, -int(math.Floor(math.Log10(step)+1e-9))), 64)
 		}
 		out = append(out, plot.Tick{Value: v, Label: label})
 	}

@@ -175,3 +175,26 @@ func TestRegionStartsAtPMin(t *testing.T) {
 		}
 	}
 }
+
+// The UEL curve is drawn, with its legend entry, when the unit has one.
+func TestCapabilityDrawsTheUEL(t *testing.T) {
+	u, base := testUnit(t)
+	p := u.Params()
+	p.UEL = &limits.UEL{Shape: limits.UELCircle, CenterQ: 1.2, Radius: 1.6, K: 2}
+	withUEL, err := limits.New(p)
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, tc := range []struct {
+		u    *limits.Unit
+		want bool
+	}{{u, false}, {withUEL, true}} {
+		var buf bytes.Buffer
+		if err := Capability(&buf, "unit x", tc.u.Envelope(1, 0, false, 41), base); err != nil {
+			t.Fatal(err)
+		}
+		if got := strings.Contains(texts(t, buf.Bytes()), LabelUEL); got != tc.want {
+			t.Errorf("UEL in the legend: %v, want %v", got, tc.want)
+		}
+	}
+}

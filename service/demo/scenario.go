@@ -122,7 +122,7 @@ func profileOf(id string) (profile, bool) {
 		"ashgrove-1":   {lo: 0.25, hi: 0.85, qBias: 0.58, phase: 0.11},
 		"ashgrove-2":   {lo: 0.30, hi: 0.85, qBias: 0.56, phase: 0.37},
 		"tillmoor-gt1": {lo: 0.05, hi: 0.85, qBias: 0.55, phase: 0.59},
-		"tillmoor-st1": {lo: 0, hi: 0.90, qBias: 0.55, phase: 0.83},
+		"tillmoor-st1": {lo: 0.15, hi: 0.90, qBias: 0.55, phase: 0.83},
 		"vessa-1":      {lo: 0.05, hi: 0.80, qBias: 0.52, phase: 0.19},
 		"vessa-2":      {lo: 0.05, hi: 0.80, qBias: 0.52, phase: 0.71},
 		"quarrendon-1": {lo: 0.10, hi: 0.85, qBias: 0.55, phase: 0.43},
@@ -282,10 +282,11 @@ func (s *Scenario) operate(u *simUnit, tau float64, withFreeze bool) (operating,
 	}
 	if e := u.overload; e != nil {
 		if w := e.weight(x); w > 0 {
-			// Active power eases to the prime mover's minimum, where the
+			// Active power eases to near the prime mover's minimum (20 % above
+			// it, clear of the prime-mover alarm), where the
 			// armature has room left above the field limit; the field is
 			// then driven to 108 % of its rating.
-			p = (1-w)*p + w*pr.PMin*1.02
+			p = (1-w)*p + w*pr.PMin*1.2
 			q, _ = normalQ(p)
 			over := m.Bounds(p, v, armF, fieldF*1.08, nil)
 			if over.Field.OK {

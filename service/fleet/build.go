@@ -1,7 +1,6 @@
 package fleet
 
 import (
-	"errors"
 	"fmt"
 	"math"
 
@@ -9,7 +8,7 @@ import (
 )
 
 // ratedTolPU is how far (pu) the rated point may lie outside the unit's
-// own reactive-power bounds before it is an error.
+// own reactive-power bounds before it is a finding.
 const ratedTolPU = 1e-6
 
 // fieldWarnFraction is how far the nameplate rated field current may lie
@@ -30,18 +29,37 @@ func (u *Unit) Params() limits.Params {
 		Ra:             mc.Ra,
 		XdTransient:    mc.XdTransient,
 		InertiaHS:      mc.InertiaHS,
+		Td0TransientS:  mc.Td0TransientS,
+		DampingPU:      mc.DampingPU,
 		PowerFactor:    u.Rating.PowerFactor,
 		FrequencyHz:    u.Rating.FrequencyHz,
 		PMax:           b.PowerPU(u.PrimeMover.PMaxMW),
 		PMin:           b.PowerPU(u.PrimeMover.PMinMW),
 		Xe:             u.Grid.XExternalPU,
 		MarginFraction: u.Stability.MarginFraction,
+		Basis:          u.Stability.Basis,
+		ZetaMin:        u.Stability.ZetaMin,
 	}
 	if s := mc.Saturation; s != nil {
 		p.S10, p.S12 = s.S10, s.S12
 	}
 	if u.Field.RatedA > 0 {
 		p.IfdRated = b.FieldPU(u.Field.RatedA)
+	}
+	if e := u.Excitation; e != nil {
+		p.Exciter = &limits.Exciter{KA: e.KA, TAS: e.TAS, TRS: e.TRS, EfdMin: e.EfdMinPU, EfdMax: e.EfdMaxPU}
+		if c := e.UEL; c != nil {
+			p.UEL = &limits.UEL{Shape: c.Shape,
+				CenterP: b.PowerPU(c.CenterPMW), CenterQ: b.PowerPU(c.CenterQMvar), Radius: b.PowerPU(c.RadiusMvar), K: c.VoltageExponent,
+				K1: c.VoltageExponentP, K2: c.VoltageExponentQ}
+			for _, pt := range c.Points {
+				p.UEL.P = append(p.UEL.P, b.PowerPU(pt.PMW))
+				p.UEL.Q = append(p.UEL.Q, b.PowerPU(pt.QMvar))
+			}
+		}
+	}
+	if s := u.Stabilizer; s != nil {
+		p.Stabilizer = &limits.Stabilizer{K: s.K, TWS: s.TWS, T1S: s.T1S, T2S: s.T2S, T3S: s.T3S, T4S: s.T4S}
 	}
 	if e := u.EndRegion; e != nil {
 		er := &limits.EndRegion{VoltageExponent: e.VoltageExponent}
@@ -63,29 +81,46 @@ func (u *Unit) Params() limits.Params {
 	return p
 }
 
-// build makes the engine model of a unit that decoded without errors and
-// checks it against its own rating.
+// build makes the engine model of a unit, reporting limits.New's
+// findings at the lines of their keys, and checks the model against the
+// unit's own rating (warnings: the unit is monitored all the same). A
+// unit that already has errors is checked too, so that every problem is
+// reported at once, but only the findings about values that were read
+// without a problem (the others would be echoes).
 func (d *decoder) build(c *unitCtx) {
 	u := c.u
+	hadErrors := c.bad
+	if hadErrors && !(c.ok["rating.mva"] && c.ok["rating.kv"] && c.ok["field.air_gap_a"]) {
+		return // without the base every value in MW or A converts wrong
+	}
 	m, err := limits.New(u.Params())
 	if err != nil {
-		var pe *limits.ParamError
-		if errors.As(err, &pe) {
-			c.errorf(u.Line(pe.Field), pe.Field, "%s", pe.Reason)
-		} else {
+		pes := limits.ParamErrors(err)
+		for _, pe := range pes {
+			if !hadErrors || c.ok[pe.Field] {
+				c.errorf(u.Line(pe.Field), pe.Field, "%s", pe.Reason)
+			}
+		}
+		if len(pes) == 0 && !hadErrors {
 			c.errorf(u.line, "", "the unit's parameters are not consistent: %v", err)
 		}
 		return
 	}
+	if hadErrors {
+		return
+	}
 	c.checkRatedPoint(m)
 	c.checkRatedField(m)
+	c.checkSettings()
 	if !c.bad {
 		u.Model = m
 	}
 }
 
-// checkRatedPoint checks that the rated point, at rated voltage and no
-// coolant value, lies inside the unit's own envelope.
+// checkRatedPoint warns when the rated point, at rated voltage and no
+// coolant value, lies outside the unit's own envelope, saying which limit
+// and by how much (envelope.md, "Fleet-file findings"): the data of a
+// real fleet often disagree a little, and the envelope then shows it.
 func (c *unitCtx) checkRatedPoint(m *limits.Unit) {
 	u := c.u
 	b := u.Base
@@ -94,19 +129,23 @@ func (c *unitCtx) checkRatedPoint(m *limits.Unit) {
 	r := m.Evaluate(limits.Point{P: p, Q: q, V: 1}, nil)
 	at := fmt.Sprintf("the rated point (%s MW, %s Mvar at %s kV)", mw(b.PowerMW(p)), mw(b.PowerMW(q)), fmtNum(u.Rating.KV))
 	line, field := u.Line("rating"), "rating"
+	basis := u.Stability.Basis
 	switch {
+	case !r.Feasible && r.Infeasible == limits.LimitStability:
+		c.warnf(line, field, "%s: no stable operation at rated active power on the %s basis (grid.x_external_pu %s); the unit is monitored, and reads outside its envelope there",
+			at, basis, fmtNum(u.Grid.XExternalPU))
 	case !r.Feasible:
-		c.errorf(line, field, "%s is outside the unit's own envelope: the %s limit has no solution at rated active power; check the machine data",
+		c.warnf(line, field, "%s is outside the unit's own envelope: the %s limit has no value at rated active power; check the machine data",
 			at, r.Infeasible)
-	case !r.QMax.OK || q > r.QMax.V+ratedTolPU:
+	case q > r.QMax.V+ratedTolPU:
 		if r.QMaxLimit == limits.LimitField && u.Has("field.rated_a") {
 			line, field = u.Line("field.rated_a"), "field.rated_a"
 		}
-		c.errorf(line, field, "%s is outside the unit's own envelope: the %s limit allows at most %s Mvar there; check the machine data, field.rated_a and the coolant table",
-			at, r.QMaxLimit, boundMvar(b, r.QMax))
-	case !r.QMin.OK || q < r.QMin.V-ratedTolPU:
-		c.errorf(line, field, "%s is outside the unit's own envelope: the %s limit requires at least %s Mvar there; check the machine data and the end-region curve",
-			at, r.QMinLimit, boundMvar(b, r.QMin))
+		c.warnf(line, field, "%s is outside the unit's own envelope by %s Mvar: the %s limit allows at most %s Mvar there; check the machine data, field.rated_a and the coolant table",
+			at, mw(b.PowerMW(q-r.QMax.V)), r.QMaxLimit, boundMvar(b, r.QMax))
+	case q < r.QMin.V-ratedTolPU:
+		c.warnf(line, field, "%s is outside the unit's own envelope by %s Mvar: the %s limit requires at least %s Mvar there; check the machine data, the end-region and UEL curves",
+			at, mw(b.PowerMW(r.QMin.V-q)), r.QMinLimit, boundMvar(b, r.QMin))
 	}
 }
 

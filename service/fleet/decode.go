@@ -74,9 +74,13 @@ func unitKeys() []unitKey {
 		{name: "field", required: true, decode: (*unitCtx).decodeField},
 		{name: "prime_mover", required: true, decode: (*unitCtx).decodePrimeMover},
 		{name: "grid", required: false, decode: (*unitCtx).decodeGrid},
+		{name: "excitation", required: false, decode: (*unitCtx).decodeExcitation},
+		{name: "stabilizer", required: false, decode: (*unitCtx).decodeStabilizer},
 		{name: "stability", required: false, decode: (*unitCtx).decodeStability},
 		{name: "end_region", required: false, decode: (*unitCtx).decodeEndRegion},
 		{name: "coolant", required: false, decode: (*unitCtx).decodeCoolant},
+		{name: "protection", required: false, decode: (*unitCtx).decodeProtection},
+		{name: "transformer", required: false, decode: (*unitCtx).decodeTransformer},
 		{name: "alarms", required: false, decode: (*unitCtx).decodeAlarms},
 		{name: "plausibility", required: false, decode: (*unitCtx).decodePlausibility},
 	}
@@ -433,24 +437,6 @@ func nonNegative(x float64) string {
 	return "must not be negative"
 }
 
-func between(lo, hi float64, loOpen, hiOpen bool) func(float64) string {
-	return func(x float64) string {
-		okLo := x > lo || (!loOpen && x == lo)
-		okHi := x < hi || (!hiOpen && x == hi)
-		if okLo && okHi {
-			return ""
-		}
-		l, r := "[", "]"
-		if loOpen {
-			l = "("
-		}
-		if hiOpen {
-			r = ")"
-		}
-		return fmt.Sprintf("must be in %s%s, %s%s", l, fmtNum(lo), fmtNum(hi), r)
-	}
-}
-
 func fmtNum(x float64) string { return strconv.FormatFloat(x, 'g', -1, 64) }
 
 // decodeUnits decodes the units: list.
@@ -498,9 +484,8 @@ func (d *decoder) decodeUnit(i int, item *yaml.Node) *unitCtx {
 		return nil
 	}
 	u := &Unit{
-		Stability: Stability{MarginFraction: 0.10},
-		line:      item.Line,
-		lines:     map[string]int{},
+		line:  item.Line,
+		lines: map[string]int{},
 	}
 	c := &unitCtx{d: d, u: u, label: label, ok: map[string]bool{}}
 	keys := unitKeys()
@@ -584,9 +569,9 @@ func (c *unitCtx) decodeRating(v *yaml.Node, path string, line int) {
 	r := &c.u.Rating
 	r.MVA, _ = c.number(m, "mva", true, "the rated apparent power in MVA", positive)
 	r.KV, _ = c.number(m, "kv", true, "the rated line-line voltage in kV", positive)
-	r.PowerFactor, _ = c.number(m, "power_factor", true, "the rated power factor", between(0, 1, true, false))
-	r.FrequencyHz, _ = c.number(m, "frequency_hz", true, "the rated frequency in Hz", positive)
-	poles, _ := c.number(m, "poles", true, "the number of poles, a positive even integer", func(x float64) string {
+	r.PowerFactor, _ = c.number(m, "power_factor", true, "the rated power factor", nil)
+	r.FrequencyHz, _ = c.number(m, "frequency_hz", true, "the rated frequency in Hz", nil)
+	poles, _ := c.number(m, "poles", false, "the number of poles, a positive even integer", func(x float64) string {
 		if x > 0 && x <= maxPoles && x == math.Trunc(x) && math.Mod(x, 2) == 0 {
 			return ""
 		}
@@ -596,7 +581,7 @@ func (c *unitCtx) decodeRating(v *yaml.Node, path string, line int) {
 }
 
 func (c *unitCtx) decodeMachine(v *yaml.Node, path string, line int) {
-	m, ok := c.open(v, path, line, "rotor", "xd", "xq", "xl", "xp", "ra", "xd_transient", "inertia_h_s", "saturation")
+	m, ok := c.open(v, path, line, "rotor", "xd", "xq", "xl", "xp", "ra", "xd_transient", "inertia_h_s", "td0_transient_s", "damping_pu", "saturation")
 	if !ok {
 		return
 	}
@@ -612,19 +597,23 @@ func (c *unitCtx) decodeMachine(v *yaml.Node, path string, line int) {
 			delete(c.ok, "machine.rotor")
 		}
 	}
+	// The values' domains (positive reactances, xq <= xd, ...) are
+	// limits.New's rules, reported through build; here only their shape.
 	const pu = " in pu on the machine base"
-	mc.Xd, _ = c.number(m, "xd", true, "the unsaturated direct-axis synchronous reactance"+pu, positive)
-	mc.Xq, _ = c.number(m, "xq", false, "the quadrature-axis synchronous reactance"+pu, positive)
-	mc.Xl, _ = c.number(m, "xl", true, "the armature leakage reactance"+pu, positive)
-	mc.Xp, _ = c.number(m, "xp", false, "the Potier reactance"+pu, positive)
-	mc.Ra, _ = c.number(m, "ra", false, "the armature resistance"+pu, between(0, 0.1, false, false))
-	mc.XdTransient, _ = c.number(m, "xd_transient", false, "the direct-axis transient reactance"+pu, positive)
-	mc.InertiaHS, _ = c.number(m, "inertia_h_s", false, "the inertia constant H in s on the machine base", positive)
+	mc.Xd, _ = c.number(m, "xd", true, "the unsaturated direct-axis synchronous reactance"+pu, nil)
+	mc.Xq, _ = c.number(m, "xq", false, "the quadrature-axis synchronous reactance"+pu, nil)
+	mc.Xl, _ = c.number(m, "xl", true, "the armature leakage reactance"+pu, nil)
+	mc.Xp, _ = c.number(m, "xp", false, "the Potier reactance"+pu, nil)
+	mc.Ra, _ = c.number(m, "ra", false, "the armature resistance"+pu, nil)
+	mc.XdTransient, _ = c.number(m, "xd_transient", false, "the direct-axis transient reactance"+pu, nil)
+	mc.InertiaHS, _ = c.number(m, "inertia_h_s", false, "the inertia constant H in s on the machine base", nil)
+	mc.Td0TransientS, _ = c.number(m, "td0_transient_s", false, "the open-circuit direct-axis transient time constant T'd0 in s", nil)
+	mc.DampingPU, _ = c.number(m, "damping_pu", false, "the mechanical damping D in pu torque per pu speed", nil)
 	if sv, sl, present := m.get("saturation"); present {
 		sm, ok := c.open(sv, "machine.saturation", sl, "s10", "s12")
 		if ok {
-			s10, ok10 := c.number(sm, "s10", true, "the saturation factor S(1.0)", positive)
-			s12, ok12 := c.number(sm, "s12", true, "the saturation factor S(1.2)", positive)
+			s10, ok10 := c.number(sm, "s10", true, "the saturation factor S(1.0)", nil)
+			s12, ok12 := c.number(sm, "s12", true, "the saturation factor S(1.2)", nil)
 			if ok10 && ok12 {
 				mc.Saturation = &Saturation{S10: s10, S12: s12}
 			}
@@ -646,8 +635,8 @@ func (c *unitCtx) decodePrimeMover(v *yaml.Node, path string, line int) {
 	if !ok {
 		return
 	}
-	c.u.PrimeMover.PMaxMW, _ = c.number(m, "p_max_mw", true, "the prime mover's largest active power in MW", positive)
-	c.u.PrimeMover.PMinMW, _ = c.number(m, "p_min_mw", true, "the prime mover's smallest continuous active power in MW", nonNegative)
+	c.u.PrimeMover.PMaxMW, _ = c.number(m, "p_max_mw", true, "the prime mover's largest active power in MW", nil)
+	c.u.PrimeMover.PMinMW, _ = c.number(m, "p_min_mw", true, "the prime mover's smallest continuous active power in MW", nil)
 }
 
 func (c *unitCtx) decodeGrid(v *yaml.Node, path string, line int) {
@@ -655,16 +644,139 @@ func (c *unitCtx) decodeGrid(v *yaml.Node, path string, line int) {
 	if !ok {
 		return
 	}
-	c.u.Grid.XExternalPU, _ = c.number(m, "x_external_pu", false, "the reactance to the infinite bus in pu on the machine base", nonNegative)
+	c.u.Grid.XExternalPU, _ = c.number(m, "x_external_pu", false, "the reactance to the infinite bus in pu on the machine base", nil)
 }
 
 func (c *unitCtx) decodeStability(v *yaml.Node, path string, line int) {
-	m, ok := c.open(v, path, line, "margin_fraction")
+	m, ok := c.open(v, path, line, "basis", "zeta_min", "margin_fraction")
 	if !ok {
 		return
 	}
-	if x, ok := c.number(m, "margin_fraction", false, "the practical stability margin as a fraction of rated MW", between(0, 1, false, true)); ok {
-		c.u.Stability.MarginFraction = x
+	if b, ok := c.text(m, "basis", false, "the stability basis, manual or avr"); ok {
+		switch b {
+		case "manual":
+			c.u.Stability.Basis = limits.BasisManual
+		case "avr":
+			c.u.Stability.Basis = limits.BasisAVR
+		default:
+			c.errorf(c.u.Line("stability.basis"), "stability.basis", "must be manual or avr; got %q", clip(b))
+			delete(c.ok, "stability.basis")
+		}
+	}
+	c.u.Stability.ZetaMin, _ = c.number(m, "zeta_min", false, "the lowest damping ratio of an electromechanical mode, in [0, 1)", nil)
+	c.u.Stability.MarginFraction, _ = c.number(m, "margin_fraction", false, "the practical stability margin as a fraction of rated MW", nil)
+}
+
+// decodeExcitation decodes the regulator, its UEL and (through
+// decodeLimiters) its OEL, SCL and V/Hz limiter.
+func (c *unitCtx) decodeExcitation(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "k_a", "t_a_s", "t_r_s", "efd_min_pu", "efd_max_pu", "uel", "oel", "scl", "vhz_limiter")
+	if !ok {
+		return
+	}
+	e := &Excitation{}
+	var okKA, okTA bool
+	e.KA, okKA = c.number(m, "k_a", true, "the regulator gain K_A in pu field voltage per pu voltage error", nil)
+	e.TAS, okTA = c.number(m, "t_a_s", true, "the exciter time constant T_A in s", nil)
+	e.TRS, _ = c.number(m, "t_r_s", false, "the voltage transducer time constant T_R in s", nil)
+	e.EfdMinPU, _ = c.number(m, "efd_min_pu", false, "the lowest field voltage in pu of the air-gap-line field", nil)
+	e.EfdMaxPU, _ = c.number(m, "efd_max_pu", false, "the ceiling field voltage in pu of the air-gap-line field", nil)
+	if uv, ul, present := m.get("uel"); present {
+		e.UEL = c.decodeUEL(uv, join(path, "uel"), ul)
+	}
+	c.decodeLimiters(m, path)
+	if okKA && okTA {
+		c.u.Excitation = e
+	}
+}
+
+// decodeUEL decodes an underexcitation limiter curve, circle or points.
+func (c *unitCtx) decodeUEL(v *yaml.Node, path string, line int) *UEL {
+	m, ok := c.open(v, path, line, "shape", "center_p_mw", "center_q_mvar", "radius_mvar", "voltage_exponent",
+		"points", "voltage_exponent_p", "voltage_exponent_q")
+	if !ok {
+		return nil
+	}
+	shape, ok := c.text(m, "shape", true, "the form of the curve, circle or points")
+	if !ok {
+		return nil
+	}
+	u := &UEL{VoltageExponent: 2, VoltageExponentP: 2, VoltageExponentQ: 2}
+	only := func(keys ...string) {
+		for _, k := range keys {
+			if _, kl, present := m.get(k); present {
+				c.errorf(kl, join(path, k), "belongs to the other UEL shape; a %s UEL does not use it", shape)
+			}
+		}
+	}
+	good := true
+	switch shape {
+	case "circle":
+		u.Shape = limits.UELCircle
+		only("points", "voltage_exponent_p", "voltage_exponent_q")
+		u.CenterPMW, _ = c.number(m, "center_p_mw", false, "the active power of the circle's centre in MW", nil)
+		var okQ, okR bool
+		u.CenterQMvar, okQ = c.number(m, "center_q_mvar", true, "the reactive power of the circle's centre in Mvar", nil)
+		u.RadiusMvar, okR = c.number(m, "radius_mvar", true, "the circle's radius in Mvar", nil)
+		if x, ok := c.number(m, "voltage_exponent", false, "the exponent k of the voltage scaling v^k", nil); ok {
+			u.VoltageExponent = x
+		}
+		good = okQ && okR
+	case "points":
+		u.Shape = limits.UELPoints
+		only("center_p_mw", "center_q_mvar", "radius_mvar", "voltage_exponent")
+		if x, ok := c.number(m, "voltage_exponent_p", false, "the exponent k1 of p / v^k1", nil); ok {
+			u.VoltageExponentP = x
+		}
+		if x, ok := c.number(m, "voltage_exponent_q", false, "the exponent k2 of v^k2 F", nil); ok {
+			u.VoltageExponentQ = x
+		}
+		items, _, ok := c.list(m, "points", true, "at least two points {p_mw, q_mvar} with increasing p_mw")
+		if !ok {
+			return nil
+		}
+		field := join(path, "points")
+		for i, item := range items {
+			pp := fmt.Sprintf("%s[%d]", field, i+1)
+			c.u.lines[pp] = item.Line
+			pm, ok := c.open(item, pp, item.Line, "p_mw", "q_mvar")
+			if !ok {
+				good = false
+				continue
+			}
+			p, okP := c.number(pm, "p_mw", true, "the active power of the point in MW", nil)
+			q, okQ := c.number(pm, "q_mvar", true, "the limiter's reactive power at p_mw, in Mvar", nil)
+			if !okP || !okQ {
+				good = false
+				continue
+			}
+			u.Points = append(u.Points, UELPoint{PMW: p, QMvar: q, Line: item.Line})
+		}
+	default:
+		c.errorf(c.u.Line(join(path, "shape")), join(path, "shape"), "must be circle or points; got %q", clip(shape))
+		return nil
+	}
+	if !good {
+		return nil
+	}
+	return u
+}
+
+func (c *unitCtx) decodeStabilizer(v *yaml.Node, path string, line int) {
+	m, ok := c.open(v, path, line, "k", "t_w_s", "t1_s", "t2_s", "t3_s", "t4_s")
+	if !ok {
+		return
+	}
+	s := &Stabilizer{}
+	var good [6]bool
+	s.K, good[0] = c.number(m, "k", true, "the stabilizer gain in pu per pu speed", nil)
+	s.TWS, good[1] = c.number(m, "t_w_s", true, "the washout time constant T_w in s", nil)
+	s.T1S, good[2] = c.number(m, "t1_s", true, "the lead time constant T1 of the first stage in s", nil)
+	s.T2S, good[3] = c.number(m, "t2_s", true, "the lag time constant T2 of the first stage in s", nil)
+	s.T3S, good[4] = c.number(m, "t3_s", true, "the lead time constant T3 of the second stage in s (t3_s = t4_s for no second stage)", nil)
+	s.T4S, good[5] = c.number(m, "t4_s", true, "the lag time constant T4 of the second stage in s (t3_s = t4_s for no second stage)", nil)
+	if good == [6]bool{true, true, true, true, true, true} {
+		c.u.Stabilizer = s
 	}
 }
 
@@ -674,8 +786,8 @@ func (c *unitCtx) decodeEndRegion(v *yaml.Node, path string, line int) {
 		return
 	}
 	e := &EndRegion{}
-	e.VoltageExponent, _ = c.number(m, "voltage_exponent", false, "the exponent k of the voltage scaling v^k", between(-10, 10, false, false))
-	items, pl, ok := c.list(m, "points", true, "at least two points {p_mw, q_mvar} with increasing p_mw")
+	e.VoltageExponent, _ = c.number(m, "voltage_exponent", false, "the exponent k of the voltage scaling v^k", nil)
+	items, _, ok := c.list(m, "points", true, "at least two points {p_mw, q_mvar} with increasing p_mw")
 	if !ok {
 		return
 	}
@@ -697,21 +809,9 @@ func (c *unitCtx) decodeEndRegion(v *yaml.Node, path string, line int) {
 		}
 		e.Points = append(e.Points, EndRegionPoint{PMW: p, QMvar: q, Line: item.Line})
 	}
-	if !good {
-		return
+	if good {
+		c.u.EndRegion = e
 	}
-	if len(e.Points) < 2 {
-		c.errorf(pl, field, "has %d point(s); give at least two, with strictly increasing p_mw", len(e.Points))
-		return
-	}
-	for i := 1; i < len(e.Points); i++ {
-		if e.Points[i].PMW <= e.Points[i-1].PMW {
-			c.errorf(e.Points[i].Line, field, "point %d: p_mw %s is not above %s of point %d; p_mw must be strictly increasing",
-				i+1, fmtNum(e.Points[i].PMW), fmtNum(e.Points[i-1].PMW), i)
-			return
-		}
-	}
-	c.u.EndRegion = e
 }
 
 func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
@@ -732,12 +832,11 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 		}
 		co.Quantity = CoolantQuantity(q)
 	}
-	items, pl, ok := c.list(m, "points", true, "at least two points {at, armature, field} with increasing at")
+	items, _, ok := c.list(m, "points", true, "at least two points {at, armature, field} with increasing at")
 	if !ok {
 		return
 	}
 	field := join(path, "points")
-	factor := between(0, 2, true, false)
 	good := true
 	for i, item := range items {
 		pp := fmt.Sprintf("%s[%d]", field, i+1)
@@ -748,49 +847,28 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 			continue
 		}
 		at, okA := c.number(pm, "at", true, "the coolant value of the point", nil)
-		arm, okR := c.number(pm, "armature", true, "the armature current factor at this coolant value", factor)
-		fld, okF := c.number(pm, "field", true, "the field current factor at this coolant value", factor)
+		arm, okR := c.number(pm, "armature", true, "the armature current factor at this coolant value", nil)
+		fld, okF := c.number(pm, "field", true, "the field current factor at this coolant value", nil)
 		if !okA || !okR || !okF {
 			good = false
 			continue
 		}
 		co.Points = append(co.Points, CoolantPoint{At: at, Armature: arm, Field: fld, Line: item.Line})
 	}
-	if !good {
-		return
-	}
-	if len(co.Points) < 2 {
-		c.errorf(pl, field, "has %d point(s); give at least two, with strictly increasing at", len(co.Points))
-		return
-	}
-	for i := 1; i < len(co.Points); i++ {
-		if co.Points[i].At <= co.Points[i-1].At {
-			c.errorf(co.Points[i].Line, field, "point %d: at %s is not above %s of point %d; at must be strictly increasing",
-				i+1, fmtNum(co.Points[i].At), fmtNum(co.Points[i-1].At), i)
-			return
-		}
-	}
-	if c.ok["coolant.quantity"] {
+	if good && c.ok["coolant.quantity"] {
 		c.u.Coolant = co
 	}
 }
 
-// crossChecks checks values against each other and fills the defaults
-// that depend on other values.
+// crossChecks fills the defaults that depend on other values and checks
+// that the keys one value needs are given. The values' domains and their
+// relations (xq <= xd, p_min < p_max, ...) are limits.New's rules,
+// reported through build.
 func (c *unitCtx) crossChecks() {
 	u, ok := c.u, c.ok
 	mc := &u.Machine
-	line := u.Line
 	if ok["machine.rotor"] && mc.Rotor == limits.Salient && !u.Has("machine.xq") {
-		c.errorf(line("machine"), "machine.xq", "missing; a salient-pole rotor needs xq, the quadrature-axis synchronous reactance in pu (below xd)")
-	}
-	if ok["machine.xd"] && ok["machine.xq"] {
-		switch {
-		case mc.Xq > mc.Xd:
-			c.errorf(line("machine.xq"), "machine.xq", "xq %s exceeds xd %s; xq must not be above xd", fmtNum(mc.Xq), fmtNum(mc.Xd))
-		case ok["machine.rotor"] && mc.Rotor == limits.Salient && mc.Xq >= mc.Xd:
-			c.errorf(line("machine.xq"), "machine.xq", "xq %s equals xd; a salient-pole rotor needs xq below xd", fmtNum(mc.Xq))
-		}
+		c.errorf(u.Line("machine"), "machine.xq", "missing; a salient-pole rotor needs xq, the quadrature-axis synchronous reactance in pu (below xd)")
 	}
 	if !u.Has("machine.xq") && ok["machine.xd"] {
 		mc.Xq = mc.Xd
@@ -798,28 +876,10 @@ func (c *unitCtx) crossChecks() {
 	if !u.Has("machine.xp") && ok["machine.xl"] {
 		mc.Xp = mc.Xl
 	}
-	if ok["machine.xd"] {
-		for _, k := range []struct {
-			key string
-			x   float64
-		}{{"xl", mc.Xl}, {"xp", mc.Xp}, {"xd_transient", mc.XdTransient}} {
-			if f := "machine." + k.key; ok[f] && k.x >= mc.Xd {
-				c.errorf(line(f), f, "%s %s is not below xd %s; it must be smaller than xd", k.key, fmtNum(k.x), fmtNum(mc.Xd))
-			}
-		}
-	}
-	if s := mc.Saturation; s != nil && s.S12 <= s.S10 {
-		c.errorf(line("machine.saturation.s12"), "machine.saturation.s12", "s12 %s is not above s10 %s; saturation grows with voltage, so s12 must exceed s10",
-			fmtNum(s.S12), fmtNum(s.S10))
-	}
-	pm := u.PrimeMover
-	if ok["prime_mover.p_max_mw"] && ok["prime_mover.p_min_mw"] && pm.PMinMW >= pm.PMaxMW {
-		c.errorf(line("prime_mover.p_min_mw"), "prime_mover.p_min_mw", "p_min_mw %s is not below p_max_mw %s; it must be smaller",
-			fmtNum(pm.PMinMW), fmtNum(pm.PMaxMW))
-	}
-	if ok["prime_mover.p_max_mw"] && ok["rating.mva"] && pm.PMaxMW > u.Rating.MVA {
-		c.errorf(line("prime_mover.p_max_mw"), "prime_mover.p_max_mw", "p_max_mw %s is above the rated %s MVA; the prime mover cannot exceed the generator's apparent-power rating",
-			fmtNum(pm.PMaxMW), fmtNum(u.Rating.MVA))
+	if !u.Has("stability.basis") && u.Excitation != nil {
+		// The default basis: the regulator is in service when it is known.
+		u.Stability.Basis = limits.BasisAVR
 	}
 	u.Base = limits.Base{MVA: u.Rating.MVA, KV: u.Rating.KV, FrequencyHz: u.Rating.FrequencyHz, IFagA: u.Field.AirGapA}
+	c.protectionCrossChecks()
 }

@@ -6,7 +6,8 @@
 //
 // A fleet file has one top-level key, units:, a list of units. Each unit
 // has the keys id, name, site, rating, machine, field, prime_mover, grid,
-// stability, end_region and coolant; see deploy/examples/fleet.yaml.
+// excitation, stabilizer, stability, end_region, coolant, protection,
+// transformer and alarms; see deploy/examples/fleet.yaml.
 package fleet
 
 import (
@@ -68,10 +69,17 @@ type Unit struct {
 	Field      Field
 	PrimeMover PrimeMover
 	Grid       Grid
+	Excitation *Excitation // nil when not given
+	Stabilizer *Stabilizer // nil when not given
 	Stability  Stability
 	EndRegion  *EndRegion // nil when not given
 	Coolant    *Coolant   // nil when not given
 
+	// The limiters (excitation.oel, scl, vhz_limiter), the protection and
+	// the step-up transformer, for the coordination study.
+	Limiters     Limiters
+	Protection   Protection
+	Transformer  *Transformer // nil when not given
 	Plausibility Plausibility // the values it can physically report; zero fields take the defaults
 
 	// Alarms are the unit's alarm settings: the fleet's, with the unit's
@@ -133,14 +141,20 @@ type Rating struct {
 	KV          float64 // rated line-line terminal voltage
 	PowerFactor float64 // rated power factor, (0, 1]
 	FrequencyHz float64 // rated frequency
-	Poles       int     // number of poles, positive and even
+	Poles       int     // number of poles, positive and even; 0 when not given
 }
 
 // RatedMW returns the rated active power, MVA times power factor.
 func (r Rating) RatedMW() float64 { return r.MVA * r.PowerFactor }
 
-// SpeedRPM returns the synchronous speed, 120 f / poles.
-func (r Rating) SpeedRPM() float64 { return 120 * r.FrequencyHz / float64(r.Poles) }
+// SpeedRPM returns the synchronous speed, 120 f / poles; 0 when the
+// number of poles is not given.
+func (r Rating) SpeedRPM() float64 {
+	if r.Poles <= 0 {
+		return 0
+	}
+	return 120 * r.FrequencyHz / float64(r.Poles)
+}
 
 // Machine holds the reactances and constants, in pu on the machine base.
 type Machine struct {
@@ -153,6 +167,46 @@ type Machine struct {
 	XdTransient float64 // direct-axis transient reactance; 0 when not given
 	InertiaHS   float64 // inertia constant H on machine base, s; 0 when not given
 	Saturation  *Saturation
+
+	Td0TransientS float64 // open-circuit d-axis transient time constant T'd0, s; 0 when not given
+	DampingPU     float64 // mechanical damping D, pu torque per pu speed; 0 when not given
+}
+
+// Excitation is the voltage regulator and exciter (envelope.md, "The
+// linearized model"), field voltage in pu of the air-gap-line field.
+type Excitation struct {
+	KA       float64 // regulator gain, pu/pu
+	TAS      float64 // exciter time constant, s
+	TRS      float64 // voltage transducer time constant, s; 0 when not given
+	EfdMinPU float64 // lowest field voltage; 0 when not given
+	EfdMaxPU float64 // ceiling field voltage; 0 when not given (reported only)
+	UEL      *UEL    // the underexcitation limiter; nil when not given
+}
+
+// UEL is the underexcitation limiter curve at 1.0 pu voltage, in the
+// file's MW and Mvar (coordination.md, "Inputs").
+type UEL struct {
+	Shape limits.UELShape
+
+	// circle
+	CenterPMW, CenterQMvar, RadiusMvar float64
+	VoltageExponent                    float64 // 2 when not given
+
+	// points
+	Points                             []UELPoint
+	VoltageExponentP, VoltageExponentQ float64 // 2 when not given
+}
+
+// UELPoint is one point of a UEL curve given by points.
+type UELPoint struct {
+	PMW, QMvar float64
+	Line       int
+}
+
+// Stabilizer is a speed-input power system stabilizer: gain and time
+// constants in s (two lead-lag stages; t3_s = t4_s for one).
+type Stabilizer struct {
+	K, TWS, T1S, T2S, T3S, T4S float64
 }
 
 // Saturation holds the open-circuit saturation factors S(1.0) and S(1.2).
@@ -176,9 +230,11 @@ type Grid struct {
 	XExternalPU float64 // reactance to the infinite bus, pu on machine base; 0 when not given
 }
 
-// Stability holds the settings of the practical stability limit.
+// Stability holds the settings of the steady-state stability limit.
 type Stability struct {
-	MarginFraction float64 // margin as a fraction of rated MW; 0.10 when not given
+	Basis          limits.Basis // avr when the unit has an excitation: block, else manual, unless given
+	ZetaMin        float64      // lowest damping ratio of an electromechanical mode on the avr basis; 0 when not given
+	MarginFraction float64      // practical margin as a fraction of rated MW; 0 when not given
 }
 
 // EndRegion is the maker's stator end-region curve.
@@ -254,9 +310,7 @@ func Parse(name string, data []byte) (*Fleet, Diagnostics) {
 		}
 	}
 	for _, c := range d.units {
-		if !c.bad {
-			d.build(c)
-		}
+		d.build(c)
 	}
 	d.diags.sortByLine()
 	return f, d.diags

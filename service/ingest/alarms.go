@@ -13,22 +13,13 @@ import (
 	"github.com/genvelope/genvelope/service/report"
 )
 
-// marginLimit maps the margin alarms to the engine's limits.
-var marginLimit = [...]limits.Limit{
-	alarm.Armature: limits.LimitArmature, alarm.Field: limits.LimitField,
-	alarm.Stability: limits.LimitStability, alarm.EndRegion: limits.LimitEndRegion,
-	alarm.PrimeMover: limits.LimitPrimeMover, alarm.VoltsPerHertz: limits.LimitVoltsPerHertz,
-}
-
 // quantity returns what alarm kind k of the unit compares with its
 // thresholds, from the latest evaluation; NaN when there is nothing to
 // compare (no end-region curve, no field measurement). A bound missing
 // at this active power counts as a margin of -1: past the limit.
 func (u *Unit) quantity(k alarm.Kind) float64 {
 	e := &u.eval
-	switch {
-	case k <= alarm.VoltsPerHertz:
-		l := marginLimit[k]
+	if l := report.LimitOfAlarm(k); l != limits.NoLimit {
 		if m := e.Margins[l]; m.OK {
 			return m.V
 		}
@@ -36,6 +27,8 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 			return -1
 		}
 		return math.NaN()
+	}
+	switch {
 	case k == alarm.ArmatureThermal:
 		return u.armature.Used(limits.ArmatureK)
 	case k == alarm.FieldThermal:
@@ -48,6 +41,8 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 			return math.NaN()
 		}
 		return math.Abs(u.cfg.Base.FieldPU(s.FieldA)-e.IfdModel) / e.IfdModel
+	case k == alarm.OELTimer || k == alarm.SCLTimer:
+		return u.limiterQuantity(k)
 	}
 	return math.NaN()
 }
@@ -96,6 +91,7 @@ func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Ti
 	ctx.AgeS = ageS
 	ev := u.event(k, alarm.LevelChanged, at, ageS)
 	ev.Prev, ev.Value, ev.Threshold = prev, x, thr
+	ctx.LimitMvar = ev.LimitAt
 	ev.Message = alarm.Message(u.cfg.ID, k, m.Level, prev, x, &ctx)
 	if m.Level > prev {
 		u.raised[k] = ev.Message // kept while the off-delay holds the alarm
@@ -149,17 +145,19 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 	case alarm.Armature:
 		return e.I * b.CurrentA(), e.IMax * b.CurrentA(), "A"
 	case alarm.Field:
-		ifd := b.FieldA(e.IfdModel)
-		if u.pt.IfdMeasured {
-			ifd = smp.FieldA
-		}
-		return ifd, b.FieldA(e.IfdMax), "A"
+		return b.FieldA(e.FieldCurrent), b.FieldA(e.IfdMax), "A"
 	case alarm.Stability:
 		return smp.QMvar, mvar(e.Practical), "Mvar"
 	case alarm.EndRegion:
 		return smp.QMvar, mvar(e.EndRegion), "Mvar"
 	case alarm.PrimeMover:
-		return smp.PMW, u.cfg.PrimeMover.PMaxMW, "MW"
+		pm := u.cfg.PrimeMover
+		if smp.PMW-pm.PMinMW < pm.PMaxMW-smp.PMW {
+			return smp.PMW, pm.PMinMW, "MW" // the nearer end: p_min
+		}
+		return smp.PMW, pm.PMaxMW, "MW"
+	case alarm.UEL:
+		return smp.QMvar, mvar(e.UEL), "Mvar"
 	case alarm.VoltsPerHertz:
 		return e.VPerHz, limits.VoltsPerHertzLimit, "pu"
 	case alarm.ArmatureThermal:
@@ -176,6 +174,8 @@ func (u *Unit) engineering(k alarm.Kind, ageS float64) (actual, limit float64, u
 		return ageS, u.cfg.Alarms[k].Warning, "s"
 	case alarm.FieldCurrentMismatch:
 		return smp.FieldA, b.FieldA(e.IfdModel), "A"
+	case alarm.OELTimer, alarm.SCLTimer:
+		return u.limiterQuantity(k), 0, "s"
 	}
 	return math.NaN(), math.NaN(), ""
 }
@@ -204,7 +204,8 @@ func (u *Unit) context() alarm.Context {
 	s := &u.latest
 	e := report.New(u.cfg, u.pt, &u.eval) // the point as evaluated
 	c = alarm.Context{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, QMaxMvar: e.QMaxMvar, QMinMvar: e.QMinMvar,
-		PMaxMW: u.cfg.PrimeMover.PMaxMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz}
+		PMaxMW: u.cfg.PrimeMover.PMaxMW, PMinMW: u.cfg.PrimeMover.PMinMW, IfdMeasuredA: e.FieldCurrentMeasuredA, Zone: e.Zone, VPerHzPU: u.eval.VPerHz,
+		OELXPU: u.lim.xOEL, SCLXPU: u.lim.xSCL}
 	if e.QMaxLimit != nil {
 		c.QMaxLimit = *e.QMaxLimit
 	}
@@ -297,7 +298,7 @@ func (s *Store) Acknowledge(id string, k alarm.Kind, now time.Time, by string) e
 	}
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	defer s.syncJournal()
 	u.mu.Lock()
@@ -333,7 +334,7 @@ func (s *Store) Shelve(id string, k alarm.Kind, until, now time.Time, by string)
 	}
 	u := s.Unit(id)
 	if u == nil {
-		return fmt.Errorf("%w %q", ErrUnknownUnit, id)
+		return fmt.Errorf("%w %q", ErrUnknownUnit, ClipID(id))
 	}
 	defer s.syncJournal()
 	u.mu.Lock()
@@ -487,6 +488,7 @@ func (s *Store) appendActive(out []alarm.Event, u *Unit) []alarm.Event {
 		} else {
 			ctx := u.context()
 			ctx.AgeS = age
+			ctx.LimitMvar = ev.LimitAt
 			ev.Message = alarm.Message(u.cfg.ID, alarm.Kind(k), m.Level, m.Level, m.Value, &ctx)
 		}
 		out = append(out, ev)

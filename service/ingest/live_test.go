@@ -255,7 +255,8 @@ func TestNoData(t *testing.T) {
 }
 
 // While the field-current mismatch alarm is active (a frozen
-// transducer), the field margin follows the model, not the reading.
+// transducer), the reading is doubted: the field margin takes the larger
+// of the reading and the model (envelope.md, "Margins"), here the model's.
 func TestFrozenFieldSensorUsesModel(t *testing.T) {
 	fl := exampleFleet(t)
 	s := NewStore(fl, Options{})
@@ -272,8 +273,11 @@ func TestFrozenFieldSensorUsesModel(t *testing.T) {
 	if v.Alarms[alarm.FieldCurrentMismatch].Level == alarm.Normal {
 		t.Fatal("the mismatch alarm did not rise")
 	}
-	if v.Point.IfdMeasured {
-		t.Error("the frozen reading is still used")
+	if !v.Point.IfdDoubtful {
+		t.Error("the frozen reading is not doubted")
+	}
+	if model := v.Eval.IfdModel; !(v.Point.Ifd < model) {
+		t.Fatalf("the frozen reading %v is not below the model's %v: the check below needs it", v.Point.Ifd, model)
 	}
 	// The margin an evaluation without the reading gives, cold.
 	pt := v.Point

@@ -43,6 +43,8 @@ type UnitSnapshot struct {
 	XField    float64                  `json:"field_current_pu"`
 	ThermalNS int64                    `json:"thermal_unix_ns,omitempty"` // sample time the accumulators had reached
 	Alarms    map[string]alarm.Machine `json:"alarms,omitempty"`          // machines not at rest, by limit name
+	OELUsed   float64                  `json:"oel_used_ratio,omitempty"`  // limiter timers (limiters.go)
+	SCLUsed   float64                  `json:"scl_used_ratio,omitempty"`
 }
 
 // SampleSnapshot is the latest accepted sample and when it arrived.
@@ -117,7 +119,8 @@ func (s *Store) Snapshot(now time.Time) *Snapshot {
 	sn := &Snapshot{Format: "genvelope-state", Version: SnapshotVersion, Written: now.UTC(), Units: map[string]UnitSnapshot{}}
 	for _, u := range s.Units() {
 		u.mu.Lock()
-		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.hArm, XField: u.hField, ThermalNS: u.thermNS}
+		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.hArm, XField: u.hField, ThermalNS: u.thermNS,
+			OELUsed: u.lim.oel.Used, SCLUsed: u.lim.scl.Used}
 		us.Times = make([]int64, 0, u.n)
 		for i := u.n; i > 0; i-- {
 			us.Times = append(us.Times, u.ring[(u.head-i+ringSize)%ringSize])
@@ -170,6 +173,7 @@ func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string, bad []err
 			u.n = min(u.n+1, ringSize)
 		}
 		u.armature.H, u.field.H = us.ArmatureH, us.FieldH
+		u.lim.oel.Used, u.lim.scl.Used = min(1, max(0, us.OELUsed)), min(1, max(0, us.SCLUsed))
 		if us.Latest != nil {
 			u.latest, u.recvNS, u.has = us.Latest.Sample, us.Latest.ReceivedUnixNS, true
 			u.lastNS = u.latest.Time.UnixNano()

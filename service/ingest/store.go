@@ -50,6 +50,25 @@ type Sample struct {
 	Quality Quality
 }
 
+// ClipID returns a unit id for an answer or a log line: at most 64
+// bytes, cut at a character boundary and marked, so that a huge id is
+// not echoed back whole.
+func ClipID(id string) string {
+	const max = 64
+	if len(id) <= max {
+		return id
+	}
+	cut := max
+	for cut > 0 && id[cut]&0xC0 == 0x80 {
+		cut--
+	}
+	return id[:cut] + "…"
+}
+
+// MaxShelve is the longest an operator may shelve an alarm for, on
+// every path (gRPC and the pages).
+const MaxShelve = 24 * time.Hour
+
 // Result is what became of one sample.
 type Result uint8
 
@@ -65,14 +84,16 @@ const (
 	RejectFuture
 	RejectInvalidQuality
 	RejectMissingTime
-	RejectOutOfRangeTime // before the horizon, or outside what a time in Unix nanoseconds can hold
-	RejectImplausible    // outside what the machine can physically report (see fleet.Plausibility)
+	RejectOutOfRangeTime   // before the horizon, or outside what a time in Unix nanoseconds can hold
+	RejectImplausible      // outside what the machine can physically report (see fleet.Plausibility)
+	RejectPermissionDenied // the caller may not push for the unit (access file)
 	NumResults
 )
 
 var resultNames = [NumResults]string{
 	"accepted", "duplicate", "unknown_unit", "not_finite", "out_of_range",
 	"out_of_order", "future", "invalid_quality", "missing_time", "out_of_range_time", "implausible",
+	"permission_denied",
 }
 
 // String returns the result's name as used in the metrics: "accepted",
@@ -355,7 +376,7 @@ func (s *Store) precheck(now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
 	e, ok := sn.byID[smp.UnitID]
 	if !ok {
-		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", smp.UnitID)
+		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
 	}
 	r, d := s.checkSample(e, now, smp)
 	return e.u, r, d
@@ -536,6 +557,9 @@ type Unit struct {
 
 	alarms [alarm.NumKinds]alarm.Machine
 	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
+
+	trend trend        // headroom and nearest margin over the last hours (trend.go)
+	lim   limiterState // the OEL and SCL timers (limiters.go)
 }
 
 // heatSize is how many recent samples' heating a unit remembers, so
@@ -608,6 +632,7 @@ func (u *Unit) accept(smp *Sample, t int64, now time.Time, s *Store) (Result, st
 	if (mismatch == alarm.Normal) != (u.alarms[alarm.FieldCurrentMismatch].Level == alarm.Normal) {
 		u.evaluate() // the reading starts or stops counting with this very sample
 	}
+	u.recordTrend(t) // after the evaluation the alarms settled on
 	return Accepted, ""
 }
 
@@ -630,6 +655,7 @@ func (u *Unit) advance(dt int64) {
 	sec := float64(dt) / 1e9
 	u.armature.Advance(u.hArm, sec)
 	u.field.Advance(u.hField, sec)
+	u.advanceLimiters(sec)
 	h.arm += u.armature.H - a0
 	h.field += u.field.H - f0
 }
@@ -690,28 +716,25 @@ func (u *Unit) seen(t int64) bool {
 func (u *Unit) evaluate() {
 	cfg := u.cfg
 	s := &u.latest
-	// A measured field current counts only on a sample of good quality,
-	// and not while the field-current mismatch alarm says the
-	// transducer disagrees with the model (a frozen or drifting sensor):
-	// then the field margin follows the model.
-	measured := s.HasFieldA && s.Quality == QualityGood && u.alarms[alarm.FieldCurrentMismatch].Level == alarm.Normal
-	pt := report.Point(cfg, s.PMW, s.QMvar, s.VKV, s.FieldA, measured,
-		s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
+	// A measured field current on a QUESTIONABLE sample, one far from the
+	// model (beyond the mismatch alarm's warning threshold), or one read
+	// while the field-current mismatch alarm is active (a frozen or
+	// drifting sensor) is doubted: the field margin, and the heating of
+	// the winding, take the larger of it and the model's (envelope.md,
+	// "Margins"), as neither can be trusted alone.
+	pt := report.Point(cfg, report.Reading{PMW: s.PMW, QMvar: s.QMvar, VKV: s.VKV, FieldA: s.FieldA, HasFieldA: s.HasFieldA,
+		FrequencyHz: s.FrequencyHz, HasFrequency: s.HasFreq, Coolant: s.Coolant, HasCoolant: s.HasCoolant})
+	pt.IfdDoubtful = s.Quality == QualityQuestionable || u.alarms[alarm.FieldCurrentMismatch].Level != alarm.Normal
+	if set := &cfg.Alarms[alarm.FieldCurrentMismatch]; !set.Disabled {
+		pt.IfdMismatch = set.Warning
+	}
 	// The per-sample evaluation leaves q_max to be solved by the first
 	// reader (complete): samples come far more often than reads.
 	u.eval = cfg.Model.EvaluateSample(pt, &u.hint)
 	u.pt = pt
 	u.xArm = u.eval.I / u.eval.IMax
-	ifd := u.eval.IfdModel
-	switch {
-	case pt.IfdMeasured:
-		ifd = pt.Ifd
-	case s.HasFieldA && s.Quality == QualityGood:
-		// The mismatch alarm is active: heat the winding with the larger
-		// of the reading and the model, as neither can be trusted alone.
-		ifd = max(ifd, cfg.Base.FieldPU(s.FieldA))
-	}
-	u.xField = ifd / u.eval.IfdMax
+	u.xField = u.eval.FieldCurrent / u.eval.IfdMax
+	u.holdLimiters()
 }
 
 // complete solves what the per-sample evaluation left pending. u.mu
@@ -777,6 +800,7 @@ type View struct {
 	Suspect        bool   // the latest sample is suspect (first after a gap, or a jump): its current is not yet held
 	Suspects       uint64 // suspect samples since the service started
 	Alarms         [alarm.NumKinds]alarm.Machine
+	Limiters       LimiterView // the OEL and SCL timers, the V/Hz limiter margin
 }
 
 // View returns a consistent copy of the unit's state.
@@ -785,7 +809,8 @@ func (u *Unit) View() View {
 	defer u.mu.Unlock()
 	u.complete()
 	v := View{Config: u.cfg, HasSample: u.has, Accepted: u.accepted, Armature: u.armature, Field: u.field,
-		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects}
+		XArmature: u.xArm, XField: u.xField, Alarms: u.alarms, Suspect: u.suspect, Suspects: u.suspects,
+		Limiters: u.limiterView()}
 	switch {
 	case !u.has:
 		v.Data = NoData

@@ -7,6 +7,8 @@ import (
 	"time"
 
 	"github.com/genvelope/genvelope/deploy/examples"
+	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
@@ -184,5 +186,60 @@ func TestConcurrentIngest(t *testing.T) {
 	}
 	if perUnit != c[Accepted] || c[Accepted] > n {
 		t.Errorf("units accepted %d, counters %d, at most %d", perUnit, c[Accepted], n)
+	}
+}
+
+// The field margin trusts a good measurement that agrees with the model,
+// and takes the larger of measurement and model when the sample is
+// QUESTIONABLE or the two disagree beyond the mismatch alarm's warning
+// (envelope.md, "Margins"): 1 - i_fd/i_fd_max by hand from the model's
+// and the measured current.
+func TestFieldMarginDoubtsQuestionableMeasurements(t *testing.T) {
+	fl := exampleFleet(t)
+	u := fl.Unit("harrowmere-1")
+	ratedA := u.Model.RatedFieldCurrent() * u.Base.IFagA
+	modelA := u.Base.FieldA(u.Model.FieldCurrent(u.Base.PowerPU(200), u.Base.PowerPU(50), 1))
+	for i, tc := range []struct {
+		name   string
+		fieldA float64
+		q      Quality
+		wantA  float64
+	}{
+		{"good, agrees", 0.97 * modelA, QualityGood, 0.97 * modelA},
+		{"good, reads 30 % low", 0.7 * modelA, QualityGood, modelA},
+		{"questionable, reads 5 % low", 0.95 * modelA, QualityQuestionable, modelA},
+		{"questionable, reads 5 % high", 1.05 * modelA, QualityQuestionable, 1.05 * modelA},
+	} {
+		s := NewStore(fl, Options{})
+		smp := good("harrowmere-1", t0.Add(time.Duration(i)*time.Second))
+		smp.FieldA, smp.HasFieldA, smp.Quality = tc.fieldA, true, tc.q
+		if r, why := s.Accept(t0.Add(time.Hour), &smp); r != Accepted {
+			t.Fatalf("%s: %v %s", tc.name, r, why)
+		}
+		m := s.Unit("harrowmere-1").View().Eval.Margins[limits.LimitField]
+		if want := 1 - tc.wantA/ratedA; math.Abs(m.V-want) > 1e-9 {
+			t.Errorf("%s: field margin %v, want %v", tc.name, m.V, want)
+		}
+	}
+}
+
+// The uel alarm watches the UEL margin: q - q_uel in pu, negative below
+// the curve (coordination.md, "Live"); q_uel of the example's
+// harrowmere-1 (circle centre 514 Mvar, radius 670 Mvar, 390 MVA, k = 2)
+// at 300 MW and 1 pu by hand: 514 - sqrt(670^2 - 300^2) = -85.08 Mvar.
+func TestUELAlarmQuantity(t *testing.T) {
+	s := NewStore(exampleFleet(t), Options{})
+	smp := Sample{UnitID: "harrowmere-1", Time: t0, PMW: 300, QMvar: -150, VKV: 20}
+	if r, why := s.Accept(t0.Add(time.Minute), &smp); r != Accepted {
+		t.Fatalf("%v %s", r, why)
+	}
+	u := s.Unit("harrowmere-1")
+	u.mu.Lock()
+	x := u.quantity(alarm.UEL)
+	actual, limit, units := u.engineering(alarm.UEL, 0)
+	u.mu.Unlock()
+	want := (-150 - (514 - math.Sqrt(670*670-300*300))) / 390
+	if math.Abs(x-want) > 1e-9 || actual != -150 || math.Abs(limit-(514-math.Sqrt(670*670-300*300))) > 1e-9 || units != "Mvar" {
+		t.Errorf("uel quantity %v (want %v), engineering %v, %v %s", x, want, actual, limit, units)
 	}
 }

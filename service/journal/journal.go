@@ -34,19 +34,20 @@ import (
 
 // The changes an entry records.
 const (
-	ChangeLevel        = "level"        // an alarm's level rose or fell
-	ChangeAcknowledged = "acknowledged" // an operator acknowledged an alarm
-	ChangeShelved      = "shelved"      // an operator shelved an alarm
-	ChangeUnshelved    = "unshelved"    // a shelf was lifted or expired
-	ChangeReload       = "reload"       // the fleet file was loaded again
-	ChangeRemoved      = "removed"      // a reload removed the unit: its alarm ended
-	ChangeReset        = "reset"        // an operator cleared a unit's thermal accumulators
-	ChangeDiscard      = "discard"      // an operator discarded one sample's thermal effect
+	ChangeLevel        = "level"         // an alarm's level rose or fell
+	ChangeAcknowledged = "acknowledged"  // an operator acknowledged an alarm
+	ChangeShelved      = "shelved"       // an operator shelved an alarm
+	ChangeUnshelved    = "unshelved"     // a shelf was lifted or expired
+	ChangeReload       = "reload"        // the fleet file was loaded again
+	ChangeRemoved      = "removed"       // a reload removed the unit: its alarm ended
+	ChangeReset        = "reset"         // an operator cleared a unit's thermal accumulators
+	ChangeDiscard      = "discard"       // an operator discarded one sample's thermal effect
+	ChangeDenied       = "access_denied" // access control refused a call (service/access)
 )
 
 // Changes lists every change, for filters.
 func Changes() []string {
-	return []string{ChangeLevel, ChangeAcknowledged, ChangeShelved, ChangeUnshelved, ChangeReload, ChangeRemoved, ChangeReset, ChangeDiscard}
+	return []string{ChangeLevel, ChangeAcknowledged, ChangeShelved, ChangeUnshelved, ChangeReload, ChangeRemoved, ChangeReset, ChangeDiscard, ChangeDenied}
 }
 
 // Levels are the alarm levels, lowest first, as entries name them.

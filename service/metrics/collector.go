@@ -13,6 +13,7 @@ import (
 	"github.com/genvelope/genvelope/limits"
 	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/ingest"
+	"github.com/genvelope/genvelope/service/report"
 )
 
 // Namespace prefixes every metric name.
@@ -47,6 +48,8 @@ type Collector struct {
 	fieldCurrent, loadAngle, cct, thermal, age, sampleTime *family
 	qLimit, accepted, samples, units                       *family
 	alarmLevel, alarmShelved, alarmAcked, transitions      *family
+	rotorFrequency, rotorDamping                           *family
+	limiters                                               limiterFamilies // limiters.go
 	dataState, suspects                                    *family
 }
 
@@ -79,8 +82,8 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	c.alarmAcked = d("alarm_acknowledged", "1 while the unit's active alarm on this limit is acknowledged.", "limit")
 	c.headroom = d("reactive_headroom_vars", "Reactive power the unit can still deliver (direction=up, to q_max) or absorb (direction=down, to q_min) at its present P, voltage and coolant, var; negative outside the envelope.", "direction")
 	c.qLimit = d("reactive_limit_vars", "Reactive power bound at the present P, voltage and coolant, var (bound=upper is q_max, bound=lower is q_min).", "bound")
-	c.margin = d("limit_margin_ratio", "Margin to each limit as a ratio, positive inside the envelope (armature 1 - I/Imax, field 1 - Ifd/Ifd_max, stability and end_region (Q - Q_limit)/S_rated, prime_mover (P_max - P)/P_rated, volts_per_hertz 1 - (V/f)/1.05).", "limit")
-	c.binding = d("binding_limit", "The capability limit with the smallest margin at the latest sample (value 1).", "limit")
+	c.margin = d("limit_margin_ratio", "Margin to each limit as a ratio, positive inside the envelope (armature 1 - I/Imax, field 1 - Ifd/Ifd_max, stability, end_region and uel (Q - Q_limit)/S_rated, prime_mover min(P_max - P, P - P_min)/P_rated, volts_per_hertz 1 - (V/f)/1.05).", "limit")
+	c.binding = d("binding_limit", "The capability limit nearest the latest sample, by distance in pu of rated MVA (value 1).", "limit")
 	c.feasible = d("envelope_feasible", "1 when every bound of the envelope exists at the present active power, 0 when one does not (see binding_limit).")
 	c.zone = d("voltage_frequency_zone", "IEC 60034-1 operating zone of the latest sample: 0 zone A, 1 zone B, 2 outside both.")
 	c.activePower = d("active_power_watts", "Active power of the latest sample, W.")
@@ -90,8 +93,11 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	c.fieldCurrent = d("field_current_amperes", "Field current, A: measured (source=measured, when the sample carries one) and the machine model's (source=model).", "source")
 	c.loadAngle = d("load_angle_radians", "Internal load angle of the latest sample (q axis ahead of the terminal voltage), rad.")
 	c.cct = d("critical_clearing_time_seconds", "Classical-model critical clearing time of a three-phase fault at the grid side at the latest operating point, s.")
+	c.rotorFrequency = d("rotor_mode_frequency_hertz", "Frequency of the rotor (electromechanical) mode of the linearized machine with its regulator at the latest operating point, Hz (units on the avr stability basis; solved at scrape time).")
+	c.rotorDamping = d("rotor_mode_damping_ratio", "Damping ratio of the rotor (electromechanical) mode at the latest operating point, -Re/|lambda| (negative: a growing oscillation; units on the avr stability basis).")
 	c.age = d("telemetry_age_seconds", "Time since the unit's latest sample was accepted, by the server clock, s.")
 	c.sampleTime = d("sample_timestamp_seconds", "Timestamp carried by the unit's latest accepted sample, Unix s.")
+	c.limiters = describeLimiters(d)
 	return c
 }
 
@@ -144,6 +150,7 @@ func (c *Collector) series(out sink) {
 		out.add(c.suspects, float64(v.Suspects), id, site)
 		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
 		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		c.limiters.series(out, &v, id, site)
 		for k := range v.Alarms {
 			m := &v.Alarms[k]
 			name := alarm.Kind(k).String()
@@ -174,11 +181,11 @@ func (c *Collector) series(out sink) {
 		}
 		for _, l := range limits.Limits() {
 			if m := e.Margins[l]; m.OK {
-				out.add(c.margin, m.V, id, site, l.String())
+				out.add(c.margin, m.V, id, site, report.LimitOf(l).Name)
 			}
 		}
 		if e.Binding != limits.NoLimit {
-			out.add(c.binding, 1, id, site, e.Binding.String())
+			out.add(c.binding, 1, id, site, report.LimitOf(e.Binding).Name)
 		}
 		out.add(c.feasible, boolFloat(e.Feasible), id, site)
 		out.add(c.zone, float64(e.Zone), id, site)
@@ -193,6 +200,12 @@ func (c *Collector) series(out sink) {
 		out.add(c.loadAngle, cfg.Model.LoadAngle(pt.P, pt.Q, pt.V), id, site)
 		if t := cfg.Model.CriticalClearingTime(pt.P, pt.Q, pt.V); t.OK && !math.IsInf(t.V, 0) {
 			out.add(c.cct, t.V, id, site)
+		}
+		// An eigen decomposition, tens of microseconds: here, at scrape
+		// time, never per sample.
+		if m, ok, err := cfg.Model.RotorMode(*pt); ok && err == nil && !math.IsNaN(m.FrequencyHz) && !math.IsNaN(m.DampingRatio) {
+			out.add(c.rotorFrequency, m.FrequencyHz, id, site)
+			out.add(c.rotorDamping, m.DampingRatio, id, site)
 		}
 		out.add(c.age, now.Sub(v.Received).Seconds(), id, site)
 		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, id, site)

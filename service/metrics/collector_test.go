@@ -62,9 +62,19 @@ func TestCollectorSeries(t *testing.T) {
 		have[mf.GetName()] = len(mf.GetMetric())
 	}
 	for _, name := range []string{"genvelope_reactive_headroom_vars", "genvelope_limit_margin_ratio",
-		"genvelope_samples_total", "genvelope_unit_info", "genvelope_thermal_capacity_used_ratio"} {
+		"genvelope_samples_total", "genvelope_unit_info", "genvelope_thermal_capacity_used_ratio",
+		"genvelope_rotor_mode_frequency_hertz", "genvelope_rotor_mode_damping_ratio"} {
 		if have[name] == 0 {
 			t.Errorf("no series for %s", name)
+		}
+	}
+	// The rotor mode of harrowmere-1 (avr basis) lies in the electromechanical
+	// range the spec names, 0.1 to 3 Hz (envelope.md; common practice).
+	for _, mf := range mfs {
+		if mf.GetName() == "genvelope_rotor_mode_frequency_hertz" {
+			if f := mf.GetMetric()[0].GetGauge().GetValue(); !(f >= 0.1 && f <= 3) {
+				t.Errorf("rotor mode at %v Hz", f)
+			}
 		}
 	}
 	// Units without a sample export their info and thermal state only.

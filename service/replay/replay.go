@@ -15,6 +15,7 @@ import (
 
 	"google.golang.org/grpc"
 	"google.golang.org/grpc/backoff"
+	"google.golang.org/grpc/credentials"
 	"google.golang.org/grpc/credentials/insecure"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
@@ -46,6 +47,10 @@ type Config struct {
 	AckTimeout time.Duration
 
 	Logger *slog.Logger
+
+	// Creds secure the connection (TLS, a client certificate); nil
+	// connects in plaintext.
+	Creds credentials.TransportCredentials
 }
 
 // Rejection is one row the server rejected.
@@ -206,8 +211,12 @@ func (r *Replayer) Progress() Progress {
 func (r *Replayer) Run(ctx context.Context) (*Summary, error) {
 	defer r.f.Close()
 	sum := &Summary{File: r.cfg.File}
+	creds := r.cfg.Creds
+	if creds == nil {
+		creds = insecure.NewCredentials()
+	}
 	conn, err := grpc.NewClient(r.cfg.Target,
-		grpc.WithTransportCredentials(insecure.NewCredentials()),
+		grpc.WithTransportCredentials(creds),
 		grpc.WithConnectParams(grpc.ConnectParams{
 			Backoff:           backoff.Config{BaseDelay: 100 * time.Millisecond, Multiplier: 1.6, Jitter: 0.2, MaxDelay: 3 * time.Second},
 			MinConnectTimeout: 5 * time.Second,

@@ -11,15 +11,27 @@ import (
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
-// Point converts an operating point in engineering units to the
-// engine's per unit. fieldA, hz and coolant are used when their has
-// flag is set; a coolant value is dropped for a unit without a table.
-func Point(u *fleet.Unit, pMW, qMvar, vKV float64, fieldA float64, hasField bool, hz float64, hasHz bool, coolant float64, hasCoolant bool) limits.Point {
+// Reading is one operating point as measured, in engineering units. A
+// value whose Has flag is false was not measured.
+type Reading struct {
+	PMW, QMvar, VKV float64
+
+	FieldA       float64
+	HasFieldA    bool // FieldA holds a measurement the engine may use
+	FrequencyHz  float64
+	HasFrequency bool
+	Coolant      float64
+	HasCoolant   bool
+}
+
+// Point converts a reading to the engine's per unit on unit u's base. A
+// coolant value is dropped for a unit without a coolant table.
+func Point(u *fleet.Unit, r Reading) limits.Point {
 	b := u.Base
-	pt := limits.Point{P: b.PowerPU(pMW), Q: b.PowerPU(qMvar), V: b.VoltagePU(vKV),
-		Ifd: b.FieldPU(fieldA), IfdMeasured: hasField, Coolant: coolant, HasCoolant: hasCoolant && u.Coolant != nil}
-	if hasHz {
-		pt.F = b.FrequencyPU(hz)
+	pt := limits.Point{P: b.PowerPU(r.PMW), Q: b.PowerPU(r.QMvar), V: b.VoltagePU(r.VKV),
+		Ifd: b.FieldPU(r.FieldA), IfdMeasured: r.HasFieldA, Coolant: r.Coolant, HasCoolant: r.HasCoolant && u.Coolant != nil}
+	if r.HasFrequency {
+		pt.F = b.FrequencyPU(r.FrequencyHz)
 	}
 	return pt
 }
@@ -62,6 +74,8 @@ type Evaluation struct {
 	QStabilityMvar          *float64            `json:"q_stability_mvar"`
 	QPracticalStabilityMvar *float64            `json:"q_practical_stability_mvar"`
 	QEndRegionMvar          *float64            `json:"q_end_region_mvar"`
+	QUELMvar                *float64            `json:"q_uel_mvar"`
+	StabilityBasis          string              `json:"stability_basis"` // "manual" or "avr": what q_stability_mvar assumes
 	PMaxMW                  *float64            `json:"p_max_mw"`
 	Margins                 map[string]*float64 `json:"margins"`
 	BindingLimit            *string             `json:"binding_limit"`
@@ -71,7 +85,31 @@ type Evaluation struct {
 	VoltsPerHertzPU         *float64            `json:"volts_per_hertz_pu"`
 	Zone                    string              `json:"zone"`
 	CriticalClearingTimeS   *float64            `json:"critical_clearing_time_s"`
-	Caution                 string              `json:"caution"`
+	// RotorMode is set by the readers that show it (SetRotorMode): an
+	// eigen decomposition, solved when read, never per sample. Null on
+	// the manual basis.
+	RotorMode *RotorMode `json:"rotor_mode"`
+	Caution   string     `json:"caution"`
+}
+
+// RotorMode is the rotor (electromechanical) mode of the linearized
+// machine with its regulator at an operating point (envelope.md, the avr
+// basis).
+type RotorMode struct {
+	FrequencyHz  float64 `json:"frequency_hz"`
+	DampingRatio float64 `json:"damping_ratio"` // -Re(lambda)/|lambda|; negative when the oscillation grows
+}
+
+// SetRotorMode solves the rotor mode of ev's unit u at pt, the point ev
+// reports, and puts it into ev: nil on the manual basis, where the mode
+// is not oscillatory, or where the eigenvalue solver fails.
+func (ev *Evaluation) SetRotorMode(u *fleet.Unit, pt limits.Point) {
+	ev.RotorMode = nil
+	m, ok, err := u.Model.RotorMode(pt)
+	if !ok || err != nil || math.IsNaN(m.FrequencyHz) || math.IsNaN(m.DampingRatio) {
+		return
+	}
+	ev.RotorMode = &RotorMode{FrequencyHz: m.FrequencyHz, DampingRatio: m.DampingRatio}
 }
 
 // num returns x, or nil when it is not finite.
@@ -95,7 +133,7 @@ func limitName(l limits.Limit) *string {
 	if l == limits.NoLimit {
 		return nil
 	}
-	s := l.String()
+	s := LimitOf(l).Name
 	return &s
 }
 
@@ -131,6 +169,8 @@ func New(u *fleet.Unit, pt limits.Point, r *limits.Result) *Evaluation {
 		QStabilityMvar:          bound(r.Stability, mva),
 		QPracticalStabilityMvar: bound(r.Practical, mva),
 		QEndRegionMvar:          bound(r.EndRegion, mva),
+		QUELMvar:                bound(r.UEL, mva),
+		StabilityBasis:          u.Model.Params().Basis.String(),
 		PMaxMW:                  bound(r.PMax, mva),
 		Margins:                 map[string]*float64{},
 		BindingLimit:            limitName(r.Binding),
@@ -156,7 +196,7 @@ func New(u *fleet.Unit, pt limits.Point, r *limits.Result) *Evaluation {
 	within := r.Feasible
 	for _, l := range limits.Limits() {
 		m := r.Margins[l]
-		ev.Margins[l.String()] = bound(m, 1)
+		ev.Margins[LimitOf(l).Name] = bound(m, 1)
 		if m.OK && m.V < 0 {
 			within = false
 		}
@@ -181,6 +221,7 @@ type EnvelopePoint struct {
 	QStabilityMvar          *float64 `json:"q_stability_mvar"`
 	QPracticalStabilityMvar *float64 `json:"q_practical_stability_mvar"`
 	QEndRegionMvar          *float64 `json:"q_end_region_mvar"`
+	QUELMvar                *float64 `json:"q_uel_mvar"`
 }
 
 // NewEnvelopePoint converts one engine envelope point of a unit rated mva.
@@ -197,5 +238,6 @@ func NewEnvelopePoint(e limits.EnvelopePoint, mva float64) EnvelopePoint {
 		QStabilityMvar:          bound(e.Stability, mva),
 		QPracticalStabilityMvar: bound(e.Practical, mva),
 		QEndRegionMvar:          bound(e.EndRegion, mva),
+		QUELMvar:                bound(e.UEL, mva),
 	}
 }

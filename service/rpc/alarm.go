@@ -21,8 +21,9 @@ import (
 // it is ended.
 const DefaultWatchBuffer = 1024
 
-// MaxShelve is the longest an alarm may be shelved in one call.
-const MaxShelve = 7 * 24 * time.Hour
+// MaxShelve is the longest an alarm may be shelved in one call, the
+// same on every path.
+const MaxShelve = ingest.MaxShelve
 
 // Alarms implements AlarmService.
 type Alarms struct {
@@ -87,6 +88,11 @@ func (a *Alarms) WatchAlarms(req *pb.WatchAlarmsRequest, st grpc.ServerStreaming
 	// between the two; a change may then be seen twice, never missed.
 	w := a.store.Hub().Watch(a.buffer, keep)
 	defer w.Close()
+	// Headers now: the client knows the watch is established (and not
+	// refused) before the first event.
+	if err := st.SendHeader(nil); err != nil {
+		return err
+	}
 	errc := make(chan error, 1)
 	// Sending happens on a goroutine of its own so that a watcher that
 	// stops reading (and so blocks Send) can still be ended on overflow;
@@ -191,7 +197,7 @@ func kindOf(name string) (alarm.Kind, error) {
 		for _, k := range alarm.Kinds() {
 			names = append(names, k.String())
 		}
-		return 0, status.Errorf(codes.InvalidArgument, "limit %q is not an alarm; alarms: %v", name, names)
+		return 0, status.Errorf(codes.InvalidArgument, "limit %q is not an alarm; alarms: %v", ingest.ClipID(name), names)
 	}
 	return k, nil
 }

@@ -53,9 +53,9 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 	resp := &pb.GetUnitResponse{Unit: unitProto(v.Config)}
 	if v.HasSample {
 		resp.Latest = sampleProto(&v.Latest)
-		pt := report.Point(v.Config, v.Latest.PMW, v.Latest.QMvar, v.Latest.VKV, v.Latest.FieldA, v.Latest.HasFieldA,
-			v.Latest.FrequencyHz, v.Latest.HasFreq, v.Latest.Coolant, v.Latest.HasCoolant)
-		resp.Evaluation = EvaluationProto(report.New(v.Config, pt, &v.Eval))
+		ev := report.New(v.Config, v.Point, &v.Eval)
+		ev.SetRotorMode(v.Config, v.Point)
+		resp.Evaluation = EvaluationProto(ev)
 		resp.Received = timestamppb.New(v.Received)
 	}
 	resp.DataState, resp.ThermalUnknown, resp.LatestSuspect = v.Data.String(), v.ThermalUnknown, v.Suspect
@@ -122,6 +122,7 @@ func (f *Fleet) GetEnvelope(ctx context.Context, req *pb.GetEnvelopeRequest) (*p
 			QMaxLimit: limitProto(p.QMaxLimit), QMinLimit: limitProto(p.QMinLimit),
 			QFieldMvar: p.QFieldMvar, QArmatureMvar: p.QArmatureUpMvar, QStabilityMvar: p.QStabilityMvar,
 			QPracticalStabilityMvar: p.QPracticalStabilityMvar, QEndRegionMvar: p.QEndRegionMvar,
+			QUelMvar: p.QUELMvar,
 		}
 	}
 	return resp, nil
@@ -134,7 +135,7 @@ func (f *Fleet) unit(id string) (*ingest.Unit, error) {
 	u := f.store.Unit(id)
 	if u == nil {
 		ids := f.store.Fleet().IDs()
-		return nil, status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", id, strings.Join(ids, ", "))
+		return nil, status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", ingest.ClipID(id), strings.Join(ids, ", "))
 	}
 	return u, nil
 }
@@ -149,7 +150,18 @@ func unitProto(u *fleet.Unit) *pb.Unit {
 		RatedMva: u.Rating.MVA, RatedKv: u.Rating.KV, PowerFactor: u.Rating.PowerFactor,
 		FrequencyHz: u.Rating.FrequencyHz, PMaxMw: u.PrimeMover.PMaxMW, PMinMw: u.PrimeMover.PMinMW,
 		IfagA: u.Field.AirGapA, RatedFieldA: u.Model.RatedFieldCurrent() * u.Field.AirGapA,
+		StabilityBasis: basisProto(u.Stability.Basis),
 	}
+}
+
+func basisProto(b limits.Basis) pb.StabilityBasis {
+	switch b {
+	case limits.BasisManual:
+		return pb.StabilityBasis_STABILITY_BASIS_MANUAL
+	case limits.BasisAVR:
+		return pb.StabilityBasis_STABILITY_BASIS_AVR
+	}
+	return pb.StabilityBasis_STABILITY_BASIS_UNSPECIFIED
 }
 
 func sampleProto(s *ingest.Sample) *pb.Sample {
@@ -164,25 +176,17 @@ func sampleProto(s *ingest.Sample) *pb.Sample {
 	}
 }
 
+// limitProto returns the wire enum of the limit named name (a name of
+// report's limit table): LIMIT_ and the name in capitals.
 func limitProto(name *string) pb.Limit {
 	if name == nil {
 		return pb.Limit_LIMIT_UNSPECIFIED
 	}
-	switch *name {
-	case "armature":
-		return pb.Limit_LIMIT_ARMATURE
-	case "field":
-		return pb.Limit_LIMIT_FIELD
-	case "stability":
-		return pb.Limit_LIMIT_STABILITY
-	case "end_region":
-		return pb.Limit_LIMIT_END_REGION
-	case "prime_mover":
-		return pb.Limit_LIMIT_PRIME_MOVER
-	case "volts_per_hertz":
-		return pb.Limit_LIMIT_VOLTS_PER_HERTZ
+	li, ok := report.LimitNamed(*name)
+	if !ok {
+		return pb.Limit_LIMIT_UNSPECIFIED
 	}
-	return pb.Limit_LIMIT_UNSPECIFIED
+	return pb.Limit(pb.Limit_value["LIMIT_"+strings.ToUpper(li.Name)])
 }
 
 func zoneProto(z string) pb.Zone {
@@ -211,9 +215,13 @@ func EvaluationProto(e *report.Evaluation) *pb.Evaluation {
 		VoltsPerHertzPu: val(e.VoltsPerHertzPU), CriticalClearingTimeS: e.CriticalClearingTimeS,
 		CoolantOutsideTable:  e.CoolantOutsideTable,
 		ArmatureRatingFactor: e.ArmatureRatingFactor, FieldRatingFactor: e.FieldRatingFactor,
+		QUelMvar: e.QUELMvar,
+	}
+	if m := e.RotorMode; m != nil {
+		out.RotorMode = &pb.RotorMode{FrequencyHz: m.FrequencyHz, DampingRatio: m.DampingRatio}
 	}
 	for _, l := range limits.Limits() {
-		name := l.String()
+		name := report.LimitOf(l).Name
 		out.Margins = append(out.Margins, &pb.Margin{Limit: limitProto(&name), Ratio: e.Margins[name]})
 	}
 	return out

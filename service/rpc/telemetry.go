@@ -17,6 +17,7 @@ import (
 	"google.golang.org/grpc/status"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
@@ -32,6 +33,7 @@ type Telemetry struct {
 	maxBatch int
 	now      func() time.Time
 	draining <-chan struct{}
+	denied   func(ctx context.Context, n int, unitID string)
 }
 
 // TelemetryOptions configure a Telemetry server.
@@ -46,6 +48,10 @@ type TelemetryOptions struct {
 	// that pass the checks are written to the log, and the batch is
 	// answered once they are in it and applied from it.
 	Log Log
+	// Denied, when set, hears of the samples of one request refused
+	// because the caller (access.FromContext) may not push for their
+	// units: how many, and the first such unit.
+	Denied func(ctx context.Context, n int, unitID string)
 }
 
 // Log is the durable path of accepted samples (package durable).
@@ -73,7 +79,7 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining}
+	return &Telemetry{store: store, log: o.Log, maxBatch: o.MaxBatch, now: o.Now, draining: o.Draining, denied: o.Denied}
 }
 
 // Push takes one batch.
@@ -149,17 +155,42 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 	}
 	resp := &pb.PushResponse{Sequence: req.Sequence}
 	var tally ingest.Tally
+	var d denials
+	caller := access.FromContext(ctx) // nil: no access control
 	for i, s := range req.Samples {
 		var smp ingest.Sample // stays on the stack: Accept is called directly
-		res, detail := t.convert(s, &smp)
+		res, detail := t.convert(caller, s, &smp)
 		if res == ingest.Accepted {
 			res, detail = t.store.Accept(now, &smp)
 		}
 		tally[res]++
+		d.note(res, s.UnitId)
 		answer(resp, i, res, detail)
 	}
 	t.store.Commit(&tally)
+	t.report(ctx, &d)
 	return resp, nil
+}
+
+// denials counts the samples of one batch refused for want of rights.
+type denials struct {
+	n    int
+	unit string // the first
+}
+
+func (d *denials) note(res ingest.Result, unitID string) {
+	if res == ingest.RejectPermissionDenied {
+		if d.n++; d.n == 1 {
+			d.unit = unitID
+		}
+	}
+}
+
+// report hands a batch's denials to the Denied hook.
+func (t *Telemetry) report(ctx context.Context, d *denials) {
+	if d.n > 0 && t.denied != nil {
+		t.denied(ctx, d.n, d.unit)
+	}
 }
 
 // checkSize refuses a batch larger than the limit.
@@ -177,14 +208,20 @@ func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	return nil
 }
 
-// convert converts s into smp, or returns the reason it cannot be. It
-// takes no checking function: called through a function value or an
-// interface, the sample would move to the heap, one allocation a sample.
-func (t *Telemetry) convert(s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
+// convert converts s into smp, or returns the reason it cannot be. A
+// caller (nil: no access control) that may not push for the unit is
+// refused first, so that a writer learns nothing of units it may not
+// push for. It takes no checking function: called through a function
+// value or an interface, the sample would move to the heap, one
+// allocation a sample.
+func (t *Telemetry) convert(caller *access.Caller, s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
+	if caller != nil && !caller.Allows(s.UnitId) {
+		return ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
+	}
 	res, detail := FromProto(s, smp)
 	if res != ingest.Accepted && t.store.Unit(s.UnitId) == nil {
 		// The unit is the first thing a sample is judged by.
-		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", s.UnitId)
+		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
 	}
 	return res, detail
 }
@@ -227,15 +264,18 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 	details := make([]string, len(req.Samples))
 	smps := make([]ingest.Sample, 0, len(req.Samples))
 	idx := make([]int, 0, len(req.Samples))
+	var d denials
+	caller := access.FromContext(ctx)
 	for i, s := range req.Samples {
 		// Converted in its place in smps: passed to the log's Check, an
 		// interface method, a local sample would move to the heap.
 		smps = append(smps, ingest.Sample{})
 		smp := &smps[len(smps)-1]
-		res, detail := t.convert(s, smp)
+		res, detail := t.convert(caller, s, smp)
 		if res == ingest.Accepted {
 			res, detail = t.log.Check(now, smp)
 		}
+		d.note(res, s.UnitId)
 		if res == ingest.Accepted {
 			idx = append(idx, i)
 			continue
@@ -245,6 +285,7 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 		tally[res]++
 	}
 	t.store.Commit(&tally)
+	t.report(ctx, &d)
 	wait := func(context.Context) ([]ingest.Result, []string, error) { return nil, nil, nil }
 	if len(smps) > 0 {
 		if wait, err = t.log.Append(ctx, now, smps); err != nil {
@@ -404,6 +445,8 @@ func reasonProto(r ingest.Result) pb.RejectReason {
 		return pb.RejectReason_REJECT_REASON_OUT_OF_RANGE_TIME
 	case ingest.RejectImplausible:
 		return pb.RejectReason_REJECT_REASON_IMPLAUSIBLE
+	case ingest.RejectPermissionDenied:
+		return pb.RejectReason_REJECT_REASON_PERMISSION_DENIED
 	}
 	return pb.RejectReason_REJECT_REASON_UNSPECIFIED
 }

@@ -13,6 +13,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/alarm"
 	"github.com/genvelope/genvelope/service/report"
 	"github.com/genvelope/genvelope/service/rpc"
 	"github.com/genvelope/genvelope/service/server"
@@ -30,11 +31,14 @@ func TestListUnits(t *testing.T) {
 	// is the file's field.rated_a, given for each unit there.
 	want := []*pb.Unit{
 		{Id: "brindle-gt3", Name: "Brindle Flats gas turbine 3", Site: "brindle-flats", Rotor: pb.Rotor_ROTOR_ROUND,
-			RatedMva: 160, RatedKv: 15, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 136, PMinMw: 40, IfagA: 520, RatedFieldA: 1610},
+			RatedMva: 160, RatedKv: 15, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 136, PMinMw: 40, IfagA: 520, RatedFieldA: 1610,
+			StabilityBasis: pb.StabilityBasis_STABILITY_BASIS_AVR},
 		{Id: "harrowmere-1", Name: "Harrowmere unit 1", Site: "harrowmere", Rotor: pb.Rotor_ROTOR_ROUND,
-			RatedMva: 390, RatedKv: 20, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 335, PMinMw: 120, IfagA: 1050, RatedFieldA: 3150},
+			RatedMva: 390, RatedKv: 20, PowerFactor: 0.85, FrequencyHz: 50, PMaxMw: 335, PMinMw: 120, IfagA: 1050, RatedFieldA: 3150,
+			StabilityBasis: pb.StabilityBasis_STABILITY_BASIS_AVR},
 		{Id: "larchwater-2", Name: "Larchwater unit 2", Site: "larchwater", Rotor: pb.Rotor_ROTOR_SALIENT,
-			RatedMva: 120, RatedKv: 13.8, PowerFactor: 0.9, FrequencyHz: 50, PMaxMw: 110, PMinMw: 20, IfagA: 680, RatedFieldA: 1320},
+			RatedMva: 120, RatedKv: 13.8, PowerFactor: 0.9, FrequencyHz: 50, PMaxMw: 110, PMinMw: 20, IfagA: 680, RatedFieldA: 1320,
+			StabilityBasis: pb.StabilityBasis_STABILITY_BASIS_AVR},
 	}
 	var ids []string
 	for _, u := range resp.Units {
@@ -124,8 +128,11 @@ func TestGetUnit(t *testing.T) {
 			b := u.Base
 			pt := limits.Point{P: b.PowerPU(tc.s.PMw), Q: b.PowerPU(tc.s.QMvar), V: b.VoltagePU(tc.s.VKv)}
 			if tc.s.FieldA != nil {
-				pt.Ifd = b.FieldPU(*tc.s.FieldA)
-				pt.IfdMeasured = tc.s.Quality != pb.Quality_QUALITY_QUESTIONABLE // a questionable measurement is not used for the margin
+				// A questionable measurement, or one beyond the mismatch alarm's
+				// warning from the model, counts only when it is the larger.
+				pt.Ifd, pt.IfdMeasured = b.FieldPU(*tc.s.FieldA), true
+				pt.IfdDoubtful = tc.s.Quality == pb.Quality_QUALITY_QUESTIONABLE
+				pt.IfdMismatch = u.Alarms[alarm.FieldCurrentMismatch].Warning
 			}
 			if tc.s.FrequencyHz != nil {
 				pt.F = b.FrequencyPU(*tc.s.FrequencyHz)
@@ -133,8 +140,21 @@ func TestGetUnit(t *testing.T) {
 			if tc.s.Coolant != nil {
 				pt.Coolant, pt.HasCoolant = *tc.s.Coolant, true
 			}
-			res := u.Model.Evaluate(pt, nil)
+			// With a hint, as the service evaluates samples: on the avr basis
+			// that reads the stability limit from the unit's table, which the
+			// answer must match exactly; that in turn within 0.002 pu of the
+			// direct computation (Evaluate without a hint, limits' contract).
+			var h limits.Hint
+			res := u.Model.Evaluate(pt, &h)
+			direct := u.Model.Evaluate(pt, nil)
+			for _, x := range [][2]limits.Bound{{res.Stability, direct.Stability}, {res.Practical, direct.Practical},
+				{res.StabilityTop, direct.StabilityTop}, {res.QMax, direct.QMax}, {res.QMin, direct.QMin}} {
+				if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 0.002 {
+					t.Errorf("the service's path %+v, the direct computation %+v (pu; the contract is 0.002 pu)", x[0], x[1])
+				}
+			}
 			e := report.New(u, pt, &res)
+			e.SetRotorMode(u, pt)
 			want := rpc.EvaluationProto(e)
 			if d := approxEqual(got.Evaluation.ProtoReflect(), want.ProtoReflect(), 1e-9, "evaluation"); d != "" {
 				t.Error(d)
@@ -172,7 +192,7 @@ func TestGetUnit(t *testing.T) {
 				order = append(order, m.Limit)
 			}
 			wantOrder := []pb.Limit{pb.Limit_LIMIT_ARMATURE, pb.Limit_LIMIT_FIELD, pb.Limit_LIMIT_STABILITY,
-				pb.Limit_LIMIT_END_REGION, pb.Limit_LIMIT_PRIME_MOVER, pb.Limit_LIMIT_VOLTS_PER_HERTZ}
+				pb.Limit_LIMIT_END_REGION, pb.Limit_LIMIT_PRIME_MOVER, pb.Limit_LIMIT_VOLTS_PER_HERTZ, pb.Limit_LIMIT_UEL}
 			if !slices.Equal(order, wantOrder) {
 				t.Errorf("margins for %v, want one per limit in enum order %v", order, wantOrder)
 			}

@@ -12,7 +12,6 @@ import (
 	"log/slog"
 	"net"
 	"net/http"
-	"net/http/pprof"
 	"runtime/debug"
 	"strings"
 	"sync"
@@ -28,6 +27,7 @@ import (
 	"google.golang.org/grpc/reflection"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/fleet"
 	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/service/journal"
@@ -63,6 +63,11 @@ type Config struct {
 	ShutdownGrace time.Duration
 
 	Logger *slog.Logger
+
+	// Security: TLS, access control, audit (security.go).
+	Security Security
+	// Limits: per-client caps and timeouts (limits.go).
+	Limits Limits
 
 	// Log, when set, makes the service durable and replicated (package
 	// durable): samples and operator actions are written to it before
@@ -110,6 +115,13 @@ type Server struct {
 	reloadSuccess *prometheus.CounterVec
 	reloadOK      prometheus.Gauge
 	reloadTime    prometheus.Gauge
+
+	guard      *access.Guard
+	webCfg     webConfig
+	limits     Limits
+	closeCreds func()
+	pprof      *http.Server
+	pprofLn    net.Listener
 }
 
 // New loads the fleet file and binds both listeners; it fails, saying
@@ -207,10 +219,16 @@ func New(cfg Config) (*Server, error) {
 		reg.MustRegister(cfg.Log.Collectors()...)
 	}
 
-	s.grpc = grpc.NewServer(grpc.MaxRecvMsgSize(64 << 20))
-	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining, Log: tlog}))
+	gopts, err := s.secure(reg)
+	if err != nil {
+		s.closeJournal()
+		return nil, err
+	}
+	s.grpc = grpc.NewServer(gopts...)
+	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining, Denied: s.denied, Log: tlog}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
 	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining, Actions: actions}))
+	pb.RegisterCoordinationServiceServer(s.grpc, rpc.NewCoordination(s.store))
 	pb.RegisterJournalServiceServer(s.grpc, rpc.NewJournal(s.store, s.journal, nil))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)
@@ -220,26 +238,35 @@ func New(cfg Config) (*Server, error) {
 	mux.Handle("GET /metrics", metricsHandler(reg, fleetMetrics, s.log))
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.HandleFunc("GET /readyz", s.readyz)
-	mux.HandleFunc("POST /-/reload", s.reloadHandler)
-	s.web = web.New(s.store, web.Options{Logger: s.log, Actions: actions, Journal: s.journal})
+	mux.Handle("POST /-/reload", http.NewCrossOriginProtection().Handler(http.HandlerFunc(s.reloadHandler)))
+	s.web = web.New(s.store, web.Options{Logger: s.log, Identity: webIdentity, Actions: actions, Journal: s.journal})
 	mux.Handle("/", s.web) // the operator pages: /, /units/{id} and their endpoints
 	if cfg.Pprof {
-		mux.HandleFunc("/debug/pprof/", pprof.Index)
-		mux.HandleFunc("/debug/pprof/cmdline", pprof.Cmdline)
-		mux.HandleFunc("/debug/pprof/profile", pprof.Profile)
-		mux.HandleFunc("/debug/pprof/symbol", pprof.Symbol)
-		mux.HandleFunc("/debug/pprof/trace", pprof.Trace)
+		mux.Handle("/debug/pprof/", pprofMux()) // admin only (routeOf); prefer --pprof-listen
 	}
-	s.http = &http.Server{Handler: mux, ReadHeaderTimeout: 10 * time.Second}
+	s.http = s.httpServer(mux, cfg.HTTPListen, !cfg.Pprof)
 
 	if s.grpcLn, err = net.Listen("tcp", cfg.GRPCListen); err != nil {
+		s.closeCreds()
 		s.closeJournal()
 		return nil, fmt.Errorf("grpc listen on %s: %w", cfg.GRPCListen, err)
 	}
+	s.grpcLn = limitListener(s.grpcLn, s.limits.GRPCConns)
 	if s.httpLn, err = net.Listen("tcp", cfg.HTTPListen); err != nil {
 		s.grpcLn.Close()
+		s.closeCreds()
 		s.closeJournal()
 		return nil, fmt.Errorf("http listen on %s: %w", cfg.HTTPListen, err)
+	}
+	s.httpLn = limitListener(s.httpLn, s.limits.HTTPConns)
+	if l := cfg.Security.PprofListen; l != "" {
+		s.pprof = s.httpServer(pprofMux(), l, false)
+		if s.pprofLn, err = net.Listen("tcp", l); err != nil {
+			s.grpcLn.Close()
+			s.httpLn.Close()
+			s.closeCreds()
+			return nil, fmt.Errorf("pprof listen on %s: %w", l, err)
+		}
 	}
 	return s, nil
 }
@@ -267,15 +294,19 @@ func (s *Server) Store() *ingest.Store { return s.store }
 // finish and answers them, ends open streams with UNAVAILABLE, and
 // closes the HTTP listener last so that a final scrape still works.
 func (s *Server) Run(ctx context.Context) error {
-	errc := make(chan error, 2)
+	errc := make(chan error, 3)
 	go func() { errc <- s.grpc.Serve(s.grpcLn) }()
-	go func() {
-		if err := s.http.Serve(s.httpLn); !errors.Is(err, http.ErrServerClosed) {
+	serveHTTP := func(srv *http.Server, ln net.Listener) {
+		if err := s.serveHTTP(srv, ln); !errors.Is(err, http.ErrServerClosed) {
 			errc <- err
 			return
 		}
 		errc <- nil
-	}()
+	}
+	go serveHTTP(s.http, s.httpLn)
+	if s.pprof != nil {
+		go serveHTTP(s.pprof, s.pprofLn)
+	}
 	s.health.SetServingStatus("", healthpb.HealthCheckResponse_SERVING)
 	s.ready.Store(true)
 	s.log.Info("genvelope serving", "grpc", s.GRPCAddr(), "http", s.HTTPAddr(),
@@ -356,9 +387,13 @@ func (s *Server) Run(ctx context.Context) error {
 	s.closeJournal()
 	hctx, cancel := context.WithTimeout(context.Background(), s.cfg.ShutdownGrace)
 	defer cancel()
+	if s.pprof != nil {
+		_ = s.pprof.Shutdown(hctx)
+	}
 	if err := s.http.Shutdown(hctx); err != nil {
 		s.log.Warn("http shutdown", "err", err)
 	}
+	s.closeCreds()
 	s.log.Info("stopped")
 	return runErr
 }
@@ -433,21 +468,35 @@ func (s *Server) readyz(w http.ResponseWriter, r *http.Request) {
 	fmt.Fprintf(w, "ready: %d units\n", len(s.store.Units()))
 }
 
-// Reload reads the fleet file again. A file with errors changes
-// nothing: the running fleet keeps serving, and the error is logged,
-// counted and returned. With a log, the reload goes through it so that
-// every replica reloads at the same place in the log.
+// Reload reads the fleet file and the access file again. A file with
+// errors changes nothing: the running fleet and access file stay in
+// force, and the error is logged, counted and returned. With a log, the
+// reload goes through it so that every replica reloads at the same
+// place in the log.
 func (s *Server) Reload() error {
+	err := s.reload()
+	s.guard.Record(context.Background(), &access.Caller{Name: "local (signal)"}, "reload", s.cfg.FleetPath, outcomeOf(err), errText(err))
+	return err
+}
+
+func (s *Server) reload() error {
 	if s.cfg.Log != nil {
 		return s.cfg.Log.Reload(context.Background())
 	}
 	return s.reloadLocal()
 }
 
-// reloadLocal reads the fleet file again on this replica.
+// reloadLocal reads the fleet file (and the access file) again on this
+// replica.
 func (s *Server) reloadLocal() error {
 	s.reloadMu.Lock()
 	defer s.reloadMu.Unlock()
+	if err := s.guardReload(); err != nil {
+		s.reloadSuccess.WithLabelValues("failure").Inc()
+		s.reloadOK.Set(0)
+		s.log.Error("access file reload refused; the running fleet and access file are kept", "err", err)
+		return err
+	}
 	fl, err := loadFleet(s.cfg.FleetPath)
 	if err != nil {
 		s.reloadSuccess.WithLabelValues("failure").Inc()
@@ -467,7 +516,9 @@ func (s *Server) reloadLocal() error {
 }
 
 func (s *Server) reloadHandler(w http.ResponseWriter, r *http.Request) {
-	if err := s.Reload(); err != nil {
+	err := s.reload()
+	s.guard.Record(r.Context(), access.FromContext(r.Context()), "reload", s.cfg.FleetPath, outcomeOf(err), errText(err))
+	if err != nil {
 		http.Error(w, err.Error(), http.StatusUnprocessableEntity)
 		return
 	}

@@ -22,8 +22,10 @@ import (
 // the hub never waits on a watcher (alarm.Hub), so the server drops one
 // that falls rpc.DefaultWatchBuffer events behind, ends its stream with
 // RESOURCE_EXHAUSTED after the events already sent, and leaves nothing of
-// it running. Ingest throughput with and without the stuck watcher is
-// measured and logged; only a stall (ratio below 0.3) fails.
+// it running. Every batch beside the stuck watcher is answered (a held-up
+// hub would block them); throughput with and without it is measured and
+// logged only, since a timed assertion would fail on a loaded machine
+// (speed is the load harness's job).
 func TestStuckWatcherIsDropped(t *testing.T) {
 	if testing.Short() {
 		t.Skip("thousands of alarm transitions; skipped under -short")
@@ -148,9 +150,6 @@ func TestStuckWatcherIsDropped(t *testing.T) {
 	}
 	if published <= rpc.DefaultWatchBuffer {
 		t.Errorf("only %d transitions published; not enough to overflow the %d-event buffer", published, rpc.DefaultWatchBuffer)
-	}
-	if ratio < 0.3 {
-		t.Errorf("ingest with the stuck watcher ran at %.2f of its rate without: held up by the watcher", ratio)
 	}
 	// Nothing of the ended watch is left running on the server.
 	deadline := time.Now().Add(waitLong)

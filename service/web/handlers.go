@@ -30,7 +30,7 @@ const (
 // day.
 const (
 	minShelve = time.Minute
-	maxShelve = 24 * time.Hour
+	maxShelve = ingest.MaxShelve
 )
 
 // shelveChoices are the durations the unit page offers.
@@ -52,6 +52,7 @@ type page struct {
 	Status   int
 	Message  string
 	BackHref string
+	User     string // the signed-in identity, "" when none
 }
 
 func (ui *UI) funcs() template.FuncMap {
@@ -139,7 +140,9 @@ func writeJSON(w http.ResponseWriter, status int, v any) {
 }
 
 func (ui *UI) overview(w http.ResponseWriter, r *http.Request) {
-	ui.render(w, "overview.html", ui.newPage("Fleet", "/fleet/live", ui.fleetData()))
+	p := ui.newPage("Fleet", "/fleet/live", ui.fleetData())
+	p.User, _ = ui.opts.Identity(r)
+	ui.render(w, "overview.html", p)
 }
 
 // liveFleet is the overview's refresh: the table body and the summary.
@@ -155,6 +158,7 @@ type liveRow struct {
 	Unit  string `json:"unit"`
 	Level string `json:"level"`
 	Rank  int    `json:"rank"`
+	State string `json:"state"` // "live", "stale" or "no data"
 }
 
 func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
@@ -167,7 +171,7 @@ func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
 	}
 	out := liveFleet{Time: d.Now, Clock: fmtClock(d.Now), Sections: secs, Caution: fleet.Caution}
 	for _, row := range d.Rows {
-		out.Units = append(out.Units, liveRow{Unit: row.ID, Level: row.Alarms.Highest.Word, Rank: row.Rank})
+		out.Units = append(out.Units, liveRow{Unit: row.ID, Level: row.Alarms.Highest.Word, Rank: row.Rank, State: row.State.Word})
 	}
 	writeJSON(w, http.StatusOK, out)
 }
@@ -180,18 +184,22 @@ func (ui *UI) unitPage(w http.ResponseWriter, r *http.Request) {
 	}
 	d := ui.unitData(u)
 	d.Chart = ui.unitChart(d)
-	ui.render(w, "unit.html", ui.newPage(d.Unit.DisplayName(), d.Href+"/live", d))
+	p := ui.newPage(d.Unit.DisplayName(), d.Href+"/live", d)
+	p.User = ui.signIn(r, d)
+	ui.render(w, "unit.html", p)
 }
 
 // liveUnit is the unit page's refresh.
 type liveUnit struct {
-	Unit       string             `json:"unit"`
-	Time       time.Time          `json:"time"`
-	Clock      string             `json:"clock"`
-	Sections   map[string]string  `json:"sections"`
-	Evaluation *report.Evaluation `json:"evaluation"` // null before the first sample
-	Alarms     []liveAlarm        `json:"alarms"`
-	Caution    string             `json:"caution"`
+	Unit         string             `json:"unit"`
+	Time         time.Time          `json:"time"`
+	Clock        string             `json:"clock"`
+	Sections     map[string]string  `json:"sections"`
+	Evaluation   *report.Evaluation `json:"evaluation"`   // null before the first sample
+	State        string             `json:"state"`        // "live", "stale" or "no data"
+	Questionable bool               `json:"questionable"` // the latest sample's quality is QUESTIONABLE
+	Alarms       []liveAlarm        `json:"alarms"`
+	Caution      string             `json:"caution"`
 }
 
 type liveAlarm struct {
@@ -210,13 +218,15 @@ func (ui *UI) unitLive(w http.ResponseWriter, r *http.Request) {
 	}
 	d := ui.unitData(u)
 	d.Chart = ui.unitChart(d)
-	secs, err := ui.fragments("unit.html", d, "unit-status", "unit-tiles", "unit-numbers", "unit-alarms", "unit-chart")
+	ui.signIn(r, d)
+	secs, err := ui.fragments("unit.html", d, "unit-status", "unit-tiles", "unit-numbers", "unit-alarms", "unit-chart", "unit-trend")
 	if err != nil {
 		ui.log.Error("unit fragments not rendered", "unit", d.Unit.ID, "err", err)
 		writeJSON(w, http.StatusInternalServerError, map[string]string{"error": "not rendered"})
 		return
 	}
-	out := liveUnit{Unit: d.Unit.ID, Time: d.Now, Clock: fmtClock(d.Now), Sections: secs, Evaluation: d.Eval, Alarms: []liveAlarm{}, Caution: fleet.Caution}
+	out := liveUnit{Unit: d.Unit.ID, Time: d.Now, Clock: fmtClock(d.Now), Sections: secs, Evaluation: d.Eval, Alarms: []liveAlarm{}, Caution: fleet.Caution,
+		State: d.State.Word, Questionable: d.Questionable}
 	for _, a := range d.AlarmRows {
 		out.Alarms = append(out.Alarms, liveAlarm{Kind: a.Kind, Level: a.Level.Word, Acknowledged: a.Acknowledged, Shelved: a.Shelved, Message: a.Message})
 	}
@@ -259,13 +269,26 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 		return
 	}
 	by := operator(r.PostForm.Get("operator"))
+	if name, _ := ui.opts.Identity(r); name != "" {
+		by = name // the authenticated identity, not a typed name
+	}
+	if action != "acknowledge" && action != "shelve" && action != "unshelve" {
+		fail(http.StatusNotFound, fmt.Sprintf("There is no alarm action %q: acknowledge, shelve or unshelve.", action))
+		return
+	}
+	if by == "" {
+		// The journal records who acted: without a signed-in identity the
+		// operator gives a name.
+		fail(http.StatusBadRequest, "Enter your name in the Operator box first: the journal records who acknowledged or shelved an alarm.")
+		return
+	}
 	now := ui.opts.Now()
 	var err error
 	var done string
 	switch action {
 	case "acknowledge":
 		err = ui.opts.Actions.Acknowledge(r.Context(), id, kind, now, by)
-		done = fmt.Sprintf("%s: %s alarm acknowledged by %s.", id, kindTitle[kind], by)
+		done = fmt.Sprintf("%s: %s alarm acknowledged by %s.", id, report.AlarmTitle(kind), by)
 	case "shelve":
 		d, perr := time.ParseDuration(r.PostForm.Get("duration"))
 		if perr != nil || d < minShelve || d > maxShelve {
@@ -274,17 +297,17 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 		}
 		until := now.Add(d)
 		err = ui.opts.Actions.Shelve(r.Context(), id, kind, until, now, by)
-		done = fmt.Sprintf("%s: %s alarm shelved until %s by %s.", id, kindTitle[kind], fmtClock(until), by)
+		done = fmt.Sprintf("%s: %s alarm shelved until %s by %s.", id, report.AlarmTitle(kind), fmtClock(until), by)
 	case "unshelve":
 		err = ui.opts.Actions.Shelve(r.Context(), id, kind, time.Time{}, now, by)
-		done = fmt.Sprintf("%s: %s alarm unshelved by %s.", id, kindTitle[kind], by)
+		done = fmt.Sprintf("%s: %s alarm unshelved by %s.", id, report.AlarmTitle(kind), by)
 	default:
 		fail(http.StatusNotFound, fmt.Sprintf("There is no alarm action %q: acknowledge, shelve or unshelve.", action))
 		return
 	}
 	switch {
 	case errors.Is(err, ingest.ErrNotActive):
-		fail(http.StatusConflict, fmt.Sprintf("The %s alarm of %s is not active: nothing to acknowledge.", kindTitle[kind], id))
+		fail(http.StatusConflict, fmt.Sprintf("The %s alarm of %s is not active: nothing to acknowledge.", report.AlarmTitle(kind), id))
 		return
 	case errors.Is(err, ingest.ErrUnknownUnit):
 		fail(http.StatusNotFound, fmt.Sprintf("Unit %q is not in the fleet.", id))
@@ -306,7 +329,7 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 }
 
 // operator returns the operator's name from a form field: printable,
-// at most 64 characters, "web" when empty.
+// at most 64 characters; empty when none was given.
 func operator(s string) string {
 	s = strings.Map(func(r rune) rune {
 		if unicode.IsPrint(r) {
@@ -317,10 +340,7 @@ func operator(s string) string {
 	if rs := []rune(s); len(rs) > 64 {
 		s = string(rs[:64])
 	}
-	if s = strings.TrimSpace(s); s == "" {
-		return "web"
-	}
-	return s
+	return strings.TrimSpace(s)
 }
 
 func (ui *UI) notFound(w http.ResponseWriter, r *http.Request) {

@@ -98,51 +98,99 @@ func fmtClock(t time.Time) string { return t.Format("15:04:05 MST") }
 // fmtWhen is a time with its date, as shown on the pages.
 func fmtWhen(t time.Time) string { return t.Format("2006-01-02 15:04:05 MST") }
 
-// limitTitle names the limits in the operators' words.
-var limitTitle = map[string]string{
-	"armature":        "Armature current",
-	"field":           "Field current",
-	"stability":       "Steady-state stability",
-	"end_region":      "Stator end region",
-	"prime_mover":     "Prime mover",
-	"volts_per_hertz": "Volts per hertz",
-	"none":            "none",
-}
-
-// limitBasis says what each margin is a fraction of.
-var limitBasis = map[string]string{
-	"armature":        "of the armature current rating",
-	"field":           "of the field current rating",
-	"stability":       "of rated MVA, above the practical limit",
-	"end_region":      "of rated MVA, above the end-region curve",
-	"prime_mover":     "of rated MW, below p_max",
-	"volts_per_hertz": "below 1.05 pu continuous",
-}
-
-// kindTitle names the alarms in the operators' words.
-var kindTitle = [alarm.NumKinds]string{
-	alarm.Armature:             "Armature current",
-	alarm.Field:                "Field current",
-	alarm.Stability:            "Steady-state stability",
-	alarm.EndRegion:            "Stator end region",
-	alarm.PrimeMover:           "Prime mover",
-	alarm.VoltsPerHertz:        "Volts per hertz",
-	alarm.ArmatureThermal:      "Armature short-time heating",
-	alarm.FieldThermal:         "Field short-time heating",
-	alarm.VoltageFrequencyZone: "Voltage/frequency zone",
-	alarm.StaleTelemetry:       "Telemetry stale",
-	alarm.FieldCurrentMismatch: "Field current vs model",
-}
-
-// limitName returns the operators' name of a limit given by its name.
+// limitName returns the operators' name of a limit given by its name
+// (report's limit table).
 func limitName(s *string) string {
 	if s == nil {
 		return dash
 	}
-	if t, ok := limitTitle[*s]; ok {
-		return t
+	if li, ok := report.LimitNamed(*s); ok {
+		return li.Title
 	}
 	return *s
+}
+
+// dataState is how fresh a unit's numbers are: never by colour alone.
+type dataState struct {
+	Word  string // "live", "stale", "no data"
+	Class string // the stylesheet's class
+}
+
+var (
+	stateLive   = dataState{"live", "st-live"}
+	stateStale  = dataState{"stale", "st-stale"}
+	stateNoData = dataState{"no data", "st-nodata"}
+)
+
+// stateOf returns the freshness of v as ingest judges it (View.Data): no
+// data without an accepted sample, stale when no sample came within the
+// unit's stale-telemetry warning threshold of wall-clock time.
+func stateOf(v *ingest.View) dataState {
+	switch v.Data {
+	case ingest.NoData:
+		return stateNoData
+	case ingest.DataStale:
+		return stateStale
+	}
+	return stateLive
+}
+
+// cause is why a unit is in alarm: its worst active alarm.
+type cause struct {
+	Kind    string // the alarm's name; "" for none
+	Title   string
+	Message string
+	Level   level
+}
+
+// worstAlarm returns the kind of v's worst active alarm that is not
+// shelved: the highest level, then not acknowledged, then the one raised
+// first, then the kind's order. ok is false when none is active.
+func worstAlarm(v *ingest.View, now time.Time) (k alarm.Kind, ok bool) {
+	t := now.UnixNano()
+	for i := range v.Alarms {
+		m := &v.Alarms[i]
+		if m.Level == alarm.Normal || m.Shelved(t) {
+			continue
+		}
+		if ok {
+			b := &v.Alarms[k]
+			switch {
+			case m.Level != b.Level:
+				if m.Level < b.Level {
+					continue
+				}
+			case m.Acknowledged != b.Acknowledged:
+				if m.Acknowledged {
+					continue
+				}
+			case m.Since >= b.Since:
+				continue
+			}
+		}
+		k, ok = alarm.Kind(i), true
+	}
+	return k, ok
+}
+
+// causeOf names the cause of unit v's state: its worst active alarm and
+// that alarm's sentence, or no data.
+func (ui *UI) causeOf(v *ingest.View, now time.Time) cause {
+	k, ok := worstAlarm(v, now)
+	if !ok {
+		if !v.HasSample {
+			return cause{Title: "No data", Message: "No sample received since the service started.", Level: levelOf(alarm.Normal)}
+		}
+		return cause{}
+	}
+	c := cause{Kind: k.String(), Title: report.AlarmTitle(k), Level: levelOf(v.Alarms[k].Level)}
+	for _, ev := range ui.store.ActiveOf(v.Config.ID) {
+		if ev.Kind == k {
+			// The row names the unit already.
+			c.Message = strings.TrimPrefix(ev.Message, v.Config.ID+": ")
+		}
+	}
+	return c
 }
 
 // alarmSummary is the state of a unit's alarms at one wall-clock time.
@@ -187,15 +235,15 @@ func evaluation(v *ingest.View) *report.Evaluation {
 	if !v.HasSample {
 		return nil
 	}
-	s := &v.Latest
-	pt := report.Point(v.Config, s.PMW, s.QMvar, s.VKV, s.FieldA, s.HasFieldA, s.FrequencyHz, s.HasFreq, s.Coolant, s.HasCoolant)
-	return report.New(v.Config, pt, &v.Eval)
+	return report.New(v.Config, v.Point, &v.Eval) // the point as the engine evaluated it
 }
 
 // row is one unit in the fleet table.
 type row struct {
 	ID, Name, Site, Href string
 	HasSample            bool
+	State                dataState
+	Questionable         bool // the latest sample's quality is QUESTIONABLE
 	Feasible             bool // every bound exists (meaningful with a sample)
 	Within               bool // inside every limit
 	P, Q, V              num
@@ -205,8 +253,25 @@ type row struct {
 	BindingMargin        num
 	BindingWord          string // "left" or "beyond"
 	Alarms               alarmSummary
+	Badge                level // the highest alarm level; "no data" or "stale" instead of normal
+	Cause                cause
 	Age                  num
 	Rank                 int
+}
+
+// badgeOf is the badge a unit shows: its highest alarm level, except
+// that a unit without fresh data is never shown as normal.
+func badgeOf(a *alarmSummary, st dataState) level {
+	if a.Highest.Level != alarm.Normal {
+		return a.Highest
+	}
+	switch st {
+	case stateNoData:
+		return level{alarm.Normal, "no data", "○", "lvl-nodata"}
+	case stateStale:
+		return level{alarm.Normal, "stale", "◔", "lvl-stale"}
+	}
+	return a.Highest
 }
 
 // fleetData is what the overview shows.
@@ -216,7 +281,8 @@ type fleetData struct {
 	Units    int
 	Critical int
 	Warning  int
-	NoData   int // units that never reported or whose telemetry is stale
+	NoData   int // units that never reported
+	Stale    int // units whose telemetry is stale
 	Outside  int // units outside their envelope
 }
 
@@ -229,6 +295,30 @@ func worst(ev *report.Evaluation) float64 {
 		}
 	}
 	return m
+}
+
+// marginStep is the resolution at which the overview orders units by
+// margin: units whose margins differ by less keep their order by id, so
+// rows do not swap on near-equal margins.
+const marginStep = 0.01
+
+// marginRank is margin m quantised to marginStep for the order.
+func marginRank(m float64) float64 {
+	if math.IsInf(m, 0) || math.IsNaN(m) {
+		return m
+	}
+	return math.Floor(m / marginStep)
+}
+
+// stateRank orders the freshness within a level: fresh numbers first.
+func stateRank(s dataState) int {
+	switch s {
+	case stateLive:
+		return 0
+	case stateStale:
+		return 1
+	}
+	return 2
 }
 
 func (ui *UI) fleetData() *fleetData {
@@ -244,9 +334,11 @@ func (ui *UI) fleetData() *fleetData {
 		v := u.View()
 		cfg := v.Config
 		r := row{ID: cfg.ID, Name: cfg.DisplayName(), Site: cfg.Site, Href: unitURL(cfg.ID), HasSample: v.HasSample,
-			Alarms: summarize(&v.Alarms, now)}
+			State: stateOf(&v), Alarms: summarize(&v.Alarms, now), Cause: ui.causeOf(&v, now)}
+		r.Badge = badgeOf(&r.Alarms, r.State)
 		margin := math.Inf(1)
 		if ev := evaluation(&v); ev != nil {
+			r.Questionable = v.Latest.Quality == ingest.QualityQuestionable
 			r.P, r.Q, r.V = fmtNum(&ev.PMW, 1), fmtNum(&ev.QMvar, 1), fmtNum(&ev.VKV, 2)
 			r.Up, r.Down = fmtNum(ev.QHeadroomUpMvar, 1), fmtNum(ev.QHeadroomDownMvar, 1)
 			r.UpLimit, r.DownLimit = limitName(ev.QMaxLimit), limitName(ev.QMinLimit)
@@ -282,23 +374,28 @@ func (ui *UI) fleetData() *fleetData {
 		case alarm.Warning:
 			d.Warning++
 		}
-		if !v.HasSample || v.Alarms[alarm.StaleTelemetry].Level != alarm.Normal {
+		switch r.State {
+		case stateNoData:
 			d.NoData++
+		case stateStale:
+			d.Stale++
 		}
 		rs = append(rs, ranked{r, margin})
 	}
-	// Worst first: the highest alarm level, then the smallest margin;
-	// units without telemetry after those that have it at the same level.
-	sort.SliceStable(rs, func(i, j int) bool {
+	// Worst first: the highest alarm level; then fresh numbers before
+	// stale ones and those before none; then the smallest margin, in
+	// steps of marginStep; then the id. Near-equal margins keep their
+	// order from one refresh to the next.
+	sort.Slice(rs, func(i, j int) bool {
 		a, b := &rs[i], &rs[j]
 		if a.r.Alarms.Highest.Level != b.r.Alarms.Highest.Level {
 			return a.r.Alarms.Highest.Level > b.r.Alarms.Highest.Level
 		}
-		if a.r.HasSample != b.r.HasSample {
-			return a.r.HasSample
+		if sa, sb := stateRank(a.r.State), stateRank(b.r.State); sa != sb {
+			return sa < sb
 		}
-		if a.margin != b.margin {
-			return a.margin < b.margin
+		if ma, mb := marginRank(a.margin), marginRank(b.margin); ma != mb {
+			return ma < mb
 		}
 		return a.r.ID < b.r.ID
 	})
@@ -316,6 +413,7 @@ type unitData struct {
 	Unit         *fleet.Unit
 	Eval         *report.Evaluation // nil without a sample
 	Alarms       alarmSummary
+	Badge        level // see badgeOf
 	AlarmRows    []alarmRow
 	Trail        []chart.Point
 	trailVersion uint64
@@ -326,12 +424,22 @@ type unitData struct {
 	// The sample, as shown.
 	SampleTime    string
 	Quality       string
+	Questionable  bool      // the latest sample's quality is QUESTIONABLE: its numbers are marked
+	State         dataState // live, stale or no data
 	Rating        string
 	AcceptedCount uint64
+	// FieldReading is the field current the sample carried when the
+	// engine did not use it ("" when it did, or when there is none), and
+	// FieldUnused why.
+	FieldReading, FieldUnused string
+
+	Trend template.HTML // the headroom and margin trend, inline SVG
 
 	Margins  []marginRow
 	Thermal  []thermalRow
 	Headroom struct{ Up, Down, QMax, QMin num }
+
+	User string // the signed-in identity, "" when none (see signIn)
 }
 
 // marginRow is one limit's margin.
@@ -351,6 +459,7 @@ type thermalRow struct {
 	Current  num // pu of the continuous rating
 	TimeLeft string
 	Level    level
+	Unknown  bool // the unit is stale: its thermal state is not known
 }
 
 // alarmRow is one alarm on the unit page.
@@ -364,29 +473,58 @@ type alarmRow struct {
 	Shelved      bool
 	ShelvedUntil string
 	Action       string // URL prefix of the alarm's POST endpoints
+	CanAct       bool   // the signed-in identity may act on it (see signIn)
 }
 
 func (ui *UI) unitData(u *ingest.Unit) *unitData {
 	now := ui.opts.Now()
 	v := u.View()
 	cfg := v.Config
-	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID)}
+	d := &unitData{Now: now, view: v, Unit: cfg, Eval: evaluation(&v), Alarms: summarize(&v.Alarms, now), Href: unitURL(cfg.ID),
+		State: stateOf(&v)}
+	d.Badge = badgeOf(&d.Alarms, d.State)
 	d.Trail, d.trailVersion = ui.trails.get(cfg.ID)
 	r := cfg.Rating
-	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, cfg.Machine.Rotor)
+	if r.Poles > 0 {
+		d.Rating = fmt.Sprintf("%g MVA · %g kV · pf %g · %g Hz · %d poles · %s rotor", r.MVA, r.KV, r.PowerFactor, r.FrequencyHz, r.Poles, cfg.Machine.Rotor)
+	}
 	if ev := d.Eval; ev != nil {
+		ev.SetRotorMode(cfg, v.Point) // an eigen decomposition: on this page only, not on the overview
 		d.Age = fmtAge(now.Sub(v.Received))
 		d.SampleTime = fmtWhen(v.Latest.Time)
 		d.AcceptedCount = v.Accepted
 		d.Quality = map[ingest.Quality]string{ingest.QualityGood: "good", ingest.QualityQuestionable: "questionable"}[v.Latest.Quality]
+		d.Questionable = v.Latest.Quality == ingest.QualityQuestionable
+		if v.Latest.HasFieldA && (!v.Point.IfdMeasured || v.Eval.FieldCurrent != v.Point.Ifd) {
+			d.FieldReading = fmtNum(&v.Latest.FieldA, 0).Text + " A"
+			d.FieldUnused = "not used: the model's field current counts"
+			if d.Questionable {
+				d.FieldUnused = "not used: the sample is QUESTIONABLE, so the larger of reading and model counts: the model's"
+			}
+		}
 		d.Headroom.Up, d.Headroom.Down = fmtNum(ev.QHeadroomUpMvar, 1), fmtNum(ev.QHeadroomDownMvar, 1)
 		d.Headroom.QMax, d.Headroom.QMin = fmtNum(ev.QMaxMvar, 1), fmtNum(ev.QMinMvar, 1)
 		for _, l := range limits.Limits() {
-			name := l.String()
-			m := ev.Margins[name]
-			k, _ := alarm.ParseKind(name)
-			mr := marginRow{Name: name, Title: limitTitle[name], Basis: limitBasis[name], Value: fmtPct(m, 1), Level: d.Alarms.ByKind[k],
-				Binding: ev.BindingLimit != nil && *ev.BindingLimit == name}
+			li := report.LimitOf(l)
+			m := ev.Margins[li.Name]
+			mr := marginRow{Name: li.Name, Title: li.Title, Basis: li.Basis, Value: fmtPct(m, 1),
+				Binding: ev.BindingLimit != nil && *ev.BindingLimit == li.Name}
+			if li.Alarm < alarm.NumKinds {
+				mr.Level = d.Alarms.ByKind[li.Alarm]
+			} else {
+				mr.Level = levelOf(alarm.Normal)
+			}
+			if d.State == stateStale && mr.Level.Level == alarm.Normal {
+				mr.Level = badgeOf(&alarmSummary{Highest: mr.Level}, stateStale) // old values: never "normal"
+			}
+			if l == limits.LimitStability {
+				// Which limit this is: with the regulator in service or without.
+				mr.Basis += map[string]string{"avr": " (avr basis: voltage regulator in service)", "manual": " (manual basis: constant field voltage)"}[ev.StabilityBasis]
+				if m := ev.RotorMode; m != nil {
+					mr.Basis += fmt.Sprintf("; rotor mode %.2f Hz, damping ratio %.3f", m.FrequencyHz, m.DampingRatio)
+				}
+			}
 			if m != nil {
 				mr.Fill = fill(*m)
 			}
@@ -406,10 +544,22 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 			if s, ok := w.t.TimeLeft(w.x, w.k); ok {
 				tr.TimeLeft = fmtAge(time.Duration(s * float64(time.Second)))
 			}
+			if v.ThermalUnknown {
+				// Stale: what the winding carries now is not known.
+				tr.Used, tr.Fill, tr.TimeLeft, tr.Unknown = num{Text: "unknown (stale)"}, 0, "", true
+				if tr.Level.Level == alarm.Normal {
+					tr.Level = badgeOf(&alarmSummary{Highest: tr.Level}, stateStale)
+				}
+			}
 			d.Thermal = append(d.Thermal, tr)
 		}
 	}
 	d.AlarmRows = ui.alarmRows(cfg.ID, &v, now)
+	warn := math.NaN() // the warning threshold of the nearest limit's alarm
+	if k := report.LimitOf(v.Eval.Binding).Alarm; v.HasSample && k < alarm.NumKinds {
+		warn = cfg.Alarms[k].Warning
+	}
+	d.Trend = trendSVG(u.Trend(nil), cfg.Base.MVA, warn)
 	return d
 }
 
@@ -437,7 +587,7 @@ func (ui *UI) alarmRows(id string, v *ingest.View, now time.Time) []alarmRow {
 		if m.Level == alarm.Normal && !shelved {
 			continue
 		}
-		r := alarmRow{Kind: kind.String(), Title: kindTitle[kind], Level: levelOf(m.Level), Acknowledged: m.Acknowledged,
+		r := alarmRow{Kind: kind.String(), Title: report.AlarmTitle(kind), Level: levelOf(m.Level), Acknowledged: m.Acknowledged,
 			Shelved: shelved, Action: unitURL(id) + "/alarms/" + kind.String()}
 		if m.Level != alarm.Normal {
 			r.Since = fmtWhen(time.Unix(0, m.Since))
@@ -483,6 +633,9 @@ func drawChart(d *unitData) (template.HTML, error) {
 			coolant, hasCoolant = *ev.Coolant, true
 			title += fmt.Sprintf(" · coolant %.1f %s", coolant, cfg.Coolant.Quantity.Unit())
 		}
+		if d.Questionable {
+			title += " · QUESTIONABLE sample"
+		}
 		op := chart.Point{PMW: ev.PMW, QMvar: ev.QMvar}
 		trail := d.Trail
 		if n := len(trail); n == 0 || trail[n-1] != op {
@@ -490,6 +643,11 @@ func drawChart(d *unitData) (template.HTML, error) {
 		}
 		opts = append(opts, chart.WithOperatingPoint(op), chart.WithTrail(trail))
 	}
+	var zones []limits.MhoZone
+	if lof := cfg.Settings().LossOfField; lof != nil {
+		zones = lof.Zones
+	}
+	opts = append(opts, chart.WithLimiters(nil, zones, vPU))
 	pts := cfg.Model.Envelope(vPU, coolant, hasCoolant, 41)
 	var buf bytes.Buffer
 	if err := chart.Capability(&buf, title, pts, cfg.Base, opts...); err != nil {

@@ -62,7 +62,12 @@ type Options struct {
 	// RefreshEvery is how often the pages ask for fresh numbers; default
 	// 2 s.
 	RefreshEvery time.Duration
-	Journal      *journal.Journal // the alarm journal for /journal; nil when none is kept
+	// Identity, when set, returns who a request comes from ("" when
+	// unknown: the typed operator name is recorded) and whether they may
+	// act on a unit's alarms (the pages hide the actions they may not
+	// take). Nil: anonymous, and everyone may act.
+	Identity func(r *http.Request) (name string, mayOperate func(unitID string) bool)
+	Journal  *journal.Journal // the alarm journal for /journal; nil when none is kept
 	// Actions apply acknowledgements and shelves; default the store
 	// itself (a replicated service passes its log).
 	Actions ingest.Actions
@@ -83,6 +88,9 @@ func (o Options) withDefaults() Options {
 	}
 	if o.RefreshEvery <= 0 {
 		o.RefreshEvery = 2 * time.Second
+	}
+	if o.Identity == nil {
+		o.Identity = func(*http.Request) (string, func(string) bool) { return "", func(string) bool { return true } }
 	}
 	return o
 }

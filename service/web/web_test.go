@@ -141,8 +141,9 @@ func TestPagesRender(t *testing.T) {
 		first   []string // more for the page of harrowmere-1
 		overall []string // more for the overview
 	}{
-		{"no samples", func(*testing.T, *fixture) {}, []string{"No telemetry from this unit yet", "rated voltage"}, nil, []string{"never"}},
-		{"samples", func(t *testing.T, f *fixture) { f.normal(t) }, []string{chart.ClassOperatingPoint, `data-value="p_mw"`, "Critical clearing time", "Margins to each limit"},
+		{"no samples", func(*testing.T, *fixture) {}, []string{"No data from this unit yet", "rated voltage"}, nil, []string{"never"}},
+		{"samples", func(t *testing.T, f *fixture) { f.normal(t) }, []string{chart.ClassOperatingPoint, `data-value="p_mw"`, "Critical clearing time", "Margins to each limit",
+			"avr basis: voltage regulator in service", "Underexcitation limiter", "rotor mode"},
 			[]string{"No active or shelved alarms"}, []string{"left", "280.0"}},
 		{"alarm", func(t *testing.T, f *fixture) { f.normal(t); f.overField(t) }, nil,
 			[]string{chart.ClassOperatingTrail, "Acknowledge", "OUTSIDE THE ENVELOPE", `data-alarm="field"`, `data-alarm="armature"`}, []string{"lvl-critical", "outside"}},
@@ -356,7 +357,7 @@ func TestAlarmActions(t *testing.T) {
 			},
 		},
 		{
-			name: "acknowledge by script", path: base + "field/acknowledge", form: url.Values{}, header: jsonAccept, status: http.StatusOK,
+			name: "acknowledge by script", path: base + "field/acknowledge", form: url.Values{"operator": {"K. Brandt"}}, header: jsonAccept, status: http.StatusOK,
 			check: func(t *testing.T, f *fixture) {
 				for _, ev := range f.store.Active() {
 					if ev.Unit == "harrowmere-1" && ev.Kind == alarm.Field && !ev.Acknowledged {
@@ -366,7 +367,7 @@ func TestAlarmActions(t *testing.T) {
 			},
 		},
 		{
-			name: "shelve", path: base + "field/shelve", form: url.Values{"duration": {"1h"}}, header: jsonAccept, status: http.StatusOK,
+			name: "shelve", path: base + "field/shelve", form: url.Values{"duration": {"1h"}, "operator": {"K. Brandt"}}, header: jsonAccept, status: http.StatusOK,
 			check: func(t *testing.T, f *fixture) {
 				m := f.store.Unit("harrowmere-1").View().Alarms[alarm.Field]
 				if want := f.now.Add(time.Hour).UnixNano(); m.ShelvedUntil != want {
@@ -376,7 +377,8 @@ func TestAlarmActions(t *testing.T) {
 		},
 		{name: "shelve too long", path: base + "field/shelve", form: url.Values{"duration": {"72h"}}, header: jsonAccept, status: http.StatusBadRequest},
 		{name: "shelve without duration", path: base + "field/shelve", form: url.Values{}, status: http.StatusBadRequest},
-		{name: "acknowledge a quiet alarm", path: base + "stability/acknowledge", form: url.Values{}, header: jsonAccept, status: http.StatusConflict},
+		{name: "acknowledge a quiet alarm", path: base + "stability/acknowledge", form: url.Values{"operator": {"K. Brandt"}}, header: jsonAccept, status: http.StatusConflict},
+		{name: "acknowledge without a name", path: base + "field/acknowledge", form: url.Values{"operator": {"  "}}, header: jsonAccept, status: http.StatusBadRequest},
 		{name: "unknown alarm", path: base + "sparks/acknowledge", form: url.Values{}, status: http.StatusNotFound},
 		{name: "unknown action", path: base + "field/silence", form: url.Values{}, header: jsonAccept, status: http.StatusNotFound},
 		{name: "unknown unit", path: "/units/nowhere-9/alarms/field/acknowledge", form: url.Values{}, status: http.StatusNotFound},
@@ -432,7 +434,7 @@ func TestShelveAndUnshelve(t *testing.T) {
 	if d := f.ui.fleetData(); d.Rows[0].ID == "harrowmere-1" && d.Rows[0].Alarms.Highest.Level == alarm.Critical {
 		t.Error("a shelved alarm still counts as the unit's highest level")
 	}
-	if r := f.do(t, http.MethodPost, "/units/harrowmere-1/alarms/field/unshelve", url.Values{}, jsonAccept); r.status != http.StatusOK {
+	if r := f.do(t, http.MethodPost, "/units/harrowmere-1/alarms/field/unshelve", url.Values{"operator": {"night shift"}}, jsonAccept); r.status != http.StatusOK {
 		t.Fatalf("unshelve: %d %s", r.status, r.body)
 	}
 	if m := f.store.Unit("harrowmere-1").View().Alarms[alarm.Field]; m.ShelvedUntil != 0 {
@@ -529,7 +531,7 @@ func TestFormat(t *testing.T) {
 		}
 	}
 	ops := []struct{ in, want string }{
-		{"", "web"}, {"   ", "web"}, {" A. Ruiz ", "A. Ruiz"}, {"a\x00b\nc", "abc"}, {strings.Repeat("x", 80), strings.Repeat("x", 64)},
+		{"", ""}, {"   ", ""}, {" A. Ruiz ", "A. Ruiz"}, {"a\x00b\nc", "abc"}, {strings.Repeat("x", 80), strings.Repeat("x", 64)},
 	}
 	for _, o := range ops {
 		if got := operator(o.in); got != o.want {

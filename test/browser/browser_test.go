@@ -75,8 +75,14 @@ type service struct {
 
 func startService(t *testing.T) *service {
 	t.Helper()
+	return startServiceFleet(t, exampleFleet)
+}
+
+// startServiceFleet is startService on the fleet file at path.
+func startServiceFleet(t *testing.T, path string) *service {
+	t.Helper()
 	srv, err := server.New(server.Config{
-		FleetPath: exampleFleet, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
+		FleetPath: path, GRPCListen: "127.0.0.1:0", HTTPListen: "127.0.0.1:0",
 		Logger: slog.New(slog.NewTextHandler(io.Discard, nil)),
 	})
 	if err != nil {
@@ -152,7 +158,13 @@ func (s *service) push(t *testing.T, smps ...sample) {
 // browser starts Chromium, headless, with a fresh profile, and returns a
 // tab's context and the console messages that are errors, read until the
 // test ends.
-func browser(t *testing.T, path string) (context.Context, func() []string) {
+func browser(t *testing.T, path string, extra ...chromedp.ExecAllocatorOption) (context.Context, func() []string) {
+	t.Helper()
+	return browserSized(t, path, viewportWidth, viewportHeight, extra...)
+}
+
+// browserSized is browser with a window of w × h pixels.
+func browserSized(t *testing.T, path string, w, h int, extra ...chromedp.ExecAllocatorOption) (context.Context, func() []string) {
 	t.Helper()
 	opts := append(chromedp.DefaultExecAllocatorOptions[:],
 		chromedp.ExecPath(path),
@@ -161,15 +173,16 @@ func browser(t *testing.T, path string) (context.Context, func() []string) {
 		chromedp.UserDataDir(t.TempDir()),
 		chromedp.Flag("disable-quic", true),
 		chromedp.Flag("disable-component-update", true),
-		chromedp.WindowSize(viewportWidth, viewportHeight),
+		chromedp.WindowSize(w, h),
 	)
+	opts = append(opts, extra...)
 	ctx, cancel := context.WithTimeout(t.Context(), 3*waitLong)
 	t.Cleanup(cancel)
 	allocCtx, cancelAlloc := chromedp.NewExecAllocator(ctx, opts...)
 	t.Cleanup(cancelAlloc)
 	tab, cancelTab := chromedp.NewContext(allocCtx)
 	t.Cleanup(cancelTab)
-	if err := chromedp.Do(tab); err != nil { // starts the browser
+	if err := chromedp.Do(tab, chromedp.EmulateViewport(int64(w), int64(h))); err != nil { // starts the browser
 		t.Fatalf("starting chromium: %v", err)
 	}
 	msgs := chromedp.Console(tab)
@@ -204,18 +217,25 @@ func browser(t *testing.T, path string) (context.Context, func() []string) {
 // the bottom of the viewport, is drawn at the end and not over the page.
 func screenshot(t *testing.T, ctx context.Context, dir, name string) {
 	t.Helper()
+	w := eval[int](t, ctx, `window.innerWidth`)
+	vh := eval[int](t, ctx, `window.innerHeight`)
 	h := eval[int](t, ctx, `Math.ceil(document.documentElement.scrollHeight)`)
-	if err := chromedp.Do(ctx, chromedp.EmulateViewport(viewportWidth, int64(max(h, viewportHeight)))); err != nil {
+	if err := chromedp.Do(ctx, chromedp.EmulateViewport(int64(w), int64(max(h, vh)))); err != nil {
 		t.Fatalf("screenshot %s: %v", name, err)
 	}
 	png, err := chromedp.Run(ctx, chromedp.CaptureScreenshot())
-	if rerr := chromedp.Do(ctx, chromedp.EmulateViewport(viewportWidth, viewportHeight)); err == nil {
+	if rerr := chromedp.Do(ctx, chromedp.EmulateViewport(int64(w), int64(vh))); err == nil {
 		err = rerr
 	}
 	if err != nil {
 		t.Fatalf("screenshot %s: %v", name, err)
 	}
-	p := filepath.Join(dir, name)
+	writeFile(t, filepath.Join(dir, name), png)
+}
+
+// writeFile saves a screenshot and logs where.
+func writeFile(t *testing.T, p string, png []byte) {
+	t.Helper()
 	if err := os.WriteFile(p, png, 0o644); err != nil {
 		t.Fatal(err)
 	}
@@ -324,6 +344,9 @@ func TestOperatorPages(t *testing.T) {
 	})()`
 	if !eval[bool](t, tab, drawn) {
 		t.Error("the chart, its operating point or its trail is not drawn")
+	}
+	if c := clipped(t, tab, `.tile, .status-strip, .panel`); c != "" {
+		t.Errorf("unit page at %d × %d: clipped: %s", viewportWidth, viewportHeight, c)
 	}
 	if got := eval[string](t, tab, `document.querySelector('[data-value="p_mw"]').textContent`); got != "301.0" {
 		t.Errorf("P shows %q, want 301.0", got)

@@ -21,7 +21,6 @@ import (
 	"github.com/genvelope/genvelope/test/testenv"
 
 	"google.golang.org/grpc"
-	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/protobuf/types/known/timestamppb"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
@@ -31,7 +30,10 @@ import (
 
 const install = "apt-get install prometheus"
 
-// The service, fed over gRPC, scraped by a real Prometheus: the headroom
+// The service, fed over gRPC with mutual TLS, scraped by a real
+// Prometheus over TLS with basic auth (the access file grants the
+// gateway's certificate telemetry_writer and Prometheus' user viewer):
+// the headroom
 // and margins Prometheus stores are the engine's for the pushed sample,
 // the sample counters count what was pushed, and promtool finds nothing
 // wrong with /metrics.
@@ -54,9 +56,12 @@ func TestPrometheusScrape(t *testing.T) {
 	fleetPath := filepath.Join(root, "deploy", "examples", "fleet.yaml")
 	grpcAddr, httpAddr := testenv.Addr(testenv.FreePort(t)), testenv.Addr(testenv.FreePort(t))
 	at = time.Now()
+	sec := newSecurity(t, dir)
 	gv := testenv.StartProc(t, "genvelope", bin, "serve", "--fleet", fleetPath, "--grpc-listen", grpcAddr, "--http-listen", httpAddr,
-		"--state", filepath.Join(dir, "state.json"), "--journal", filepath.Join(dir, "journal.jsonl"))
-	gv.WaitHTTP(t, "http://"+httpAddr+"/readyz")
+		"--state", filepath.Join(dir, "state.json"), "--journal", filepath.Join(dir, "journal.jsonl"),
+		"--grpc-tls-cert", sec.serverCert, "--grpc-tls-key", sec.serverKey, "--grpc-client-ca", sec.caPath,
+		"--web-config", sec.webConfig, "--access", sec.access)
+	sec.waitReady(t, gv, "https://"+httpAddr+"/readyz")
 	step("genvelope ready", at)
 
 	// The samples: three of harrowmere-1, the last of which is checked;
@@ -75,7 +80,7 @@ func TestPrometheusScrape(t *testing.T) {
 		{Sequence: 2, Samples: []*pb.Sample{last}},
 		{Sequence: 3, Samples: []*pb.Sample{last, {UnitId: "nowhere-9", Time: timestamppb.New(t0), PMw: 1, QMvar: 1, VKv: 1}}},
 	}
-	conn, err := grpc.NewClient(grpcAddr, grpc.WithTransportCredentials(insecure.NewCredentials()))
+	conn, err := grpc.NewClient(grpcAddr, grpc.WithTransportCredentials(sec.grpcCreds()))
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -96,7 +101,7 @@ func TestPrometheusScrape(t *testing.T) {
 	}
 
 	// promtool on the exposition as it is now, with samples in it.
-	body := get(t, gv, "http://"+httpAddr+"/metrics")
+	body := sec.get(t, gv, "https://"+httpAddr+"/metrics")
 	cmd := exec.Command(promtool, "check", "metrics")
 	cmd.Stdin = bytes.NewReader(body)
 	out, err := cmd.CombinedOutput()
@@ -109,7 +114,7 @@ func TestPrometheusScrape(t *testing.T) {
 	// Prometheus, scraping every second.
 	promAddr := testenv.Addr(testenv.FreePort(t))
 	cfg := filepath.Join(dir, "prometheus.yml")
-	writeConfig(t, cfg, httpAddr)
+	writeConfig(t, cfg, httpAddr, sec.scrapeConfig())
 	at = time.Now()
 	prom := testenv.StartProc(t, "prometheus", promBin,
 		"--config.file="+cfg,
@@ -139,7 +144,25 @@ func TestPrometheusScrape(t *testing.T) {
 		P: last.PMw / mva, Q: last.QMvar / mva, V: last.VKv / u.Base.KV, F: *last.FrequencyHz / u.Base.FrequencyHz,
 		Ifd: *last.FieldA / u.Base.IFagA, IfdMeasured: true, Coolant: *last.Coolant, HasCoolant: true,
 	}
-	res := u.Model.Evaluate(pt, nil)
+	// With a hint, as the service evaluates samples: on the avr basis that
+	// reads the stability limit from the unit's table, which the series
+	// must match exactly. That answer in turn is held to the direct
+	// computation (Evaluate without a hint) within 0.002 pu, the limits
+	// contract, for every bound the stability limit enters.
+	var hint limits.Hint
+	res := u.Model.Evaluate(pt, &hint)
+	direct := u.Model.Evaluate(pt, nil)
+	for _, b := range []struct {
+		name          string
+		hinted, exact limits.Bound
+	}{
+		{"q_stability", res.Stability, direct.Stability}, {"practical", res.Practical, direct.Practical},
+		{"stability top", res.StabilityTop, direct.StabilityTop}, {"q_max", res.QMax, direct.QMax}, {"q_min", res.QMin, direct.QMin},
+	} {
+		if b.hinted.OK != b.exact.OK || math.Abs(b.hinted.V-b.exact.V) > 0.002 {
+			t.Errorf("%s: the service's path %+v, the direct computation %+v (pu; the contract is 0.002 pu)", b.name, b.hinted, b.exact)
+		}
+	}
 	if !res.QMax.OK {
 		t.Fatal("the engine has no q_max at the checked sample: choose another")
 	}
@@ -229,7 +252,7 @@ func TestPrometheusScrape(t *testing.T) {
 
 func f64(x float64) *float64 { return &x }
 
-func writeConfig(t *testing.T, path, target string) {
+func writeConfig(t *testing.T, path, target, extra string) {
 	t.Helper()
 	cfg := fmt.Sprintf(`global:
   scrape_interval: 1s
@@ -239,7 +262,7 @@ scrape_configs:
   - job_name: genvelope
     static_configs:
       - targets: [%q]
-`, target)
+%s`, target, extra)
 	if err := os.WriteFile(path, []byte(cfg), 0o644); err != nil {
 		t.Fatal(err)
 	}

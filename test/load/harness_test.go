@@ -17,8 +17,8 @@ import (
 // TestMain lets the test binary be the bare sink too: the harness runs
 // os.Executable() with -sink ADDR.
 func TestMain(m *testing.M) {
-	if len(os.Args) == 3 && os.Args[1] == sinkFlag {
-		os.Exit(runSink(os.Args[2]))
+	if len(os.Args) >= 3 && os.Args[1] == sinkFlag {
+		os.Exit(runSink(os.Args[2], os.Args[3:]...))
 	}
 	os.Exit(m.Run())
 }

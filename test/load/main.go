@@ -95,6 +95,8 @@ type config struct {
 	Root        string `json:"-"` // the module root; "" asks go env
 	Keep        bool   `json:"-"`
 	Pprof       bool   `json:"pprof"`
+	TLS         bool   `json:"tls"` // TLS on gRPC for both the service and the bare sink
+	tls         *loadTLS
 	State       bool   `json:"state"` // give the service a state file (when it has --state)
 	CPUProfile  string `json:"-"`
 	CPUSeconds  int    `json:"-"`
@@ -157,8 +159,8 @@ func (c *config) check() error {
 func (c *config) has(server string) bool { return slices.Contains(c.Servers, server) }
 
 func main() {
-	if len(os.Args) == 3 && os.Args[1] == sinkFlag {
-		os.Exit(runSink(os.Args[2]))
+	if len(os.Args) >= 3 && os.Args[1] == sinkFlag {
+		os.Exit(runSink(os.Args[2], os.Args[3:]...))
 	}
 	os.Exit(mainRun(os.Args[1:], os.Stdout, os.Stderr))
 }
@@ -191,6 +193,7 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 	fs.StringVar(&cfg.Root, "root", "", "repository root (default: the module of the working directory)")
 	fs.BoolVar(&cfg.Keep, "keep", false, "keep the temporary directory (fleet file, binaries' logs, profiles)")
 	fs.BoolVar(&cfg.State, "state", cfg.State, "give the service a fresh state file in the temporary directory, as in production (when serve has --state); false runs it with none")
+	fs.BoolVar(&cfg.TLS, "tls", false, "serve gRPC over TLS on both the service and the bare sink (certificates made for the run)")
 	fs.BoolVar(&cfg.Pprof, "pprof", false, "run the service with --pprof (implied by -cpuprofile and -heapprofile)")
 	fs.StringVar(&cfg.CPUProfile, "cpuprofile", "", "write a CPU profile of the service, taken during the first full phase, to this file")
 	fs.IntVar(&cfg.CPUSeconds, "cpuprofile-seconds", cfg.CPUSeconds, "length of the CPU profile, s (at most -duration)")
@@ -311,8 +314,13 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 			}
 		}
 	}()
+	if cfg.TLS {
+		if cfg.tls, err = makeLoadTLS(dir); err != nil {
+			return rep, err
+		}
+	}
 	if cfg.has("bare") {
-		if sinkProc, err = startSink(ctx, log, dir, cfg.StartWait); err != nil {
+		if sinkProc, err = startSink(ctx, log, dir, cfg.StartWait, cfg.tls.sinkArgs()...); err != nil {
 			return rep, err
 		}
 	}
@@ -338,14 +346,14 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 			return rep, err
 		}
 		if durableProc, _, err = startServe(ctx, log, "serve-nats", bin, fi.Path, dir, cfg.Pprof, true, cfg.ServeEnv,
-			[]string{"--nats", url}, cfg.StartWait); err != nil {
+			append([]string{"--nats", url}, cfg.tls.serveArgs()...), cfg.StartWait); err != nil {
 			return rep, err
 		}
 		durableProc.companion = natsProc.pid()
 	}
 	if cfg.has("full") {
 		var took time.Duration
-		if serveProc, took, err = startServe(ctx, log, "serve", bin, fi.Path, dir, cfg.Pprof, cfg.State, cfg.ServeEnv, nil, cfg.StartWait); err != nil {
+		if serveProc, took, err = startServe(ctx, log, "serve", bin, fi.Path, dir, cfg.Pprof, cfg.State, cfg.ServeEnv, cfg.tls.serveArgs(), cfg.StartWait); err != nil {
 			return rep, err
 		}
 		rep.Service = &serviceReport{StartupMS: ms(took)}
@@ -481,6 +489,7 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 	spec := phaseSpec{
 		server: server, addr: p.grpcAddr, streams: cfg.Streams, window: cfg.Window, batch: cfg.Batch,
 		rate: cfg.Rate, warmup: cfg.Warmup, duration: cfg.Duration, grace: 30 * time.Second,
+		creds: cfg.tls.clientCreds(),
 	}
 	start := time.Now()
 	from := start.Add(cfg.Warmup)

@@ -287,14 +287,14 @@ const sinkListenPrefix = "LISTEN "
 
 // startSink re-executes this program (or test binary) as a bare sink
 // and reads the address it bound.
-func startSink(ctx context.Context, log *slog.Logger, dir string, timeout time.Duration) (*proc, error) {
+func startSink(ctx context.Context, log *slog.Logger, dir string, timeout time.Duration, tlsFiles ...string) (*proc, error) {
 	exe, err := os.Executable()
 	if err != nil {
 		return nil, fmt.Errorf("find the harness binary: %w", err)
 	}
 	found := make(chan string, 1)
 	var once sync.Once
-	p, err := startProc("bare sink", exe, []string{sinkFlag, "127.0.0.1:0"}, nil, filepath.Join(dir, "sink.log"), true, func(line string) {
+	p, err := startProc("bare sink", exe, append([]string{sinkFlag, "127.0.0.1:0"}, tlsFiles...), nil, filepath.Join(dir, "sink.log"), true, func(line string) {
 		if a, ok := strings.CutPrefix(line, sinkListenPrefix); ok {
 			once.Do(func() { found <- strings.TrimSpace(a) })
 		}

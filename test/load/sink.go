@@ -13,6 +13,7 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 )
@@ -51,7 +52,7 @@ func (sink) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse])
 // runSink serves a bare sink on addr until SIGTERM, SIGINT or the end
 // of its standard input (the harness going away), and returns the exit
 // status.
-func runSink(addr string) int {
+func runSink(addr string, tlsFiles ...string) int {
 	log := slog.New(slog.NewTextHandler(os.Stderr, nil))
 	lis, err := net.Listen("tcp", addr)
 	if err != nil {
@@ -59,7 +60,16 @@ func runSink(addr string) int {
 		return 1
 	}
 	// The same receive limit as genvelope serve.
-	srv := grpc.NewServer(grpc.MaxRecvMsgSize(64 << 20))
+	opts := []grpc.ServerOption{grpc.MaxRecvMsgSize(64 << 20)}
+	if len(tlsFiles) == 2 {
+		creds, err := credentials.NewServerTLSFromFile(tlsFiles[0], tlsFiles[1])
+		if err != nil {
+			log.Error("sink: TLS", "err", err)
+			return 1
+		}
+		opts = append(opts, grpc.Creds(creds))
+	}
+	srv := grpc.NewServer(opts...)
 	pb.RegisterTelemetryServiceServer(srv, sink{})
 	fmt.Printf("%s%s\n", sinkListenPrefix, lis.Addr())
 

@@ -11,6 +11,7 @@ import (
 	"time"
 
 	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials"
 	"google.golang.org/grpc/credentials/insecure"
 	"google.golang.org/grpc/encoding"
 	_ "google.golang.org/grpc/encoding/proto" // registers the proto codec used for responses
@@ -73,15 +74,19 @@ type phaseSpec struct {
 	rate     float64 // samples/s over all streams; 0 = as fast as possible
 	warmup   time.Duration
 	duration time.Duration
-	grace    time.Duration // how long after the end to wait for the last answers
+	grace    time.Duration                    // how long after the end to wait for the last answers
+	creds    credentials.TransportCredentials // nil: plaintext
 }
 
 // dial opens one client connection per stream.
-func dial(addr string, n int) ([]*grpc.ClientConn, error) {
+func dial(addr string, n int, creds credentials.TransportCredentials) ([]*grpc.ClientConn, error) {
 	conns := make([]*grpc.ClientConn, 0, n)
+	if creds == nil {
+		creds = insecure.NewCredentials()
+	}
 	for range n {
 		cc, err := grpc.NewClient(addr,
-			grpc.WithTransportCredentials(insecure.NewCredentials()),
+			grpc.WithTransportCredentials(creds),
 			grpc.WithDefaultCallOptions(grpc.ForceCodecV2(newRawCodec())),
 		)
 		if err != nil {
@@ -99,7 +104,7 @@ func dial(addr string, n int) ([]*grpc.ClientConn, error) {
 // end (a wall-clock time), and returns what each saw. Every goroutine
 // it starts has ended when it returns.
 func runStreams(ctx context.Context, log *slog.Logger, spec phaseSpec, gens []*generator, start, end time.Time) ([]*streamResult, error) {
-	conns, err := dial(spec.addr, len(gens))
+	conns, err := dial(spec.addr, len(gens), spec.creds)
 	if err != nil {
 		return nil, err
 	}

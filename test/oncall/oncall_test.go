@@ -47,6 +47,7 @@ const alarmsBlock = `alarms:
   limits:
     stability: {warning: 0.08, critical: 0.02, deadband: 0.01, on_delay_s: 5, off_delay_s: 30}
     end_region: {warning: 0.08, critical: 0.02, deadband: 0.01, on_delay_s: 5, off_delay_s: 30}
+    uel: {warning: 0.08, critical: 0.02, deadband: 0.01, on_delay_s: 5, off_delay_s: 30}
 `
 
 // The unit driven towards its underexcited limit, at light load and rated
@@ -104,7 +105,7 @@ func TestOnCallChain(t *testing.T) {
 		t.Fatalf("the engine has no q_min for %s at %g MW: choose another point", unit, pMW)
 	}
 	limit := ref.QMinLimit.String()
-	if limit != "stability" && limit != "end_region" {
+	if limit != "stability" && limit != "end_region" && limit != "uel" {
 		t.Fatalf("q_min of %s at %g MW is set by %s: the test wants an underexcited limit", unit, pMW, limit)
 	}
 	kind, ok := alarm.ParseKind(limit)
@@ -243,7 +244,7 @@ func TestOnCallChain(t *testing.T) {
 	if n.path != "/genvelope/oncall" || n.Receiver != "genvelope-oncall" {
 		t.Errorf("the critical page went to %s (receiver %q), want /genvelope/oncall (genvelope-oncall)", n.path, n.Receiver)
 	}
-	wantAlert := map[string]string{"stability": "GenvelopeStabilityLimit", "end_region": "GenvelopeEndRegionLimit"}[limit]
+	wantAlert := map[string]string{"stability": "GenvelopeStabilityLimit", "end_region": "GenvelopeEndRegionLimit", "uel": "GenvelopeUELLimit"}[limit]
 	for k, v := range map[string]string{"alertname": wantAlert, "site": site, "job": "genvelope", "instance": httpAddr} {
 		if a.Labels[k] != v {
 			t.Errorf("page label %s=%q, want %q (labels %v)", k, a.Labels[k], v, a.Labels)

@@ -23,6 +23,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/service/state"
 )
 
@@ -222,6 +223,26 @@ const (
 func overloaded(at time.Time) *pb.Sample {
 	f := overload * ratedFieldA
 	return &pb.Sample{UnitId: unit, Time: timestamppb.New(at), PMw: 80, QMvar: 10, VKv: 13.8, FieldA: &f}
+}
+
+// waitSnapshot waits for a state file whose unit id holds the sample at
+// last (it is written every 5 s) and returns the unit's part of it.
+func waitSnapshot(t *testing.T, statePath, id string, last time.Time) ingest.UnitSnapshot {
+	t.Helper()
+	pushed := time.Now()
+	deadline := pushed.Add(waitLong)
+	for {
+		if sn, err := state.Read(statePath); err == nil {
+			if ts := sn.Units[id].Times; len(ts) > 0 && ts[len(ts)-1] == last.UnixNano() {
+				t.Logf("snapshot with the last sample written %s after the push", time.Since(pushed).Round(10*time.Millisecond))
+				return sn.Units[id]
+			}
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("no state file with the sample at %s within %s", last, waitLong)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
 }
 
 // A kill -9 in the middle of a field overload does not give the winding

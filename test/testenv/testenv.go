@@ -15,6 +15,7 @@ import (
 	"os/exec"
 	"path/filepath"
 	"strconv"
+	"strings"
 	"sync"
 	"syscall"
 	"testing"
@@ -218,6 +219,28 @@ func Addr(port int) string { return "127.0.0.1:" + strconv.Itoa(port) }
 // larger magnitude.
 func RelClose(a, b, tol float64) bool {
 	return a == b || math.Abs(a-b) <= tol*math.Max(math.Abs(a), math.Abs(b))
+}
+
+// PID returns the program's process id.
+func (p *Proc) PID() int { return p.cmd.Process.Pid }
+
+// VmHWM returns the peak resident set size of process pid, in bytes
+// (Linux /proc/PID/status), or 0 when it cannot be read.
+func VmHWM(pid int) int64 {
+	b, err := os.ReadFile(fmt.Sprintf("/proc/%d/status", pid))
+	if err != nil {
+		return 0
+	}
+	for _, line := range strings.Split(string(b), "\n") {
+		if rest, ok := strings.CutPrefix(line, "VmHWM:"); ok {
+			kb, err := strconv.ParseInt(strings.TrimSpace(strings.TrimSuffix(strings.TrimSpace(rest), "kB")), 10, 64)
+			if err != nil {
+				return 0
+			}
+			return kb << 10
+		}
+	}
+	return 0
 }
 
 // Kill sends SIGKILL and waits until the program is gone.

@@ -593,7 +593,8 @@ type AcknowledgeAlarmRequest struct {
 	// The alarm's limit name (see AlarmEvent.limit).
 	Limit string `protobuf:"bytes,2,opt,name=limit,proto3" json:"limit,omitempty"`
 	// Who acknowledges, for the record. Required: INVALID_ARGUMENT when
-	// empty.
+	// empty. When the caller is identified (client certificate), the
+	// server records its identity instead.
 	Operator      string `protobuf:"bytes,3,opt,name=operator,proto3" json:"operator,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
@@ -693,7 +694,7 @@ type ShelveAlarmRequest struct {
 	UnitId string                 `protobuf:"bytes,1,opt,name=unit_id,json=unitId,proto3" json:"unit_id,omitempty"`
 	// The alarm's limit name (see AlarmEvent.limit).
 	Limit string `protobuf:"bytes,2,opt,name=limit,proto3" json:"limit,omitempty"`
-	// How long to shelve for, at most 7 days; zero lifts the shelf.
+	// How long to shelve for, at most 24 hours; zero lifts the shelf.
 	Duration *durationpb.Duration `protobuf:"bytes,3,opt,name=duration,proto3" json:"duration,omitempty"`
 	// Who shelves (required: INVALID_ARGUMENT when empty), and why, for
 	// the record.

@@ -54,21 +54,25 @@ const (
 	// file's plausibility: block); the detail names the likely unit
 	// mix-up, such as a voltage in pu instead of kV.
 	RejectReason_REJECT_REASON_IMPLAUSIBLE RejectReason = 9
+	// The caller's identity may not push samples for Sample.unit_id (the
+	// access file grants it telemetry_writer for other units only).
+	RejectReason_REJECT_REASON_PERMISSION_DENIED RejectReason = 10
 )
 
 // Enum value maps for RejectReason.
 var (
 	RejectReason_name = map[int32]string{
-		0: "REJECT_REASON_UNSPECIFIED",
-		1: "REJECT_REASON_UNKNOWN_UNIT",
-		2: "REJECT_REASON_NOT_FINITE",
-		3: "REJECT_REASON_OUT_OF_RANGE",
-		4: "REJECT_REASON_OUT_OF_ORDER",
-		5: "REJECT_REASON_FUTURE",
-		6: "REJECT_REASON_INVALID_QUALITY",
-		7: "REJECT_REASON_MISSING_TIME",
-		8: "REJECT_REASON_OUT_OF_RANGE_TIME",
-		9: "REJECT_REASON_IMPLAUSIBLE",
+		0:  "REJECT_REASON_UNSPECIFIED",
+		1:  "REJECT_REASON_UNKNOWN_UNIT",
+		2:  "REJECT_REASON_NOT_FINITE",
+		3:  "REJECT_REASON_OUT_OF_RANGE",
+		4:  "REJECT_REASON_OUT_OF_ORDER",
+		5:  "REJECT_REASON_FUTURE",
+		6:  "REJECT_REASON_INVALID_QUALITY",
+		7:  "REJECT_REASON_MISSING_TIME",
+		8:  "REJECT_REASON_OUT_OF_RANGE_TIME",
+		9:  "REJECT_REASON_IMPLAUSIBLE",
+		10: "REJECT_REASON_PERMISSION_DENIED",
 	}
 	RejectReason_value = map[string]int32{
 		"REJECT_REASON_UNSPECIFIED":       0,
@@ -81,6 +85,7 @@ var (
 		"REJECT_REASON_MISSING_TIME":      7,
 		"REJECT_REASON_OUT_OF_RANGE_TIME": 8,
 		"REJECT_REASON_IMPLAUSIBLE":       9,
+		"REJECT_REASON_PERMISSION_DENIED": 10,
 	}
 )
 
@@ -333,7 +338,7 @@ const file_genvelope_v1_telemetry_proto_rawDesc = "" +
 	"\tRejection\x12\x14\n" +
 	"\x05index\x18\x01 \x01(\rR\x05index\x122\n" +
 	"\x06reason\x18\x02 \x01(\x0e2\x1a.genvelope.v1.RejectReasonR\x06reason\x12\x16\n" +
-	"\x06detail\x18\x03 \x01(\tR\x06detail*\xcc\x02\n" +
+	"\x06detail\x18\x03 \x01(\tR\x06detail*\xf1\x02\n" +
 	"\fRejectReason\x12\x1d\n" +
 	"\x19REJECT_REASON_UNSPECIFIED\x10\x00\x12\x1e\n" +
 	"\x1aREJECT_REASON_UNKNOWN_UNIT\x10\x01\x12\x1c\n" +
@@ -344,7 +349,9 @@ const file_genvelope_v1_telemetry_proto_rawDesc = "" +
 	"\x1dREJECT_REASON_INVALID_QUALITY\x10\x06\x12\x1e\n" +
 	"\x1aREJECT_REASON_MISSING_TIME\x10\a\x12#\n" +
 	"\x1fREJECT_REASON_OUT_OF_RANGE_TIME\x10\b\x12\x1d\n" +
-	"\x19REJECT_REASON_IMPLAUSIBLE\x10\t2\x96\x01\n" +
+	"\x19REJECT_REASON_IMPLAUSIBLE\x10\t\x12#\n" +
+	"\x1fREJECT_REASON_PERMISSION_DENIED\x10\n" +
+	"2\x96\x01\n" +
 	"\x10TelemetryService\x12=\n" +
 	"\x04Push\x12\x19.genvelope.v1.PushRequest\x1a\x1a.genvelope.v1.PushResponse\x12C\n" +
 	"\x06Stream\x12\x19.genvelope.v1.PushRequest\x1a\x1a.genvelope.v1.PushResponse(\x010\x01B=Z;github.com/genvelope/genvelope/api/genvelope/v1;genvelopev1b\x06proto3"

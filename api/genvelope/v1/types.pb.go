@@ -138,6 +138,62 @@ func (Rotor) EnumDescriptor() ([]byte, []int) {
 	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{1}
 }
 
+// StabilityBasis is what a unit's steady-state stability limit assumes
+// about its excitation.
+type StabilityBasis int32
+
+const (
+	// Not known.
+	StabilityBasis_STABILITY_BASIS_UNSPECIFIED StabilityBasis = 0
+	// The field voltage held constant (manual excitation): the classic
+	// synchronizing-power limit.
+	StabilityBasis_STABILITY_BASIS_MANUAL StabilityBasis = 1
+	// The voltage regulator in service: the small-signal limit of the
+	// linearized machine with its exciter and stabilizer.
+	StabilityBasis_STABILITY_BASIS_AVR StabilityBasis = 2
+)
+
+// Enum value maps for StabilityBasis.
+var (
+	StabilityBasis_name = map[int32]string{
+		0: "STABILITY_BASIS_UNSPECIFIED",
+		1: "STABILITY_BASIS_MANUAL",
+		2: "STABILITY_BASIS_AVR",
+	}
+	StabilityBasis_value = map[string]int32{
+		"STABILITY_BASIS_UNSPECIFIED": 0,
+		"STABILITY_BASIS_MANUAL":      1,
+		"STABILITY_BASIS_AVR":         2,
+	}
+)
+
+func (x StabilityBasis) Enum() *StabilityBasis {
+	p := new(StabilityBasis)
+	*p = x
+	return p
+}
+
+func (x StabilityBasis) String() string {
+	return protoimpl.X.EnumStringOf(x.Descriptor(), protoreflect.EnumNumber(x))
+}
+
+func (StabilityBasis) Descriptor() protoreflect.EnumDescriptor {
+	return file_genvelope_v1_types_proto_enumTypes[2].Descriptor()
+}
+
+func (StabilityBasis) Type() protoreflect.EnumType {
+	return &file_genvelope_v1_types_proto_enumTypes[2]
+}
+
+func (x StabilityBasis) Number() protoreflect.EnumNumber {
+	return protoreflect.EnumNumber(x)
+}
+
+// Deprecated: Use StabilityBasis.Descriptor instead.
+func (StabilityBasis) EnumDescriptor() ([]byte, []int) {
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{2}
+}
+
 // Limit names one of the limits that bound a unit's operation. More may
 // be added later; clients must accept values they do not know.
 type Limit int32
@@ -157,6 +213,8 @@ const (
 	Limit_LIMIT_PRIME_MOVER Limit = 5
 	// Generator volts per hertz (overfluxing), 1.05 pu continuous.
 	Limit_LIMIT_VOLTS_PER_HERTZ Limit = 6
+	// The regulator's underexcitation limiter curve (underexcited side).
+	Limit_LIMIT_UEL Limit = 7
 )
 
 // Enum value maps for Limit.
@@ -169,6 +227,7 @@ var (
 		4: "LIMIT_END_REGION",
 		5: "LIMIT_PRIME_MOVER",
 		6: "LIMIT_VOLTS_PER_HERTZ",
+		7: "LIMIT_UEL",
 	}
 	Limit_value = map[string]int32{
 		"LIMIT_UNSPECIFIED":     0,
@@ -178,6 +237,7 @@ var (
 		"LIMIT_END_REGION":      4,
 		"LIMIT_PRIME_MOVER":     5,
 		"LIMIT_VOLTS_PER_HERTZ": 6,
+		"LIMIT_UEL":             7,
 	}
 )
 
@@ -192,11 +252,11 @@ func (x Limit) String() string {
 }
 
 func (Limit) Descriptor() protoreflect.EnumDescriptor {
-	return file_genvelope_v1_types_proto_enumTypes[2].Descriptor()
+	return file_genvelope_v1_types_proto_enumTypes[3].Descriptor()
 }
 
 func (Limit) Type() protoreflect.EnumType {
-	return &file_genvelope_v1_types_proto_enumTypes[2]
+	return &file_genvelope_v1_types_proto_enumTypes[3]
 }
 
 func (x Limit) Number() protoreflect.EnumNumber {
@@ -205,7 +265,7 @@ func (x Limit) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Limit.Descriptor instead.
 func (Limit) EnumDescriptor() ([]byte, []int) {
-	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{2}
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{3}
 }
 
 // Zone is the voltage and frequency operating zone of IEC 60034-1.
@@ -250,11 +310,11 @@ func (x Zone) String() string {
 }
 
 func (Zone) Descriptor() protoreflect.EnumDescriptor {
-	return file_genvelope_v1_types_proto_enumTypes[3].Descriptor()
+	return file_genvelope_v1_types_proto_enumTypes[4].Descriptor()
 }
 
 func (Zone) Type() protoreflect.EnumType {
-	return &file_genvelope_v1_types_proto_enumTypes[3]
+	return &file_genvelope_v1_types_proto_enumTypes[4]
 }
 
 func (x Zone) Number() protoreflect.EnumNumber {
@@ -263,7 +323,7 @@ func (x Zone) Number() protoreflect.EnumNumber {
 
 // Deprecated: Use Zone.Descriptor instead.
 func (Zone) EnumDescriptor() ([]byte, []int) {
-	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{3}
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{4}
 }
 
 // Sample is one set of terminal measurements of one generating unit at
@@ -428,9 +488,11 @@ type Unit struct {
 	// Continuous rated field current, A: the nameplate value when the
 	// fleet configuration gives one, otherwise the model's field current
 	// at the rated operating point.
-	RatedFieldA   float64 `protobuf:"fixed64,12,opt,name=rated_field_a,json=ratedFieldA,proto3" json:"rated_field_a,omitempty"`
-	unknownFields protoimpl.UnknownFields
-	sizeCache     protoimpl.SizeCache
+	RatedFieldA float64 `protobuf:"fixed64,12,opt,name=rated_field_a,json=ratedFieldA,proto3" json:"rated_field_a,omitempty"`
+	// The basis of the unit's steady-state stability limit.
+	StabilityBasis StabilityBasis `protobuf:"varint,13,opt,name=stability_basis,json=stabilityBasis,proto3,enum=genvelope.v1.StabilityBasis" json:"stability_basis,omitempty"`
+	unknownFields  protoimpl.UnknownFields
+	sizeCache      protoimpl.SizeCache
 }
 
 func (x *Unit) Reset() {
@@ -547,6 +609,70 @@ func (x *Unit) GetRatedFieldA() float64 {
 	return 0
 }
 
+func (x *Unit) GetStabilityBasis() StabilityBasis {
+	if x != nil {
+		return x.StabilityBasis
+	}
+	return StabilityBasis_STABILITY_BASIS_UNSPECIFIED
+}
+
+// RotorMode is the electromechanical (rotor) mode of the linearized
+// machine at an operating point.
+type RotorMode struct {
+	state protoimpl.MessageState `protogen:"open.v1"`
+	// Frequency of the oscillation, Hz.
+	FrequencyHz float64 `protobuf:"fixed64,1,opt,name=frequency_hz,json=frequencyHz,proto3" json:"frequency_hz,omitempty"`
+	// Damping ratio, dimensionless: -Re(lambda)/|lambda|; negative when
+	// the mode grows.
+	DampingRatio  float64 `protobuf:"fixed64,2,opt,name=damping_ratio,json=dampingRatio,proto3" json:"damping_ratio,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
+}
+
+func (x *RotorMode) Reset() {
+	*x = RotorMode{}
+	mi := &file_genvelope_v1_types_proto_msgTypes[2]
+	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+	ms.StoreMessageInfo(mi)
+}
+
+func (x *RotorMode) String() string {
+	return protoimpl.X.MessageStringOf(x)
+}
+
+func (*RotorMode) ProtoMessage() {}
+
+func (x *RotorMode) ProtoReflect() protoreflect.Message {
+	mi := &file_genvelope_v1_types_proto_msgTypes[2]
+	if x != nil {
+		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
+		if ms.LoadMessageInfo() == nil {
+			ms.StoreMessageInfo(mi)
+		}
+		return ms
+	}
+	return mi.MessageOf(x)
+}
+
+// Deprecated: Use RotorMode.ProtoReflect.Descriptor instead.
+func (*RotorMode) Descriptor() ([]byte, []int) {
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{2}
+}
+
+func (x *RotorMode) GetFrequencyHz() float64 {
+	if x != nil {
+		return x.FrequencyHz
+	}
+	return 0
+}
+
+func (x *RotorMode) GetDampingRatio() float64 {
+	if x != nil {
+		return x.DampingRatio
+	}
+	return 0
+}
+
 // Margin is the distance of the operating point from one limit.
 type Margin struct {
 	state protoimpl.MessageState `protogen:"open.v1"`
@@ -556,8 +682,10 @@ type Margin struct {
 	// negative beyond it. Armature: 1 - i/i_max. Field: 1 - i_fd/i_fd_max
 	// (the measured field current when the sample has one, else the
 	// model's). Stability: (q - q_practical) in pu of rated MVA. End
-	// region: (q - q_end_region) in pu of rated MVA. Prime mover:
-	// (p_max - p) / rated MW. Volts per hertz: 1 - (v/f) / 1.05. Absent
+	// region: (q - q_end_region) in pu of rated MVA. UEL: (q - q_uel) in
+	// pu of rated MVA. Prime mover: min(p_max - p, p - p_min) / rated MW
+	// (negative below p_min and in reverse power). Volts per hertz:
+	// 1 - (v/f) / 1.05. Absent
 	// when the limit does not exist at this operating point or does not
 	// apply to this unit (for example no end-region curve).
 	Ratio         *float64 `protobuf:"fixed64,2,opt,name=ratio,proto3,oneof" json:"ratio,omitempty"`
@@ -567,7 +695,7 @@ type Margin struct {
 
 func (x *Margin) Reset() {
 	*x = Margin{}
-	mi := &file_genvelope_v1_types_proto_msgTypes[2]
+	mi := &file_genvelope_v1_types_proto_msgTypes[3]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -579,7 +707,7 @@ func (x *Margin) String() string {
 func (*Margin) ProtoMessage() {}
 
 func (x *Margin) ProtoReflect() protoreflect.Message {
-	mi := &file_genvelope_v1_types_proto_msgTypes[2]
+	mi := &file_genvelope_v1_types_proto_msgTypes[3]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -592,7 +720,7 @@ func (x *Margin) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Margin.ProtoReflect.Descriptor instead.
 func (*Margin) Descriptor() ([]byte, []int) {
-	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{2}
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{3}
 }
 
 func (x *Margin) GetLimit() Limit {
@@ -636,7 +764,7 @@ type Evaluation struct {
 	// The limit that sets q_min_mvar; when q_min_mvar is absent, the limit
 	// that makes it so.
 	QMinLimit Limit `protobuf:"varint,8,opt,name=q_min_limit,json=qMinLimit,proto3,enum=genvelope.v1.Limit" json:"q_min_limit,omitempty"`
-	// Theoretical steady-state stability limit (manual excitation), Mvar.
+	// Steady-state stability limit on the unit's basis (Unit.stability_basis), Mvar.
 	QStabilityMvar *float64 `protobuf:"fixed64,9,opt,name=q_stability_mvar,json=qStabilityMvar,proto3,oneof" json:"q_stability_mvar,omitempty"`
 	// Practical stability limit (the theoretical limit with the configured
 	// margin), Mvar.
@@ -662,10 +790,11 @@ type Evaluation struct {
 	// Margin to each limit, one entry per limit except LIMIT_UNSPECIFIED,
 	// in the order of the Limit values.
 	Margins []*Margin `protobuf:"bytes,18,rep,name=margins,proto3" json:"margins,omitempty"`
-	// The limit with the smallest margin among armature, field,
-	// stability, end region and prime mover (volts per hertz bounds the
-	// excitation, not P and Q, and is not a candidate). When feasible is
-	// false, the same as infeasible_limit.
+	// The capability-chart limit nearest the operating point, by distance
+	// in pu of rated MVA (armature, field, stability, end region, UEL,
+	// prime mover; volts per hertz bounds the excitation, not P and Q, and
+	// is not a candidate). When feasible is false, the same as
+	// infeasible_limit.
 	BindingLimit Limit `protobuf:"varint,19,opt,name=binding_limit,json=bindingLimit,proto3,enum=genvelope.v1.Limit" json:"binding_limit,omitempty"`
 	// True when both reactive-power bounds exist at this active power and
 	// q_min_mvar is not above q_max_mvar.
@@ -681,7 +810,8 @@ type Evaluation struct {
 	VoltsPerHertzPu float64 `protobuf:"fixed64,23,opt,name=volts_per_hertz_pu,json=voltsPerHertzPu,proto3" json:"volts_per_hertz_pu,omitempty"`
 	// Critical clearing time of a bolted three-phase fault, by the
 	// classical model, seconds. Absent when the unit lacks the transient
-	// reactance or the inertia constant, or is not generating (p_mw <= 0);
+	// reactance or the inertia constant, is not generating (p_mw <= 0), or
+	// the point is not steady-state stable with constant field voltage;
 	// 0 where the model has no stable post-fault equilibrium.
 	CriticalClearingTimeS *float64 `protobuf:"fixed64,24,opt,name=critical_clearing_time_s,json=criticalClearingTimeS,proto3,oneof" json:"critical_clearing_time_s,omitempty"`
 	// True when the sample's coolant value lies outside the unit's coolant
@@ -693,13 +823,20 @@ type Evaluation struct {
 	// Factor that multiplies the field current rating at the present
 	// coolant value (1 without a coolant table or coolant value).
 	FieldRatingFactor float64 `protobuf:"fixed64,27,opt,name=field_rating_factor,json=fieldRatingFactor,proto3" json:"field_rating_factor,omitempty"`
-	unknownFields     protoimpl.UnknownFields
-	sizeCache         protoimpl.SizeCache
+	// The underexcitation limiter's curve at this active power and
+	// voltage, Mvar. Absent when the unit has no UEL or the curve has no
+	// value at this active power.
+	QUelMvar *float64 `protobuf:"fixed64,28,opt,name=q_uel_mvar,json=qUelMvar,proto3,oneof" json:"q_uel_mvar,omitempty"`
+	// The rotor mode at this operating point on the avr basis. Absent on
+	// the manual basis.
+	RotorMode     *RotorMode `protobuf:"bytes,29,opt,name=rotor_mode,json=rotorMode,proto3" json:"rotor_mode,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *Evaluation) Reset() {
 	*x = Evaluation{}
-	mi := &file_genvelope_v1_types_proto_msgTypes[3]
+	mi := &file_genvelope_v1_types_proto_msgTypes[4]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -711,7 +848,7 @@ func (x *Evaluation) String() string {
 func (*Evaluation) ProtoMessage() {}
 
 func (x *Evaluation) ProtoReflect() protoreflect.Message {
-	mi := &file_genvelope_v1_types_proto_msgTypes[3]
+	mi := &file_genvelope_v1_types_proto_msgTypes[4]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -724,7 +861,7 @@ func (x *Evaluation) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use Evaluation.ProtoReflect.Descriptor instead.
 func (*Evaluation) Descriptor() ([]byte, []int) {
-	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{3}
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{4}
 }
 
 func (x *Evaluation) GetVPu() float64 {
@@ -916,6 +1053,20 @@ func (x *Evaluation) GetFieldRatingFactor() float64 {
 	return 0
 }
 
+func (x *Evaluation) GetQUelMvar() float64 {
+	if x != nil && x.QUelMvar != nil {
+		return *x.QUelMvar
+	}
+	return 0
+}
+
+func (x *Evaluation) GetRotorMode() *RotorMode {
+	if x != nil {
+		return x.RotorMode
+	}
+	return nil
+}
+
 // EnvelopePoint is one point of a unit's capability envelope: the
 // reactive-power bounds at one active power, in engineering units.
 type EnvelopePoint struct {
@@ -946,13 +1097,16 @@ type EnvelopePoint struct {
 	// Stator end-region heating limit, Mvar. Absent when the unit has no
 	// end-region curve.
 	QEndRegionMvar *float64 `protobuf:"fixed64,10,opt,name=q_end_region_mvar,json=qEndRegionMvar,proto3,oneof" json:"q_end_region_mvar,omitempty"`
-	unknownFields  protoimpl.UnknownFields
-	sizeCache      protoimpl.SizeCache
+	// The underexcitation limiter's curve, Mvar. Absent when the unit has
+	// no UEL or the curve has no value at this active power.
+	QUelMvar      *float64 `protobuf:"fixed64,11,opt,name=q_uel_mvar,json=qUelMvar,proto3,oneof" json:"q_uel_mvar,omitempty"`
+	unknownFields protoimpl.UnknownFields
+	sizeCache     protoimpl.SizeCache
 }
 
 func (x *EnvelopePoint) Reset() {
 	*x = EnvelopePoint{}
-	mi := &file_genvelope_v1_types_proto_msgTypes[4]
+	mi := &file_genvelope_v1_types_proto_msgTypes[5]
 	ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 	ms.StoreMessageInfo(mi)
 }
@@ -964,7 +1118,7 @@ func (x *EnvelopePoint) String() string {
 func (*EnvelopePoint) ProtoMessage() {}
 
 func (x *EnvelopePoint) ProtoReflect() protoreflect.Message {
-	mi := &file_genvelope_v1_types_proto_msgTypes[4]
+	mi := &file_genvelope_v1_types_proto_msgTypes[5]
 	if x != nil {
 		ms := protoimpl.X.MessageStateOf(protoimpl.Pointer(x))
 		if ms.LoadMessageInfo() == nil {
@@ -977,7 +1131,7 @@ func (x *EnvelopePoint) ProtoReflect() protoreflect.Message {
 
 // Deprecated: Use EnvelopePoint.ProtoReflect.Descriptor instead.
 func (*EnvelopePoint) Descriptor() ([]byte, []int) {
-	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{4}
+	return file_genvelope_v1_types_proto_rawDescGZIP(), []int{5}
 }
 
 func (x *EnvelopePoint) GetPMw() float64 {
@@ -1050,6 +1204,13 @@ func (x *EnvelopePoint) GetQEndRegionMvar() float64 {
 	return 0
 }
 
+func (x *EnvelopePoint) GetQUelMvar() float64 {
+	if x != nil && x.QUelMvar != nil {
+		return *x.QUelMvar
+	}
+	return 0
+}
+
 var File_genvelope_v1_types_proto protoreflect.FileDescriptor
 
 const file_genvelope_v1_types_proto_rawDesc = "" +
@@ -1069,7 +1230,7 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\b_field_aB\x0f\n" +
 	"\r_frequency_hzB\n" +
 	"\n" +
-	"\b_coolant\"\xd6\x02\n" +
+	"\b_coolant\"\x9d\x03\n" +
 	"\x04Unit\x12\x0e\n" +
 	"\x02id\x18\x01 \x01(\tR\x02id\x12\x12\n" +
 	"\x04name\x18\x02 \x01(\tR\x04name\x12\x12\n" +
@@ -1083,11 +1244,15 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\bp_min_mw\x18\n" +
 	" \x01(\x01R\x06pMinMw\x12\x15\n" +
 	"\x06ifag_a\x18\v \x01(\x01R\x05ifagA\x12\"\n" +
-	"\rrated_field_a\x18\f \x01(\x01R\vratedFieldA\"X\n" +
+	"\rrated_field_a\x18\f \x01(\x01R\vratedFieldA\x12E\n" +
+	"\x0fstability_basis\x18\r \x01(\x0e2\x1c.genvelope.v1.StabilityBasisR\x0estabilityBasis\"S\n" +
+	"\tRotorMode\x12!\n" +
+	"\ffrequency_hz\x18\x01 \x01(\x01R\vfrequencyHz\x12#\n" +
+	"\rdamping_ratio\x18\x02 \x01(\x01R\fdampingRatio\"X\n" +
 	"\x06Margin\x12)\n" +
 	"\x05limit\x18\x01 \x01(\x0e2\x13.genvelope.v1.LimitR\x05limit\x12\x19\n" +
 	"\x05ratio\x18\x02 \x01(\x01H\x00R\x05ratio\x88\x01\x01B\b\n" +
-	"\x06_ratio\"\x85\f\n" +
+	"\x06_ratio\"\xef\f\n" +
 	"\n" +
 	"Evaluation\x12\x11\n" +
 	"\x04v_pu\x18\x01 \x01(\x01R\x03vPu\x12.\n" +
@@ -1121,7 +1286,11 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\x18critical_clearing_time_s\x18\x18 \x01(\x01H\vR\x15criticalClearingTimeS\x88\x01\x01\x122\n" +
 	"\x15coolant_outside_table\x18\x19 \x01(\bR\x13coolantOutsideTable\x124\n" +
 	"\x16armature_rating_factor\x18\x1a \x01(\x01R\x14armatureRatingFactor\x12.\n" +
-	"\x13field_rating_factor\x18\x1b \x01(\x01R\x11fieldRatingFactorB\r\n" +
+	"\x13field_rating_factor\x18\x1b \x01(\x01R\x11fieldRatingFactor\x12!\n" +
+	"\n" +
+	"q_uel_mvar\x18\x1c \x01(\x01H\fR\bqUelMvar\x88\x01\x01\x126\n" +
+	"\n" +
+	"rotor_mode\x18\x1d \x01(\v2\x17.genvelope.v1.RotorModeR\trotorModeB\r\n" +
 	"\v_q_max_mvarB\r\n" +
 	"\v_q_min_mvarB\x13\n" +
 	"\x11_q_stability_mvarB\x1d\n" +
@@ -1133,7 +1302,8 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\t_p_max_mwB\x15\n" +
 	"\x13_q_headroom_up_mvarB\x17\n" +
 	"\x15_q_headroom_down_mvarB\x1b\n" +
-	"\x19_critical_clearing_time_s\"\xd4\x04\n" +
+	"\x19_critical_clearing_time_sB\r\n" +
+	"\v_q_uel_mvar\"\x86\x05\n" +
 	"\rEnvelopePoint\x12\x11\n" +
 	"\x04p_mw\x18\x01 \x01(\x01R\x03pMw\x12!\n" +
 	"\n" +
@@ -1148,14 +1318,17 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\x10q_stability_mvar\x18\b \x01(\x01H\x04R\x0eqStabilityMvar\x88\x01\x01\x12@\n" +
 	"\x1aq_practical_stability_mvar\x18\t \x01(\x01H\x05R\x17qPracticalStabilityMvar\x88\x01\x01\x12.\n" +
 	"\x11q_end_region_mvar\x18\n" +
-	" \x01(\x01H\x06R\x0eqEndRegionMvar\x88\x01\x01B\r\n" +
+	" \x01(\x01H\x06R\x0eqEndRegionMvar\x88\x01\x01\x12!\n" +
+	"\n" +
+	"q_uel_mvar\x18\v \x01(\x01H\aR\bqUelMvar\x88\x01\x01B\r\n" +
 	"\v_q_max_mvarB\r\n" +
 	"\v_q_min_mvarB\x0f\n" +
 	"\r_q_field_mvarB\x12\n" +
 	"\x10_q_armature_mvarB\x13\n" +
 	"\x11_q_stability_mvarB\x1d\n" +
 	"\x1b_q_practical_stability_mvarB\x14\n" +
-	"\x12_q_end_region_mvar*c\n" +
+	"\x12_q_end_region_mvarB\r\n" +
+	"\v_q_uel_mvar*c\n" +
 	"\aQuality\x12\x17\n" +
 	"\x13QUALITY_UNSPECIFIED\x10\x00\x12\x10\n" +
 	"\fQUALITY_GOOD\x10\x01\x12\x18\n" +
@@ -1164,7 +1337,11 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\x05Rotor\x12\x15\n" +
 	"\x11ROTOR_UNSPECIFIED\x10\x00\x12\x0f\n" +
 	"\vROTOR_ROUND\x10\x01\x12\x11\n" +
-	"\rROTOR_SALIENT\x10\x02*\xa0\x01\n" +
+	"\rROTOR_SALIENT\x10\x02*f\n" +
+	"\x0eStabilityBasis\x12\x1f\n" +
+	"\x1bSTABILITY_BASIS_UNSPECIFIED\x10\x00\x12\x1a\n" +
+	"\x16STABILITY_BASIS_MANUAL\x10\x01\x12\x17\n" +
+	"\x13STABILITY_BASIS_AVR\x10\x02*\xaf\x01\n" +
 	"\x05Limit\x12\x15\n" +
 	"\x11LIMIT_UNSPECIFIED\x10\x00\x12\x12\n" +
 	"\x0eLIMIT_ARMATURE\x10\x01\x12\x0f\n" +
@@ -1172,7 +1349,8 @@ const file_genvelope_v1_types_proto_rawDesc = "" +
 	"\x0fLIMIT_STABILITY\x10\x03\x12\x14\n" +
 	"\x10LIMIT_END_REGION\x10\x04\x12\x15\n" +
 	"\x11LIMIT_PRIME_MOVER\x10\x05\x12\x19\n" +
-	"\x15LIMIT_VOLTS_PER_HERTZ\x10\x06*F\n" +
+	"\x15LIMIT_VOLTS_PER_HERTZ\x10\x06\x12\r\n" +
+	"\tLIMIT_UEL\x10\a*F\n" +
 	"\x04Zone\x12\x14\n" +
 	"\x10ZONE_UNSPECIFIED\x10\x00\x12\n" +
 	"\n" +
@@ -1193,38 +1371,42 @@ func file_genvelope_v1_types_proto_rawDescGZIP() []byte {
 	return file_genvelope_v1_types_proto_rawDescData
 }
 
-var file_genvelope_v1_types_proto_enumTypes = make([]protoimpl.EnumInfo, 4)
-var file_genvelope_v1_types_proto_msgTypes = make([]protoimpl.MessageInfo, 5)
+var file_genvelope_v1_types_proto_enumTypes = make([]protoimpl.EnumInfo, 5)
+var file_genvelope_v1_types_proto_msgTypes = make([]protoimpl.MessageInfo, 6)
 var file_genvelope_v1_types_proto_goTypes = []any{
 	(Quality)(0),                  // 0: genvelope.v1.Quality
 	(Rotor)(0),                    // 1: genvelope.v1.Rotor
-	(Limit)(0),                    // 2: genvelope.v1.Limit
-	(Zone)(0),                     // 3: genvelope.v1.Zone
-	(*Sample)(nil),                // 4: genvelope.v1.Sample
-	(*Unit)(nil),                  // 5: genvelope.v1.Unit
-	(*Margin)(nil),                // 6: genvelope.v1.Margin
-	(*Evaluation)(nil),            // 7: genvelope.v1.Evaluation
-	(*EnvelopePoint)(nil),         // 8: genvelope.v1.EnvelopePoint
-	(*timestamppb.Timestamp)(nil), // 9: google.protobuf.Timestamp
+	(StabilityBasis)(0),           // 2: genvelope.v1.StabilityBasis
+	(Limit)(0),                    // 3: genvelope.v1.Limit
+	(Zone)(0),                     // 4: genvelope.v1.Zone
+	(*Sample)(nil),                // 5: genvelope.v1.Sample
+	(*Unit)(nil),                  // 6: genvelope.v1.Unit
+	(*RotorMode)(nil),             // 7: genvelope.v1.RotorMode
+	(*Margin)(nil),                // 8: genvelope.v1.Margin
+	(*Evaluation)(nil),            // 9: genvelope.v1.Evaluation
+	(*EnvelopePoint)(nil),         // 10: genvelope.v1.EnvelopePoint
+	(*timestamppb.Timestamp)(nil), // 11: google.protobuf.Timestamp
 }
 var file_genvelope_v1_types_proto_depIdxs = []int32{
-	9,  // 0: genvelope.v1.Sample.time:type_name -> google.protobuf.Timestamp
+	11, // 0: genvelope.v1.Sample.time:type_name -> google.protobuf.Timestamp
 	0,  // 1: genvelope.v1.Sample.quality:type_name -> genvelope.v1.Quality
 	1,  // 2: genvelope.v1.Unit.rotor:type_name -> genvelope.v1.Rotor
-	2,  // 3: genvelope.v1.Margin.limit:type_name -> genvelope.v1.Limit
-	2,  // 4: genvelope.v1.Evaluation.q_max_limit:type_name -> genvelope.v1.Limit
-	2,  // 5: genvelope.v1.Evaluation.q_min_limit:type_name -> genvelope.v1.Limit
-	6,  // 6: genvelope.v1.Evaluation.margins:type_name -> genvelope.v1.Margin
-	2,  // 7: genvelope.v1.Evaluation.binding_limit:type_name -> genvelope.v1.Limit
-	2,  // 8: genvelope.v1.Evaluation.infeasible_limit:type_name -> genvelope.v1.Limit
-	3,  // 9: genvelope.v1.Evaluation.zone:type_name -> genvelope.v1.Zone
-	2,  // 10: genvelope.v1.EnvelopePoint.q_max_limit:type_name -> genvelope.v1.Limit
-	2,  // 11: genvelope.v1.EnvelopePoint.q_min_limit:type_name -> genvelope.v1.Limit
-	12, // [12:12] is the sub-list for method output_type
-	12, // [12:12] is the sub-list for method input_type
-	12, // [12:12] is the sub-list for extension type_name
-	12, // [12:12] is the sub-list for extension extendee
-	0,  // [0:12] is the sub-list for field type_name
+	2,  // 3: genvelope.v1.Unit.stability_basis:type_name -> genvelope.v1.StabilityBasis
+	3,  // 4: genvelope.v1.Margin.limit:type_name -> genvelope.v1.Limit
+	3,  // 5: genvelope.v1.Evaluation.q_max_limit:type_name -> genvelope.v1.Limit
+	3,  // 6: genvelope.v1.Evaluation.q_min_limit:type_name -> genvelope.v1.Limit
+	8,  // 7: genvelope.v1.Evaluation.margins:type_name -> genvelope.v1.Margin
+	3,  // 8: genvelope.v1.Evaluation.binding_limit:type_name -> genvelope.v1.Limit
+	3,  // 9: genvelope.v1.Evaluation.infeasible_limit:type_name -> genvelope.v1.Limit
+	4,  // 10: genvelope.v1.Evaluation.zone:type_name -> genvelope.v1.Zone
+	7,  // 11: genvelope.v1.Evaluation.rotor_mode:type_name -> genvelope.v1.RotorMode
+	3,  // 12: genvelope.v1.EnvelopePoint.q_max_limit:type_name -> genvelope.v1.Limit
+	3,  // 13: genvelope.v1.EnvelopePoint.q_min_limit:type_name -> genvelope.v1.Limit
+	14, // [14:14] is the sub-list for method output_type
+	14, // [14:14] is the sub-list for method input_type
+	14, // [14:14] is the sub-list for extension type_name
+	14, // [14:14] is the sub-list for extension extendee
+	0,  // [0:14] is the sub-list for field type_name
 }
 
 func init() { file_genvelope_v1_types_proto_init() }
@@ -1233,16 +1415,16 @@ func file_genvelope_v1_types_proto_init() {
 		return
 	}
 	file_genvelope_v1_types_proto_msgTypes[0].OneofWrappers = []any{}
-	file_genvelope_v1_types_proto_msgTypes[2].OneofWrappers = []any{}
 	file_genvelope_v1_types_proto_msgTypes[3].OneofWrappers = []any{}
 	file_genvelope_v1_types_proto_msgTypes[4].OneofWrappers = []any{}
+	file_genvelope_v1_types_proto_msgTypes[5].OneofWrappers = []any{}
 	type x struct{}
 	out := protoimpl.TypeBuilder{
 		File: protoimpl.DescBuilder{
 			GoPackagePath: reflect.TypeOf(x{}).PkgPath(),
 			RawDescriptor: unsafe.Slice(unsafe.StringData(file_genvelope_v1_types_proto_rawDesc), len(file_genvelope_v1_types_proto_rawDesc)),
-			NumEnums:      4,
-			NumMessages:   5,
+			NumEnums:      5,
+			NumMessages:   6,
 			NumExtensions: 0,
 			NumServices:   0,
 		},

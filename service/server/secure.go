@@ -1,0 +1,210 @@
+package server
+
+import (
+	"context"
+	"fmt"
+	"log/slog"
+	"net"
+	"net/http"
+	"net/http/pprof"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/exporter-toolkit/web"
+	"google.golang.org/grpc"
+
+	"github.com/genvelope/genvelope/service/access"
+	"github.com/genvelope/genvelope/service/journal"
+	"github.com/genvelope/genvelope/service/metrics"
+	"github.com/genvelope/genvelope/service/rpc"
+)
+
+// secure checks the transport settings (no plaintext off loopback
+// unless asked), loads the access file and the gRPC certificates, and
+// returns the gRPC server options: credentials, the guard's and the
+// caps' interceptors, the size and keepalive limits.
+func (s *Server) secure(reg *prometheus.Registry) ([]grpc.ServerOption, error) {
+	sec := &s.cfg.Security
+	var err error
+	if s.webCfg, err = readWebConfig(sec.WebConfig); err != nil {
+		return nil, err
+	}
+	grpcPlain, err := plaintextCheck("gRPC", s.cfg.GRPCListen, sec.GRPCTLSCert != "", sec.InsecurePlaintext)
+	if err != nil {
+		return nil, err
+	}
+	httpPlain, err := plaintextCheck("HTTP", s.cfg.HTTPListen, s.webCfg.TLS, sec.InsecurePlaintext)
+	if err != nil {
+		return nil, err
+	}
+	pprofPlain, err := plaintextCheck("HTTP", sec.PprofListen, s.webCfg.TLS, sec.InsecurePlaintext)
+	if err != nil {
+		return nil, err
+	}
+	insecure := prometheus.NewGauge(prometheus.GaugeOpts{
+		Namespace: metrics.Namespace, Name: "insecure_plaintext",
+		Help: "1 when a listener on a non-loopback address serves without TLS (--insecure-plaintext).",
+	})
+	reg.MustRegister(insecure)
+	if grpcPlain || httpPlain || pprofPlain {
+		insecure.Set(1)
+		s.log.Error("INSECURE: serving without TLS on a non-loopback address (--insecure-plaintext): anyone on the network can read everything, push telemetry and act on alarms",
+			"grpc", s.cfg.GRPCListen, "grpc_plaintext", grpcPlain, "http", s.cfg.HTTPListen, "http_plaintext", httpPlain || pprofPlain)
+	}
+
+	auditors := access.Auditors{access.LogAuditor{Log: s.log}}
+	if s.journal != nil {
+		auditors = append(auditors, journalAuditor{j: s.journal, log: s.log})
+	}
+	if sec.Auditor != nil {
+		auditors = append(auditors, sec.Auditor)
+	}
+	auditor := access.Auditor(auditors)
+	s.guard, err = access.NewGuard(access.Options{
+		Path: sec.AccessFile, Auditor: auditor, Logger: s.log,
+		SiteOf: func(id string) (string, bool) {
+			u := s.store.Fleet().Unit(id)
+			if u == nil {
+				return "", false
+			}
+			return u.Site, true
+		},
+	})
+	if err != nil {
+		return nil, err
+	}
+	reg.MustRegister(s.guard.Collector())
+	if !s.guard.Enabled() && (!isLoopback(s.cfg.GRPCListen) || !isLoopback(s.cfg.HTTPListen)) {
+		s.log.Warn("no --access file: every client that reaches a listener may push telemetry, act on alarms and reload",
+			"grpc", s.cfg.GRPCListen, "http", s.cfg.HTTPListen)
+	}
+
+	creds, closeCreds, err := grpcCreds(sec)
+	if err != nil {
+		return nil, err
+	}
+	s.closeCreds = closeCreds
+	s.limits = s.cfg.Limits.withDefaults()
+	caps := newCallerLimits(s.limits, s.guard)
+	maxBatch := s.cfg.MaxBatch
+	if maxBatch <= 0 {
+		maxBatch = rpc.DefaultMaxBatch
+	}
+	codec := newStrictCodec()
+	opts := append(grpcLimitOptions(s.limits, maxBatch),
+		grpc.ForceServerCodecV2(codec),
+		grpc.ChainUnaryInterceptor(codec.Unary, s.guard.UnaryInterceptor, caps.Unary),
+		grpc.ChainStreamInterceptor(codec.Stream, s.guard.StreamInterceptor, caps.Stream),
+	)
+	if creds != nil {
+		opts = append(opts, grpc.Creds(creds))
+	}
+	return opts, nil
+}
+
+// denied counts and audits the samples of one push refused for want of
+// the telemetry_writer grant over their units.
+func (s *Server) denied(ctx context.Context, n int, unitID string) {
+	s.guard.DenyN(ctx, access.FromContext(ctx), "grpc push", access.Sanitize(unitID, 64), access.ReasonSampleDenied, n)
+}
+
+// httpServer returns an HTTP server for handler behind the host check
+// and the guard, with the read, write and idle timeouts.
+func (s *Server) httpServer(handler http.Handler, listen string, write bool) *http.Server {
+	h := &httpGuard{guard: s.guard, hosts: allowedHosts(listen, s.cfg.Security.HTTPHosts), basicAuth: s.webCfg.Users, next: handler}
+	srv := &http.Server{
+		Handler: h, ReadHeaderTimeout: 10 * time.Second, ReadTimeout: s.limits.HTTPRead,
+		IdleTimeout: s.limits.HTTPIdle, MaxHeaderBytes: 64 << 10,
+		ErrorLog: slog.NewLogLogger(s.log.Handler(), slog.LevelDebug),
+	}
+	if write {
+		srv.WriteTimeout = s.limits.HTTPWrite
+	}
+	return srv
+}
+
+// pprofMux serves the profiles (for the admin role; see routeOf).
+func pprofMux() *http.ServeMux {
+	mux := http.NewServeMux()
+	mux.HandleFunc("/debug/pprof/", pprof.Index)
+	mux.HandleFunc("/debug/pprof/cmdline", pprof.Cmdline)
+	mux.HandleFunc("/debug/pprof/profile", pprof.Profile)
+	mux.HandleFunc("/debug/pprof/symbol", pprof.Symbol)
+	mux.HandleFunc("/debug/pprof/trace", pprof.Trace)
+	return mux
+}
+
+// serveHTTP serves srv on ln through the exporter-toolkit, which applies
+// the web configuration (TLS, client certificates, basic-auth users)
+// and reads it again for every new connection.
+func (s *Server) serveHTTP(srv *http.Server, ln net.Listener) error {
+	path := s.cfg.Security.WebConfig
+	return web.Serve(ln, srv, &web.FlagConfig{WebConfigFile: &path}, s.log)
+}
+
+func outcomeOf(err error) string {
+	if err != nil {
+		return access.OutcomeFailed
+	}
+	return access.OutcomeDone
+}
+
+func errText(err error) string {
+	if err != nil {
+		return access.Sanitize(err.Error(), 512)
+	}
+	return ""
+}
+
+// webIdentity tells the pages who is signed in (the guard put the
+// caller in the request's context) and whether they may act on a unit's
+// alarms.
+func webIdentity(r *http.Request) (name string, mayOperate func(unitID string) bool) {
+	c := access.FromContext(r.Context())
+	if c == nil {
+		return "", func(string) bool { return true }
+	}
+	return c.Name, func(id string) bool { return c.May(access.Operator, id) }
+}
+
+// PprofAddr returns the bound address of the profiling listener, or ""
+// when there is none.
+func (s *Server) PprofAddr() string {
+	if s.pprofLn == nil {
+		return ""
+	}
+	return s.pprofLn.Addr().String()
+}
+
+// guardReload reads the access file again (nothing before the guard is
+// made: a log may replay a reload while the server is being built).
+func (s *Server) guardReload() error {
+	if s.guard == nil {
+		return nil
+	}
+	return s.guard.Reload()
+}
+
+// journalAuditor writes denials to the alarm journal (operator actions
+// and reloads are journalled by the store already, with the identity as
+// the operator).
+type journalAuditor struct {
+	j   *journal.Journal
+	log *slog.Logger
+}
+
+func (a journalAuditor) Audit(_ context.Context, e access.Entry) {
+	if e.Outcome != access.OutcomeDenied {
+		return
+	}
+	msg := fmt.Sprintf("%s from %s: %s refused (%s)", e.Identity, e.Source, e.Action, e.Reason)
+	if e.Target != "" {
+		msg += " on " + e.Target
+	}
+	if e.Detail != "" {
+		msg += ": " + e.Detail
+	}
+	if err := a.j.Append(journal.Entry{Time: e.Time, Change: journal.ChangeDenied, Message: msg, Operator: e.Identity}); err != nil {
+		a.log.Error("access denial not journalled", "err", err)
+	}
+}
