@@ -92,7 +92,9 @@ func (u *Unit) bounds(p, v, armF, fieldF float64, h *Hint, full, fast bool) (b B
 	b.upperBound()
 
 	if b.QMax.OK {
-		b.setStability(u.stabilityLimits(math.Abs(p), v, b.QMax.V, b.ArmatureDown.V, h, fast))
+		var s stabLimits
+		u.stabilityLimits(math.Abs(p), v, b.QMax.V, b.ArmatureDown.V, h, fast, &s)
+		b.setStability(s)
 	}
 	b.EndRegion = u.endRegionAt(p, v)
 	b.UEL = u.UELAt(p, v)
@@ -178,7 +180,8 @@ func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint, fast bool
 		// it, like the field limit, to Complete.
 		b.Practical = prac
 	} else {
-		s := u.stabilityLimits(math.Abs(p), v, qTop, b.ArmatureDown.V, h, fast)
+		var s stabLimits
+		u.stabilityLimits(math.Abs(p), v, qTop, b.ArmatureDown.V, h, fast, &s)
 		if !s.theo.OK || !s.prac.OK || s.theo.V >= qTop || s.top.OK || s.err != nil {
 			return b, false
 		}
@@ -298,12 +301,14 @@ type stabLimits struct {
 // manual power-angle curve, which the regulator holds).
 //
 // On a round rotor (Xq = Xd) the manual curves have closed forms, below.
-func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) stabLimits {
+func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out *stabLimits) {
 	if u.p.Basis == BasisAVR {
-		return u.avrLimits(p, v, qTop, qBot, h, fast)
+		*out = u.avrLimits(p, v, qTop, qBot, h, fast)
+		return
 	}
 	if u.roundStab {
-		return u.roundStability(p, v, qTop, qBot)
+		u.roundStability(p, v, qTop, qBot, out)
+		return
 	}
 	g := func(q float64) float64 {
 		s := u.stab(p, q, v)
@@ -318,7 +323,8 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) sta
 			theo := some(q)
 			h.stabSlope = slope
 			h.set(hintStab, theo)
-			return stabLimits{theo: theo, prac: u.practicalLimit(p, v, q, qTop, h)}
+			*out = stabLimits{theo: theo, prac: u.practicalLimit(p, v, q, qTop, h)}
+			return
 		}
 	}
 	if gTop <= 0 {
@@ -326,11 +332,11 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) sta
 		iv := topInterval(func(q float64) (bool, error) { return g(q) > 0, nil }, qTop, qBot, scanStep, scanTol)
 		h.set(hintStab, Bound{})
 		h.set(hintPrac, Bound{})
-		res := stabLimits{theo: iv.low, top: iv.top}
+		*out = stabLimits{theo: iv.low, top: iv.top}
 		if iv.low.OK {
-			res.prac = u.practicalLimit(p, v, iv.low.V, iv.top.V, nil)
+			out.prac = u.practicalLimit(p, v, iv.low.V, iv.top.V, nil)
 		}
-		return res
+		return
 	}
 	var theo Bound
 	lo, ok := u.perpendicular(p, v)
@@ -373,7 +379,7 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool) sta
 		lo = q
 	}
 	h.set(hintStab, theo)
-	return stabLimits{theo: theo, prac: u.practicalLimit(p, v, lo, qTop, h)}
+	*out = stabLimits{theo: theo, prac: u.practicalLimit(p, v, lo, qTop, h)}
 }
 
 // avrLimits is stabilityLimits on the avr basis.
@@ -520,7 +526,8 @@ func (u *Unit) perpendicular(p, v float64) (float64, bool) {
 // holds where sin(delta) = p/(p + m), that is Re = (X + Xe) sqrt(m^2 + 2pm):
 // the same quadratic with its constant term raised by
 // v^2 (X + Xe) sqrt(m^2 + 2pm), lower root.
-func (u *Unit) roundStability(p, v, qTop, qBot float64) stabLimits {
+func (u *Unit) roundStability(p, v, qTop, qBot float64, res *stabLimits) {
+	*res = stabLimits{}
 	x, xe := u.p.Xd, u.p.Xe
 	v2 := v * v
 	a, b, c := x*xe, -v2*(x-xe), x*xe*p*p-v2*v2
@@ -528,16 +535,18 @@ func (u *Unit) roundStability(p, v, qTop, qBot float64) stabLimits {
 	if !ok {
 		// Re(E conj V_s) < 0 for every q: the angle exceeds 90 degrees
 		// whatever the excitation, so the unit cannot carry p through Xe.
-		return stabLimits{theo: some(qTop)}
+		res.theo = some(qTop)
+		return
 	}
 	if qs >= qTop {
-		return stabLimits{theo: some(qTop)}
+		res.theo = some(qTop)
+		return
 	}
-	var res stabLimits
 	if a > 0 {
 		if qu := (-b + math.Sqrt(math.Max(b*b-4*a*c, 0))) / (2 * a); qu < qTop {
 			if qu <= qBot {
-				return stabLimits{theo: some(qTop)}
+				res.theo = some(qTop)
+				return
 			}
 			res.top, qTop = some(qu), qu
 		}
@@ -547,8 +556,7 @@ func (u *Unit) roundStability(p, v, qTop, qBot float64) stabLimits {
 	rr := (x + xe) * math.Sqrt(m*m+2*p*m)
 	qp, ok := quadLower(a, b, c+v2*rr)
 	if !ok || qp > qTop {
-		return res
+		return
 	}
 	res.prac = some(math.Max(qp, qs))
-	return res
 }

@@ -61,7 +61,8 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	if !r.Stability.OK && r.QMax.OK {
 		// Left by the warm practical limit; the practical limit is solved
 		// again with it, to the same root.
-		s := u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, false)
+		var s stabLimits
+		u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, false, &s)
 		if s.top.OK || s.err != nil {
 			// q_max itself is unstable: the whole envelope changes.
 			*r = u.evaluate(pt, nil, true, false)

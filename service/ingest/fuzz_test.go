@@ -1,6 +1,7 @@
 package ingest
 
 import (
+	"bytes"
 	"encoding/json"
 	"testing"
 	"time"
@@ -47,8 +48,16 @@ func FuzzAccept(f *testing.F) {
 		if err := sn.Seal(); err != nil {
 			t.Fatalf("state does not encode: %v", err)
 		}
-		if _, err := json.Marshal(sn); err != nil {
+		twoPass, err := json.Marshal(sn)
+		if err != nil {
 			t.Fatalf("state does not encode: %v", err)
+		}
+		// The one-pass encoding against the two passes (Seal, then json.Marshal).
+		sum := sn.Checksum
+		sn.Checksum = "stale"
+		onePass, err := sn.MarshalSealed()
+		if err != nil || sn.Checksum != sum || !bytes.Equal(onePass, twoPass) {
+			t.Fatalf("MarshalSealed: checksum %s, want %s, err %v; bytes equal to Seal + json.Marshal: %v", sn.Checksum, sum, err, bytes.Equal(onePass, twoPass))
 		}
 		s2 := NewStore(fl, Options{})
 		if _, _, bad := s2.Restore(sn); len(bad) > 0 {

@@ -158,8 +158,11 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 	var d denials
 	caller := access.FromContext(ctx) // nil: no access control
 	for i, s := range req.Samples {
-		var smp ingest.Sample
-		res, detail := t.judge(caller, now, s, &smp, t.store.Accept)
+		var smp ingest.Sample // stays on the stack: Accept is called directly
+		res, detail := t.convert(caller, s, &smp)
+		if res == ingest.Accepted {
+			res, detail = t.store.Accept(now, &smp)
+		}
 		tally[res]++
 		d.note(res, s.UnitId)
 		answer(resp, i, res, detail)
@@ -205,19 +208,18 @@ func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	return nil
 }
 
-// judge converts s into smp and returns what check says of it. A
+// convert converts s into smp, or returns the reason it cannot be. A
 // caller (nil: no access control) that may not push for the unit is
 // refused first, so that a writer learns nothing of units it may not
-// push for.
-func (t *Telemetry) judge(caller *access.Caller, now time.Time, s *pb.Sample, smp *ingest.Sample, check func(time.Time, *ingest.Sample) (ingest.Result, string)) (ingest.Result, string) {
+// push for. It takes no checking function: called through a function
+// value or an interface, the sample would move to the heap, one
+// allocation a sample.
+func (t *Telemetry) convert(caller *access.Caller, s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
 	if caller != nil && !caller.Allows(s.UnitId) {
 		return ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
 	}
 	res, detail := FromProto(s, smp)
-	switch {
-	case res == ingest.Accepted:
-		return check(now, smp)
-	case t.store.Unit(s.UnitId) == nil:
+	if res != ingest.Accepted && t.store.Unit(s.UnitId) == nil {
 		// The unit is the first thing a sample is judged by.
 		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
 	}
@@ -265,14 +267,20 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 	var d denials
 	caller := access.FromContext(ctx)
 	for i, s := range req.Samples {
-		var smp ingest.Sample
-		res, detail := t.judge(caller, now, s, &smp, t.log.Check)
+		// Converted in its place in smps: passed to the log's Check, an
+		// interface method, a local sample would move to the heap.
+		smps = append(smps, ingest.Sample{})
+		smp := &smps[len(smps)-1]
+		res, detail := t.convert(caller, s, smp)
+		if res == ingest.Accepted {
+			res, detail = t.log.Check(now, smp)
+		}
 		d.note(res, s.UnitId)
 		if res == ingest.Accepted {
-			smps = append(smps, smp)
 			idx = append(idx, i)
 			continue
 		}
+		smps = smps[:len(smps)-1]
 		results[i], details[i] = res, detail
 		tally[res]++
 	}

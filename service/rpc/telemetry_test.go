@@ -25,7 +25,7 @@ import (
 
 const waitLong = 60 * time.Second
 
-func exampleStore(t *testing.T) *ingest.Store {
+func exampleStore(t testing.TB) *ingest.Store {
 	t.Helper()
 	return ingest.NewStore(exampleFleet(t), ingest.Options{})
 }

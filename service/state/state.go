@@ -26,10 +26,7 @@ const MaxInterval = 5 * time.Second
 
 // Write stores sn in path atomically, sealed with its checksum.
 func Write(path string, sn *ingest.Snapshot) error {
-	if err := sn.Seal(); err != nil {
-		return fmt.Errorf("state: encoding: %w", err)
-	}
-	data, err := json.Marshal(sn)
+	data, err := sn.MarshalSealed()
 	if err != nil {
 		return fmt.Errorf("state: encoding: %w", err)
 	}
