@@ -88,13 +88,27 @@ func LimitNamed(name string) (LimitInfo, bool) {
 // limits.NoLimit for an alarm that watches something else. It does not
 // allocate: the per-sample path calls it.
 func LimitOfAlarm(k alarm.Kind) limits.Limit {
-	for i := range limitTable {
-		if limitTable[i].Alarm == k {
-			return limitTable[i].Limit
-		}
+	if k < alarm.NumKinds {
+		return limitByAlarm[k]
 	}
 	return limits.NoLimit
 }
+
+// limitByAlarm is LimitOfAlarm as an array indexed by alarm kind, made
+// once from limitTable and never changed: one load per alarm per sample
+// instead of a search of the table.
+var limitByAlarm = func() (a [alarm.NumKinds]limits.Limit) {
+	for k := range a {
+		a[k] = limits.NoLimit
+		for i := range limitTable {
+			if limitTable[i].Alarm == alarm.Kind(k) {
+				a[k] = limitTable[i].Limit
+				break
+			}
+		}
+	}
+	return a
+}()
 
 // AlarmTitle names alarm kind k in the operators' words: a margin alarm
 // by its limit's title.
