@@ -731,26 +731,10 @@ func (c *unitCtx) decodeUEL(v *yaml.Node, path string, line int) *UEL {
 		if x, ok := c.number(m, "voltage_exponent_q", false, "the exponent k2 of v^k2 F", nil); ok {
 			u.VoltageExponentQ = x
 		}
-		items, _, ok := c.list(m, "points", true, "at least two points {p_mw, q_mvar} with increasing p_mw")
-		if !ok {
+		var listed bool
+		u.Points, good, listed = c.curvePoints(m, path, "the limiter's reactive power at p_mw, in Mvar")
+		if !listed {
 			return nil
-		}
-		field := join(path, "points")
-		for i, item := range items {
-			pp := fmt.Sprintf("%s[%d]", field, i+1)
-			c.u.lines[pp] = item.Line
-			pm, ok := c.open(item, pp, item.Line, "p_mw", "q_mvar")
-			if !ok {
-				good = false
-				continue
-			}
-			p, okP := c.number(pm, "p_mw", true, "the active power of the point in MW", nil)
-			q, okQ := c.number(pm, "q_mvar", true, "the limiter's reactive power at p_mw, in Mvar", nil)
-			if !okP || !okQ {
-				good = false
-				continue
-			}
-			u.Points = append(u.Points, UELPoint{PMW: p, QMvar: q, Line: item.Line})
 		}
 	default:
 		c.errorf(c.u.Line(join(path, "shape")), join(path, "shape"), "must be circle or points; got %q", clip(shape))
@@ -787,12 +771,23 @@ func (c *unitCtx) decodeEndRegion(v *yaml.Node, path string, line int) {
 	}
 	e := &EndRegion{}
 	e.VoltageExponent, _ = c.number(m, "voltage_exponent", false, "the exponent k of the voltage scaling v^k", nil)
+	var good, listed bool
+	e.Points, good, listed = c.curvePoints(m, path, "the lowest admissible reactive power at p_mw, in Mvar")
+	if listed && good {
+		c.u.EndRegion = e
+	}
+}
+
+// curvePoints reads the required list path.points of {p_mw, q_mvar}
+// points; qMeaning says what q_mvar is. listed is false when there is no
+// usable list at all, good false when a point had an error (reported).
+func (c *unitCtx) curvePoints(m *mapping, path, qMeaning string) (ps []CurvePoint, good, listed bool) {
 	items, _, ok := c.list(m, "points", true, "at least two points {p_mw, q_mvar} with increasing p_mw")
 	if !ok {
-		return
+		return nil, false, false
 	}
 	field := join(path, "points")
-	good := true
+	good = true
 	for i, item := range items {
 		pp := fmt.Sprintf("%s[%d]", field, i+1)
 		c.u.lines[pp] = item.Line
@@ -802,16 +797,14 @@ func (c *unitCtx) decodeEndRegion(v *yaml.Node, path string, line int) {
 			continue
 		}
 		p, okP := c.number(pm, "p_mw", true, "the active power of the point in MW", nil)
-		q, okQ := c.number(pm, "q_mvar", true, "the lowest admissible reactive power at p_mw, in Mvar", nil)
+		q, okQ := c.number(pm, "q_mvar", true, qMeaning, nil)
 		if !okP || !okQ {
 			good = false
 			continue
 		}
-		e.Points = append(e.Points, EndRegionPoint{PMW: p, QMvar: q, Line: item.Line})
+		ps = append(ps, CurvePoint{PMW: p, QMvar: q, Line: item.Line})
 	}
-	if good {
-		c.u.EndRegion = e
-	}
+	return ps, good, true
 }
 
 func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {

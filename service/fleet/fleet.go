@@ -197,11 +197,15 @@ type UEL struct {
 	VoltageExponentP, VoltageExponentQ float64 // 2 when not given
 }
 
-// UELPoint is one point of a UEL curve given by points.
-type UELPoint struct {
+// CurvePoint is one point (P, Q) of a curve in the P-Q plane, with the
+// line of the fleet file it was read from.
+type CurvePoint struct {
 	PMW, QMvar float64
 	Line       int
 }
+
+// UELPoint is one point of a UEL curve given by points.
+type UELPoint = CurvePoint
 
 // Stabilizer is a speed-input power system stabilizer: gain and time
 // constants in s (two lead-lag stages; t3_s = t4_s for one).
@@ -244,10 +248,7 @@ type EndRegion struct {
 }
 
 // EndRegionPoint is one point of the end-region curve.
-type EndRegionPoint struct {
-	PMW, QMvar float64
-	Line       int
-}
+type EndRegionPoint = CurvePoint
 
 // CoolantQuantity names what a coolant table is indexed by.
 type CoolantQuantity string
