@@ -404,6 +404,16 @@ func (c *unitCtx) text(m *mapping, key string, required bool, what string) (stri
 }
 
 // list reads the list at key.
+// openItem opens item n (0-based index i) of the list at field as a
+// mapping with the allowed keys, recording its line under its path
+// (field[i+1]); ok is false, and the problem reported, when it is not one.
+func (c *unitCtx) openItem(n *yaml.Node, field string, i int, keys ...string) (m *mapping, itemPath string, ok bool) {
+	itemPath = fmt.Sprintf("%s[%d]", field, i+1)
+	c.u.lines[itemPath] = n.Line
+	m, ok = c.open(n, itemPath, n.Line, keys...)
+	return m, itemPath, ok
+}
+
 func (c *unitCtx) list(m *mapping, key string, required bool, what string) ([]*yaml.Node, int, bool) {
 	field := join(m.path, key)
 	v, line, present := m.get(key)
@@ -789,9 +799,7 @@ func (c *unitCtx) curvePoints(m *mapping, path, qMeaning string) (ps []CurvePoin
 	field := join(path, "points")
 	good = true
 	for i, item := range items {
-		pp := fmt.Sprintf("%s[%d]", field, i+1)
-		c.u.lines[pp] = item.Line
-		pm, ok := c.open(item, pp, item.Line, "p_mw", "q_mvar")
+		pm, _, ok := c.openItem(item, field, i, "p_mw", "q_mvar")
 		if !ok {
 			good = false
 			continue
@@ -832,9 +840,7 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 	field := join(path, "points")
 	good := true
 	for i, item := range items {
-		pp := fmt.Sprintf("%s[%d]", field, i+1)
-		c.u.lines[pp] = item.Line
-		pm, ok := c.open(item, pp, item.Line, "at", "armature", "field")
+		pm, _, ok := c.openItem(item, field, i, "at", "armature", "field")
 		if !ok {
 			good = false
 			continue

@@ -94,9 +94,7 @@ func (c *unitCtx) decodeInverseTime(v *yaml.Node, path string, line int, withCei
 		}
 		field := join(path, "points")
 		for i, item := range items {
-			pp := fmt.Sprintf("%s[%d]", field, i+1)
-			c.u.lines[pp] = item.Line
-			pm, ok := c.open(item, pp, item.Line, xKey, "time_s")
+			pm, _, ok := c.openItem(item, field, i, xKey, "time_s")
 			if !ok {
 				good = false
 				continue

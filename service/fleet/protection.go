@@ -2,7 +2,6 @@ package fleet
 
 import (
 	"errors"
-	"fmt"
 
 	"go.yaml.in/yaml/v3"
 
@@ -88,9 +87,7 @@ func (c *unitCtx) decodeLossOfField(v *yaml.Node, path string, line int) *LossOf
 	}
 	field := join(path, "zones")
 	for i, item := range items {
-		zp := fmt.Sprintf("%s[%d]", field, i+1)
-		c.u.lines[zp] = item.Line
-		zm, ok := c.open(item, zp, item.Line, "offset_ohm", "diameter_ohm", "offset_pu", "diameter_pu", "delay_s")
+		zm, zp, ok := c.openItem(item, field, i, "offset_ohm", "diameter_ohm", "offset_pu", "diameter_pu", "delay_s")
 		if !ok {
 			good = false
 			continue
@@ -161,9 +158,7 @@ func (c *unitCtx) decodeVHzRelay(v *yaml.Node, path string, line int) *VHzRelay 
 	field := join(path, "stages")
 	good := true
 	for i, item := range items {
-		sp := fmt.Sprintf("%s[%d]", field, i+1)
-		c.u.lines[sp] = item.Line
-		sm, ok := c.open(item, sp, item.Line, "pickup_pu", "delay_s")
+		sm, _, ok := c.openItem(item, field, i, "pickup_pu", "delay_s")
 		if !ok {
 			good = false
 			continue
