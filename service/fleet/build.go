@@ -1,8 +1,12 @@
 package fleet
 
 import (
+	"context"
 	"fmt"
 	"math"
+	"runtime"
+	"sync"
+	"sync/atomic"
 
 	"github.com/genvelope/genvelope/limits"
 )
@@ -81,19 +85,20 @@ func (u *Unit) Params() limits.Params {
 	return p
 }
 
-// build makes the engine model of a unit, reporting limits.New's
+// build makes the engine model of a unit (its avr table shared through
+// tables, which may be nil), reporting limits.New's
 // findings at the lines of their keys, and checks the model against the
 // unit's own rating (warnings: the unit is monitored all the same). A
 // unit that already has errors is checked too, so that every problem is
 // reported at once, but only the findings about values that were read
 // without a problem (the others would be echoes).
-func (d *decoder) build(c *unitCtx) {
+func (c *unitCtx) build(tables *limits.Tables) {
 	u := c.u
 	hadErrors := c.bad
 	if hadErrors && !(c.ok["rating.mva"] && c.ok["rating.kv"] && c.ok["field.air_gap_a"]) {
 		return // without the base every value in MW or A converts wrong
 	}
-	m, err := limits.New(u.Params())
+	m, err := limits.NewShared(u.Params(), tables)
 	if err != nil {
 		pes := limits.ParamErrors(err)
 		for _, pe := range pes {
@@ -173,4 +178,43 @@ func boundMvar(b limits.Base, x limits.Bound) string {
 		return "no value"
 	}
 	return mw(b.PowerMW(x.V))
+}
+
+// buildAll builds the engine model of every unit (build), on up to
+// GOMAXPROCS goroutines: a 10,000-unit avr fleet spends most of its load
+// in limits.New's stability tables. Units of one design share their table
+// (limits.Tables, one per load). Each unit's findings are collected apart
+// and appended in file order, so the diagnostics are those of a build in
+// file order. It returns ctx's error when ctx ends first; every goroutine
+// has ended when it returns.
+func (d *decoder) buildAll(ctx context.Context) error {
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	tables := limits.NewTables()
+	own := make([]*decoder, len(d.units))
+	var next atomic.Int64
+	var wg sync.WaitGroup
+	for range min(runtime.GOMAXPROCS(0), len(d.units)) {
+		wg.Go(func() {
+			for ctx.Err() == nil {
+				i := int(next.Add(1)) - 1
+				if i >= len(d.units) {
+					return
+				}
+				c := d.units[i]
+				own[i] = &decoder{file: d.file, fleet: d.fleet}
+				c.d = own[i]
+				c.build(tables)
+			}
+		})
+	}
+	wg.Wait()
+	for i, c := range d.units {
+		c.d = d
+		if own[i] != nil {
+			d.diags = append(d.diags, own[i].diags...)
+		}
+	}
+	return ctx.Err()
 }
