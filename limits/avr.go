@@ -1,6 +1,9 @@
 package limits
 
-import "math"
+import (
+	"math"
+	"slices"
+)
 
 // The stability limit on the avr basis: the topmost-stable-interval rule
 // (envelope.md, "Which stable interval, and the limit") over the
@@ -883,7 +886,20 @@ const (
 // margin falls to zero, and one that does so inside a step without
 // showing at its ends and middle is neither flat nor a parabola there.
 func (u *Unit) tabScanDown(c *charParts, p, v float64, a tabSample, floor float64) (st, un tabSample, found bool, err error) {
-	test := func(q float64) (tabSample, error) { return u.tabTest(c, p, q, v) }
+	// The stable samples, by q descending, for probeMinima: a sample is
+	// tested between two it lies next to, so it moves a few places.
+	seen := make([]tabSample, 1, 64)
+	seen[0] = a
+	test := func(q float64) (tabSample, error) {
+		s, err := u.tabTest(c, p, q, v)
+		if err == nil && s.stable {
+			seen = append(seen, s)
+			for j := len(seen) - 1; j > 0 && seen[j-1].q < s.q; j-- {
+				seen[j-1], seen[j] = seen[j], seen[j-1]
+			}
+		}
+		return s, err
+	}
 	var check func(a, b tabSample) (tabSample, tabSample, bool, error)
 	// narrow closes in on the first unstable q in [b, a] (a stable, b
 	// unstable) to a bracket of tabScanStep, halving it and looking into
@@ -924,20 +940,96 @@ func (u *Unit) tabScanDown(c *charParts, p, v float64, a tabSample, floor float6
 		}
 		return check(m, b)
 	}
-	for a.q > floor {
-		b, err := test(math.Max(a.q-tabCoarseStep, floor))
-		if err != nil {
-			return a, b, false, err
+	scan := func(a tabSample) (tabSample, tabSample, bool, error) {
+		for a.q > floor {
+			b, err := test(math.Max(a.q-tabCoarseStep, floor))
+			if err != nil {
+				return a, b, false, err
+			}
+			if !b.stable {
+				return narrow(a, b)
+			}
+			if st, un, ok, err := check(a, b); ok || err != nil {
+				return st, un, ok, err
+			}
+			a = b
 		}
-		if !b.stable {
-			return narrow(a, b)
-		}
-		if st, un, ok, err := check(a, b); ok || err != nil {
-			return st, un, ok, err
-		}
-		a = b
+		return a, a, false, nil
 	}
-	return a, a, false, nil
+	if st, un, found, err = scan(a); err != nil {
+		return st, un, found, err
+	}
+	// A margin's dip below zero narrower than the samples shows as a
+	// local minimum of the margin: probe there.
+	sorted := slices.Clone(seen) // probeMinima's tests add to seen
+	pr, ok, err := probeMinima(test, sorted)
+	if err != nil || !ok || found && pr.q <= un.q {
+		return st, un, found, err
+	}
+	// The first unstable q lies between pr and the stable sample above it.
+	above := sorted[0]
+	for _, x := range sorted {
+		if x.q > pr.q && x.q < above.q {
+			above = x
+		}
+	}
+	return narrow(above, pr)
+}
+
+// probeMinima looks at every local minimum of a margin among the stable
+// samples s (sorted by q, descending) for a dip below zero between them:
+// it probes the vertex of the parabola through the minimum and its two
+// neighbours while the parabola promises a bottom below 0.9 of the
+// smallest sample, up to four times a minimum, moving the three points in
+// on the bottom (successive parabolic interpolation). ok: an unstable
+// probe pr (the highest found).
+func probeMinima(test func(float64) (tabSample, error), s []tabSample) (pr tabSample, ok bool, err error) {
+	var margins tabSample
+	for i := range margins.f {
+		for k := 1; k+1 < len(s); k++ {
+			if f1 := s[k].f[i]; !(f1 > 0 && f1 < s[k-1].f[i] && f1 <= s[k+1].f[i]) || ok && s[k-1].q <= pr.q {
+				continue
+			}
+			x := [3]tabSample{s[k-1], s[k], s[k+1]}
+			for range 4 {
+				q0, q1, q2 := x[0].q, x[1].q, x[2].q
+				f0, f1, f2 := x[0].f[i], x[1].f[i], x[2].f[i]
+				// The parabola f = A q^2 + B q + C through the three points.
+				d := (q0 - q1) * (q0 - q2) * (q1 - q2)
+				A := (q2*(f1-f0) + q1*(f0-f2) + q0*(f2-f1)) / d
+				B := (q2*q2*(f0-f1) + q1*q1*(f2-f0) + q0*q0*(f1-f2)) / d
+				if !(A > 0) {
+					break
+				}
+				qv := -B / (2 * A)
+				fv := f1 - A*(qv-q1)*(qv-q1) // the parabola at its vertex
+				if !(fv < 0.9*f1) || !(qv > q2 && qv < q0) || math.Abs(qv-q1) < tabTol {
+					break
+				}
+				y, err := test(qv)
+				if err != nil {
+					return pr, false, err
+				}
+				if !y.stable {
+					if !ok || y.q > pr.q {
+						pr, ok = y, true
+					}
+					break
+				}
+				switch {
+				case qv > q1 && y.f[i] < f1:
+					x = [3]tabSample{x[0], y, x[1]}
+				case qv > q1:
+					x = [3]tabSample{y, x[1], x[2]}
+				case y.f[i] < f1:
+					x = [3]tabSample{x[1], y, x[2]}
+				default:
+					x = [3]tabSample{x[0], x[1], y}
+				}
+			}
+		}
+	}
+	return pr, ok, nil
 }
 
 // suspicious says whether a margin, known at the ends a, b and the
