@@ -3,11 +3,15 @@ package fleet
 import (
 	"bytes"
 	"context"
+	"errors"
 	"flag"
 	"fmt"
 	"os"
 	"path/filepath"
+	"reflect"
 	"runtime"
+	"strings"
+	"sync/atomic"
 	"testing"
 	"time"
 )
@@ -176,5 +180,66 @@ func TestWriteAVRFleet(t *testing.T) {
 			t.Fatal(err)
 		}
 		t.Logf("wrote %s", path)
+	}
+}
+
+// The models are built concurrently, but the fleet and its findings
+// (errors of limits.New and warnings of the rated-point checks, on
+// several units) are those of a build on one goroutine, whatever the
+// number of workers.
+func TestBuildConcurrentIsSequential(t *testing.T) {
+	data := string(avrFleetYAML(40, false, 0))
+	data = strings.ReplaceAll(data, "rated_a: 870", "rated_a: 830")               // a warning on every 4th unit
+	data = strings.Replace(data, "xd_transient: 0.27", "xd_transient: 2.5", 3)    // errors of limits.New
+	data = strings.Replace(data, "td0_transient_s: 6.1", "td0_transient_s: 0", 2) // errors of the avr basis
+	one, ds1, err := parse(context.Background(), "mixed.yaml", []byte(data), 1)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if ds1.Count(Error) != 5 || ds1.Count(Warning) != 10 {
+		t.Fatalf("want 5 errors and 10 warnings, got\n%s", ds1)
+	}
+	for _, workers := range []int{2, 3, 8} {
+		f, ds, err := parse(context.Background(), "mixed.yaml", []byte(data), workers)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if !reflect.DeepEqual(ds, ds1) {
+			t.Errorf("%d workers: findings\n%s\nwant\n%s", workers, ds, ds1)
+		}
+		for i, u := range f.Units {
+			if (u.Model == nil) != (one.Units[i].Model == nil) {
+				t.Errorf("%d workers: unit %s has a model %v, on one worker %v", workers, u.ID, u.Model != nil, one.Units[i].Model != nil)
+			}
+		}
+	}
+}
+
+// stopAfter is a context whose Err is Canceled from its n-th call on.
+type stopAfter struct {
+	context.Context
+	n atomic.Int64
+}
+
+func (c *stopAfter) Err() error {
+	if c.n.Add(-1) < 0 {
+		return context.Canceled
+	}
+	return nil
+}
+
+// A load stopped by its context returns the context's error and no
+// fleet, whether it stops before the build or in the middle of it.
+func TestParseContextStops(t *testing.T) {
+	data := avrFleetYAML(16, true, 0)
+	done, cancel := context.WithCancel(context.Background())
+	cancel()
+	mid := &stopAfter{Context: context.Background()}
+	mid.n.Store(5)
+	for name, ctx := range map[string]context.Context{"before": done, "midway": mid} {
+		f, ds, err := ParseContext(ctx, "avr.yaml", data)
+		if !errors.Is(err, context.Canceled) || f != nil || ds != nil {
+			t.Errorf("%s: got %v, %d findings, fleet %v; want context.Canceled and nothing", name, err, len(ds), f != nil)
+		}
 	}
 }

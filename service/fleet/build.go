@@ -4,7 +4,6 @@ import (
 	"context"
 	"fmt"
 	"math"
-	"runtime"
 	"sync"
 	"sync/atomic"
 
@@ -181,13 +180,13 @@ func boundMvar(b limits.Base, x limits.Bound) string {
 }
 
 // buildAll builds the engine model of every unit (build), on up to
-// GOMAXPROCS goroutines: a 10,000-unit avr fleet spends most of its load
-// in limits.New's stability tables. Units of one design share their table
-// (limits.Tables, one per load). Each unit's findings are collected apart
-// and appended in file order, so the diagnostics are those of a build in
-// file order. It returns ctx's error when ctx ends first; every goroutine
-// has ended when it returns.
-func (d *decoder) buildAll(ctx context.Context) error {
+// workers goroutines (the loader passes GOMAXPROCS): a 10,000-unit avr
+// fleet spends most of its load in limits.New's stability tables. Units
+// of one design share their table (limits.Tables, one per load). Each
+// unit's findings are collected apart and appended in file order, so the
+// diagnostics are those of a build in file order. It returns ctx's error
+// when ctx ends first; every goroutine has ended when it returns.
+func (d *decoder) buildAll(ctx context.Context, workers int) error {
 	if err := ctx.Err(); err != nil {
 		return err
 	}
@@ -195,7 +194,7 @@ func (d *decoder) buildAll(ctx context.Context) error {
 	own := make([]*decoder, len(d.units))
 	var next atomic.Int64
 	var wg sync.WaitGroup
-	for range min(runtime.GOMAXPROCS(0), len(d.units)) {
+	for range max(1, min(workers, len(d.units))) {
 		wg.Go(func() {
 			for ctx.Err() == nil {
 				i := int(next.Add(1)) - 1

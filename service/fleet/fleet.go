@@ -14,6 +14,7 @@ import (
 	"context"
 	"fmt"
 	"os"
+	"runtime"
 	"strings"
 
 	"github.com/genvelope/genvelope/limits"
@@ -317,6 +318,11 @@ func Parse(name string, data []byte) (*Fleet, Diagnostics) {
 // built concurrently (buildAll); the result, diagnostics included, is
 // the same as one built in file order.
 func ParseContext(ctx context.Context, name string, data []byte) (*Fleet, Diagnostics, error) {
+	return parse(ctx, name, data, runtime.GOMAXPROCS(0))
+}
+
+// parse is ParseContext building the models on up to workers goroutines.
+func parse(ctx context.Context, name string, data []byte, workers int) (*Fleet, Diagnostics, error) {
 	d := &decoder{file: name}
 	f := &Fleet{File: name, byID: map[string]*Unit{}, Alarms: alarm.Defaults()}
 	d.document(data, f)
@@ -325,7 +331,7 @@ func ParseContext(ctx context.Context, name string, data []byte) (*Fleet, Diagno
 			u.Alarms = f.Alarms
 		}
 	}
-	if err := d.buildAll(ctx); err != nil {
+	if err := d.buildAll(ctx, workers); err != nil {
 		return nil, nil, err
 	}
 	d.diags.sortByLine()
