@@ -2,7 +2,6 @@ package limits
 
 import (
 	"math"
-	"slices"
 )
 
 // The stability limit on the avr basis: the topmost-stable-interval rule
@@ -499,6 +498,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	n := t.np * t.nv
 	low, top, moved, island := make([]float64, n), make([]float64, n), make([]bool, n), make([]bool, n)
 	c := &u.avrChar
+	scratch := tabScratch{seen: make([]tabSample, 0, 128), sorted: make([]tabSample, 0, 128)}
 	for iv := range t.nv {
 		v := tabVLo + float64(iv)*tabVStep
 		for ip := range t.np {
@@ -506,7 +506,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
 			stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
 			k := iv*t.np + ip
-			it := u.tabInterval(c, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
+			it := u.tabInterval(c, &scratch, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
 			if it.err != nil {
 				return nil, it.err
 			}
@@ -524,7 +524,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	if err := t.markScan(island, low, top, moved, func(p, v float64) (interval, bool) {
 		qArm := math.Sqrt(math.Max(v*v-p*p, 0))
 		stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
-		it := u.tabInterval(c, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
+		it := u.tabInterval(c, &scratch, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
 		return it, it.err == nil && it.low.OK && hasIsland(stable, it.low.V, -qArm-tabDeep-scanFloor)
 	}); err != nil {
 		return nil, err
@@ -548,13 +548,24 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	return t, nil
 }
 
+// tabScratch is the build's reusable space for tabScanDown's samples.
+type tabScratch struct {
+	seen, sorted []tabSample
+}
+
 // tabInterval is the rule at one point of the table's grid (p, v), below
 // q_max = qTop, the top looked for down to qBot and the bottom down to
 // floor: where q_max is stable (nearly always) the band detector
 // tabScanDown finds the first unstable q, then bisection to tabTol; where
-// it is not, the rule with the plain scan of tabScanStep (topIntervalTo).
-func (u *Unit) tabInterval(c *charParts, p, v, qTop, qBot, floor float64) interval {
+// it is not, and always with zeta_min > 0, the rule with the plain scan
+// of tabScanStep (topIntervalTo).
+func (u *Unit) tabInterval(c *charParts, sc *tabScratch, p, v, qTop, qBot, floor float64) interval {
 	stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
+	if u.p.ZetaMin > 0 {
+		// The damping rule is decided by eigenvalues, which give no
+		// margins: the plain scan.
+		return topIntervalTo(stable, qTop, qBot, floor, tabScanStep, tabTol)
+	}
 	s, err := u.tabTest(c, p, qTop, v)
 	if err != nil {
 		return interval{err: err}
@@ -562,7 +573,7 @@ func (u *Unit) tabInterval(c *charParts, p, v, qTop, qBot, floor float64) interv
 	if !s.stable {
 		return topIntervalTo(stable, qTop, qBot, floor, tabScanStep, tabTol)
 	}
-	st, un, found, err := u.tabScanDown(c, p, v, s, floor)
+	st, un, found, err := u.tabScanDown(c, sc, p, v, s, floor)
 	if err != nil {
 		return interval{err: err}
 	}
@@ -885,11 +896,11 @@ const (
 // than tabBend (suspicious): a band of instability opens only where a
 // margin falls to zero, and one that does so inside a step without
 // showing at its ends and middle is neither flat nor a parabola there.
-func (u *Unit) tabScanDown(c *charParts, p, v float64, a tabSample, floor float64) (st, un tabSample, found bool, err error) {
+func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSample, floor float64) (st, un tabSample, found bool, err error) {
 	// The stable samples, by q descending, for probeMinima: a sample is
 	// tested between two it lies next to, so it moves a few places.
-	seen := make([]tabSample, 1, 64)
-	seen[0] = a
+	seen := append(sc.seen[:0], a)
+	defer func() { sc.seen = seen[:0] }()
 	test := func(q float64) (tabSample, error) {
 		s, err := u.tabTest(c, p, q, v)
 		if err == nil && s.stable {
@@ -961,7 +972,8 @@ func (u *Unit) tabScanDown(c *charParts, p, v float64, a tabSample, floor float6
 	}
 	// A margin's dip below zero narrower than the samples shows as a
 	// local minimum of the margin: probe there.
-	sorted := slices.Clone(seen) // probeMinima's tests add to seen
+	sorted := append(sc.sorted[:0], seen...) // probeMinima's tests add to seen
+	sc.sorted = sorted[:0]
 	pr, ok, err := probeMinima(test, sorted)
 	if err != nil || !ok || found && pr.q <= un.q {
 		return st, un, found, err

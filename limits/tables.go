@@ -1,6 +1,9 @@
 package limits
 
-import "sync"
+import (
+	"sync"
+	"unsafe"
+)
 
 // Tables shares the avr basis' stability tables (stabTable) among units
 // whose table-relevant parameters (tableKey) are identical: sister units
@@ -94,4 +97,16 @@ func (ts *Tables) table(u *Unit, build func() (*stabTable, error)) (*stabTable, 
 // alone); only the work and the memory are shared.
 func NewShared(p Params, ts *Tables) (*Unit, error) {
 	return newUnit(p, ts)
+}
+
+// TableBytes returns the size in bytes of the avr basis' stability table
+// the unit reads (0 on the manual basis): its arrays and header, not the
+// unit. Units built through one Tables with the same table parameters
+// share one table.
+func (u *Unit) TableBytes() int {
+	t := u.avrTab
+	if t == nil {
+		return 0
+	}
+	return int(unsafe.Sizeof(*t)) + 2*(len(t.low)+len(t.top)) + len(t.moved) + len(t.smooth) + len(t.scan)
 }
