@@ -355,7 +355,8 @@ func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error)
 // criterion without the shift first (Re < 0), and with it (Re <= 1e-7
 // s^-1) only where the first is not sure, as at an undamped mode. The two
 // differ only for a mode with 0 <= Re <= 1e-7 s^-1, within some 1e-6 pu
-// of a boundary, far inside the table's tolerance.
+// of a boundary, far inside the table's tolerance. With zeta_min > 0 the
+// criterion decides where it can (see below), the eigenvalues elsewhere.
 func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 	k := u.heffronPhillips(p, q, v, false)
 	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
@@ -368,6 +369,21 @@ func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 		}
 		if s, sure := hurwitz(cp, ssGrowth); sure {
 			return s, nil
+		}
+	} else if z := u.p.ZetaMin; z < 1 {
+		// The damping rule by the Routh-Hurwitz criterion where it
+		// decides: a root growing (Re > 1e-7 s^-1) is unstable under it
+		// too, and with every root left of -sigma, sigma = zeta_min W /
+		// sqrt(1 - zeta_min^2) (W the top of the electromechanical band),
+		// every mode of the band has a damping ratio above zeta_min
+		// (-Re/|lambda| >= sigma/sqrt(sigma^2 + W^2) = zeta_min) and none
+		// grows. Between the two, the eigenvalues.
+		cp := c.charPoly(&k)
+		if s, sure := hurwitz(cp, ssGrowth); sure && !s {
+			return false, nil
+		}
+		if s, sure := hurwitz(cp, -z*emBandHi/math.Sqrt(1-z*z)); sure && s {
+			return true, nil
 		}
 	}
 	return u.avrStable(p, q, v)

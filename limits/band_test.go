@@ -2,6 +2,7 @@ package limits
 
 import (
 	"math"
+	"math/rand/v2"
 	"testing"
 )
 
@@ -117,6 +118,43 @@ func TestTableFindsNarrowBand(t *testing.T) {
 		if math.Abs(got-hi) > tabTol+tabQuant {
 			t.Errorf("band [%.5f, %.5f] (%.4f pu wide, K_A %.4f): the table's q_stability at the node is %.5f, want the band's top %.5f",
 				lo, hi, hi-lo, u.p.Exciter.KA, got, hi)
+		}
+	}
+}
+
+// With zeta_min > 0 the table's test (avrStableTab: the Routh-Hurwitz
+// criterion where a growing root or a margin left of the damping sector
+// decides, the eigenvalues elsewhere) gives the rule's verdict by the
+// eigenvalues (avrStable) at random points, except within 1e-4 pu of a
+// boundary.
+func TestZetaMinTabIsEigenRule(t *testing.T) {
+	rng := rand.New(rand.NewPCG(21, 22))
+	n := 4000
+	if testing.Short() {
+		n = 500
+	}
+	for _, u := range avrUnits(t) {
+		p := u.Params()
+		for _, zeta := range []float64{0.03, 0.1} {
+			p.ZetaMin = zeta
+			uz := mustNew(t, p)
+			bad := 0
+			for range n {
+				pp, q, v := 1.1*rng.Float64(), -1.2+2.2*rng.Float64(), 0.85+0.3*rng.Float64()
+				got, err1 := uz.avrStableTab(&uz.avrChar, pp, q, v)
+				want, err2 := uz.avrStable(pp, q, v)
+				if err1 != nil || err2 != nil || got == want {
+					continue
+				}
+				lo, _ := uz.avrStable(pp, q-1e-4, v)
+				hi, _ := uz.avrStable(pp, q+1e-4, v)
+				if lo == hi {
+					bad++
+					if bad <= 3 {
+						t.Errorf("zeta_min %v at p %.4f q %.4f v %.4f: table test %v, eigenvalues %v", zeta, pp, q, v, got, want)
+					}
+				}
+			}
 		}
 	}
 }
