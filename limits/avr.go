@@ -266,37 +266,41 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 // vol. 2, ch. XV, from memory).
 func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure bool) {
 	n := c.n
-	var b [maxSSStates + 1]float64 // descending
-	for i := 0; i <= n; i++ {
-		b[i] = c.c[n-i]
-	}
-	if b[0] < 0 {
-		for i := 0; i <= n; i++ {
-			b[i] = -b[i]
-		}
-	}
-	// Taylor shift: b(z) <- b(z + sigma).
-	for i := 0; sigma != 0 && i < n; i++ {
-		for j := 1; j <= n-i; j++ {
-			b[j] += sigma * b[j-1]
-		}
-	}
-	if b[0] <= 0 {
-		return false, false
-	}
 	// The array's rows in a ring of three: r0, r1 the rows before, nx the
-	// row formed from them; entries beyond a row's end are zero.
+	// row formed from them; entries beyond a row's end are zero. The first
+	// two rows are the coefficients, descending, alternately, with the
+	// sign that makes the leading one positive.
 	var r [3][maxSSStates/2 + 2]float64
-	for i := 0; i <= n; i += 2 {
-		r[0][i/2] = b[i]
+	sg := 1.0
+	if c.c[n] < 0 {
+		sg = -1
 	}
-	for i := 1; i <= n; i += 2 {
-		r[1][i/2] = b[i]
+	if sigma == 0 {
+		for i := 0; i <= n; i++ {
+			r[i&1][i>>1] = sg * c.c[n-i]
+		}
+	} else {
+		var b [maxSSStates + 1]float64 // descending
+		for i := 0; i <= n; i++ {
+			b[i] = sg * c.c[n-i]
+		}
+		// Taylor shift: b(z) <- b(z + sigma).
+		for i := 0; i < n; i++ {
+			for j := 1; j <= n-i; j++ {
+				b[j] += sigma * b[j-1]
+			}
+		}
+		for i := 0; i <= n; i++ {
+			r[i&1][i>>1] = b[i]
+		}
+	}
+	if !(r[0][0] > 0) {
+		return false, false
 	}
 	r0, r1, nx := &r[0], &r[1], &r[2]
 	scale := math.Abs(r1[0])
 	if col != nil {
-		col[0] = b[0]
+		col[0] = r[0][0]
 	}
 	stable = true
 	for row := 1; row <= n; row++ {
