@@ -183,21 +183,23 @@ func TestWriteAVRFleet(t *testing.T) {
 	}
 }
 
-// The models are built concurrently, but the fleet and its findings
-// (errors of limits.New and warnings of the rated-point checks, on
-// several units) are those of a build on one goroutine, whatever the
-// number of workers.
+// The units are decoded and their models built concurrently, but the
+// fleet and its findings (errors of the decoder, a duplicate id, errors
+// of limits.New and warnings of the rated-point checks, on several units)
+// are those of one goroutine, whatever the number of workers.
 func TestBuildConcurrentIsSequential(t *testing.T) {
 	data := string(avrFleetYAML(40, false, 0))
 	data = strings.ReplaceAll(data, "rated_a: 870", "rated_a: 830")               // a warning on every 4th unit
 	data = strings.Replace(data, "xd_transient: 0.27", "xd_transient: 2.5", 3)    // errors of limits.New
 	data = strings.Replace(data, "td0_transient_s: 6.1", "td0_transient_s: 0", 2) // errors of the avr basis
+	data = strings.Replace(data, "id: gen-00021", "id: gen-00002", 1)             // a duplicate id
+	data = strings.Replace(data, "poles: 36", "poles: x", 2)                      // errors of the decoder
 	one, ds1, err := parse(context.Background(), "mixed.yaml", []byte(data), 1)
 	if err != nil {
 		t.Fatal(err)
 	}
-	if ds1.Count(Error) != 5 || ds1.Count(Warning) != 10 {
-		t.Fatalf("want 5 errors and 10 warnings, got\n%s", ds1)
+	if ds1.Count(Error) != 8 || ds1.Count(Warning) != 10 {
+		t.Fatalf("want 8 errors and 10 warnings, got\n%s", ds1)
 	}
 	for _, workers := range []int{2, 3, 8} {
 		f, ds, err := parse(context.Background(), "mixed.yaml", []byte(data), workers)
@@ -206,6 +208,9 @@ func TestBuildConcurrentIsSequential(t *testing.T) {
 		}
 		if !reflect.DeepEqual(ds, ds1) {
 			t.Errorf("%d workers: findings\n%s\nwant\n%s", workers, ds, ds1)
+		}
+		if len(f.Units) != len(one.Units) {
+			t.Fatalf("%d workers: %d units, on one worker %d", workers, len(f.Units), len(one.Units))
 		}
 		for i, u := range f.Units {
 			if (u.Model == nil) != (one.Units[i].Model == nil) {

@@ -8,6 +8,8 @@ import (
 	"math"
 	"strconv"
 	"strings"
+	"sync"
+	"sync/atomic"
 
 	"go.yaml.in/yaml/v3"
 
@@ -25,10 +27,11 @@ import (
 // report what is missing or wrong.
 
 type decoder struct {
-	file  string
-	diags Diagnostics
-	units []*unitCtx
-	fleet *Fleet
+	file    string
+	diags   Diagnostics
+	units   []*unitCtx
+	fleet   *Fleet
+	workers int // goroutines for decoding and building the units (at least 1)
 }
 
 // unitCtx is the state of decoding one unit.
@@ -460,17 +463,22 @@ func (d *decoder) decodeUnits(v *yaml.Node, line int) {
 		d.errorf(line, "units", "the list is empty; a fleet file needs at least one unit")
 		return
 	}
-	firstLine := map[string]int{}
-	budget := maxNodes
-	for i, item := range n.Content {
+	items := n.Content
+	budget, cut := maxNodes, len(items)
+	for i, item := range items {
 		if budget -= countNodes(item, budget); budget < 0 {
-			d.errorf(item.Line, "units", "the units expand to more than %d YAML nodes (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
-			return
+			cut = i
+			break
 		}
-		c := d.decodeUnit(i, item)
+	}
+	cs, own := d.decodeAll(items[:cut])
+	firstLine := map[string]int{}
+	for i, c := range cs {
+		d.diags = append(d.diags, own[i].diags...)
 		if c == nil {
 			continue
 		}
+		c.d = d
 		d.units = append(d.units, c)
 		if c.u.ID == "" {
 			continue
@@ -483,6 +491,33 @@ func (d *decoder) decodeUnits(v *yaml.Node, line int) {
 		d.fleet.Units = append(d.fleet.Units, c.u)
 		d.fleet.byID[c.u.ID] = c.u
 	}
+	if cut < len(items) {
+		d.errorf(items[cut].Line, "units", "the units expand to more than %d YAML nodes (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
+	}
+}
+
+// decodeAll decodes the units of items (decodeUnit) on up to d.workers
+// goroutines, each into a decoder of its own (own[i] holds unit i's
+// findings), for decodeUnits to merge in file order: the same result as
+// one after the other.
+func (d *decoder) decodeAll(items []*yaml.Node) (cs []*unitCtx, own []*decoder) {
+	cs, own = make([]*unitCtx, len(items)), make([]*decoder, len(items))
+	var next atomic.Int64
+	var wg sync.WaitGroup
+	for range max(1, min(d.workers, len(items))) {
+		wg.Go(func() {
+			for {
+				i := int(next.Add(1)) - 1
+				if i >= len(items) {
+					return
+				}
+				own[i] = &decoder{file: d.file, fleet: d.fleet}
+				cs[i] = own[i].decodeUnit(i, items[i])
+			}
+		})
+	}
+	wg.Wait()
+	return cs, own
 }
 
 // decodeUnit decodes the i-th unit of the list.

@@ -323,7 +323,7 @@ func ParseContext(ctx context.Context, name string, data []byte) (*Fleet, Diagno
 
 // parse is ParseContext building the models on up to workers goroutines.
 func parse(ctx context.Context, name string, data []byte, workers int) (*Fleet, Diagnostics, error) {
-	d := &decoder{file: name}
+	d := &decoder{file: name, workers: workers}
 	f := &Fleet{File: name, byID: map[string]*Unit{}, Alarms: alarm.Defaults()}
 	d.document(data, f)
 	for _, u := range f.Units {
