@@ -894,15 +894,16 @@ func (u *Unit) tabTest(c *charParts, p, q, v float64) (tabSample, error) {
 // margins (tabSample, in logarithms of their size) dip or bend by more
 // than tabBend (a factor of 1.65), or change sign, is halved, down to
 // tabFineStep; then every local minimum of a margin is probed
-// (probeMinima). Measured on 120 seeded random units (the kind of
-// TestRandomUnitsFastAnswer), 52,506 points at the nodes and centres of a
-// grid twice as fine as the table's, against a scan in 0.001 pu steps:
-// no boundary missed (the 0.04 pu scan it replaced missed 2), 20 tests a
-// point against that scan's 52, both with the bisection. Steps of 0.2 pu
-// took 27 tests, of 0.6 pu 18 (no miss on 60 units); without the probes
-// 0.32 pu steps missed 3 of 8,000 points.
+// (probeMinima). Measured against a scan in 0.001 pu steps at the nodes
+// and centres of a grid twice as fine as the table's, on seeded random
+// units of TestRandomUnitsFastAnswer's kind: 100 units (44,360 points,
+// its seed, before the probes) and 80 of another seed (34,386 points),
+// no boundary missed that the 0.04 pu scan it replaced found (that scan
+// missed 5 the detector found), with 27 to 31 tests a point against the
+// scan's 52, both with the bisection. Steps of 0.4 pu (20 tests) missed
+// 2 boundaries of one unit of the second set, 0.6 pu (18 tests) 3.
 const (
-	tabCoarseStep = 0.4
+	tabCoarseStep = 0.2
 	tabFineStep   = 0.02
 	tabBend       = 0.5
 )
