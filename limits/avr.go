@@ -395,9 +395,9 @@ func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 
 // stabTable is q_stability on the avr basis over a grid of p and v,
 // built once in New, for the per-sample path: the rule is applied at
-// every node with the Routh-Hurwitz test, a scan of tabScanStep and a
-// bisection to tabTol, with continuation along p (nearInterval), and
-// read by bilinear interpolation; see fastInterval for how its answer is
+// every node with the Routh-Hurwitz test, the band detector of
+// tabScanDown and regula falsi to tabTol (tabInterval), and read by
+// bilinear interpolation; see fastInterval for how its answer is
 // used and checked. Cells where the stable set is not one interval
 // (markScan) are not read: the per-sample path applies the rule there.
 type stabTable struct {
@@ -489,11 +489,13 @@ func toQ16(q float64) int16 {
 
 // The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
 // Its spacing keeps bilinear interpolation within 0.002 pu of the direct
-// computation over the chart (TestAVRTableAgrees). The build's scan step
-// tabScanStep (twice the direct scan's, our choice) sees the unstable
-// bands of high-gain slow exciters that a 0.2 pu step missed (a band
-// 0.05-0.3 pu wide between q_max and the limit, TestRandomUnitsFastAnswer);
-// the islands below the limit are looked for at tabIslandStep.
+// computation over the chart (TestAVRTableAgrees). The plain scan's step
+// tabScanStep (twice the direct scan's, our choice; where q_max is
+// unstable and with zeta_min > 0) sees the unstable bands of high-gain
+// slow exciters that a 0.2 pu step missed (a band 0.05-0.3 pu wide
+// between q_max and the limit, TestRandomUnitsFastAnswer); elsewhere the
+// band detector (tabScanDown) finds narrower ones still. The islands
+// below the limit are looked for at tabIslandStep.
 const (
 	tabPMax       = 1.2
 	tabPStep      = 0.05
