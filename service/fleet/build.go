@@ -192,23 +192,12 @@ func (d *decoder) buildAll(ctx context.Context, workers int) error {
 	}
 	tables := limits.NewTables()
 	own := make([]*decoder, len(d.units))
-	var next atomic.Int64
-	var wg sync.WaitGroup
-	for range max(1, min(workers, len(d.units))) {
-		wg.Go(func() {
-			for ctx.Err() == nil {
-				i := int(next.Add(1)) - 1
-				if i >= len(d.units) {
-					return
-				}
-				c := d.units[i]
-				own[i] = &decoder{file: d.file, fleet: d.fleet}
-				c.d = own[i]
-				c.build(tables)
-			}
-		})
-	}
-	wg.Wait()
+	inParallel(ctx, len(d.units), workers, func(i int) {
+		c := d.units[i]
+		own[i] = &decoder{file: d.file, fleet: d.fleet}
+		c.d = own[i]
+		c.build(tables)
+	})
 	for i, c := range d.units {
 		c.d = d
 		if own[i] != nil {
@@ -216,4 +205,24 @@ func (d *decoder) buildAll(ctx context.Context, workers int) error {
 		}
 	}
 	return ctx.Err()
+}
+
+// inParallel calls do(i) for i in [0, n) on up to workers goroutines
+// (at least one), each taking the next i, until ctx ends; every goroutine
+// has ended when it returns.
+func inParallel(ctx context.Context, n, workers int, do func(i int)) {
+	var next atomic.Int64
+	var wg sync.WaitGroup
+	for range max(1, min(workers, n)) {
+		wg.Go(func() {
+			for ctx.Err() == nil {
+				i := int(next.Add(1)) - 1
+				if i >= n {
+					return
+				}
+				do(i)
+			}
+		})
+	}
+	wg.Wait()
 }

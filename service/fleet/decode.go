@@ -2,14 +2,13 @@ package fleet
 
 import (
 	"bytes"
+	"context"
 	"errors"
 	"fmt"
 	"io"
 	"math"
 	"strconv"
 	"strings"
-	"sync"
-	"sync/atomic"
 
 	"go.yaml.in/yaml/v3"
 
@@ -502,21 +501,10 @@ func (d *decoder) decodeUnits(v *yaml.Node, line int) {
 // one after the other.
 func (d *decoder) decodeAll(items []*yaml.Node) (cs []*unitCtx, own []*decoder) {
 	cs, own = make([]*unitCtx, len(items)), make([]*decoder, len(items))
-	var next atomic.Int64
-	var wg sync.WaitGroup
-	for range max(1, min(d.workers, len(items))) {
-		wg.Go(func() {
-			for {
-				i := int(next.Add(1)) - 1
-				if i >= len(items) {
-					return
-				}
-				own[i] = &decoder{file: d.file, fleet: d.fleet}
-				cs[i] = own[i].decodeUnit(i, items[i])
-			}
-		})
-	}
-	wg.Wait()
+	inParallel(context.Background(), len(items), d.workers, func(i int) {
+		own[i] = &decoder{file: d.file, fleet: d.fleet}
+		cs[i] = own[i].decodeUnit(i, items[i])
+	})
 	return cs, own
 }
 
