@@ -117,7 +117,7 @@ type Log struct {
 	full   atomic.Pointer[fleet.Fleet] // the whole fleet, to name the partition of a unit served elsewhere
 
 	store  *ingest.Store
-	reload func() error
+	reload func(at time.Time) error
 
 	mu      sync.Mutex
 	pending map[string]*waiter // messages of this process not yet applied, by id
@@ -129,6 +129,9 @@ type Log struct {
 	ledger  map[string]*Ledger // per unit: what has been applied
 	buf     []ingest.Sample    // decoding buffer
 	intern  map[string]string
+
+	lastSweep time.Time    // the latest time swept; sweeps never go back
+	sweptAt   atomic.Int64 // wall clock, Unix ns, of the last sweep applied
 
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
@@ -393,18 +396,31 @@ func chunkSamples(smps []ingest.Sample, idx []int, limit int) [][]int {
 	return append(out, idx[start:])
 }
 
+// checkAction refuses, before anything is written to the log, an
+// operator action without an operator or on a unit this replica does
+// not serve.
+func (l *Log) checkAction(id, by string) error {
+	if strings.TrimSpace(by) == "" {
+		return ingest.ErrNoOperator
+	}
+	if l.store.Unit(id) == nil {
+		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, ingest.ClipID(id))
+	}
+	return nil
+}
+
 // Acknowledge implements ingest.Actions through the log.
 func (l *Log) Acknowledge(ctx context.Context, id string, k alarm.Kind, now time.Time, by string) error {
-	if l.store.Unit(id) == nil {
-		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, id)
+	if err := l.checkAction(id, by); err != nil {
+		return err
 	}
 	return l.publishOp(ctx, op{Op: "acknowledge", Unit: id, Alarm: k.String(), By: by, AtUnixNS: now.UnixNano()})
 }
 
 // Shelve implements ingest.Actions through the log.
 func (l *Log) Shelve(ctx context.Context, id string, k alarm.Kind, until, now time.Time, by string) error {
-	if l.store.Unit(id) == nil {
-		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, id)
+	if err := l.checkAction(id, by); err != nil {
+		return err
 	}
 	o := op{Op: "shelve", Unit: id, Alarm: k.String(), By: by, AtUnixNS: now.UnixNano()}
 	if !until.IsZero() {
@@ -413,10 +429,63 @@ func (l *Log) Shelve(ctx context.Context, id string, k alarm.Kind, until, now ti
 	return l.publishOp(ctx, o)
 }
 
+// ResetThermal implements ingest.Actions through the log.
+func (l *Log) ResetThermal(ctx context.Context, id, winding string, now time.Time, by, reason string) error {
+	if err := l.checkAction(id, by); err != nil {
+		return err
+	}
+	if winding != "" && winding != "armature" && winding != "field" {
+		return fmt.Errorf("winding %q: give armature, field or nothing for both", winding)
+	}
+	return l.publishOp(ctx, op{Op: "reset", Unit: id, Winding: winding, By: by, Reason: reason, AtUnixNS: now.UnixNano()})
+}
+
+// DiscardSample implements ingest.Actions through the log.
+func (l *Log) DiscardSample(ctx context.Context, id string, at, now time.Time, by, reason string) error {
+	if err := l.checkAction(id, by); err != nil {
+		return err
+	}
+	return l.publishOp(ctx, op{Op: "discard", Unit: id, SampleUnixNS: at.UnixNano(), By: by, Reason: reason, AtUnixNS: now.UnixNano()})
+}
+
 // Reload asks every replica, through the log, to read its fleet file
 // again; it returns this replica's result.
 func (l *Log) Reload(ctx context.Context) error {
 	return l.publishOp(ctx, op{Op: "reload", AtUnixNS: time.Now().UnixNano()})
+}
+
+// sweepFallback is how long this replica goes without applying a sweep
+// from the log before it runs its own (the log is unreachable).
+const sweepFallback = 3 * time.Second
+
+// Sweep runs the wall-clock supervision (stale telemetry, shelf expiry,
+// the thermal memory while telemetry pauses: ingest.Store.Sweep) through
+// the log, so that every replica runs it at the same place among the
+// samples and derives the same alarms and journal entries. Every
+// replica writes a sweep for each whole second of its clock, with the
+// message id <prefix>-sweep-<Unix s>: the stream keeps the first and
+// drops the others as duplicates (its de-duplication window, 2 minutes
+// by default, holds one id a second). When the log cannot be written and
+// no sweep has been applied for sweepFallback, the replica sweeps by its
+// own clock (those journal entries carry no log sequence), so that stale
+// telemetry is still raised while NATS is lost.
+func (l *Log) Sweep(ctx context.Context, now time.Time) {
+	sec := now.Truncate(time.Second)
+	data, err := jsonMarshal(op{Op: "sweep", AtUnixNS: sec.UnixNano()})
+	if err == nil {
+		ctx, cancel := context.WithTimeout(ctx, min(l.cfg.Timeout, time.Second))
+		defer cancel()
+		msg := &nats.Msg{Subject: l.cfg.Prefix + ".ops", Header: nats.Header{formatHeader: {formatOp},
+			nats.MsgIdHdr: {l.cfg.Prefix + "-sweep-" + strconv.FormatInt(sec.Unix(), 10)}}, Data: data}
+		_, err = l.js.PublishMsg(ctx, msg, jetstream.WithExpectStream(l.cfg.Stream))
+	}
+	if err == nil || time.Since(time.Unix(0, l.sweptAt.Load())) < sweepFallback {
+		return
+	}
+	l.log.Warn("the log is unreachable: supervising stale telemetry and shelves by this replica's clock", "err", err)
+	l.applyMu.Lock()
+	defer l.applyMu.Unlock()
+	l.sweep(now)
 }
 
 func (l *Log) publishOp(ctx context.Context, o op) error {
