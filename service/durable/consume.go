@@ -29,7 +29,7 @@ type Checkpoint struct {
 	Prefix     string             `json:"prefix"`
 	Partitions int                `json:"partitions"`
 	Serves     string             `json:"serves"`
-	Sequence   uint64             `json:"stream_sequence"` // the last message the state includes
+	Sequence   uint64             `json:"stream_sequence"`              // the last message the state includes
 	LastSweep  int64              `json:"last_sweep_unix_ns,omitempty"` // the latest time swept (Log.Sweep)
 	Ledger     map[string]*Ledger `json:"ledger"`
 	State      *ingest.Snapshot   `json:"state"`
