@@ -186,10 +186,14 @@ func (l *Log) Run(ctx context.Context) error {
 	defer it.Stop()
 
 	var wg sync.WaitGroup
-	wg.Add(1)
+	wg.Add(2)
 	go func() {
 		defer wg.Done()
 		l.keepCheckpoint(ctx)
+	}()
+	go func() {
+		defer wg.Done()
+		l.pollLag(ctx, cons)
 	}()
 	for {
 		msg, err := it.Next()
@@ -200,6 +204,7 @@ func (l *Log) Run(ctx context.Context) error {
 			l.log.Warn("reading the log", "err", err)
 			continue
 		}
+		l.waitPaused(ctx)
 		l.apply(msg)
 	}
 	wg.Wait()
@@ -253,10 +258,10 @@ func (l *Log) apply(msg jetstream.Msg) {
 	if seq > l.lastSeq.Load() {
 		l.lastSeq.Store(seq)
 	}
-	l.behind.Store(meta.NumPending)
 	if meta.NumPending == 0 {
 		l.caughtUp.Store(true)
 	}
+	l.noteApplied(time.Now(), meta)
 }
 
 var errOtherPartition = errors.New("a partition served by another replica")

@@ -64,6 +64,16 @@ type Config struct {
 	// of a publish, and this replica applying it. Default 5 s.
 	Timeout time.Duration
 
+	// MaxLag and MaxLagMessages: a replica that has caught up once is
+	// not ready again (Ready, /readyz) while it is behind the log by more
+	// than MaxLag (the age of the message it applies; default 5 s) or
+	// MaxLagMessages messages (default 10000). It is ready again once
+	// both lags have stayed within half of these for LagHold (default
+	// 2 s), so that it does not flap.
+	MaxLag         time.Duration
+	MaxLagMessages uint64
+	LagHold        time.Duration
+
 	Logger *slog.Logger
 }
 
@@ -96,6 +106,15 @@ func (c Config) withDefaults() Config {
 	}
 	if c.Timeout <= 0 {
 		c.Timeout = 5 * time.Second
+	}
+	if c.MaxLag <= 0 {
+		c.MaxLag = 5 * time.Second
+	}
+	if c.MaxLagMessages == 0 {
+		c.MaxLagMessages = 10000
+	}
+	if c.LagHold <= 0 {
+		c.LagHold = 2 * time.Second
 	}
 	if c.Logger == nil {
 		c.Logger = slog.Default()
@@ -136,7 +155,20 @@ type Log struct {
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
 	caughtUp atomic.Bool
-	behind   atomic.Uint64 // messages of the log not yet delivered to this replica, at the last one
+	behind   atomic.Uint64 // messages of the log not yet applied (the lag in messages)
+
+	// The lag (lag.go): the age of the last message applied when it was
+	// applied, or since the last one while stalled; whether the replica
+	// is too far behind to be ready.
+	lagMu       sync.Mutex
+	lagNS       atomic.Int64
+	tooFar      atomic.Bool
+	lastOver    time.Time                     // last time a lag was over its bound
+	underSince  time.Time                     // since when both lags have been within half their bounds
+	appliedAt   time.Time                     // wall clock of the last message applied
+	appliedCons uint64                        // its consumer sequence
+	lastPollSeq uint64                        // the sequence applied at the previous poll
+	paused      atomic.Pointer[chan struct{}] // tests: the consumer waits while set
 
 	messages   *prometheus.CounterVec
 	pubFailed  prometheus.Counter
@@ -144,6 +176,8 @@ type Log struct {
 	connected  prometheus.GaugeFunc
 	caughtUpGa prometheus.GaugeFunc
 	behindGa   prometheus.GaugeFunc
+	lagGa      prometheus.GaugeFunc
+	tooFarGa   prometheus.GaugeFunc
 }
 
 // Ledger is what a replica has applied of one unit: the number of
@@ -519,6 +553,10 @@ func (l *Log) Ready() (bool, string) {
 	if !l.caughtUp.Load() {
 		return false, fmt.Sprintf("replaying the log: at sequence %d of %d", l.applied.Load(), l.lastSeq.Load())
 	}
+	if l.tooFar.Load() {
+		return false, fmt.Sprintf("behind the log: %d messages, %.1f s (bounds --nats-max-lag-messages %d, --nats-max-lag %s; ready again within half of both for %s)",
+			l.behind.Load(), float64(l.lagNS.Load())/1e9, l.cfg.MaxLagMessages, l.cfg.MaxLag, l.cfg.LagHold)
+	}
 	return true, fmt.Sprintf("caught up with the log at sequence %d", l.applied.Load())
 }
 
@@ -551,13 +589,21 @@ func (l *Log) metrics() {
 	}, func() float64 { return b2f(l.caughtUp.Load()) })
 	l.behindGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 		Namespace: "genvelope", Name: "log_pending_messages",
-		Help: "Messages of the log (of the partitions served) not yet delivered to this replica, as of the last one applied.",
+		Help: "Messages of the log (of the partitions served) not yet applied by this replica: its lag in messages.",
 	}, func() float64 { return float64(l.behind.Load()) })
+	l.lagGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+		Namespace: "genvelope", Name: "log_lag_seconds",
+		Help: "How far this replica is behind the log: the age of the last message it applied when it applied it, or the time since while it is stalled with messages pending; 0 when caught up.",
+	}, func() float64 { return float64(l.lagNS.Load()) / 1e9 })
+	l.tooFarGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+		Namespace: "genvelope", Name: "log_behind",
+		Help: "1 while this replica is too far behind the log to be ready (--nats-max-lag, --nats-max-lag-messages).",
+	}, func() float64 { return b2f(l.tooFar.Load()) })
 }
 
 // Collectors returns the log's metrics.
 func (l *Log) Collectors() []prometheus.Collector {
-	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa}
+	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa, l.lagGa, l.tooFarGa}
 }
 
 func b2f(b bool) float64 {
