@@ -290,6 +290,11 @@ func (l *Log) applyMsg(msg jetstream.Msg, meta *jetstream.MsgMetadata) error {
 		if err != nil {
 			return err
 		}
+		if d := time.Unix(0, o.AtUnixNS).Sub(meta.Timestamp); o.Op == "sweep" && (d > maxSweepSkew || d < -maxSweepSkew) {
+			// A sweep far from when it was written would expire shelves
+			// or age every unit by its own clock: not one of ours.
+			return fmt.Errorf("sweep at %s, %s from when the log stored it", time.Unix(0, o.AtUnixNS).UTC().Format(time.RFC3339), d.Round(time.Second))
+		}
 		err = l.applyOp(o)
 		if w != nil {
 			w.err = err
@@ -396,6 +401,11 @@ func (l *Log) applyOp(o op) error {
 	}
 	return l.store.Shelve(o.Unit, k, until, at, o.By)
 }
+
+// maxSweepSkew is how far a sweep's time may be from the time the log
+// stored it (the clocks of the replica that wrote it and of the NATS
+// servers); beyond, the message is foreign.
+const maxSweepSkew = time.Minute
 
 // sweep runs the store's wall-clock supervision at at, or at the latest
 // time swept when at is earlier (replicas' clocks differ): its time
