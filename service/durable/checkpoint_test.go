@@ -2,11 +2,9 @@ package durable
 
 import (
 	"context"
-	"fmt"
 	"io"
 	"log/slog"
 	"os"
-	"os/exec"
 	"path/filepath"
 	"slices"
 	"testing"
@@ -16,20 +14,6 @@ import (
 	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/test/testenv"
 )
-
-// startNATS starts a JetStream nats-server with its store in dir and
-// returns its URL.
-func startNATS(t *testing.T, dir string) string {
-	t.Helper()
-	bin := testenv.NeedTool(t, "nats-server", "apt-get install nats-server")
-	port := testenv.FreePort(t)
-	ns := exec.Command(bin, "-js", "-sd", filepath.Join(dir, "js"), "-a", "127.0.0.1", "-p", fmt.Sprint(port))
-	if err := ns.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = ns.Process.Kill(); _ = ns.Wait() })
-	return "nats://" + testenv.Addr(port)
-}
 
 // openLog opens a log, waiting for the server to take connections.
 func openLog(t *testing.T, cfg Config) *Log {
@@ -58,7 +42,7 @@ func TestUnusableCheckpointMovedAside(t *testing.T) {
 		t.Skip("starts nats-server")
 	}
 	dir := t.TempDir()
-	url := startNATS(t, dir)
+	url := testenv.StartNATS(t, dir)
 	fl, ds, err := fleet.Load("../../deploy/examples/fleet.yaml")
 	if err != nil || ds.HasErrors() {
 		t.Fatal(err, ds)

@@ -79,7 +79,7 @@ func TestReadinessFollowsLag(t *testing.T) {
 		t.Skip("starts nats-server")
 	}
 	dir := t.TempDir()
-	url := startNATS(t, dir)
+	url := testenv.StartNATS(t, dir)
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
 
 	type replica struct {

@@ -3,11 +3,9 @@ package server_test
 import (
 	"context"
 	"encoding/json"
-	"fmt"
 	"io"
 	"log/slog"
 	"maps"
-	"os/exec"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -91,15 +89,8 @@ func TestThermalActionsThroughTheLog(t *testing.T) {
 	if testing.Short() {
 		t.Skip("starts nats-server")
 	}
-	bin := testenv.NeedTool(t, "nats-server", "apt-get install nats-server")
 	p := newPKI(t)
-	port := testenv.FreePort(t)
-	ns := exec.Command(bin, "-js", "-sd", filepath.Join(p.dir, "js"), "-a", "127.0.0.1", "-p", fmt.Sprint(port))
-	if err := ns.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = ns.Process.Kill(); _ = ns.Wait() })
-	url := "nats://" + testenv.Addr(port)
+	url := testenv.StartNATS(t, p.dir)
 	var dl *durable.Log
 	deadline := time.Now().Add(waitLong)
 	for {
