@@ -140,16 +140,19 @@ func Open(path string, o Options) (*Journal, error) {
 		}
 		j.seq = last
 	}
-	// The log position: the newest file that has entries from the log,
-	// and the one before it (a message's entries may straddle a
-	// rotation).
+	// The log position: the last entry from the log, in the newest file
+	// that has one, read after the file before it (a message's entries
+	// may straddle a rotation).
 	for i := 0; i <= o.Keep && j.logSeq == 0; i++ {
 		if err := j.readLogPosition(i); err != nil {
 			return nil, err
 		}
 		if j.logSeq != 0 && i < o.Keep {
-			if err := j.readLogPosition(i + 1); err != nil {
-				return nil, err
+			j.logSeq, j.logN = 0, 0
+			for _, k := range []int{i + 1, i} { // oldest first
+				if err := j.readLogPosition(k); err != nil {
+					return nil, err
+				}
 			}
 		}
 	}
@@ -159,15 +162,17 @@ func Open(path string, o Options) (*Journal, error) {
 	return j, nil
 }
 
-// readLogPosition takes the highest LogSeq of file i, counting its
-// entries, into the journal's log position.
+// readLogPosition reads file i, in order, into the journal's log
+// position: the LogSeq of the last entry from the log, and how many
+// entries that message made (counting on from the file read before).
 func (j *Journal) readLogPosition(i int) error {
 	return scan(j.file(i), func(e *Entry) bool {
 		switch {
-		case e.LogSeq > j.logSeq:
-			j.logSeq, j.logN = e.LogSeq, 1
-		case e.LogSeq != 0 && e.LogSeq == j.logSeq:
+		case e.LogSeq == 0:
+		case e.LogSeq == j.logSeq:
 			j.logN++
+		default:
+			j.logSeq, j.logN = e.LogSeq, 1
 		}
 		return true
 	})

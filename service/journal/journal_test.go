@@ -4,6 +4,7 @@ import (
 	"bufio"
 	"bytes"
 	"encoding/csv"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"os"
@@ -326,4 +327,57 @@ func TestReplayFromLog(t *testing.T) {
 			}
 		})
 	}
+}
+
+// The log position read at Open is the last entry from the log, with
+// its message's entries counted across a rotation, and after a journal
+// moved to a new stream (ForgetLogPosition) the new stream's, however
+// high the old one's sequences were.
+func TestLogPositionAtOpen(t *testing.T) {
+	logEntry := func(seq uint64, n int) Entry {
+		e := entry(n, "ridge-1", "field", ChangeLevel, "warning")
+		e.LogSeq = seq
+		return e
+	}
+	t.Run("across a rotation", func(t *testing.T) {
+		// Message 4 made three entries: two went to the file rotated to
+		// FILE.1, the third to FILE after the rotation.
+		path := filepath.Join(t.TempDir(), "j")
+		write := func(name string, es ...Entry) {
+			var b bytes.Buffer
+			for _, e := range es {
+				if err := json.NewEncoder(&b).Encode(&e); err != nil {
+					t.Fatal(err)
+				}
+			}
+			if err := os.WriteFile(name, b.Bytes(), 0o644); err != nil {
+				t.Fatal(err)
+			}
+		}
+		seqd := func(seq uint64, e Entry) Entry { e.Seq = seq; return e }
+		write(path+".1", seqd(1, logEntry(3, 0)), seqd(2, logEntry(4, 0)), seqd(3, logEntry(4, 1)))
+		write(path, seqd(4, logEntry(4, 2)), seqd(5, Entry{Change: ChangeDenied, Message: "refused"}))
+		if s, k := open(t, path, Options{}).LogPosition(); s != 4 || k != 3 {
+			t.Errorf("log position %d, %d entries; want 4, 3 (the message straddles the rotation)", s, k)
+		}
+	})
+	t.Run("a new stream", func(t *testing.T) {
+		path := filepath.Join(t.TempDir(), "j")
+		j := open(t, path, Options{})
+		for _, e := range []Entry{logEntry(100, 0), logEntry(100, 1)} {
+			if err := j.Append(e); err != nil {
+				t.Fatal(err)
+			}
+		}
+		j.ForgetLogPosition()
+		for _, e := range []Entry{logEntry(1, 0), logEntry(2, 0), logEntry(2, 1)} {
+			if err := j.Append(e); err != nil {
+				t.Fatal(err)
+			}
+		}
+		j.Close()
+		if s, k := open(t, path, Options{}).LogPosition(); s != 2 || k != 2 {
+			t.Errorf("log position %d, %d entries; want 2, 2", s, k)
+		}
+	})
 }
