@@ -154,7 +154,25 @@ func TestReplicasJournalsAgree(t *testing.T) {
 	for i, batch := range second[10:] {
 		pushUntilAnswered(t, []*replica{a, b}[i%2], batch)
 	}
-	waitSameSequence(t, a, b)
+	// The same alarms, with the same states, on both.
+	alarmsOf := func(r *replica) []string {
+		ctx, cancel := context.WithTimeout(context.Background(), testenv.WaitLong)
+		defer cancel()
+		resp, err := r.alarms.ListAlarms(ctx, &pb.ListAlarmsRequest{})
+		if err != nil {
+			t.Fatal(err)
+		}
+		var out []string
+		for _, ev := range resp.Alarms {
+			out = append(out, fmt.Sprintf("%s %s %s since %s ack %v shelved %v value %v", ev.UnitId, ev.Limit, ev.Level,
+				ev.Time.AsTime().Format(time.RFC3339Nano), ev.Acknowledged, ev.GetShelvedUntil().AsTime(), ev.Value))
+		}
+		return out
+	}
+	aa, ab := sameMoment(t, a, b, alarmsOf)
+	if len(aa) == 0 || !slices.Equal(aa, ab) {
+		t.Errorf("active alarms differ:\n first  %q\n second %q", aa, ab)
+	}
 
 	// Entries from the log up to the sequence both have applied are
 	// final on both (sweeps go on adding entries meanwhile).
