@@ -149,8 +149,9 @@ type Log struct {
 	buf     []ingest.Sample    // decoding buffer
 	intern  map[string]string
 
-	lastSweep time.Time    // the latest time swept; sweeps never go back
-	sweptAt   atomic.Int64 // wall clock, Unix ns, of the last sweep applied
+	lastSweep    time.Time    // the latest time swept; sweeps never go back
+	sweptAt      atomic.Int64 // wall clock, Unix ns, of the last sweep applied
+	sweepingHere atomic.Bool  // sweeping by this replica's clock (the log unreachable)
 
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
@@ -513,10 +514,18 @@ func (l *Log) Sweep(ctx context.Context, now time.Time) {
 			nats.MsgIdHdr: {l.cfg.Prefix + "-sweep-" + strconv.FormatInt(sec.Unix(), 10)}}, Data: data}
 		_, err = l.js.PublishMsg(ctx, msg, jetstream.WithExpectStream(l.cfg.Stream))
 	}
-	if err == nil || time.Since(time.Unix(0, l.sweptAt.Load())) < sweepFallback {
+	if err == nil {
+		if l.sweepingHere.Swap(false) {
+			l.log.Info("the log takes the sweeps again: supervision back at the same place on every replica")
+		}
 		return
 	}
-	l.log.Warn("the log is unreachable: supervising stale telemetry and shelves by this replica's clock", "err", err)
+	if time.Since(time.Unix(0, l.sweptAt.Load())) < sweepFallback {
+		return
+	}
+	if !l.sweepingHere.Swap(true) {
+		l.log.Warn("the log is unreachable: supervising stale telemetry and shelves by this replica's clock", "err", err)
+	}
 	l.applyMu.Lock()
 	defer l.applyMu.Unlock()
 	l.sweep(now)

@@ -73,6 +73,15 @@ func TestNATSLostDuringOperation(t *testing.T) {
 	if body, _ := get("http://" + r.http + "/readyz"); !strings.Contains(body, "not connected") {
 		t.Errorf("/readyz with NATS down: %q, want it to say not connected", body)
 	}
+	// The sweeps cannot go through the log: after a few seconds the
+	// replica supervises stale telemetry by its own clock.
+	deadline := time.Now().Add(testenv.WaitLong)
+	for !strings.Contains(r.proc.Output(200), "supervising stale telemetry and shelves by this replica's clock") {
+		if time.Now().After(deadline) {
+			r.proc.Failf(t, "no supervision by the replica's own clock while NATS is down")
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
 	nd.start(t) // same port, same store
 	nd.waitJetStream(t, false)
 	for _, b := range batches[half:] {
