@@ -12,8 +12,10 @@ import (
 	"time"
 
 	"google.golang.org/protobuf/types/known/durationpb"
+	"google.golang.org/protobuf/types/known/timestamppb"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/journal"
 	"github.com/genvelope/genvelope/test/testenv"
 )
 
@@ -37,6 +39,44 @@ func journalOf(t *testing.T, r *replica) []*pb.JournalEntry {
 	}
 	slices.Reverse(out)
 	return out
+}
+
+// journalFile returns the entries from the log in the journal file at
+// path (of a stopped replica), oldest first, as ListJournal gives them.
+func journalFile(t *testing.T, path string) []*pb.JournalEntry {
+	t.Helper()
+	j, err := journal.Open(path, journal.Options{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer j.Close()
+	es, more, err := j.Matching(journal.Filter{}, 1<<20)
+	if err != nil || more {
+		t.Fatalf("reading %s: %v (more %v)", path, err, more)
+	}
+	var out []*pb.JournalEntry
+	for i := len(es) - 1; i >= 0; i-- {
+		e := es[i]
+		if e.LogSeq == 0 {
+			continue
+		}
+		out = append(out, &pb.JournalEntry{Time: timestamppb.New(e.Time), UnitId: e.Unit, Limit: e.Limit, Change: e.Change,
+			Level: e.Level, PreviousLevel: e.Prev, Value: e.Value, Threshold: e.Threshold, Actual: e.Actual, LimitValue: e.LimitAt,
+			Units: e.Units, Message: e.Message, Operator: e.Operator, LogSeq: e.LogSeq})
+	}
+	return out
+}
+
+// waitSequence waits until r has applied the log up to seq.
+func waitSequence(t *testing.T, r *replica, seq uint64) {
+	t.Helper()
+	deadline := time.Now().Add(testenv.WaitLong)
+	for appliedSeq(t, r) < seq {
+		if time.Now().After(deadline) {
+			t.Fatalf("applied %d, want %d", appliedSeq(t, r), seq)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
 }
 
 // journalLine is what two replicas' journals must agree on for an entry
