@@ -391,3 +391,26 @@ func TestEntrypoints(t *testing.T) {
 		}
 	}
 }
+
+// TestREADMEsNameWhatExists: the files the README sections that start
+// the HA pair name (compose file, manifests, configurations) exist, and
+// the compose command they give is the file's own.
+func TestREADMEsNameWhatExists(t *testing.T) {
+	root := testenv.ModuleRoot(t)
+	ref := regexp.MustCompile("deploy/[A-Za-z0-9_./-]+\\.(?:yml|yaml|conf)")
+	for _, readme := range []string{"README.md", "deploy/ha/README.md", "deploy/prometheus/README.md"} {
+		b, err := os.ReadFile(filepath.Join(root, readme))
+		if err != nil {
+			t.Fatal(err)
+		}
+		text := string(b)
+		for _, p := range ref.FindAllString(text, -1) {
+			if _, err := os.Stat(filepath.Join(root, p)); err != nil {
+				t.Errorf("%s names %s: %v", readme, p, err)
+			}
+		}
+		if readme != "deploy/prometheus/README.md" && !strings.Contains(strings.Join(strings.Fields(text), " "), "docker compose -f deploy/ha/docker-compose.yml up --build") {
+			t.Errorf("%s does not give the command that starts the pair: docker compose -f deploy/ha/docker-compose.yml up --build", readme)
+		}
+	}
+}
