@@ -23,16 +23,21 @@ func jsonMarshal(v any) ([]byte, error) { return json.Marshal(v) }
 // Checkpoint is the checkpoint file: a replica's state and the stream
 // sequence it includes.
 type Checkpoint struct {
-	Format     string             `json:"format"` // "genvelope-log-state"
-	Version    int                `json:"version"`
-	Stream     string             `json:"stream"`
-	Prefix     string             `json:"prefix"`
-	Partitions int                `json:"partitions"`
-	Serves     string             `json:"serves"`
-	Sequence   uint64             `json:"stream_sequence"`              // the last message the state includes
-	LastSweep  int64              `json:"last_sweep_unix_ns,omitempty"` // the latest time swept (Log.Sweep)
-	Ledger     map[string]*Ledger `json:"ledger"`
-	State      *ingest.Snapshot   `json:"state"`
+	Format     string `json:"format"` // "genvelope-log-state"
+	Version    int    `json:"version"`
+	Stream     string `json:"stream"`
+	Prefix     string `json:"prefix"`
+	Partitions int    `json:"partitions"`
+	Serves     string `json:"serves"`
+	Sequence   uint64 `json:"stream_sequence"`              // the last message the state includes
+	LastSweep  int64  `json:"last_sweep_unix_ns,omitempty"` // the latest time swept (Log.Sweep)
+	// The journal's log position when the checkpoint was taken (its last
+	// entry from the log, and how many entries that message made): a
+	// journal found behind it at a restart has lost entries.
+	JournalLogSeq     uint64             `json:"journal_log_sequence,omitempty"`
+	JournalLogEntries uint64             `json:"journal_log_entries,omitempty"`
+	Ledger            map[string]*Ledger `json:"ledger"`
+	State             *ingest.Snapshot   `json:"state"`
 }
 
 const (
@@ -118,6 +123,13 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func(at ti
 				l.log.Error("CHECKPOINT ENTRY UNUSABLE: not restored; this unit's state comes from the log alone", "checkpoint", p, "err", b)
 			}
 			l.seq = cp.Sequence
+			if j := store.Journal(); j != nil {
+				if seq, n := j.LogPosition(); seq < cp.JournalLogSeq || seq == cp.JournalLogSeq && n < cp.JournalLogEntries {
+					l.log.Error("JOURNAL BEHIND THE CHECKPOINT: the journal has lost entries the checkpoint says it had (a power loss, or the file replaced); they are not in it",
+						"journal_log_sequence", seq, "journal_log_entries", n,
+						"checkpoint_journal_log_sequence", cp.JournalLogSeq, "checkpoint_journal_log_entries", cp.JournalLogEntries)
+				}
+			}
 			if cp.LastSweep != 0 {
 				l.lastSweep = time.Unix(0, cp.LastSweep)
 			}
@@ -428,6 +440,9 @@ func (l *Log) checkpoint() *Checkpoint {
 		Ledger: make(map[string]*Ledger, len(l.ledger)), State: l.store.Snapshot(time.Now())}
 	if !l.lastSweep.IsZero() {
 		cp.LastSweep = l.lastSweep.UnixNano()
+	}
+	if j := l.store.Journal(); j != nil {
+		cp.JournalLogSeq, cp.JournalLogEntries = j.LogPosition()
 	}
 	for id, lg := range l.ledger {
 		c := *lg
