@@ -35,6 +35,16 @@ func openLog(t *testing.T, cfg Config) *Log {
 	}
 }
 
+// exampleFleet loads deploy/examples/fleet.yaml.
+func exampleFleet(t *testing.T) *fleet.Fleet {
+	t.Helper()
+	fl, ds, err := fleet.Load("../../deploy/examples/fleet.yaml")
+	if err != nil || ds.HasErrors() {
+		t.Fatal(err, ds)
+	}
+	return fl
+}
+
 // TestUnusableCheckpointMovedAside: a checkpoint that cannot be used
 // (corrupt, of another format, of another stream) is moved aside, and
 // each one keeps its own name: three in a row leave three files with
@@ -46,10 +56,7 @@ func TestUnusableCheckpointMovedAside(t *testing.T) {
 	}
 	dir := t.TempDir()
 	url := testenv.StartNATS(t, dir)
-	fl, ds, err := fleet.Load("../../deploy/examples/fleet.yaml")
-	if err != nil || ds.HasErrors() {
-		t.Fatal(err, ds)
-	}
+	fl := exampleFleet(t)
 	path := filepath.Join(dir, "checkpoint.json")
 	bad := []string{
 		`{"format": "genvelope-log-state", "version": 1, "stream_sequence": 3, "sta`,
@@ -98,10 +105,7 @@ func TestJournalBehindCheckpoint(t *testing.T) {
 	}
 	dir := t.TempDir()
 	url := testenv.StartNATS(t, dir)
-	fl, ds, err := fleet.Load("../../deploy/examples/fleet.yaml")
-	if err != nil || ds.HasErrors() {
-		t.Fatal(err, ds)
-	}
+	fl := exampleFleet(t)
 	// A stream of 10 messages, so that the journals' positions are in it.
 	dl := openLog(t, Config{URLs: []string{url}, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
 	for range 10 {
