@@ -129,6 +129,15 @@ func TestReplicasJournalsAgree(t *testing.T) {
 	nd := startNATS(t, dir)
 	const units = 4
 	fleetPath := fleetFile(t, dir, units)
+	// Telemetry stale after 3 s, so that the wall-clock supervision
+	// raises its alarms within the test.
+	body, err := os.ReadFile(fleetPath)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := os.WriteFile(fleetPath, append([]byte("alarms:\n  limits:\n    stale_telemetry: {warning: 3, critical: 6}\n"), body...), 0o644); err != nil {
+		t.Fatal(err)
+	}
 	a := startReplica(t, fleetPath, filepath.Join(dir, "a.json"), "--nats", nd.url(), "--nats-checkpoint-interval", "200ms")
 	b := startReplica(t, fleetPath, filepath.Join(dir, "b.json"), "--nats", nd.url(), "--nats-checkpoint-interval", "2s")
 	tr := newTraffic(units, 90)
@@ -152,6 +161,10 @@ func TestReplicasJournalsAgree(t *testing.T) {
 	}
 	if _, err := a.alarms.ShelveAlarm(ctx, &pb.ShelveAlarmRequest{UnitId: unitID(2), Limit: "field", Operator: "desk 1"}); err != nil {
 		t.Fatalf("unshelve: %v", err)
+	}
+	// A shelf that a sweep ends.
+	if _, err := b.alarms.ShelveAlarm(ctx, &pb.ShelveAlarmRequest{UnitId: unitID(3), Limit: "field", Duration: durationpb.New(2 * time.Second), Operator: "desk 2"}); err != nil {
+		t.Fatalf("ShelveAlarm for 2 s: %v", err)
 	}
 	if _, err := jb.ResetThermal(ctx, &pb.ResetThermalRequest{UnitId: unitID(0), Winding: "field", Operator: "engineer", Reason: "sensor fault"}); err != nil {
 		t.Fatalf("ResetThermal: %v", err)
@@ -194,6 +207,23 @@ func TestReplicasJournalsAgree(t *testing.T) {
 	for i, batch := range second[10:] {
 		pushUntilAnswered(t, []*replica{a, b}[i%2], batch)
 	}
+	// The telemetry stops: the sweeps raise stale telemetry to critical
+	// on every unit, at the same place in the log on both replicas.
+	staleCritical := func(r *replica) int {
+		n := 0
+		for _, e := range journalOf(t, r) {
+			if e.Limit == "stale_telemetry" && e.Level == "critical" {
+				n++
+			}
+		}
+		return n
+	}
+	for deadline := time.Now().Add(testenv.WaitLong); staleCritical(a) < units || staleCritical(b) < units; {
+		if time.Now().After(deadline) {
+			t.Fatalf("stale telemetry not critical on every unit of both replicas: %d, %d", staleCritical(a), staleCritical(b))
+		}
+		time.Sleep(200 * time.Millisecond)
+	}
 	// The same alarms, with the same states, on both.
 	alarmsOf := func(r *replica) []string {
 		ctx, cancel := context.WithTimeout(context.Background(), testenv.WaitLong)
@@ -228,13 +258,19 @@ func TestReplicasJournalsAgree(t *testing.T) {
 			if e.LogSeq <= upTo {
 				out = append(out, journalLine(e))
 				changes[e.Change]++
+				if e.Limit == "stale_telemetry" {
+					changes["stale_telemetry"]++
+				}
+				if strings.Contains(e.Message, "shelf expired") {
+					changes["shelf expired"]++
+				}
 			}
 		}
 		return out, changes
 	}
 	la, ca := pick(a)
 	lb, _ := pick(b)
-	for _, c := range []string{"level", "acknowledged", "shelved", "unshelved", "reset", "discard", "reload"} {
+	for _, c := range []string{"level", "acknowledged", "shelved", "unshelved", "reset", "discard", "reload", "stale_telemetry", "shelf expired"} {
 		if ca[c] == 0 {
 			t.Errorf("no %q entry in the journal (%v): the test does not exercise it", c, ca)
 		}
