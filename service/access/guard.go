@@ -105,6 +105,7 @@ type Guard struct {
 	loadMu  sync.Mutex
 	denied  *prometheus.CounterVec
 	auditor Auditor
+	gate    gate // bounds the audit of repeated failures (authfail.go)
 }
 
 // NewGuard reads the access file, if any; it fails when the file has
@@ -125,9 +126,9 @@ func NewGuard(o Options) (*Guard, error) {
 	}
 	g.denied = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Namespace: "genvelope", Name: "access_denied_total",
-		Help: "Calls (and samples, for permission_denied) refused by access control, by reason.",
+		Help: "Calls (and samples, for permission_denied) refused by access control, and failed authentications, by reason.",
 	}, []string{"reason"})
-	for _, r := range []string{ReasonUnauthenticated, ReasonNotGranted, ReasonSampleDenied, ReasonCrossOrigin, ReasonHost, ReasonLimit, ReasonProtocol} {
+	for _, r := range append([]string{ReasonUnauthenticated, ReasonNotGranted, ReasonSampleDenied, ReasonCrossOrigin, ReasonHost, ReasonLimit, ReasonProtocol}, AuthFailureReasons()...) {
 		g.denied.WithLabelValues(r)
 	}
 	if o.Policy != nil && o.Path == "" {

@@ -140,7 +140,7 @@ func writeJSON(w http.ResponseWriter, status int, v any) {
 }
 
 func (ui *UI) overview(w http.ResponseWriter, r *http.Request) {
-	p := ui.newPage("Fleet", "/fleet/live", ui.fleetData())
+	p := ui.newPage("Fleet", "/fleet/live", ui.fleetDataFor(ui.opts.Scope(r)))
 	p.User, _ = ui.opts.Identity(r)
 	ui.render(w, "overview.html", p)
 }
@@ -162,7 +162,7 @@ type liveRow struct {
 }
 
 func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
-	d := ui.fleetData()
+	d := ui.fleetDataFor(ui.opts.Scope(r))
 	secs, err := ui.fragments("overview.html", d, "fleet-rows", "fleet-summary")
 	if err != nil {
 		ui.log.Error("overview fragments not rendered", "err", err)
@@ -342,6 +342,10 @@ func operator(s string) string {
 	}
 	return strings.TrimSpace(s)
 }
+
+// NotFound answers the page for a unit (path value "id") or a path that
+// does not exist.
+func (ui *UI) NotFound(w http.ResponseWriter, r *http.Request) { ui.notFound(w, r) }
 
 func (ui *UI) notFound(w http.ResponseWriter, r *http.Request) {
 	p := ui.newPage("Not found", "", nil)

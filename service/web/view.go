@@ -321,7 +321,10 @@ func stateRank(s dataState) int {
 	return 2
 }
 
-func (ui *UI) fleetData() *fleetData {
+func (ui *UI) fleetData() *fleetData { return ui.fleetDataFor(nil) }
+
+// fleetDataFor is the overview of the units keep admits (nil: all).
+func (ui *UI) fleetDataFor(keep func(unitID string) bool) *fleetData {
 	now := ui.opts.Now()
 	units := ui.store.Units()
 	d := &fleetData{Now: now, Units: len(units), Rows: make([]row, 0, len(units))}
@@ -333,6 +336,10 @@ func (ui *UI) fleetData() *fleetData {
 	for _, u := range units {
 		v := u.View()
 		cfg := v.Config
+		if keep != nil && !keep(cfg.ID) {
+			d.Units--
+			continue
+		}
 		r := row{ID: cfg.ID, Name: cfg.DisplayName(), Site: cfg.Site, Href: unitURL(cfg.ID), HasSample: v.HasSample,
 			State: stateOf(&v), Alarms: summarize(&v.Alarms, now), Cause: ui.causeOf(&v, now)}
 		r.Badge = badgeOf(&r.Alarms, r.State)
