@@ -444,6 +444,7 @@ type unitData struct {
 
 	Margins  []marginRow
 	Thermal  []thermalRow
+	Limiters []limiterRow // the regulator's OEL and SCL timers, those configured
 	Headroom struct{ Up, Down, QMax, QMin num }
 
 	User string // the signed-in identity, "" when none (see signIn)
@@ -467,6 +468,18 @@ type thermalRow struct {
 	TimeLeft string
 	Level    level
 	Unknown  bool // the unit is stale: its thermal state is not known
+}
+
+// limiterRow is one inverse-time limiter's timer (OEL, SCL).
+type limiterRow struct {
+	Title   string
+	Used    num // fraction of its delay used, 1 is the limiter acting
+	Fill    int
+	Current num    // the current it acts on, pu of its rating
+	ActsIn  string // time to action at the present current; "" below pickup
+	Timing  bool   // the current is above the pickup
+	Level   level
+	Unknown bool // the unit is stale
 }
 
 // alarmRow is one alarm on the unit page.
@@ -559,6 +572,30 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 				}
 			}
 			d.Thermal = append(d.Thermal, tr)
+		}
+		for _, l := range []struct {
+			title string
+			t     ingest.LimiterTimerView
+			kind  alarm.Kind
+		}{
+			{"Overexcitation limiter (OEL)", v.Limiters.OEL, alarm.OELTimer},
+			{"Stator current limiter (SCL)", v.Limiters.SCL, alarm.SCLTimer},
+		} {
+			if !l.t.Configured {
+				continue
+			}
+			used := l.t.Used
+			lr := limiterRow{Title: l.title, Used: fmtPct(&used, 0), Fill: fill(used), Current: fmtNum(&l.t.X, 3), Timing: l.t.Timing, Level: d.Alarms.ByKind[l.kind]}
+			if l.t.Timing && !math.IsInf(l.t.ToActionS, 0) && !math.IsNaN(l.t.ToActionS) {
+				lr.ActsIn = fmtAge(time.Duration(l.t.ToActionS * float64(time.Second)))
+			}
+			if v.ThermalUnknown {
+				lr.Used, lr.Fill, lr.ActsIn, lr.Timing, lr.Unknown = num{Text: "unknown (stale)"}, 0, "", false, true
+				if lr.Level.Level == alarm.Normal {
+					lr.Level = badgeOf(&alarmSummary{Highest: lr.Level}, stateStale)
+				}
+			}
+			d.Limiters = append(d.Limiters, lr)
 		}
 	}
 	d.AlarmRows = ui.alarmRows(cfg.ID, &v, now)
