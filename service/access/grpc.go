@@ -91,6 +91,11 @@ func (g *Guard) allow(ctx context.Context, c *Caller, method string, req any) er
 	}
 	reason := DenyReason(c)
 	g.Deny(ctx, c, "grpc "+method, clip(unit), reason)
+	if chk == checkUnit && role == Viewer && unit != "" && c.Has(Viewer) {
+		// A unit outside a viewer's scope is answered as one that does
+		// not exist: its existence is not revealed.
+		return UnknownUnit(c, unit, g.opts.UnitIDs())
+	}
 	if reason == ReasonUnauthenticated {
 		return status.Error(codes.Unauthenticated, "genvelope: this call needs a client certificate the access file knows")
 	}
@@ -157,6 +162,32 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 		r.Entries = kept
 	}
 	return resp, err
+}
+
+// UnknownUnit is the answer to a request for a unit that is not in the
+// fleet, or that c may not view: NOT_FOUND, naming the units c may view.
+func UnknownUnit(c *Caller, id string, ids []string) error {
+	var known []string
+	for _, u := range ids {
+		if c == nil || c.May(Viewer, u) {
+			known = append(known, u)
+		}
+	}
+	return status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", ClipID(id), strings.Join(known, ", "))
+}
+
+// ClipID shortens a unit id for a message: at most 64 bytes, cut at a
+// character boundary, with an ellipsis when cut.
+func ClipID(id string) string {
+	const max = 64
+	if len(id) <= max {
+		return id
+	}
+	cut := max
+	for cut > 0 && !utf8RuneStart(id[cut]) {
+		cut--
+	}
+	return id[:cut] + "…"
 }
 
 // visible keeps the items of the units c may view, in place.

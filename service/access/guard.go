@@ -91,6 +91,9 @@ type Options struct {
 	Policy *Policy
 	// SiteOf returns a unit's site from the fleet being served.
 	SiteOf func(unitID string) (site string, ok bool)
+	// UnitIDs returns the ids of the fleet being served (to name the
+	// units a viewer may see when it asks for one it may not).
+	UnitIDs func() []string
 	// Auditor receives denials and operator actions; default a
 	// LogAuditor on Logger.
 	Auditor Auditor
@@ -119,6 +122,9 @@ func NewGuard(o Options) (*Guard, error) {
 	}
 	if o.SiteOf == nil {
 		o.SiteOf = func(string) (string, bool) { return "", false }
+	}
+	if o.UnitIDs == nil {
+		o.UnitIDs = func() []string { return nil }
 	}
 	g := &Guard{opts: o, auditor: o.Auditor}
 	if g.auditor == nil {

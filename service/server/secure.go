@@ -70,6 +70,7 @@ func (s *Server) secure(reg *prometheus.Registry) ([]grpc.ServerOption, error) {
 			}
 			return u.Site, true
 		},
+		UnitIDs: func() []string { return s.store.Fleet().IDs() },
 	})
 	if err != nil {
 		return nil, err

@@ -472,9 +472,45 @@ func TestGRPCScopedLists(t *testing.T) {
 	if len(resp.Units) != 1 || resp.Units[0].Id != "harrowmere-1" {
 		t.Errorf("op-harrowmere lists %v, want harrowmere-1 only", resp.Units)
 	}
-	if _, err := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "larchwater-2"}); status.Code(err) != codes.PermissionDenied {
-		t.Errorf("op-harrowmere gets larchwater-2: %v, want PERMISSION_DENIED", err)
+	// Another site's unit is answered as one that does not exist, and
+	// neither answer names units outside the scope.
+	_, hidden := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "larchwater-2"})
+	_, absent := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "harrowmere-9"})
+	h, a := status.Convert(hidden), status.Convert(absent)
+	if h.Code() != codes.NotFound || a.Code() != codes.NotFound || strings.Replace(h.Message(), "larchwater-2", "X", 1) != strings.Replace(a.Message(), "harrowmere-9", "X", 1) {
+		t.Errorf("op-harrowmere gets larchwater-2: %v; a missing unit: %v; want the same NOT_FOUND", hidden, absent)
 	}
+	if !strings.HasSuffix(a.Message(), "known units: harrowmere-1") {
+		t.Errorf("the answer names units outside the scope: %q", a.Message())
+	}
+	// The viewer of everything is told every unit.
+	all := dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["viewer-all"])
+	_, err = pb.NewFleetServiceClient(all).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "harrowmere-9"})
+	if m := status.Convert(err).Message(); status.Code(err) != codes.NotFound || !strings.Contains(m, "larchwater-2") || !strings.Contains(m, "brindle-gt3") {
+		t.Errorf("viewer-all gets a missing unit: %v", err)
+	}
+}
+
+// A renewed HTTP certificate (the web configuration's files) is served
+// to new connections without a restart.
+func TestHTTPCertificateReload(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, nil)
+	served := func() string {
+		c, err := tls.Dial("tcp", r.srv.HTTPAddr(), &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer c.Close()
+		return c.ConnectionState().PeerCertificates[0].Subject.CommonName
+	}
+	if cn := served(); cn != "genvelope-test" {
+		t.Fatalf("served %q first", cn)
+	}
+	renewed := p.ca.Issue(t, testpki.Options{CN: "genvelope-renewed", DNS: []string{"localhost"}, Server: true})
+	testpki.Write(t, p.dir, "server.key", renewed.KeyPEM)
+	testpki.Write(t, p.dir, "server.crt", renewed.CertPEM)
+	waitFor(t, "the renewed HTTP certificate served", func() bool { return served() == "genvelope-renewed" })
 }
 
 // Profiling is on a listener of its own, for the admin role only.
