@@ -259,6 +259,12 @@ func (g *Guard) DenyN(ctx context.Context, c *Caller, action, target, reason str
 	if n > 1 {
 		e.Detail = fmt.Sprintf("%d refused", n)
 	}
+	if reason == ReasonUnauthenticated {
+		// A caller the access file does not know may repeat itself
+		// without end: through the flood gate, as failed sign-ins.
+		g.gated(ctx, e)
+		return
+	}
 	g.auditor.Audit(ctx, e)
 }
 
