@@ -2,7 +2,9 @@ package server
 
 import (
 	"context"
+	"errors"
 	"fmt"
+	"io"
 	"net"
 	"net/http"
 	"sync"
@@ -67,6 +69,9 @@ func (c *capCreds) ServerHandshake(raw net.Conn) (net.Conn, credentials.AuthInfo
 	src := raw.RemoteAddr().String()
 	conn, info, err := c.TransportCredentials.ServerHandshake(raw)
 	if err != nil {
+		if errors.Is(err, io.EOF) {
+			return nil, nil, err // closed before the handshake: a port probe, no attempt to authenticate
+		}
 		reason, claimed := access.ClassifyTLSError(err)
 		c.guard.AuthFailed(context.Background(), access.AuthFailure{Source: src, Claimed: claimed, Action: "grpc connect", Reason: reason, Detail: err.Error()})
 		return nil, nil, err
