@@ -113,6 +113,21 @@ func (g *Guard) DenyGated(ctx context.Context, c *Caller, action, reason, detail
 	g.gated(ctx, e)
 }
 
+// FlushGate writes the summaries of the flood gate's windows that are
+// over at now (the server calls it about once a second, so that a
+// summary does not wait for the next failure).
+func (g *Guard) FlushGate(ctx context.Context, now time.Time) {
+	g.gate.mu.Lock()
+	var out []Entry
+	if now.Sub(g.gate.lastSweep) >= GateWindow/6 {
+		out = g.gate.sweep(now)
+	}
+	g.gate.mu.Unlock()
+	for _, e := range out {
+		g.auditor.Audit(ctx, e)
+	}
+}
+
 func (g *Guard) gated(ctx context.Context, e Entry) {
 	for _, out := range g.gate.pass(e) {
 		g.auditor.Audit(ctx, out)
@@ -129,8 +144,8 @@ const (
 // gate bounds the audit entries of repeated failures: per source host
 // (the address without its port) and reason, the first GateBurst of a
 // window are written; the rest are counted, and the count is written as
-// one summary entry when the window is over (at the next gated entry
-// after it, from any source). The metric counts every failure.
+// one summary entry when the window is over (at the next gated entry,
+// or FlushGate, after it). The metric counts every failure.
 type gate struct {
 	mu        sync.Mutex
 	windows   map[gateKey]*gateWindow

@@ -53,13 +53,32 @@ func TestAuthFailureGate(t *testing.T) {
 	if !strings.HasPrefix(sum.Detail, "15 more like this from 192.0.2.7") {
 		t.Errorf("summary %q, want the 15 not written", sum.Detail)
 	}
-	var m dto.Metric
+	// A window over with nothing after it: FlushGate writes its summary.
+	for i := 0; i < GateBurst+3; i++ {
+		fail("192.0.2.9:40000", ReasonNoCertificate)
+	}
+	now = now.Add(GateWindow)
+	g.FlushGate(context.Background(), now)
+	if got := denialsBy(mem, ReasonNoCertificate); len(got) != GateBurst+1 || !strings.HasPrefix(got[GateBurst].Detail, "3 more like this from 192.0.2.9") {
+		t.Errorf("after FlushGate: %d entries, last %+v; want the burst and a summary of 3", len(got), got[len(got)-1])
+	}
+		var m dto.Metric
 	if err := g.denied.WithLabelValues(ReasonBadPassword).Write(&m); err != nil {
 		t.Fatal(err)
 	}
 	if v := m.GetCounter().GetValue(); v != 22 {
 		t.Errorf("bad_password counted %v, want 22 (every failure)", v)
 	}
+}
+
+func denialsBy(m *Memory, reason string) []Entry {
+	var out []Entry
+	for _, e := range m.Find("", OutcomeDenied) {
+		if e.Reason == reason {
+			out = append(out, e)
+		}
+	}
+	return out
 }
 
 // The verifier's errors name the certificate that failed: its subject

@@ -441,6 +441,7 @@ func (s *Server) sweep(ctx context.Context) {
 			return
 		case now := <-t.C:
 			s.store.Sweep(now)
+			s.guard.FlushGate(ctx, now)
 		}
 	}
 }
