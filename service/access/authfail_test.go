@@ -62,7 +62,7 @@ func TestAuthFailureGate(t *testing.T) {
 	if got := denialsBy(mem, ReasonNoCertificate); len(got) != GateBurst+1 || !strings.HasPrefix(got[GateBurst].Detail, "3 more like this from 192.0.2.9") {
 		t.Errorf("after FlushGate: %d entries, last %+v; want the burst and a summary of 3", len(got), got[len(got)-1])
 	}
-		var m dto.Metric
+	var m dto.Metric
 	if err := g.denied.WithLabelValues(ReasonBadPassword).Write(&m); err != nil {
 		t.Fatal(err)
 	}

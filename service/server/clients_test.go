@@ -173,7 +173,30 @@ func TestConnectionsPerCaller(t *testing.T) {
 			return err == nil && code == http.StatusOK
 		})
 	})
-	if v, _ := metricValue(scrapeAs(t, p, r), "genvelope_access_denied_total", map[string]string{"reason": access.ReasonLimit}); v < 2 {
+	t.Run("http without valid credentials, by address", func(t *testing.T) {
+		// Refused by the toolkit (401): counted against the address, and
+		// over the cap the 401 closes the connection.
+		for i := range capN {
+			hc, code, _, err := openHTTP(t, p, r.srv.HTTPAddr(), nil, "/metrics", "mallory", "guess")
+			if err != nil || code != http.StatusUnauthorized {
+				t.Fatalf("connection %d: %d %v", i+1, code, err)
+			}
+			if code, _, err := hc.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+				t.Fatalf("connection %d kept alive: %d %v", i+1, code, err)
+			}
+		}
+		hc, code, _, err := openHTTP(t, p, r.srv.HTTPAddr(), nil, "/metrics", "mallory", "guess")
+		if err != nil || code != http.StatusUnauthorized {
+			t.Fatalf("connection over the cap: %d %v", code, err)
+		}
+		if _, _, err := hc.get("/metrics", "mallory", "guess"); err == nil {
+			t.Error("the connection over the cap was kept open after its 401")
+		}
+		if got := denialsBy(audit, "http connect", access.ReasonLimit); len(got) != 1 {
+			t.Errorf("audit of the closed connection: %+v", got)
+		}
+	})
+		if v, _ := metricValue(scrapeAs(t, p, r), "genvelope_access_denied_total", map[string]string{"reason": access.ReasonLimit}); v < 2 {
 		t.Errorf("genvelope_access_denied_total{reason=resource_limit} = %v, want at least the 2 refusals", v)
 	}
 }

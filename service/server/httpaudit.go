@@ -2,6 +2,7 @@ package server
 
 import (
 	"context"
+	"fmt"
 	"log"
 	"log/slog"
 	"net"
@@ -41,7 +42,7 @@ func markReached(ctx context.Context) {
 func (o *authObserver) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	reached := new(bool)
 	r = r.WithContext(context.WithValue(r.Context(), reachedKey{}, reached))
-	rec := &statusRecorder{ResponseWriter: w, status: http.StatusOK}
+	rec := &refusalWriter{ResponseWriter: w, status: http.StatusOK, reached: reached, r: r, o: o}
 	o.next.ServeHTTP(rec, r)
 	if *reached {
 		return
@@ -61,6 +62,37 @@ func (o *authObserver) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	case http.StatusTooManyRequests:
 		o.guard.DenyGated(r.Context(), &access.Caller{Source: r.RemoteAddr}, action, access.ReasonLimit, "the web configuration's rate limit")
 	}
+}
+
+// refusalWriter notes the status the toolkit answers. A connection whose
+// first answer is the toolkit's 401 counts against its address (its
+// caller is not known): over the per-client cap that answer closes it,
+// so that clients without valid credentials cannot hold the listener's
+// connections open between attempts.
+type refusalWriter struct {
+	http.ResponseWriter
+	status  int
+	reached *bool
+	r       *http.Request
+	o       *authObserver
+}
+
+func (w *refusalWriter) WriteHeader(code int) {
+	w.status = code
+	if code == http.StatusUnauthorized && !*w.reached {
+		host, _, err := net.SplitHostPort(w.r.RemoteAddr)
+		if err != nil {
+			host = w.r.RemoteAddr
+		}
+		if ok, max := admit(w.r.Context(), "addr:"+host); !ok {
+			if w.r.ProtoMajor == 1 {
+				w.Header().Set("Connection", "close")
+			}
+			w.o.guard.DenyGated(w.r.Context(), &access.Caller{Source: w.r.RemoteAddr}, "http connect", access.ReasonLimit,
+				fmt.Sprintf("more than %d HTTP connections without valid credentials", max))
+		}
+	}
+	w.ResponseWriter.WriteHeader(code)
 }
 
 // webUsers reads the web configuration's user names (not their hashes)
