@@ -392,6 +392,12 @@ func TestScopedViewer(t *testing.T) {
 		t.Errorf("another site's unit: %d, and its page differs from a missing unit's", code)
 	}
 
+	code, hiddenLive := httpsDo(t, p, r, "GET", "/units/harrowmere-1/live", "viewer-larchwater", "")
+	_, absentLive := httpsDo(t, p, r, "GET", "/units/harrowmere-9/live", "viewer-larchwater", "")
+	if code != http.StatusNotFound || strings.ReplaceAll(hiddenLive, "harrowmere-1", "X") != strings.ReplaceAll(absentLive, "harrowmere-9", "X") {
+		t.Errorf("another site's unit's refresh: %d %q, a missing unit's %q", code, hiddenLive, absentLive)
+	}
+
 	// /metrics: the site's unit series, the service's own series, the
 	// unit count of the scope.
 	code, body := httpsDo(t, p, r, "GET", "/metrics", "viewer-larchwater", "")

@@ -47,9 +47,10 @@ type httpGuard struct {
 	hosts     map[string]bool
 	basicAuth bool // the web configuration checks basic-auth users
 	next      http.Handler
-	// notFound answers a viewer asking for a unit outside its scope as
-	// for a unit that does not exist (nil: 403).
-	notFound http.Handler
+	// hideUnits passes a viewer's read of a unit outside its scope on to
+	// the pages, which answer it as for a unit that does not exist
+	// (false: 403).
+	hideUnits bool
 }
 
 // route is what an HTTP request asks of its caller.
@@ -120,10 +121,10 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		if !ok {
 			reason := access.DenyReason(c)
 			h.guard.Deny(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.Sanitize(rt.unit, 128), reason)
-			if rt.role == access.Viewer && rt.unit != "" && c.Has(access.Viewer) && h.notFound != nil {
-				// Not revealed: answered as a unit that does not exist.
-				r.SetPathValue("id", rt.unit)
-				h.notFound.ServeHTTP(w, r)
+			if rt.role == access.Viewer && rt.unit != "" && c.Has(access.Viewer) && h.hideUnits && r.Method == http.MethodGet {
+				// Not revealed: the pages answer it as a unit that does
+				// not exist (their scope excludes it).
+				h.next.ServeHTTP(w, r)
 				return
 			}
 			if reason == access.ReasonUnauthenticated && h.basicAuth {

@@ -116,9 +116,7 @@ func (s *Server) denied(ctx context.Context, n int, unitID string) {
 func (s *Server) httpServer(handler http.Handler, listen string, write bool) *http.Server {
 	caps := newHTTPConnCaps(s.limits.HTTPConnsPerCaller)
 	h := &httpGuard{guard: s.guard, hosts: allowedHosts(listen, s.cfg.Security.HTTPHosts), basicAuth: s.webCfg.Users, next: handler}
-	if s.web != nil {
-		h.notFound = http.HandlerFunc(s.web.NotFound)
-	}
+	h.hideUnits = true // the pages check the scope of /units/{id} themselves (web.Options.Scope)
 	srv := &http.Server{
 		Handler: h, ReadHeaderTimeout: 10 * time.Second, ReadTimeout: s.limits.HTTPRead,
 		IdleTimeout: s.limits.HTTPIdle, MaxHeaderBytes: 64 << 10,

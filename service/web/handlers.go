@@ -177,7 +177,7 @@ func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
 }
 
 func (ui *UI) unitPage(w http.ResponseWriter, r *http.Request) {
-	u := ui.store.Unit(r.PathValue("id"))
+	u := ui.unitOf(r)
 	if u == nil {
 		ui.notFound(w, r)
 		return
@@ -211,7 +211,7 @@ type liveAlarm struct {
 }
 
 func (ui *UI) unitLive(w http.ResponseWriter, r *http.Request) {
-	u := ui.store.Unit(r.PathValue("id"))
+	u := ui.unitOf(r)
 	if u == nil {
 		writeJSON(w, http.StatusNotFound, map[string]string{"error": fmt.Sprintf("unit %q is not in the fleet", r.PathValue("id"))})
 		return
@@ -343,9 +343,15 @@ func operator(s string) string {
 	return strings.TrimSpace(s)
 }
 
-// NotFound answers the page for a unit (path value "id") or a path that
-// does not exist.
-func (ui *UI) NotFound(w http.ResponseWriter, r *http.Request) { ui.notFound(w, r) }
+// unitOf returns the unit the request's path names, or nil when there
+// is none or it is outside the request's scope (answered alike).
+func (ui *UI) unitOf(r *http.Request) *ingest.Unit {
+	id := r.PathValue("id")
+	if keep := ui.opts.Scope(r); keep != nil && !keep(id) {
+		return nil
+	}
+	return ui.store.Unit(id)
+}
 
 func (ui *UI) notFound(w http.ResponseWriter, r *http.Request) {
 	p := ui.newPage("Not found", "", nil)
