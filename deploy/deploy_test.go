@@ -15,7 +15,6 @@ import (
 	"regexp"
 	"slices"
 	"strings"
-	"sync"
 	"testing"
 
 	"go.yaml.in/yaml/v3"
@@ -23,46 +22,43 @@ import (
 	"github.com/genvelope/genvelope/test/testenv"
 )
 
-var (
-	buildOnce sync.Once
-	binPath   string
-	serveSet  map[string]bool
-	buildErr  error
-)
+// binary is a fresh build of genvelope and the flags `genvelope serve`
+// accepts (from its --help).
+type binary struct {
+	path  string
+	flags map[string]bool
+}
 
-// serveFlags builds genvelope once and returns the flags `genvelope
-// serve` accepts (from its --help) and the binary.
-func serveFlags(t *testing.T) (map[string]bool, string) {
+func build(t *testing.T) *binary {
 	t.Helper()
-	buildOnce.Do(func() {
-		dir, err := os.MkdirTemp("", "genvelope-deploy-test")
-		if err != nil {
-			buildErr = err
-			return
-		}
-		binPath = testenv.BuildGenvelope(t, testenv.ModuleRoot(t), dir)
-		out, _ := exec.Command(binPath, "serve", "--help").CombinedOutput()
-		serveSet = map[string]bool{}
-		for _, m := range regexp.MustCompile(`(?m)^\s+-([a-z0-9-]+)`).FindAllStringSubmatch(string(out), -1) {
-			serveSet[m[1]] = true
-		}
-		if len(serveSet) < 10 {
-			buildErr = errors.New("genvelope serve --help listed almost no flags:\n" + string(out))
-		}
-	})
-	if buildErr != nil {
-		t.Fatal(buildErr)
+	b := &binary{path: testenv.BuildGenvelope(t, testenv.ModuleRoot(t), t.TempDir()), flags: map[string]bool{}}
+	out, _ := exec.Command(b.path, "serve", "--help").CombinedOutput()
+	for _, m := range regexp.MustCompile(`(?m)^\s+-([a-z0-9-]+)`).FindAllStringSubmatch(string(out), -1) {
+		b.flags[m[1]] = true
 	}
-	return serveSet, binPath
+	if len(b.flags) < 10 {
+		t.Fatalf("genvelope serve --help listed almost no flags:\n%s", out)
+	}
+	return b
+}
+
+// TestInstallFiles builds the binary once and checks every install file
+// against it.
+func TestInstallFiles(t *testing.T) {
+	b := build(t)
+	t.Run("kubernetes", func(t *testing.T) { testKubernetesManifests(t, b) })
+	t.Run("containerfile", func(t *testing.T) { testContainerfile(t, b) })
+	t.Run("systemd", func(t *testing.T) { testSystemdUnit(t, b) })
+	t.Run("compose", func(t *testing.T) { testComposeCommands(t, b) })
 }
 
 // checkServeArgs checks the arguments of one `genvelope serve` (after
 // the word serve): every flag exists, a listener off loopback has TLS
 // or says --insecure-plaintext, and the state and journal files lie
 // under writable (the state directory).
-func checkServeArgs(t *testing.T, where string, args []string, writable string, hardened bool) {
+func checkServeArgs(t *testing.T, b *binary, where string, args []string, writable string, hardened bool) {
 	t.Helper()
-	flags, _ := serveFlags(t)
+	flags := b.flags
 	val := map[string]string{}
 	for i := 0; i < len(args); i++ {
 		a := args[i]
@@ -159,7 +155,7 @@ func list(v any, keys ...string) []any {
 // ConfigMaps, every flag one the binary has; every pod non-root with a
 // read-only root filesystem and no capabilities; every volume mounted
 // exists; every Service selects pods; every pod has a NetworkPolicy.
-func TestKubernetesManifests(t *testing.T) {
+func testKubernetesManifests(t *testing.T, b *binary) {
 	files, _ := filepath.Glob("kubernetes/*.yaml")
 	if len(files) == 0 {
 		t.Fatal("no manifests in deploy/kubernetes")
@@ -210,7 +206,7 @@ func TestKubernetesManifests(t *testing.T) {
 				for _, a := range list(c, "args") {
 					args = append(args, a.(string))
 				}
-				checkServeArgs(t, where, args, "/var/lib/genvelope", true)
+				checkServeArgs(t, b, where, args, "/var/lib/genvelope", true)
 				if !slices.ContainsFunc(args, func(a string) bool { return strings.HasPrefix(a, "--nats=") }) {
 					t.Errorf("%s: the pair needs --nats", where)
 				}
@@ -302,7 +298,7 @@ func continued(s string) string { return strings.ReplaceAll(s, "\\\n", " ") }
 
 // The container file: a non-root user, the state directory owned by it,
 // and the default command's flags the binary's.
-func TestContainerfile(t *testing.T) {
+func testContainerfile(t *testing.T, b *binary) {
 	data, err := os.ReadFile("container/Containerfile")
 	if err != nil {
 		t.Fatal(err)
@@ -339,7 +335,7 @@ func TestContainerfile(t *testing.T) {
 	if len(entry) != 2 || entry[1] != "serve" {
 		t.Fatalf("ENTRYPOINT %v, want the binary and serve", entry)
 	}
-	checkServeArgs(t, "Containerfile CMD", cmd, "/var/lib/genvelope", true)
+	checkServeArgs(t, b, "Containerfile CMD", cmd, "/var/lib/genvelope", true)
 }
 
 // execStart returns the unit's ExecStart arguments after `serve`.
@@ -361,14 +357,14 @@ func execStart(t *testing.T, unit string) (bin string, args []string) {
 // The systemd unit: its flags the binary's, the sandboxing it promises,
 // and `systemd-analyze verify` (with ExecStart pointed at a built
 // binary) finding nothing.
-func TestSystemdUnit(t *testing.T) {
+func testSystemdUnit(t *testing.T, b *binary) {
 	data, err := os.ReadFile("systemd/genvelope.service")
 	if err != nil {
 		t.Fatal(err)
 	}
 	unit := string(data)
 	bin, args := execStart(t, unit)
-	checkServeArgs(t, "systemd ExecStart", args, "/var/lib/genvelope", true)
+	checkServeArgs(t, b, "systemd ExecStart", args, "/var/lib/genvelope", true)
 	for _, want := range []string{"User=genvelope", "StateDirectory=genvelope", "NoNewPrivileges=yes", "ProtectSystem=strict",
 		"CapabilityBoundingSet=\n", "PrivateDevices=yes", "SystemCallFilter=@system-service", "RestrictAddressFamilies="} {
 		if !strings.Contains(unit, want) {
@@ -376,7 +372,7 @@ func TestSystemdUnit(t *testing.T) {
 		}
 	}
 	analyze := testenv.NeedTool(t, "systemd-analyze", "apt-get install systemd")
-	_, built := serveFlags(t)
+	built := b.path
 	dir := t.TempDir()
 	path := filepath.Join(dir, "genvelope.service")
 	if err := os.WriteFile(path, []byte(strings.Replace(unit, "ExecStart="+bin, "ExecStart="+built, 1)), 0o644); err != nil {
@@ -399,7 +395,7 @@ func TestSystemdUnit(t *testing.T) {
 
 // The compose file of the HA try-out: its genvelope commands are valid
 // and start (plaintext off loopback needs --insecure-plaintext).
-func TestComposeCommands(t *testing.T) {
+func testComposeCommands(t *testing.T, b *binary) {
 	d := docs(t, "ha/docker-compose.yml")
 	n := 0
 	for name, svc := range get(d[0], "services").(map[string]any) {
@@ -415,17 +411,9 @@ func TestComposeCommands(t *testing.T) {
 			continue
 		}
 		n++
-		checkServeArgs(t, "compose "+name, args[1:], "/var/lib/genvelope", false)
+		checkServeArgs(t, b, "compose "+name, args[1:], "/var/lib/genvelope", false)
 	}
 	if n != 2 {
 		t.Errorf("%d genvelope services in the compose file, want the pair", n)
 	}
-}
-
-func TestMain(m *testing.M) {
-	code := m.Run()
-	if binPath != "" {
-		os.RemoveAll(filepath.Dir(binPath))
-	}
-	os.Exit(code)
 }
