@@ -22,6 +22,7 @@ const (
 	checkUnit                 // the role over the request's unit_id
 	checkAnyRole              // any grant at all (reflection)
 	checkDenied               // a method the access file cannot grant
+	checkUnitOrAll            // the role over the request's unit_id, or over one unit at least when it is empty (answers filtered)
 )
 
 // methodCheck returns the role and check of a gRPC method. A method not
@@ -39,6 +40,8 @@ func methodCheck(fullMethod string) (Role, check) {
 		return Operator, checkUnit
 	case pb.JournalService_ListJournal_FullMethodName:
 		return Viewer, checkAnyUnit // entries of other units are filtered out
+	case pb.CoordinationService_GetCoordination_FullMethodName:
+		return Viewer, checkUnitOrAll // one unit, or the caller's units when unit_id is empty
 	}
 	switch {
 	case strings.HasPrefix(fullMethod, "/grpc.health.v1.Health/"):
@@ -81,6 +84,12 @@ func (g *Guard) allow(ctx context.Context, c *Caller, method string, req any) er
 		ok = c.Has(role)
 	case checkUnit:
 		ok = c.May(role, unit)
+	case checkUnitOrAll:
+		if unit == "" {
+			ok = c.Has(role)
+		} else {
+			ok, chk = c.May(role, unit), checkUnit
+		}
 	case checkAnyRole:
 		ok = c.rights.all || len(c.rights.grants) > 0
 	case checkDenied:
@@ -151,6 +160,8 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 		r.Units = visible(c, r.Units, (*pb.Unit).GetId)
 	case *pb.ListAlarmsResponse:
 		r.Alarms = visible(c, r.Alarms, (*pb.AlarmEvent).GetUnitId)
+	case *pb.GetCoordinationResponse:
+		r.Units = visible(c, r.Units, (*pb.UnitCoordination).GetUnitId)
 	case *pb.ListJournalResponse:
 		// Fleet-wide entries (reloads) carry no unit and stay.
 		kept := r.Entries[:0]

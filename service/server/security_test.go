@@ -483,8 +483,20 @@ func TestGRPCScopedLists(t *testing.T) {
 	if !strings.HasSuffix(a.Message(), "known units: harrowmere-1") {
 		t.Errorf("the answer names units outside the scope: %q", a.Message())
 	}
+	// The coordination study: of the caller's units only (it was denied
+	// to everyone under an access file).
+	coord := pb.NewCoordinationServiceClient(conn)
+	if cr, err := coord.GetCoordination(ctx, &pb.GetCoordinationRequest{}); err != nil || len(cr.Units) != 1 || cr.Units[0].UnitId != "harrowmere-1" {
+		t.Errorf("op-harrowmere's coordination study: %v, want harrowmere-1 only", err)
+	}
+	if _, err := coord.GetCoordination(ctx, &pb.GetCoordinationRequest{UnitId: "larchwater-2"}); status.Code(err) != codes.NotFound {
+		t.Errorf("op-harrowmere's study of larchwater-2: %v, want NOT_FOUND", err)
+	}
 	// The viewer of everything is told every unit.
 	all := dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["viewer-all"])
+	if cr, err := pb.NewCoordinationServiceClient(all).GetCoordination(ctx, &pb.GetCoordinationRequest{}); err != nil || len(cr.Units) != 3 {
+		t.Errorf("viewer-all's coordination study: %v", err)
+	}
 	_, err = pb.NewFleetServiceClient(all).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "harrowmere-9"})
 	if m := status.Convert(err).Message(); status.Code(err) != codes.NotFound || !strings.Contains(m, "larchwater-2") || !strings.Contains(m, "brindle-gt3") {
 		t.Errorf("viewer-all gets a missing unit: %v", err)
