@@ -391,6 +391,14 @@ func testSystemdUnit(t *testing.T, b *binary) {
 		t.Errorf("systemd-analyze verify: %v\n%s", err, out)
 	}
 	t.Logf("systemd-analyze verify: %v, %d lines of output", err, strings.Count(string(out), "\n"))
+	// systemd's own exposure score of the sandboxing (0 best, 10 worst;
+	// the threshold is in tenths): the unit promises "OK", at most 2.
+	out, err = exec.Command(analyze, "security", "--offline=true", "--threshold=20", path).CombinedOutput()
+	lines := strings.Split(strings.TrimSpace(string(out)), "\n")
+	if err != nil {
+		t.Errorf("systemd-analyze security: exposure above 2.0 (%v): %s", err, lines[len(lines)-1])
+	}
+	t.Log(lines[len(lines)-1])
 }
 
 // The compose file of the HA try-out: its genvelope commands are valid
