@@ -17,12 +17,12 @@ import (
 type check uint8
 
 const (
-	checkNone    check = iota // open to all (health)
-	checkAnyUnit              // the role over at least one unit; answers are filtered to the caller's units
-	checkUnit                 // the role over the request's unit_id
-	checkAnyRole              // any grant at all (reflection)
-	checkDenied               // a method the access file cannot grant
-	checkUnitOrAll            // the role over the request's unit_id, or over one unit at least when it is empty (answers filtered)
+	checkNone      check = iota // open to all (health)
+	checkAnyUnit                // the role over at least one unit; answers are filtered to the caller's units
+	checkUnit                   // the role over the request's unit_id
+	checkAnyRole                // any grant at all (reflection)
+	checkDenied                 // a method the access file cannot grant
+	checkUnitOrAll              // the role over the request's unit_id, or over one unit at least when it is empty (answers filtered)
 )
 
 // methodCheck returns the role and check of a gRPC method. A method not

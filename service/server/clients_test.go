@@ -196,7 +196,7 @@ func TestConnectionsPerCaller(t *testing.T) {
 			t.Errorf("audit of the closed connection: %+v", got)
 		}
 	})
-		if v, _ := metricValue(scrapeAs(t, p, r), "genvelope_access_denied_total", map[string]string{"reason": access.ReasonLimit}); v < 2 {
+	if v, _ := metricValue(scrapeAs(t, p, r), "genvelope_access_denied_total", map[string]string{"reason": access.ReasonLimit}); v < 2 {
 		t.Errorf("genvelope_access_denied_total{reason=resource_limit} = %v, want at least the 2 refusals", v)
 	}
 }
