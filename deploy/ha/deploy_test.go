@@ -130,7 +130,10 @@ func kubernetesLines(t *testing.T) []commandLine {
 				continue
 			}
 			args := strs(m(ct, "args"))
-			if m(ct, "image") == "genvelope:latest" {
+			switch cmd := strs(m(ct, "command")); {
+			case len(cmd) > 0: // the container's own command: after the program
+				args = append(cmd[1:], args...)
+			case m(ct, "image") == "genvelope:latest":
 				// The image of deploy/container/Containerfile: its
 				// entrypoint runs serve (TestEntrypoints).
 				args = append([]string{"serve"}, args...)
@@ -140,18 +143,24 @@ func kubernetesLines(t *testing.T) []commandLine {
 			for _, vm := range list(m(ct, "volumeMounts")) {
 				c.mounts = append(c.mounts, fmt.Sprint(m(vm, "mountPath")))
 			}
+			named := map[string]int{}
 			for _, p := range list(m(ct, "ports")) {
 				n, _ := m(p, "containerPort").(int)
 				c.ports = append(c.ports, n)
+				named[fmt.Sprint(m(p, "name"))] = n
+			}
+			portOf := func(v any) int { // a number, or a port's name
+				if n, ok := v.(int); ok {
+					return n
+				}
+				return named[fmt.Sprint(v)]
 			}
 			for probe, into := range map[string]map[int]string{"readinessProbe": c.readiness, "livenessProbe": c.liveness} {
 				if g := m(ct, probe, "httpGet"); g != nil {
-					n, _ := m(g, "port").(int)
-					into[n] = fmt.Sprint(m(g, "path"))
+					into[portOf(m(g, "port"))] = fmt.Sprint(m(g, "path"))
 				}
 				if g := m(ct, probe, "tcpSocket"); g != nil {
-					n, _ := m(g, "port").(int)
-					into[n] = "tcp"
+					into[portOf(m(g, "port"))] = "tcp"
 				}
 			}
 			out = append(out, c)
