@@ -406,7 +406,7 @@ func TestEntrypoints(t *testing.T) {
 // the compose command they give is the file's own.
 func TestREADMEsNameWhatExists(t *testing.T) {
 	root := testenv.ModuleRoot(t)
-	ref := regexp.MustCompile("deploy/[A-Za-z0-9_./-]+\\.(?:yml|yaml|conf)")
+	ref := regexp.MustCompile(`deploy/[A-Za-z0-9_./-]+\.(?:yml|yaml|conf)`)
 	for _, readme := range []string{"README.md", "deploy/ha/README.md", "deploy/prometheus/README.md"} {
 		b, err := os.ReadFile(filepath.Join(root, readme))
 		if err != nil {
