@@ -353,7 +353,13 @@ func (s *Store) Commit(t *Tally) {
 // server clock, used only for the "too far in the future" check. For a
 // rejected sample, detail says what was wrong in words for the sender.
 func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
-	u, res, detail := s.precheck(now, smp)
+	return s.AcceptFrom(nil, now, smp)
+}
+
+// AcceptFrom is Accept with the unit found through r, the resolver of
+// the stream the sample came on (nil: the fleet's map).
+func (s *Store) AcceptFrom(r *Resolver, now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(r, now, smp)
 	if res != Accepted {
 		return res, detail
 	}
@@ -364,22 +370,29 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 // anything: a replicated service checks a sample before it writes it to
 // its log, and applies it with Accept when it reads it back.
 func (s *Store) Check(now time.Time, smp *Sample) (res Result, detail string) {
-	u, res, detail := s.precheck(now, smp)
+	u, res, detail := s.precheck(nil, now, smp)
 	if res != Accepted {
 		return res, detail
 	}
 	return u.order(smp.Time.UnixNano(), smp)
 }
 
-// precheck runs the checks of a sample that need no unit state.
-func (s *Store) precheck(now time.Time, smp *Sample) (*Unit, Result, string) {
+// precheck runs the checks of a sample that need no unit state. It
+// finds the unit through r, or the fleet's map when r is nil.
+func (s *Store) precheck(r *Resolver, now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
-	e, ok := sn.byID[smp.UnitID]
+	var e entry
+	var ok bool
+	if r != nil {
+		e, ok = r.resolve(sn, smp.UnitID)
+	} else {
+		e, ok = sn.byID[smp.UnitID]
+	}
 	if !ok {
 		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
 	}
-	r, d := s.checkSample(e, now, smp)
-	return e.u, r, d
+	res, d := s.checkSample(e, now, smp)
+	return e.u, res, d
 }
 
 func (s *Store) checkSample(e entry, now time.Time, smp *Sample) (Result, string) {

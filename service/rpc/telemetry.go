@@ -84,7 +84,7 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 
 // Push takes one batch.
 func (t *Telemetry) Push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
-	return t.push(ctx, req)
+	return t.push(ctx, req, nil)
 }
 
 // Stream takes batches and answers each, in order.
@@ -111,8 +111,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	if t.log != nil {
 		return t.streamLog(st, reqs, errc)
 	}
+	var units ingest.Resolver // this stream's units, each resolved once
 	answer := func(req *pb.PushRequest) error {
-		resp, err := t.push(ctx, req)
+		resp, err := t.push(ctx, req, &units)
 		if err != nil {
 			return err
 		}
@@ -145,7 +146,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	}
 }
 
-func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
+// push takes one batch; units, when not nil, is the resolver of the
+// stream it came on.
+func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest, units *ingest.Resolver) (*pb.PushResponse, error) {
 	if err := t.checkSize(req); err != nil {
 		return nil, err
 	}
@@ -161,7 +164,7 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 		var smp ingest.Sample // stays on the stack: Accept is called directly
 		res, detail := t.convert(caller, s, &smp)
 		if res == ingest.Accepted {
-			res, detail = t.store.Accept(now, &smp)
+			res, detail = t.store.AcceptFrom(units, now, &smp)
 		}
 		tally[res]++
 		d.note(res, s.UnitId)
