@@ -92,12 +92,21 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	ctx := st.Context()
 	reqs := make(chan *pb.PushRequest)
 	errc := make(chan error, 1)
+	// Requests answered in process come back here to be decoded into
+	// again: with the service's Codec a batch reuses the samples of an
+	// earlier one instead of allocating its own.
+	free := make(chan *pb.PushRequest, 2)
 	// Receive on a goroutine of its own so that a drain can end the
 	// stream while the client is idle; it ends when the stream does.
 	go func() {
 		for {
-			req, err := st.Recv()
-			if err != nil {
+			var req *pb.PushRequest
+			select {
+			case req = <-free:
+			default:
+				req = new(pb.PushRequest)
+			}
+			if err := st.RecvMsg(req); err != nil {
 				errc <- err
 				return
 			}
@@ -116,6 +125,10 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 		resp, err := t.push(ctx, req, &units)
 		if err != nil {
 			return err
+		}
+		select {
+		case free <- req: // push kept nothing of it
+		default:
 		}
 		return st.Send(resp)
 	}
