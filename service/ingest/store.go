@@ -296,6 +296,7 @@ func (s *Store) Replace(fl *fleet.Fleet) {
 func (s *Store) endAlarms(u *Unit, now time.Time) {
 	u.mu.Lock()
 	defer u.mu.Unlock()
+	u.rest.forget()
 	for k := range u.alarms {
 		m := &u.alarms[k]
 		if m.Level == alarm.Normal && m.ShelvedUntil == 0 {
@@ -535,24 +536,28 @@ func notFiniteDetail(smp *Sample) string {
 // rejections. At one sample a second it covers a little over four minutes.
 const ringSize = 256
 
-// Unit is the live state of one unit.
+// Unit is the live state of one unit. The fields a sample reads and
+// writes come first, together, then the large arrays of which a sample
+// touches one entry (the timestamps, the heating, the trend) and what
+// only readers and alarm changes use: a sample's work then spans few
+// cache lines of the unit, which matters when the fleet's state does
+// not fit in cache.
 type Unit struct {
 	mu sync.Mutex
 
 	cfg    *fleet.Unit
-	plaus  fleet.Plausibility // cfg's, with the defaults filled in
-	hint   limits.Hint
 	has    bool          // a sample has been accepted
+	stale  bool          // no sample for the stale-telemetry threshold (set by Sweep)
+	rest   restCache     // which alarms are at rest, for the per-sample path (alarms.go)
 	latest Sample        // the latest accepted sample
 	eval   limits.Result // its evaluation (see complete)
 	pt     limits.Point  // its operating point, per unit
 	recvNS int64         // server time it was accepted, Unix ns
 	lastNS int64         // its time, Unix ns
-	stale  bool          // no sample for the stale-telemetry threshold (set by Sweep)
+	hint   limits.Hint
 
 	// Accepted timestamps, Unix ns, increasing; ring[(head-1) mod
 	// ringSize] is the latest, n of them are valid.
-	ring [ringSize]int64
 	head int
 	n    int
 
@@ -565,14 +570,16 @@ type Unit struct {
 	thermNS      int64 // sample time up to which the accumulators have advanced, Unix ns
 	suspect      bool  // the latest sample is suspect (after a gap, or a jump)
 	suspects     uint64
-	heat         [heatSize]heatStep // the heating each recent sample held
 	accepted     uint64
 
-	alarms [alarm.NumKinds]alarm.Machine
-	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
+	lim   limiterState       // the OEL and SCL timers (limiters.go)
+	plaus fleet.Plausibility // cfg's, with the defaults filled in
 
-	trend trend        // headroom and nearest margin over the last hours (trend.go)
-	lim   limiterState // the OEL and SCL timers (limiters.go)
+	alarms [alarm.NumKinds]alarm.Machine
+	ring   [ringSize]int64
+	heat   [heatSize]heatStep     // the heating each recent sample held
+	trend  trend                  // headroom and nearest margin over the last hours (trend.go)
+	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
 }
 
 // heatSize is how many recent samples' heating a unit remembers, so
@@ -765,6 +772,7 @@ func (u *Unit) reconfigure(cfg *fleet.Unit, plaus fleet.Plausibility) {
 	defer u.mu.Unlock()
 	u.cfg, u.plaus = cfg, plaus
 	u.hint = limits.Hint{}
+	u.rest.forget() // new settings
 	if u.has {
 		u.evaluate()
 	}
