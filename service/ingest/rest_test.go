@@ -171,5 +171,3 @@ func (u *Unit) forgetRest() {
 	u.rest.forget()
 	u.mu.Unlock()
 }
-
-
