@@ -95,15 +95,16 @@ type restCache struct {
 
 // quiet reports whether a step of kind k with quantity x may be left
 // out: the kind is at rest and x is strictly on the quiet side of its
-// bound (NaN never is).
+// bound, or NaN (nothing to compare: a step holds the level and changes
+// nothing, and a disabled alarm at rest is not stepped at all).
 func (r *restCache) quiet(k alarm.Kind, x float64) bool {
 	if r.bits&(1<<k) == 0 {
 		return false
 	}
 	if alarm.Rising(k) {
-		return x < r.bound[k]
+		return !(x >= r.bound[k])
 	}
-	return x > r.bound[k]
+	return !(x <= r.bound[k])
 }
 
 // note records whether machine m of kind k, with setting set, is at
