@@ -13,8 +13,10 @@ import "strings"
 // smaller and warmer than the fleet's.
 //
 // The zero value is ready to use. A Resolver is for one goroutine (one
-// stream); it holds at most the units of the fleet, one id copy and a
-// map entry each (some 60 bytes a unit).
+// stream); it holds at most the units of the fleet, an id copy, the
+// unit's entry (with its sample bounds) and a map entry each: some 170
+// bytes for each unit the stream sends, 17 MB for a stream that sends
+// all of 100,000 units.
 type Resolver struct {
 	sn   *snapshot // the snapshot the entries belong to; another one empties them
 	ids  []string  // the stream's own copies of the ids, in the order first seen
