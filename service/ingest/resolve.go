@@ -25,8 +25,9 @@ type Resolver struct {
 	next int // the index expected next
 }
 
-// resolve returns the entry of unit id in sn.
-func (r *Resolver) resolve(sn *snapshot, id string) (entry, bool) {
+// resolve returns the entry of unit id in sn, or nil. The entry is the
+// resolver's: valid until its next call.
+func (r *Resolver) resolve(sn *snapshot, id string) *entry {
 	if r.sn != sn {
 		r.sn, r.ids, r.ents, r.next = sn, r.ids[:0], r.ents[:0], 0
 		clear(r.pos)
@@ -36,15 +37,15 @@ func (r *Resolver) resolve(sn *snapshot, id string) (entry, bool) {
 	}
 	if r.next < len(r.ids) && r.ids[r.next] == id {
 		r.next++
-		return r.ents[r.next-1], true
+		return &r.ents[r.next-1]
 	}
 	if i, ok := r.pos[id]; ok {
 		r.next = int(i) + 1
-		return r.ents[i], true
+		return &r.ents[i]
 	}
 	e, ok := sn.byID[id]
 	if !ok {
-		return entry{}, false
+		return nil
 	}
 	if r.pos == nil {
 		r.pos = map[string]int32{}
@@ -54,5 +55,5 @@ func (r *Resolver) resolve(sn *snapshot, id string) (entry, bool) {
 	r.ids = append(r.ids, id)
 	r.ents = append(r.ents, e)
 	r.next = len(r.ids)
-	return e, true
+	return &r.ents[len(r.ents)-1]
 }

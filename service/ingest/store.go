@@ -436,17 +436,16 @@ func (s *Store) Check(now time.Time, smp *Sample) (res Result, detail string) {
 // finds the unit through r, or the fleet's map when r is nil.
 func (s *Store) precheck(r *Resolver, now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
-	var e entry
-	var ok bool
+	var e *entry
 	if r != nil {
-		e, ok = r.resolve(sn, smp.UnitID)
-	} else {
-		e, ok = sn.byID[smp.UnitID]
+		e = r.resolve(sn, smp.UnitID)
+	} else if v, ok := sn.byID[smp.UnitID]; ok {
+		e = &v
 	}
-	if !ok {
+	if e == nil {
 		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
 	}
-	res, d := s.checkSample(&e, now, smp)
+	res, d := s.checkSample(e, now, smp)
 	return e.u, res, d
 }
 
