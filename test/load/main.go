@@ -85,25 +85,25 @@ type config struct {
 	Servers  []string      `json:"servers"` // "bare", "full", "nats", in the order loaded
 	// NATSServer is the nats-server program of the "nats" phase.
 	NATSServer string `json:"-"`
+	// NATSCPUProfile is a CPU profile of nats-server during the first
+	// nats phase; "" for none.
+	NATSCPUProfile string `json:"-"`
 
 	RSS          bool `json:"rss"`
 	Metrics      bool `json:"metrics"`
 	MetricsTries int  `json:"metrics_tries"`
 
-	Seed       uint64 `json:"seed"`
-	Genvelope  string `json:"-"` // a prebuilt genvelope binary; "" builds one
-	Root       string `json:"-"` // the module root; "" asks go env
-	Keep       bool   `json:"-"`
-	Pprof      bool   `json:"pprof"`
-	TLS        bool   `json:"tls"` // TLS on gRPC for both the service and the bare sink
-	tls        *loadTLS
-	State      bool   `json:"state"` // give the service a state file (when it has --state)
-	CPUProfile string `json:"-"`
-	// NATSCPUProfile is a CPU profile of nats-server during the first
-	// nats phase; "" for none.
-	NATSCPUProfile string `json:"-"`
-	CPUSeconds     int    `json:"-"`
-	HeapProfile    string `json:"-"`
+	Seed        uint64 `json:"seed"`
+	Genvelope   string `json:"-"` // a prebuilt genvelope binary; "" builds one
+	Root        string `json:"-"` // the module root; "" asks go env
+	Keep        bool   `json:"-"`
+	Pprof       bool   `json:"pprof"`
+	TLS         bool   `json:"tls"` // TLS on gRPC for both the service and the bare sink
+	tls         *loadTLS
+	State       bool   `json:"state"` // give the service a state file (when it has --state)
+	CPUProfile  string `json:"-"`
+	CPUSeconds  int    `json:"-"`
+	HeapProfile string `json:"-"`
 	// Added to the environment of genvelope serve (GOGC=..., GODEBUG=...).
 	ServeEnv []string `json:"serve_env,omitempty"`
 	// A CPU profile of the service answering GET /metrics back to back.
