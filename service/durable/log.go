@@ -127,8 +127,10 @@ type Log struct {
 	applyMu sync.Mutex
 	seq     uint64             // the last stream sequence applied
 	ledger  map[string]*Ledger // per unit: what has been applied
-	buf     []ingest.Sample    // decoding buffer
+	dec     sampleDecoder
 	intern  map[string]string
+
+	encoders sync.Pool // of *sampleEncoder, for Append
 
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
@@ -190,6 +192,8 @@ func Open(ctx context.Context, cfg Config) (*Log, error) {
 	_, _ = rand.Read(idb[:])
 	l := &Log{cfg: cfg, log: cfg.Logger, serves: serves, origin: hex.EncodeToString(idb[:]),
 		pending: map[string]*waiter{}, ledger: map[string]*Ledger{}, intern: map[string]string{}}
+	l.dec.intern = l.internID
+	l.encoders.New = func() any { return new(sampleEncoder) }
 	urls := strings.Join(cfg.URLs, ",")
 	opts := []nats.Option{
 		nats.Name("genvelope " + l.origin),
@@ -313,12 +317,14 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 	}
 	var all []sent
 	var ids []string
+	enc := l.encoders.Get().(*sampleEncoder)
+	defer l.encoders.Put(enc)
 	for p, part := range byPart {
 		for _, idx := range l.chunks(smps, part) {
 			id, w := l.register(len(idx))
 			ids = append(ids, id)
 			msg := &nats.Msg{Subject: l.subject(p), Header: nats.Header{formatHeader: {formatSamples}, idHeader: {id}},
-				Data: encodeSamples(make([]byte, 0, 16+len(idx)*64), smps, idx)}
+				Data: enc.encodeSamples(make([]byte, 0, 16+len(idx)*48), smps, idx)}
 			fut, err := l.js.PublishMsgAsync(msg, jetstream.WithExpectStream(l.cfg.Stream))
 			if err != nil {
 				l.forget(ids)
