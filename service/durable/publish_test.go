@@ -2,9 +2,10 @@ package durable
 
 import (
 	"context"
-	"fmt"
 	"io"
 	"log/slog"
+	"net"
+	"os"
 	"os/exec"
 	"path/filepath"
 	"testing"
@@ -35,29 +36,56 @@ type testLog struct {
 	base  time.Time
 }
 
-func startTestLog(t *testing.T) *testLog {
+// startNATS starts a JetStream node of its own on a free port and
+// returns its URL and process id: $GENVELOPE_NATS_SERVER, or nats-server
+// from PATH.
+func startNATS(t testing.TB) (url string, pid int) {
 	t.Helper()
 	if testing.Short() {
 		t.Skip("starts nats-server")
 	}
-	bin := testenv.NeedTool(t, "nats-server", "apt-get install nats-server")
-	port := testenv.FreePort(t)
-	ns := exec.Command(bin, "-js", "-sd", filepath.Join(t.TempDir(), "js"), "-a", "127.0.0.1", "-p", fmt.Sprint(port))
+	bin := os.Getenv("GENVELOPE_NATS_SERVER")
+	if bin == "" {
+		if tt, ok := t.(*testing.T); ok {
+			bin = testenv.NeedTool(tt, "nats-server", "apt-get install nats-server")
+		} else if bin, _ = exec.LookPath("nats-server"); bin == "" {
+			t.Skip("nats-server not found on PATH: install it with `apt-get install nats-server`")
+		}
+	}
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		t.Fatal(err)
+	}
+	addr := ln.Addr().String()
+	ln.Close()
+	host, port, _ := net.SplitHostPort(addr)
+	ns := exec.Command(bin, "-js", "-sd", filepath.Join(t.TempDir(), "js"), "-a", host, "-p", port)
 	if err := ns.Start(); err != nil {
 		t.Fatal(err)
 	}
 	t.Cleanup(func() { _ = ns.Process.Kill(); _ = ns.Wait() })
-	url := "nats://" + testenv.Addr(port)
-	var l *Log
+	return "nats://" + addr, ns.Process.Pid
+}
+
+// openLog opens a Log on url, retrying while the server starts.
+func openLog(t testing.TB, url string) *Log {
+	t.Helper()
 	for deadline := time.Now().Add(testenv.WaitLong); ; time.Sleep(50 * time.Millisecond) {
-		var err error
-		if l, err = Open(context.Background(), Config{URLs: []string{url}, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}); err == nil {
-			break
-		} else if time.Now().After(deadline) {
+		l, err := Open(context.Background(), Config{URLs: []string{url}, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
+		if err == nil {
+			t.Cleanup(l.Close)
+			return l
+		}
+		if time.Now().After(deadline) {
 			t.Fatal(err)
 		}
 	}
-	t.Cleanup(l.Close)
+}
+
+func startTestLog(t *testing.T) *testLog {
+	t.Helper()
+	url, _ := startNATS(t)
+	l := openLog(t, url)
 	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
