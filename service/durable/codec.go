@@ -67,20 +67,36 @@ type sampleEncoder struct {
 // message of a batch (several samples of a unit, samples of one instant)
 // stays near 40 bytes a sample beside the 24 of P, Q and V.
 func (e *sampleEncoder) encodeSamples(buf []byte, smps []ingest.Sample, idx []int) []byte {
+	return e.encode(buf, []samplesRef{{smps, idx}})
+}
+
+// samplesRef is the samples smps[idx], in that order.
+type samplesRef struct {
+	smps []ingest.Sample
+	idx  []int
+}
+
+// encode writes the samples of parts, one after the other, as one
+// message (encodeSamples).
+func (e *sampleEncoder) encode(buf []byte, parts []samplesRef) []byte {
 	if e.index == nil {
 		e.index = map[string]uint64{}
 	}
 	clear(e.index)
 	e.ids, e.refs = e.ids[:0], e.refs[:0]
-	for _, i := range idx {
-		id := smps[i].UnitID
-		r, ok := e.index[id]
-		if !ok {
-			r = uint64(len(e.ids))
-			e.index[id] = r
-			e.ids = append(e.ids, id)
+	n := 0
+	for _, p := range parts {
+		n += len(p.idx)
+		for _, i := range p.idx {
+			id := p.smps[i].UnitID
+			r, ok := e.index[id]
+			if !ok {
+				r = uint64(len(e.ids))
+				e.index[id] = r
+				e.ids = append(e.ids, id)
+			}
+			e.refs = append(e.refs, r)
 		}
-		e.refs = append(e.refs, r)
 	}
 	buf = append(buf, samplesVersion)
 	buf = binary.AppendUvarint(buf, uint64(len(e.ids)))
@@ -88,17 +104,30 @@ func (e *sampleEncoder) encodeSamples(buf []byte, smps []ingest.Sample, idx []in
 		buf = binary.AppendUvarint(buf, uint64(len(id)))
 		buf = append(buf, id...)
 	}
-	buf = binary.AppendUvarint(buf, uint64(len(idx)))
+	buf = binary.AppendUvarint(buf, uint64(n))
 	var prev int64
-	for j, i := range idx {
-		s := &smps[i]
-		buf = binary.AppendUvarint(buf, e.refs[j])
-		t := s.Time.UnixNano()
-		buf = binary.AppendVarint(buf, t-prev)
-		prev = t
-		buf = appendValues(buf, s)
+	j := 0
+	for _, p := range parts {
+		for _, i := range p.idx {
+			s := &p.smps[i]
+			buf = binary.AppendUvarint(buf, e.refs[j])
+			j++
+			t := s.Time.UnixNano()
+			buf = binary.AppendVarint(buf, t-prev)
+			prev = t
+			buf = appendValues(buf, s)
+		}
 	}
 	return buf
+}
+
+// encodedBound bounds the encoded size of smps[idx] in a message.
+func encodedBound(smps []ingest.Sample, idx []int) int {
+	n := 0
+	for _, i := range idx {
+		n += len(smps[i].UnitID) + maxSampleBytes
+	}
+	return n
 }
 
 // appendValues appends a sample's values, flags and quality, the same in

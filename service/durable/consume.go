@@ -282,6 +282,10 @@ func (l *Log) applyMsg(msg jetstream.Msg, meta *jetstream.MsgMetadata) error {
 			w = nil // not ours after all
 		}
 		l.applySamples(meta.Timestamp, smps, w)
+		if w != nil {
+			// Its batches hold the waiter; the writer registered it.
+			l.forget([]string{msg.Headers().Get(idHeader)})
+		}
 		return nil
 	}
 	return fmt.Errorf("subject %s is neither telemetry nor operator actions", subj)

@@ -539,7 +539,14 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 		err  chan error
 	}
 	var profiles []profile
+	// Over JetStream: the telemetry messages written and the samples they
+	// carried, so samples per message.
+	written := []string{"genvelope_log_telemetry_messages_written_total", "genvelope_log_samples_written_total"}
+	var written0, written1 []float64
 	if waitUntil(from) {
+		if p.companion != 0 {
+			written0, _ = metricValues(ctx, p.httpAddr, written...)
+		}
 		srv0, comp0 = p.cpu()
 		cli0 = selfCPU()
 		all0, _ = machineCPU()
@@ -556,6 +563,9 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 		}
 	}
 	if waitUntil(to) {
+		if p.companion != 0 {
+			written1, _ = metricValues(ctx, p.httpAddr, written...)
+		}
 		srv1, comp1 = p.cpu()
 		cli1 = selfCPU()
 		all1, _ = machineCPU()
@@ -594,9 +604,12 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 	log.Info("phase done", "server", server, "samples/s", int(res.SamplesPerS), "p50_ms", res.LatencyP50MS,
 		"p99_ms", res.LatencyP99MS, "max_ms", res.LatencyMaxMS, "server_cpu", fmt.Sprintf("%.2f", res.ServerCPU),
 		"client_cpu", fmt.Sprintf("%.2f", res.ClientCPU), "other_cpu", fmt.Sprintf("%.2f", res.OtherCPU))
+	if len(written0) == 2 && len(written1) == 2 && written1[0] > written0[0] {
+		res.SamplesPerMessage = (written1[1] - written0[1]) / (written1[0] - written0[0])
+	}
 	if p.companion != 0 {
 		log.Info("server CPU per sample", "server", server, "genvelope_us", fmt.Sprintf("%.2f", res.ServiceUSPerSample),
-			"nats_server_us", fmt.Sprintf("%.2f", res.CompanionUSPerSample))
+			"nats_server_us", fmt.Sprintf("%.2f", res.CompanionUSPerSample), "samples_per_message", fmt.Sprintf("%.1f", res.SamplesPerMessage))
 	}
 	if o.err == nil && endedEarly {
 		o.err = errors.New("the streams ended before the measured window did")

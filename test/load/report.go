@@ -328,8 +328,8 @@ func (r *report) writeTable(w io.Writer) {
 				rr.Run, rr.NATSOverFull, 100*(1-rr.NATSOverFull))
 		}
 		if p := rr.NATS; p != nil && p.SamplesPerS > 0 {
-			fmt.Fprintf(w, "run %d: CPU per acknowledged sample over JetStream: genvelope %.2f µs, nats-server %.2f µs\n",
-				rr.Run, p.ServiceUSPerSample, p.CompanionUSPerSample)
+			fmt.Fprintf(w, "run %d: CPU per acknowledged sample over JetStream: genvelope %.2f µs, nats-server %.2f µs; %.1f samples per message in the stream\n",
+				rr.Run, p.ServiceUSPerSample, p.CompanionUSPerSample, p.SamplesPerMessage)
 		}
 	}
 	if sv := r.Service; sv != nil {

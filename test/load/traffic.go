@@ -290,7 +290,9 @@ type phaseResult struct {
 	// nats-server (the nats phase).
 	ServiceUSPerSample   float64 `json:"genvelope_cpu_us_per_sample,omitempty"`
 	CompanionUSPerSample float64 `json:"nats_server_cpu_us_per_sample,omitempty"`
-	ClientCPU            float64 `json:"client_cpu_cores"`
+	// Samples per telemetry message written to the stream (the nats phase).
+	SamplesPerMessage float64 `json:"samples_per_log_message,omitempty"`
+	ClientCPU         float64 `json:"client_cpu_cores"`
 	// Busy CPU of the rest of the machine (other processes, and the
 	// kernel's work not charged to either side) over the window, cores.
 	OtherCPU float64 `json:"other_cpu_cores"`
