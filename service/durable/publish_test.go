@@ -8,6 +8,8 @@ import (
 	"os"
 	"os/exec"
 	"path/filepath"
+	"reflect"
+	"sync"
 	"testing"
 	"time"
 
@@ -301,5 +303,87 @@ func TestBadTelemetryMessages(t *testing.T) {
 	}
 	if n := tl.store.Counts()[ingest.RejectUnknownUnit]; n != 1 {
 		t.Errorf("%d samples rejected as of an unknown unit, want 1", n)
+	}
+}
+
+// TestPipelinedBatches: batches appended one after another without
+// waiting, from one goroutine per unit, all go into the log in their
+// order (any reordering would make a later sample of a unit come first
+// and the earlier one out of order) and each sample counts once. The
+// writers may put several batches in one message; the answer of each
+// batch is its own samples'.
+func TestPipelinedBatches(t *testing.T) {
+	tl := startTestLog(t)
+	const batches, per = 40, 3
+	var wg sync.WaitGroup
+	for u := range exampleUnits {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			ctx, cancel := context.WithTimeout(context.Background(), testenv.WaitLong)
+			defer cancel()
+			var waits []func(context.Context) ([]ingest.Result, []string, error)
+			for b := range batches {
+				smps := make([]ingest.Sample, per)
+				for k := range smps {
+					smps[k] = tl.sample(u, b*per+k)
+				}
+				wait, err := tl.Append(ctx, time.Now(), smps)
+				if err != nil {
+					t.Errorf("%s batch %d: %v", exampleUnits[u].id, b, err)
+					return
+				}
+				waits = append(waits, wait)
+			}
+			for b, wait := range waits {
+				res, _, err := wait(ctx)
+				if err != nil {
+					t.Errorf("%s batch %d: %v", exampleUnits[u].id, b, err)
+					continue
+				}
+				for k, r := range res {
+					if r != ingest.Accepted {
+						t.Errorf("%s batch %d sample %d: %v, want accepted", exampleUnits[u].id, b, k, r)
+					}
+				}
+			}
+		}()
+	}
+	wg.Wait()
+	tl.waitApplied(t)
+	for _, e := range exampleUnits {
+		var want Ledger
+		for k := range batches * per {
+			want.Count++
+			want.Digest += SampleDigest(e.id, tl.base.Add(time.Duration(k)*time.Second).UnixNano())
+		}
+		if lg := tl.ledger(e.id); lg != want {
+			t.Errorf("%s: ledger %+v, want %+v", e.id, lg, want)
+		}
+	}
+	msgs, smps := testutil.ToFloat64(tl.writtenMsg), testutil.ToFloat64(tl.writtenSmp)
+	if smps != batches*per*float64(len(exampleUnits)) {
+		t.Errorf("%v samples written, want %d", smps, batches*per*len(exampleUnits))
+	}
+	t.Logf("%d batches of one unit each went into %v messages", batches*len(exampleUnits), msgs)
+}
+
+// TestPartQueueTake: a writer takes at least one segment, then whole
+// segments while they fit the message limit, in the order queued.
+func TestPartQueueTake(t *testing.T) {
+	q := &partQueue{}
+	for _, size := range []int{300, 300, 500, 2000, 100} {
+		q.pending = append(q.pending, &segment{size: size})
+	}
+	var got [][]int
+	for segs := q.take(1000); len(segs) > 0; segs = q.take(1000) {
+		var sizes []int
+		for _, s := range segs {
+			sizes = append(sizes, s.size)
+		}
+		got = append(got, sizes)
+	}
+	if want := [][]int{{300, 300}, {500}, {2000}, {100}}; !reflect.DeepEqual(got, want) {
+		t.Errorf("messages of segment sizes %v, want %v", got, want)
 	}
 }
