@@ -166,6 +166,9 @@ var errShort = errors.New("message ends inside a sample")
 type sampleDecoder struct {
 	out []ingest.Sample
 	ids []string
+	// refs is, for a samples/2 message, each sample's index in ids;
+	// empty for samples/1.
+	refs []uint32
 	// intern turns an id's bytes into the string to use, so that known
 	// ids do not allocate.
 	intern func([]byte) string
@@ -174,6 +177,7 @@ type sampleDecoder struct {
 // decode reads a telemetry message of the given format into d.out.
 func (d *sampleDecoder) decode(format string, data []byte) ([]ingest.Sample, error) {
 	var err error
+	d.refs = d.refs[:0]
 	switch format {
 	case formatSamples:
 		d.out, err = d.decodeSamples(data)
@@ -230,6 +234,7 @@ func (d *sampleDecoder) decodeSamples(data []byte) ([]ingest.Sample, error) {
 		}
 		data = data[k:]
 		t += dt
+		d.refs = append(d.refs, uint32(r))
 		var s ingest.Sample
 		s.UnitID, s.Time = d.ids[r], time.Unix(0, t)
 		var err error

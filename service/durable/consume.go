@@ -308,15 +308,33 @@ func (l *Log) internID(b []byte) string {
 // time at. l.applyMu must be held.
 func (l *Log) applySamples(at time.Time, smps []ingest.Sample, w *waiter) {
 	var tally ingest.Tally
+	// With an id table (samples/2), each unit's ledger is looked up once
+	// a message rather than once a sample.
+	refs := l.dec.refs
+	if len(refs) != len(smps) {
+		refs = nil
+	}
+	l.ledgers = l.ledgers[:0]
+	for range l.dec.ids {
+		l.ledgers = append(l.ledgers, nil)
+	}
 	for i := range smps {
 		smp := &smps[i]
 		res, detail := l.store.Accept(at, smp)
 		tally[res]++
 		if res == ingest.Accepted {
-			lg := l.ledger[smp.UnitID]
+			var lg *Ledger
+			if refs != nil {
+				lg = l.ledgers[refs[i]]
+			}
 			if lg == nil {
-				lg = &Ledger{}
-				l.ledger[smp.UnitID] = lg
+				if lg = l.ledger[smp.UnitID]; lg == nil {
+					lg = &Ledger{}
+					l.ledger[smp.UnitID] = lg
+				}
+				if refs != nil {
+					l.ledgers[refs[i]] = lg
+				}
 			}
 			lg.Count++
 			lg.Digest += SampleDigest(smp.UnitID, smp.Time.UnixNano())

@@ -128,6 +128,7 @@ type Log struct {
 	seq     uint64             // the last stream sequence applied
 	ledger  map[string]*Ledger // per unit: what has been applied
 	dec     sampleDecoder
+	ledgers []*Ledger // of the decoded message's id table
 	intern  map[string]string
 
 	// The partitions' writers (publish.go).

@@ -252,7 +252,8 @@ func TestBatchAcknowledgedWhenEveryPartitionStored(t *testing.T) {
 // read (cut short, another version, another format, an index outside
 // the id table) are logged, counted as foreign and skipped; a readable
 // message naming a unit outside the fleet applies its good samples and
-// rejects that unit's; the good message after them all is applied.
+// rejects that unit's; the good message after them all, in samples/1,
+// is applied.
 func TestBadTelemetryMessages(t *testing.T) {
 	tl := startTestLog(t)
 	good := []ingest.Sample{tl.sample(0, 2), tl.sample(0, 3)}
@@ -274,7 +275,7 @@ func TestBadTelemetryMessages(t *testing.T) {
 		{"format samples/3", "samples/3", data},
 		{"index outside the table", formatSamples, withByte(4+len(good[0].UnitID), 5)}, // version, id count, id length, id, sample count, the index
 		{"a unit not in the fleet", formatSamples, new(sampleEncoder).encodeSamples(nil, unknown, []int{0, 1, 2})},
-		{"good", formatSamples, data},
+		{"good, in the older format", formatSamples1, encodeSamples1(nil, good, []int{0, 1})},
 	} {
 		msg := &nats.Msg{Subject: subj, Header: nats.Header{formatHeader: {m.format}}, Data: m.data}
 		if _, err := tl.js.PublishMsg(context.Background(), msg); err != nil {
