@@ -132,9 +132,10 @@ type Log struct {
 	intern  map[string]string
 
 	// The partitions' writers (publish.go).
-	queues  []*partQueue // by partition; nil for one not served
-	quit    chan struct{}
-	writers sync.WaitGroup
+	queues   []*partQueue // by partition; nil for one not served
+	quit     chan struct{}
+	stopOnce sync.Once
+	writers  sync.WaitGroup
 
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked

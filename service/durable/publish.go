@@ -44,6 +44,7 @@ type segment struct {
 type partQueue struct {
 	mu      sync.Mutex
 	pending []*segment
+	closed  bool          // the writer has ended
 	kick    chan struct{} // buffered: something was queued
 }
 
@@ -67,12 +68,14 @@ func (l *Log) startWriters() {
 	}
 }
 
-// stopWriters ends the writers, failing what they still hold.
+// stopWriters ends the writers, failing what they still hold. A second
+// call does nothing.
 func (l *Log) stopWriters() {
-	if l.quit == nil {
-		return
-	}
-	close(l.quit)
+	l.stopOnce.Do(func() {
+		if l.quit != nil {
+			close(l.quit)
+		}
+	})
 	l.writers.Wait()
 }
 
@@ -83,6 +86,10 @@ func (l *Log) queue(p int, segs []*segment) error {
 		return fmt.Errorf("partition %d is not served here", p)
 	}
 	q.mu.Lock()
+	if q.closed {
+		q.mu.Unlock()
+		return errClosed
+	}
 	q.pending = append(q.pending, segs...)
 	q.mu.Unlock()
 	select {
@@ -119,9 +126,12 @@ func (l *Log) write(p int, q *partQueue) {
 	for {
 		select {
 		case <-l.quit:
-			for segs := q.take(0); len(segs) > 0; segs = q.take(0) {
-				answer(segs, errClosed)
-			}
+			q.mu.Lock()
+			q.closed = true
+			segs := q.pending
+			q.pending = nil
+			q.mu.Unlock()
+			answer(segs, errClosed)
 			return
 		case <-q.kick:
 		}

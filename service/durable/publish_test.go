@@ -2,6 +2,7 @@ package durable
 
 import (
 	"context"
+	"errors"
 	"io"
 	"log/slog"
 	"net"
@@ -386,5 +387,27 @@ func TestPartQueueTake(t *testing.T) {
 	}
 	if want := [][]int{{300, 300}, {500}, {2000}, {100}}; !reflect.DeepEqual(got, want) {
 		t.Errorf("messages of segment sizes %v, want %v", got, want)
+	}
+}
+
+// TestAppendAfterClose: once the log is closed a batch is refused at
+// once, and one queued but not yet written is answered with an error,
+// never left waiting or acknowledged.
+func TestAppendAfterClose(t *testing.T) {
+	url, _ := startNATS(t)
+	l := openLog(t, url)
+	// A queued segment the writer has not taken: queue it directly,
+	// without waking the writer, then close.
+	q := l.queues[0]
+	seg := &segment{pub: make(chan error, 1)}
+	q.mu.Lock()
+	q.pending = append(q.pending, seg)
+	q.mu.Unlock()
+	l.Close()
+	if err := <-seg.pub; !errors.Is(err, errClosed) {
+		t.Errorf("a segment queued at close: %v, want %v", err, errClosed)
+	}
+	if _, err := l.Append(context.Background(), time.Now(), []ingest.Sample{{UnitID: "harrowmere-1"}}); !errors.Is(err, errClosed) {
+		t.Errorf("Append after Close: %v, want %v", err, errClosed)
 	}
 }
