@@ -102,8 +102,8 @@ func BenchmarkStream(b *testing.B) {
 	}
 	for _, tc := range benches {
 		b.Run(tc.name, func(b *testing.B) {
-			url, pid := startNATS(b)
-			l := openLog(b, url)
+			url, pid := startNATSServer(b)
+			l := openBenchLog(b, url)
 			cons, err := l.stream.OrderedConsumer(context.Background(), jetstream.OrderedConsumerConfig{})
 			if err != nil {
 				b.Fatal(err)

@@ -39,10 +39,10 @@ type testLog struct {
 	base  time.Time
 }
 
-// startNATS starts a JetStream node of its own on a free port and
+// startNATSServer starts a JetStream node of its own on a free port and
 // returns its URL and process id: $GENVELOPE_NATS_SERVER, or nats-server
 // from PATH.
-func startNATS(t testing.TB) (url string, pid int) {
+func startNATSServer(t testing.TB) (url string, pid int) {
 	t.Helper()
 	if testing.Short() {
 		t.Skip("starts nats-server")
@@ -70,8 +70,8 @@ func startNATS(t testing.TB) (url string, pid int) {
 	return "nats://" + addr, ns.Process.Pid
 }
 
-// openLog opens a Log on url, retrying while the server starts.
-func openLog(t testing.TB, url string) *Log {
+// openBenchLog opens a Log on url, retrying while the server starts.
+func openBenchLog(t testing.TB, url string) *Log {
 	t.Helper()
 	for deadline := time.Now().Add(testenv.WaitLong); ; time.Sleep(50 * time.Millisecond) {
 		l, err := Open(context.Background(), Config{URLs: []string{url}, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
@@ -87,8 +87,8 @@ func openLog(t testing.TB, url string) *Log {
 
 func startTestLog(t *testing.T) *testLog {
 	t.Helper()
-	url, _ := startNATS(t)
-	l := openLog(t, url)
+	url, _ := startNATSServer(t)
+	l := openBenchLog(t, url)
 	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
@@ -394,8 +394,8 @@ func TestPartQueueTake(t *testing.T) {
 // once, and one queued but not yet written is answered with an error,
 // never left waiting or acknowledged.
 func TestAppendAfterClose(t *testing.T) {
-	url, _ := startNATS(t)
-	l := openLog(t, url)
+	url, _ := startNATSServer(t)
+	l := openBenchLog(t, url)
 	// A queued segment the writer has not taken: queue it directly,
 	// without waking the writer, then close.
 	q := l.queues[0]
