@@ -11,6 +11,7 @@ import (
 	"path/filepath"
 	"reflect"
 	"sync"
+	"syscall"
 	"testing"
 	"time"
 
@@ -37,6 +38,8 @@ type testLog struct {
 	store *ingest.Store
 	js    jetstream.JetStream // a second connection, the test's own
 	base  time.Time
+
+	natsPID int
 }
 
 // startNATSServer starts a JetStream node of its own on a free port and
@@ -70,11 +73,16 @@ func startNATSServer(t testing.TB) (url string, pid int) {
 	return "nats://" + addr, ns.Process.Pid
 }
 
-// openBenchLog opens a Log on url, retrying while the server starts.
-func openBenchLog(t testing.TB, url string) *Log {
+// openBenchLog opens a Log on url, retrying while the server starts;
+// cfg (may be nil) adjusts the configuration.
+func openBenchLog(t testing.TB, url string, cfg ...func(*Config)) *Log {
 	t.Helper()
+	c := Config{URLs: []string{url}, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))}
+	for _, f := range cfg {
+		f(&c)
+	}
 	for deadline := time.Now().Add(testenv.WaitLong); ; time.Sleep(50 * time.Millisecond) {
-		l, err := Open(context.Background(), Config{URLs: []string{url}, Logger: slog.New(slog.NewTextHandler(io.Discard, nil))})
+		l, err := Open(context.Background(), c)
 		if err == nil {
 			t.Cleanup(l.Close)
 			return l
@@ -85,10 +93,10 @@ func openBenchLog(t testing.TB, url string) *Log {
 	}
 }
 
-func startTestLog(t *testing.T) *testLog {
+func startTestLog(t *testing.T, cfg ...func(*Config)) *testLog {
 	t.Helper()
-	url, _ := startNATSServer(t)
-	l := openBenchLog(t, url)
+	url, pid := startNATSServer(t)
+	l := openBenchLog(t, url, cfg...)
 	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
@@ -115,7 +123,7 @@ func startTestLog(t *testing.T) *testLog {
 	if err != nil {
 		t.Fatal(err)
 	}
-	return &testLog{Log: l, store: store, js: js, base: time.Now().Add(-10 * time.Minute).Truncate(time.Second)}
+	return &testLog{Log: l, store: store, js: js, base: time.Now().Add(-10 * time.Minute).Truncate(time.Second), natsPID: pid}
 }
 
 // sample returns a plausible sample of example unit u at base + k s.
@@ -409,5 +417,59 @@ func TestAppendAfterClose(t *testing.T) {
 	}
 	if _, err := l.Append(context.Background(), time.Now(), []ingest.Sample{{UnitID: "harrowmere-1"}}); !errors.Is(err, errClosed) {
 		t.Errorf("Append after Close: %v, want %v", err, errClosed)
+	}
+}
+
+// TestUnconfirmedWriteNotAcknowledged: while nats-server is stopped
+// (SIGSTOP) a batch is not confirmed within the timeout and is answered
+// with an error, never acknowledged; once the server runs again the
+// resend is acknowledged and each sample counts once, whether or not the
+// first write reached the stream in the end.
+func TestUnconfirmedWriteNotAcknowledged(t *testing.T) {
+	tl := startTestLog(t, func(c *Config) { c.Timeout = 300 * time.Millisecond })
+	first := []ingest.Sample{tl.sample(0, 0), tl.sample(1, 0)}
+	if _, err := tl.append(t, first); err != nil {
+		t.Fatalf("first batch: %v", err)
+	}
+	if err := syscall.Kill(tl.natsPID, syscall.SIGSTOP); err != nil {
+		t.Fatal(err)
+	}
+	stopped := true
+	cont := func() {
+		if stopped {
+			stopped = false
+			if err := syscall.Kill(tl.natsPID, syscall.SIGCONT); err != nil {
+				t.Error(err)
+			}
+		}
+	}
+	defer cont()
+	second := []ingest.Sample{tl.sample(0, 1), tl.sample(1, 1), tl.sample(2, 1)}
+	if res, err := tl.append(t, second); err == nil {
+		t.Fatalf("a batch written while nats-server was stopped was acknowledged: %v", res)
+	} else {
+		t.Logf("while stopped: %v", err)
+	}
+	cont()
+	var res []ingest.Result
+	for deadline := time.Now().Add(testenv.WaitLong); ; time.Sleep(100 * time.Millisecond) {
+		var err error
+		if res, err = tl.append(t, second); err == nil {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("resend: %v", err)
+		}
+	}
+	for i, r := range res {
+		if r != ingest.Accepted && r != ingest.Duplicate {
+			t.Errorf("resend sample %d: %v", i, r)
+		}
+	}
+	tl.waitApplied(t)
+	for u, want := range []uint64{2, 2, 1} {
+		if lg := tl.ledger(exampleUnits[u].id); lg.Count != want {
+			t.Errorf("%s: %d samples applied, want %d", exampleUnits[u].id, lg.Count, want)
+		}
 	}
 }
