@@ -330,7 +330,7 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 		chunks := chunkSamples(smps, part, limit)
 		ps := make([]*segment, len(chunks))
 		for k, idx := range chunks {
-			ps[k] = &segment{smps: smps, idx: idx, size: encodedBound(smps, idx), pub: make(chan error, 1)}
+			ps[k] = &segment{smps: smps, idx: idx, boundBytes: encodedBound(smps, idx), pub: make(chan error, 1)}
 		}
 		if err := l.queue(p, ps); err != nil {
 			return nil, err // what was queued is written; the batch is not acknowledged

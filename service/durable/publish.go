@@ -18,7 +18,7 @@ import (
 // commit). Under load a message carries several batches' samples of
 // its partition, so the stream stores fewer, larger messages: its cost
 // is mostly per message (a write, an acknowledgement, a delivery). A
-// lone batch goes out at once, as before.
+// lone batch goes out at once.
 //
 // Order: a partition's segments are written in the order Append queued
 // them, so a unit's samples enter the log in the order their batches
@@ -29,9 +29,9 @@ import (
 // segment is one batch's samples of one partition (or part of them,
 // within the message size limit).
 type segment struct {
-	smps []ingest.Sample
-	idx  []int
-	size int // bound of the encoded size, bytes
+	smps       []ingest.Sample
+	idx        []int
+	boundBytes int // bound of its encoded size
 
 	// Set by the writer before pub is signalled: the message that
 	// carries the segment and where its samples start in it.
@@ -105,8 +105,8 @@ func (q *partQueue) take(limit int) []*segment {
 	q.mu.Lock()
 	defer q.mu.Unlock()
 	n, size := 0, 0
-	for n < len(q.pending) && (n == 0 || size+q.pending[n].size <= limit) {
-		size += q.pending[n].size
+	for n < len(q.pending) && (n == 0 || size+q.pending[n].boundBytes <= limit) {
+		size += q.pending[n].boundBytes
 		n++
 	}
 	segs := q.pending[:n:n]

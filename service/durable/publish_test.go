@@ -383,13 +383,13 @@ func TestPipelinedBatches(t *testing.T) {
 func TestPartQueueTake(t *testing.T) {
 	q := &partQueue{}
 	for _, size := range []int{300, 300, 500, 2000, 100} {
-		q.pending = append(q.pending, &segment{size: size})
+		q.pending = append(q.pending, &segment{boundBytes: size})
 	}
 	var got [][]int
 	for segs := q.take(1000); len(segs) > 0; segs = q.take(1000) {
 		var sizes []int
 		for _, s := range segs {
-			sizes = append(sizes, s.size)
+			sizes = append(sizes, s.boundBytes)
 		}
 		got = append(got, sizes)
 	}
