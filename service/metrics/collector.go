@@ -120,10 +120,12 @@ func (ch constSink) add(f *family, v float64, lv ...string) {
 }
 
 // Collect builds the metrics from the store as it is now.
-func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch)) }
+func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch), nil) }
 
-// series walks the store once and hands every series to s.
-func (c *Collector) series(out sink) {
+// series walks the store once and hands every series to s: of every
+// unit, or of the units keep admits (the fleet-wide counts stay; the
+// unit count is of the units kept).
+func (c *Collector) series(out sink, keep func(unitID string) bool) {
 	counts := c.store.Counts()
 	for r := ingest.Result(0); r < ingest.NumResults; r++ {
 		out.add(c.samples, float64(counts[r]), r.String())
@@ -135,12 +137,17 @@ func (c *Collector) series(out sink) {
 		}
 	}
 	units := c.store.Units()
-	out.add(c.units, float64(len(units)))
+	kept := 0
+	defer func() { out.add(c.units, float64(kept)) }()
 	now := c.now()
 	nowNS := now.UnixNano()
 	for _, u := range units {
 		v := u.View()
 		cfg := v.Config
+		if keep != nil && !keep(cfg.ID) {
+			continue
+		}
+		kept++
 		id, site := cfg.ID, cfg.Site
 		out.add(c.info, 1, id, site, cfg.DisplayName(), cfg.Machine.Rotor.String())
 		out.add(c.accepted, float64(v.Accepted), id, site)

@@ -73,9 +73,14 @@ func appendValue(b []byte, v float64) []byte {
 // WriteText writes every family of the collector in the Prometheus text
 // exposition format (version 0.0.4), built from the store as it is now.
 // Families without a series are left out, as a registry does.
-func (c *Collector) WriteText(w io.Writer) error {
+func (c *Collector) WriteText(w io.Writer) error { return c.WriteTextOf(w, nil) }
+
+// WriteTextOf is WriteText for the units keep admits (nil: all): a
+// viewer scoped to some units sees their series and the fleet-wide
+// ones, nothing of the other units.
+func (c *Collector) WriteTextOf(w io.Writer, keep func(unitID string) bool) error {
 	t := &textSink{bufs: make(map[*family][]byte, len(c.families))}
-	c.series(t)
+	c.series(t, keep)
 	bw := bufio.NewWriterSize(w, 64<<10)
 	for _, f := range c.families {
 		b := t.bufs[f]
