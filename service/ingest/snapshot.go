@@ -222,6 +222,7 @@ func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string, bad []err
 				u.alarms[k] = m
 			}
 		}
+		u.rest.forget()
 		u.mu.Unlock()
 		restored++
 	}
