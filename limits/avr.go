@@ -719,9 +719,78 @@ func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) && topHolds() {
 		return iv
 	}
+	if iv.low.OK && p >= tabPStep {
+		if s, ok := u.detectInterval(c, p, v, iv, qTop, qBot); ok {
+			return s
+		}
+	}
 	stable := func(q float64) (bool, error) { return u.avrStableFast(c, p, q, v, ssGrowth) }
 	return topInterval(stable, qTop, qBot, scanStep, fastTol)
 }
+
+// detectInterval checks the table's answer iv where the bracket check
+// does not hold or cannot tell: in a cell marked scan (a node has a
+// stable island below q_stability, hasIsland), where a boundary within
+// tabCheck of the interpolated limit L may be an island's bottom rather
+// than the topmost interval's, and near the direct scan's floor. It
+// takes L when the band detector of the table's build (tabScanDown, the
+// standard by which the nodes' limits were found) finds no unstable q
+// from the top down to L + tabCheck, and L - tabCheck is unstable: the
+// topmost interval then reaches down to within tabCheck of L and ends
+// there. Where L lies tabCheck or more below the direct scan's floor,
+// stable down to the floor gives the floor. The top: q_max stable
+// (whatever the table says, the top does not move: the direct scan
+// starts there), or a moved top within tabCheck of the table's (a
+// bracket, as fastInterval checks it). Some twenty Routh-Hurwitz tests
+// against the direct scan's hundred and more over a long interval. ok is
+// false where the check does not hold or does not apply (L within
+// tabCheck of the floor, q_max unstable without a moved top in the
+// table): the caller applies the rule.
+func (u *Unit) detectInterval(c *charParts, p, v float64, iv interval, qTop, qBot float64) (interval, bool) {
+	floor, low := qBot-scanFloor, iv.low.V
+	to := low + tabCheck
+	switch {
+	case low <= floor-tabCheck:
+		to = floor
+	case low < floor+tabCheck:
+		return interval{}, false
+	}
+	a, err := u.tabTest(c, p, qTop, v)
+	if err != nil {
+		return interval{}, false
+	}
+	switch {
+	case a.stable:
+		iv.top = Bound{}
+	case !iv.top.OK:
+		return interval{}, false
+	default:
+		// q_max unstable, the top moved: a bracket about the table's
+		// top, and the interval looked through from just under it.
+		if a, err = u.tabTest(c, p, iv.top.V-tabCheck, v); err != nil || !a.stable || a.q <= to {
+			return interval{}, false
+		}
+		if s, err := u.avrStableFast(c, p, math.Min(iv.top.V+tabCheck, qTop), v, 0); err != nil || s {
+			return interval{}, false
+		}
+	}
+	if to == floor {
+		iv.low = some(floor)
+	} else if s, err := u.avrStableFast(c, p, low-tabCheck, v, 0); err != nil || s {
+		return interval{}, false // the cheap half of the bracket first
+	}
+	var seen, sorted [tabScanCap]tabSample
+	sc := tabScratch{seen: seen[:0], sorted: sorted[:0]}
+	if _, _, found, err := u.tabScanDown(c, &sc, p, v, a, to); err != nil || found {
+		return interval{}, false
+	}
+	return iv, true
+}
+
+// tabScanCap is the room for detectInterval's samples (tabScanDown's)
+// on the stack: some twenty are taken over 2.5 pu; beyond the room,
+// append moves them to the heap (an allocation, not an error).
+const tabScanCap = 96
 
 // fastTol is the bisection tolerance of the per-sample path's own scan, pu.
 const fastTol = 1e-8
@@ -744,6 +813,9 @@ func bracketHolds(stable func(float64) (bool, error), q, qTop float64, bottom bo
 // A voltage off the grid is extrapolated along v from the three rows at
 // the grid's edge (Newton's backward-difference formula, quadratic),
 // never as smooth: the caller checks it.
+//
+// In a cell marked scan ok is false, and iv is the interpolated answer
+// all the same (for detectInterval's check).
 func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 	x := p / t.pStep
 	y := (v - t.v0) * t.vInv
@@ -777,21 +849,18 @@ func (t *stabTable) lookup(p, v, qTop float64) (iv interval, ok, smooth bool) {
 	default:
 		return interval{}, false, false
 	}
-	if scan {
-		return interval{}, false, false
-	}
 	if none {
-		return interval{}, true, smooth // no stable operation
+		return interval{}, !scan, smooth && !scan // no stable operation
 	}
 	if moved && top < qTop {
 		iv.top = some(top)
 		qTop = top
 	}
 	if low >= qTop {
-		return interval{}, true, false // the stable interval lies above q_max
+		return interval{}, !scan, false // the stable interval lies above q_max
 	}
 	iv.low = some(low)
-	return iv, true, smooth
+	return iv, !scan, smooth && !scan
 }
 
 // at interpolates the table at grid coordinates x (along p) and y (along
@@ -923,8 +992,10 @@ const (
 func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSample, floor float64) (st, un tabSample, found bool, err error) {
 	// The stable samples, by q descending, for probeMinima: a sample is
 	// tested between two it lies next to, so it moves a few places.
+	// The scratch is not written back (a slice that outgrows it is
+	// dropped with the call): sc may then live on the caller's stack, as
+	// detectInterval's does.
 	seen := append(sc.seen[:0], a)
-	defer func() { sc.seen = seen[:0] }()
 	test := func(q float64) (tabSample, error) {
 		s, err := u.tabTest(c, p, q, v)
 		if err == nil && s.stable {
@@ -997,7 +1068,6 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	// A margin's dip below zero narrower than the samples shows as a
 	// local minimum of the margin: probe there.
 	sorted := append(sc.sorted[:0], seen...) // probeMinima's tests add to seen
-	sc.sorted = sorted[:0]
 	pr, ok, err := probeMinima(test, sorted)
 	if err != nil || !ok || found && pr.q <= un.q {
 		return st, un, found, err

@@ -179,3 +179,55 @@ func BenchmarkRotorMode(b *testing.B) {
 		_, _, _ = u.RotorMode(Point{P: 0.1 + 0.7*float64(i%8)/8, Q: 0.1, V: 1})
 	}
 }
+
+// benchAVRIsland is an avr unit whose stable set along q has a stable
+// island below the limit over much of the chart, so that most cells of
+// its table are marked scan (markScan): the salient unit of
+// deploy/examples/fleet.yaml with the third exciter design of the load
+// harness's fleet (test/load/fleetgen.go: a brushless rotating exciter,
+// no negative field voltage). Invented data, not check values.
+func benchAVRIsland(tb testing.TB) *Unit {
+	tb.Helper()
+	u, err := New(Params{Rotor: Salient, Xd: 1.05, Xq: 0.66, Xl: 0.15, Xp: 0.21, Ra: 0.003,
+		XdTransient: 0.3, InertiaHS: 3.2, S10: 0.09, S12: 0.3, IfdRated: 1.9411764705882353, PowerFactor: 0.9,
+		FrequencyHz: 50, PMax: 110.0 / 120, PMin: 20.0 / 120, Xe: 0.15, Basis: BasisAVR, Td0TransientS: 6.1,
+		Exciter: &Exciter{KA: 50, TAS: 0.15, TRS: 0.02, EfdMin: 0, EfdMax: 4.5}})
+	if err != nil {
+		tb.Fatal(err)
+	}
+	return u
+}
+
+// islandTracking is tracking telemetry about p = 0.63, q = 0, v = 0.98 pu,
+// inside a cell of benchAVRIsland's table marked scan.
+func islandTracking(n int) []Point {
+	rng := rand.New(rand.NewPCG(5, 6))
+	pts := make([]Point, n)
+	p, q, v := 0.63, 0.0, 0.98
+	for i := range pts {
+		p = math.Min(0.645, math.Max(0.605, p+0.001*rng.NormFloat64()))
+		q = math.Min(0.2, math.Max(-0.2, q+0.002*rng.NormFloat64()))
+		v = math.Min(0.995, math.Max(0.965, v+0.0005*rng.NormFloat64()))
+		pts[i] = Point{P: p, Q: q, V: v, F: 1}
+	}
+	return pts
+}
+
+// BenchmarkEvaluateTrackingAVRIsland is the per-sample path (Evaluate
+// with a Hint) in cells of the table marked scan (detectInterval).
+func BenchmarkEvaluateTrackingAVRIsland(b *testing.B) {
+	u := benchAVRIsland(b)
+	pts := islandTracking(4096)
+	for _, pt := range pts {
+		t := u.avrTab
+		if _, _, _, _, _, scan := t.at(pt.P/t.pStep, (pt.V-t.v0)*t.vInv); !scan {
+			b.Fatalf("%+v: not in a scan cell", pt)
+		}
+	}
+	var h Hint
+	b.ReportAllocs()
+	b.ResetTimer()
+	for i := range b.N {
+		sink = u.Evaluate(pts[i&4095], &h)
+	}
+}
