@@ -719,8 +719,13 @@ func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 	if ok && iv.low.OK && bracketHolds(check, iv.low.V, qTop, true) && topHolds() {
 		return iv
 	}
-	if iv.low.OK && p >= tabPStep {
-		if s, ok := u.detectInterval(c, p, v, iv, qTop, qBot); ok {
+	if p >= tabPStep && u.p.ZetaMin == 0 {
+		if iv.low.OK {
+			if s, ok := u.detectInterval(c, p, v, iv, qTop, qBot); ok {
+				return s
+			}
+		}
+		if s, ok := u.sampleRule(c, p, v, iv, qTop, qBot); ok {
 			return s
 		}
 	}
@@ -785,6 +790,114 @@ func (u *Unit) detectInterval(c *charParts, p, v float64, iv interval, qTop, qBo
 		return interval{}, false
 	}
 	return iv, true
+}
+
+// sampleRule applies the rule at one sample as the table's build does
+// at a node (the band detector, then regula falsi to tabTol: some thirty
+// Routh-Hurwitz tests), where the table's answer does not check, and
+// holds it to the direct scan's grid: the direct scan tests q_max and
+// every scanStep below it (below the top, when that moved), so it sees
+// the boundary the detector found only when its first test beyond the
+// boundary falls on the same side; one test there, and one on the grid
+// point above, confirm that, or the caller applies the rule by the
+// direct scan (a band narrower than scanStep, which the detector sees
+// and the scan may not). Where q_max is unstable, the top is looked for
+// about the table's (a moved top at a node around): the first stable
+// point of the grid below it, walking at most four points either way,
+// and regula falsi to tabTol between it and the unstable one above. ok
+// is false where a test fails, q_max is unstable without a top in the
+// table, or the walk does not find the top.
+func (u *Unit) sampleRule(c *charParts, p, v float64, iv interval, qTop, qBot float64) (interval, bool) {
+	floor := qBot - scanFloor
+	a, err := u.tabTest(c, p, qTop, v)
+	if err != nil {
+		return interval{}, false
+	}
+	var res interval
+	g0 := qTop // the direct scan's grid: g0 - k scanStep
+	if !a.stable {
+		if !iv.top.OK {
+			return interval{}, false
+		}
+		k := max(1, int(math.Ceil((qTop-iv.top.V)/scanStep)))
+		at := func(k int) (tabSample, bool) {
+			q := qTop - float64(k)*scanStep
+			if k <= 0 || q < qBot {
+				return tabSample{}, false
+			}
+			s, err := u.tabTest(c, p, q, v)
+			return s, err == nil
+		}
+		lo, ok := at(k)
+		if !ok {
+			return interval{}, false
+		}
+		hi := a
+		found := false
+		for range 4 {
+			if !lo.stable {
+				// The top lies lower: one grid point down.
+				hi = lo
+				if k++; k <= 0 {
+					return interval{}, false
+				}
+				if lo, ok = at(k); !ok {
+					return interval{}, false
+				}
+				continue
+			}
+			if k == 1 {
+				hi, found = a, true // q_max, unstable
+				break
+			}
+			if hi, ok = at(k - 1); !ok {
+				return interval{}, false
+			}
+			if !hi.stable {
+				found = true
+				break
+			}
+			// The top lies higher: one grid point up.
+			k--
+			lo = hi
+		}
+		if !found || !lo.stable || hi.stable || hi.q-lo.q > scanStep*1.5 {
+			return interval{}, false
+		}
+		t, err := u.tabBoundary(c, p, v, lo, hi)
+		if err != nil {
+			return interval{}, false
+		}
+		res.top, a, g0 = some(t), lo, t
+	}
+	var seen, sorted [tabScanCap]tabSample
+	sc := tabScratch{seen: seen[:0], sorted: sorted[:0]}
+	st, un, found, err := u.tabScanDown(c, &sc, p, v, a, floor)
+	if err != nil {
+		return interval{}, false
+	}
+	if !found {
+		res.low = some(floor)
+		return res, true
+	}
+	b, err := u.tabBoundary(c, p, v, st, un)
+	if err != nil {
+		return interval{}, false
+	}
+	// The direct scan's grid points about b: unstable just below (or
+	// the floor), stable just above (or the top).
+	k := math.Ceil((g0 - b) / scanStep)
+	below, above := math.Max(g0-k*scanStep, floor), g0-(k-1)*scanStep
+	if sb, err := u.avrStableFast(c, p, below, v, 0); err != nil || sb {
+		return interval{}, false
+	}
+	if k > 1 {
+		if sa, err := u.avrStableFast(c, p, above, v, 0); err != nil || !sa {
+			return interval{}, false
+		}
+	}
+	res.low = some(b)
+	return res, true
 }
 
 // tabScanCap is the room for detectInterval's samples (tabScanDown's)
