@@ -675,13 +675,19 @@ func (t *stabTable) markSmooth(low, top []float64, moved []bool) {
 // with Routh-Hurwitz tests: stable tabCheck above the interpolated
 // q_stability and unstable tabCheck below it, which puts the limit within
 // tabCheck of the answer, and the same about a moved top, or q_max
-// stable where the top does not move. Where the
-// check fails, the table has no answer (outside its grid, no stable
-// operation, a stable interval above q_max), or the Routh test is not
-// sure, the rule itself is applied with the Routh-Hurwitz test (the
-// direct computation's scan, some tens of microseconds), bisected to
-// fastTol so that Complete and Evaluate agree to it whatever q_max each
-// starts from.
+// stable where the top does not move. Where that check fails or cannot
+// tell (a cell marked scan, an answer near the direct scan's floor), the
+// answer is checked by the band detector (detectInterval), and failing
+// that the rule is applied as the build applies it, held to the direct
+// scan's grid (sampleRule): some twenty to thirty Routh-Hurwitz tests.
+// Where those fail too, the table has no answer (outside its grid, no
+// stable operation, a stable interval above q_max), the Routh test is
+// not sure, p lies in the first cell or zeta_min > 0, the rule itself is
+// applied with the Routh-Hurwitz test (the direct computation's scan,
+// some tens of microseconds), bisected to fastTol so that Complete and
+// Evaluate agree to it whatever q_max each starts from. Every step is a
+// function of the sample alone (no history): Complete, which evaluates
+// again with the same q_max, gets the same answer.
 func (u *Unit) fastInterval(p, v, qTop, qBot float64) interval {
 	c := &u.avrChar
 	iv, ok, smooth := u.avrTab.lookup(p, v, qTop)

@@ -64,7 +64,8 @@
 // per unit, and the per-sample path (Evaluate and
 // EvaluateSample with a Hint) interpolates it, checking the answer with
 // two Routh-Hurwitz tests of the characteristic polynomial where the
-// table is not smooth (stabTable, fastInterval): within 0.002 pu of the
-// direct computation. Bounds, StabilityLimit, Envelope and Evaluate with
+// table is not smooth, and by the table build's band detector where that
+// cannot tell (stabTable, fastInterval): within 0.002 pu of the direct
+// computation. Bounds, StabilityLimit, Envelope and Evaluate with
 // a nil Hint compute directly. Evaluate does not allocate.
 package limits
