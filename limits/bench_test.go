@@ -61,14 +61,24 @@ func BenchmarkEvaluateSalient(b *testing.B) { benchmarkSpread(b, benchSalient(b)
 // tracking returns one unit's slowly moving telemetry: a load ramp with
 // small reactive and voltage noise, one sample a second.
 func tracking(n int) []Point {
-	rng := rand.New(rand.NewPCG(3, 4))
-	pts := make([]Point, n)
-	p, q, v := 0.5, 0.1, 1.0
+	pts := walkIn(n, rand.New(rand.NewPCG(3, 4)), [3][3]float64{{0.5, 0.25, 0.84}, {0.1, -0.2, 0.4}, {1, 0.95, 1.05}})
 	for i := range pts {
-		p = math.Min(0.84, math.Max(0.25, p+0.001*rng.NormFloat64()))
-		q = math.Min(0.4, math.Max(-0.2, q+0.002*rng.NormFloat64()))
-		v = math.Min(1.05, math.Max(0.95, v+0.0005*rng.NormFloat64()))
-		pts[i] = Point{P: p, Q: q, V: v, F: 1, HasCoolant: true, Coolant: 400}
+		pts[i].HasCoolant, pts[i].Coolant = true, 400
+	}
+	return pts
+}
+
+// walkIn is n points of a random walk of p, q and v (steps of 0.001,
+// 0.002 and 0.0005 pu) from box[i][0], held to [box[i][1], box[i][2]].
+func walkIn(n int, rng *rand.Rand, box [3][3]float64) []Point {
+	pts := make([]Point, n)
+	x := [3]float64{box[0][0], box[1][0], box[2][0]}
+	step := [3]float64{0.001, 0.002, 0.0005}
+	for i := range pts {
+		for j := range x {
+			x[j] = math.Min(box[j][2], math.Max(box[j][1], x[j]+step[j]*rng.NormFloat64()))
+		}
+		pts[i] = Point{P: x[0], Q: x[1], V: x[2], F: 1}
 	}
 	return pts
 }
@@ -201,16 +211,7 @@ func benchAVRIsland(tb testing.TB) *Unit {
 // islandTracking is tracking telemetry about p = 0.63, q = 0, v = 0.98 pu,
 // inside a cell of benchAVRIsland's table marked scan.
 func islandTracking(n int) []Point {
-	rng := rand.New(rand.NewPCG(5, 6))
-	pts := make([]Point, n)
-	p, q, v := 0.63, 0.0, 0.98
-	for i := range pts {
-		p = math.Min(0.645, math.Max(0.605, p+0.001*rng.NormFloat64()))
-		q = math.Min(0.2, math.Max(-0.2, q+0.002*rng.NormFloat64()))
-		v = math.Min(0.995, math.Max(0.965, v+0.0005*rng.NormFloat64()))
-		pts[i] = Point{P: p, Q: q, V: v, F: 1}
-	}
-	return pts
+	return walkIn(n, rand.New(rand.NewPCG(5, 6)), [3][3]float64{{0.63, 0.605, 0.645}, {0, -0.2, 0.2}, {0.98, 0.965, 0.995}})
 }
 
 // BenchmarkEvaluateTrackingAVRIsland is the per-sample path (Evaluate
