@@ -1,10 +1,12 @@
 package durable
 
 import (
+	"bufio"
 	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"os"
 	"strconv"
 	"strings"
@@ -21,7 +23,11 @@ import (
 func jsonMarshal(v any) ([]byte, error) { return json.Marshal(v) }
 
 // Checkpoint is the checkpoint file: a replica's state and the stream
-// sequence it includes.
+// sequence it includes. Version 2 (written since the binary state
+// format) is this struct in JSON without State on the first line, then
+// the state in the binary format of the state file (ingest.StateEncoder,
+// with its own checksum); version 1, one JSON object with the state in
+// it, is still read.
 type Checkpoint struct {
 	Format     string             `json:"format"` // "genvelope-log-state"
 	Version    int                `json:"version"`
@@ -31,29 +37,57 @@ type Checkpoint struct {
 	Serves     string             `json:"serves"`
 	Sequence   uint64             `json:"stream_sequence"` // the last message the state includes
 	Ledger     map[string]*Ledger `json:"ledger"`
-	State      *ingest.Snapshot   `json:"state"`
+	State      *ingest.Snapshot   `json:"state,omitempty"`
 }
 
 const (
 	checkpointFormat  = "genvelope-log-state"
-	checkpointVersion = 1
+	checkpointVersion = 2
 )
 
-// ReadCheckpoint reads a checkpoint file.
+// ReadCheckpoint reads a checkpoint file, of version 2 or 1.
 func ReadCheckpoint(path string) (*Checkpoint, error) {
-	data, err := os.ReadFile(path)
+	f, err := os.Open(path)
 	if err != nil {
 		return nil, err
 	}
+	defer f.Close()
+	r := bufio.NewReaderSize(f, 64<<10)
+	line, err := r.ReadBytes('\n') // version 1 has no newline: the line is the file
+	if err != nil && !errors.Is(err, io.EOF) {
+		return nil, err
+	}
 	var cp Checkpoint
-	if err := json.Unmarshal(data, &cp); err != nil {
+	if err := json.Unmarshal(line, &cp); err != nil {
 		return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
 	}
-	if cp.Format != checkpointFormat || cp.Version != checkpointVersion || cp.State == nil {
-		return nil, fmt.Errorf("checkpoint %s has format %q version %d; this genvelope reads %q version %d",
+	if cp.Format != checkpointFormat || cp.Version < 1 || cp.Version > checkpointVersion || (cp.Version == 1) != (cp.State != nil) {
+		return nil, fmt.Errorf("checkpoint %s has format %q version %d; this genvelope reads %q versions 1 and %d",
 			path, cp.Format, cp.Version, checkpointFormat, checkpointVersion)
 	}
-	return &cp, nil
+	if cp.Version == 1 {
+		return &cp, nil
+	}
+	d, err := ingest.NewStateDecoder(r)
+	if err != nil {
+		return nil, fmt.Errorf("checkpoint %s: %w", path, err)
+	}
+	cp.State = &ingest.Snapshot{Format: "genvelope-state", Version: d.Version, Written: d.Written, Units: map[string]ingest.UnitSnapshot{}}
+	for {
+		var us ingest.UnitSnapshot
+		id, err := d.Next(&us)
+		var bad *ingest.BadEntryError
+		switch {
+		case errors.Is(err, io.EOF):
+			return &cp, nil
+		case errors.As(err, &bad):
+			cp.State.Bad = append(cp.State.Bad, bad)
+		case err != nil:
+			return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
+		default:
+			cp.State.Units[id] = us
+		}
+	}
 }
 
 // Attach restores the checkpoint into store (moving aside one that does
@@ -353,29 +387,38 @@ func (l *Log) applyOp(o op) error {
 	return l.store.Shelve(o.Unit, k, until, at, o.By)
 }
 
-// checkpoint copies the state and the sequence it includes.
-func (l *Log) checkpoint() *Checkpoint {
+// encodeCheckpoint writes the checkpoint (version 2) to w: taken under
+// the lock the consumer holds while it applies a message, so the state
+// covers a whole number of messages, and the sequence with it.
+func (l *Log) encodeCheckpoint(w io.Writer) error {
 	l.applyMu.Lock()
 	defer l.applyMu.Unlock()
 	cp := &Checkpoint{Format: checkpointFormat, Version: checkpointVersion, Stream: l.cfg.Stream, Prefix: l.cfg.Prefix,
-		Partitions: l.cfg.Partitions, Serves: formatPartitions(l.serves), Sequence: l.seq,
-		Ledger: make(map[string]*Ledger, len(l.ledger)), State: l.store.Snapshot(time.Now())}
-	for id, lg := range l.ledger {
-		c := *lg
-		cp.Ledger[id] = &c
+		Partitions: l.cfg.Partitions, Serves: formatPartitions(l.serves), Sequence: l.seq, Ledger: l.ledger}
+	head, err := json.Marshal(cp)
+	if err != nil {
+		return err
 	}
-	return cp
+	if _, err := w.Write(append(head, '\n')); err != nil {
+		return err
+	}
+	return l.store.EncodeState(w, time.Now())
 }
 
+// writeCheckpoint encodes the checkpoint into a buffer kept from one
+// checkpoint to the next (the consumer waits only for the encoding) and
+// replaces the file with it.
 func (l *Log) writeCheckpoint() error {
 	if l.cfg.CheckpointPath == "" {
 		return nil
 	}
-	data, err := json.Marshal(l.checkpoint())
-	if err != nil {
+	l.cpMu.Lock()
+	defer l.cpMu.Unlock()
+	l.cpBuf.Reset()
+	if err := l.encodeCheckpoint(&l.cpBuf); err != nil {
 		return err
 	}
-	return state.WriteFile(l.cfg.CheckpointPath, data)
+	return state.WriteFile(l.cfg.CheckpointPath, l.cpBuf.Bytes())
 }
 
 func (l *Log) keepCheckpoint(ctx context.Context) {

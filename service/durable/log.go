@@ -18,6 +18,7 @@
 package durable
 
 import (
+	"bytes"
 	"context"
 	"crypto/rand"
 	"encoding/hex"
@@ -129,6 +130,9 @@ type Log struct {
 	ledger  map[string]*Ledger // per unit: what has been applied
 	buf     []ingest.Sample    // decoding buffer
 	intern  map[string]string
+
+	cpMu  sync.Mutex   // one checkpoint written at a time
+	cpBuf bytes.Buffer // the checkpoint's encoding, kept between checkpoints
 
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
