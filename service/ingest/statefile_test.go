@@ -65,12 +65,12 @@ func TestStateFileRoundTrip(t *testing.T) {
 		},
 	}
 	sn := &Snapshot{Format: "genvelope-state", Version: BinarySnapshotVersion, Written: at.Add(time.Second), Units: map[string]UnitSnapshot{
-		"a":          {},
-		"b":          full,
-		"irregular":  {Times: []int64{math.MinInt64, -1, 0, 1, math.MaxInt64, 3, 3}, ArmatureH: math.SmallestNonzeroFloat64},
-		"one time":   {Times: []int64{42}},
-		"two times":  {Times: []int64{42, 40}},
-		"ünïcode id": {XArmature: -0.0},
+		"a":                      {},
+		"b":                      full,
+		"irregular":              {Times: []int64{math.MinInt64, -1, 0, 1, math.MaxInt64, 3, 3}, ArmatureH: math.SmallestNonzeroFloat64},
+		"one time":               {Times: []int64{42}},
+		"two times":              {Times: []int64{42, 40}},
+		"ünïcode id":             {XArmature: -0.0},
 		strings.Repeat("x", 300): {},
 	}}
 	var buf bytes.Buffer
