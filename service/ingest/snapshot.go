@@ -175,6 +175,9 @@ func (s *Store) RestoreUnit(id string, us *UnitSnapshot) (known bool, err error)
 	u.mu.Lock()
 	defer u.mu.Unlock()
 	u.n, u.head = 0, 0
+	if len(us.Times) > 0 && u.ring == nil {
+		u.ring = new([ringSize]int64)
+	}
 	for _, t := range us.Times {
 		if u.n > 0 && t <= u.ring[(u.head+ringSize-1)%ringSize] {
 			continue // keep the ring increasing whatever the file says
