@@ -29,6 +29,16 @@ type decoder struct {
 	diags Diagnostics
 	units []*unitCtx
 	fleet *Fleet
+
+	// The units' text, item by item, when the file has the plain shape
+	// splitUnits reads (split.go): then each unit's YAML tree is built,
+	// decoded and dropped in turn, and the whole file's tree never
+	// exists. splitFailed: an item did not parse alone; the file is then
+	// decoded whole, which reports it as before.
+	chunks      []unitChunk
+	splitFailed bool
+	budget      int            // YAML nodes the units may still expand to (maxNodes)
+	firstLine   map[string]int // the line of each unit id's first use
 }
 
 // unitCtx is the state of decoding one unit.
@@ -90,7 +100,10 @@ func unitKeys() []unitKey {
 const maxIDLen = 64
 
 // maxNodes bounds the work of reading the units: the number of YAML
-// nodes they hold, counting an alias's target each time it is used.
+// nodes they hold, counting an alias's target each time it is used,
+// beyond one node per byte of the file (a node takes at least one byte
+// of text unless it is an alias's expansion, so only aliases can reach
+// the bound, whatever the fleet's size).
 const maxNodes = 1_000_000
 
 // countNodes counts the nodes under n, aliases expanded, stopping once the
@@ -138,9 +151,29 @@ func (c *unitCtx) warnf(line int, field, format string, args ...any) {
 	c.d.add(Warning, line, c.label, field, format, args...)
 }
 
-// document decodes the whole file into f.
+// document decodes the whole file into f: unit by unit when splitUnits
+// can split it, else as one tree.
 func (d *decoder) document(data []byte, f *Fleet) {
+	if skeleton, chunks, ok := splitUnits(data); ok {
+		saved := *f
+		d.chunks = chunks
+		d.tree(skeleton, data, f)
+		if !d.splitFailed {
+			return
+		}
+		*f = saved
+		f.byID = map[string]*Unit{}
+		d.diags, d.units, d.chunks = nil, nil, nil
+	}
+	d.tree(data, data, f)
+}
+
+// tree decodes the YAML document in data (the file itself, or its
+// skeleton: the file with the units' items blanked) into f.
+func (d *decoder) tree(data, file []byte, f *Fleet) {
 	d.fleet = f
+	d.budget = maxNodes + len(file)
+	d.firstLine = map[string]int{}
 	dec := yaml.NewDecoder(bytes.NewReader(data))
 	var doc yaml.Node
 	err := dec.Decode(&doc)
@@ -451,6 +484,10 @@ func fmtNum(x float64) string { return strconv.FormatFloat(x, 'g', -1, 64) }
 
 // decodeUnits decodes the units: list.
 func (d *decoder) decodeUnits(v *yaml.Node, line int) {
+	if d.chunks != nil {
+		d.decodeChunks()
+		return
+	}
 	n := resolve(v)
 	if n.Kind != yaml.SequenceNode {
 		d.errorf(line, "units", "must be a list of units; got %s", describe(n))
@@ -460,29 +497,37 @@ func (d *decoder) decodeUnits(v *yaml.Node, line int) {
 		d.errorf(line, "units", "the list is empty; a fleet file needs at least one unit")
 		return
 	}
-	firstLine := map[string]int{}
-	budget := maxNodes
 	for i, item := range n.Content {
-		if budget -= countNodes(item, budget); budget < 0 {
-			d.errorf(item.Line, "units", "the units expand to more than %d YAML nodes (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
+		if !d.unitItem(i, item) {
 			return
 		}
-		c := d.decodeUnit(i, item)
-		if c == nil {
-			continue
-		}
-		d.units = append(d.units, c)
-		if c.u.ID == "" {
-			continue
-		}
-		if first, dup := firstLine[c.u.ID]; dup {
-			c.errorf(c.u.Line("id"), "id", "duplicate id; it is already used by the unit on line %d (ids must be unique)", first)
-			continue
-		}
-		firstLine[c.u.ID] = c.u.Line("id")
-		d.fleet.Units = append(d.fleet.Units, c.u)
-		d.fleet.byID[c.u.ID] = c.u
 	}
+}
+
+// unitItem decodes the i-th item of the units: list and adds the unit
+// to the fleet. It returns false when the units' YAML nodes exceed the
+// budget: the rest of the file is not read.
+func (d *decoder) unitItem(i int, item *yaml.Node) bool {
+	if d.budget -= countNodes(item, d.budget); d.budget < 0 {
+		d.errorf(item.Line, "units", "the units expand to more than %d YAML nodes beyond one per byte of the file (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
+		return false
+	}
+	c := d.decodeUnit(i, item)
+	if c == nil {
+		return true
+	}
+	d.units = append(d.units, c)
+	if c.u.ID == "" {
+		return true
+	}
+	if first, dup := d.firstLine[c.u.ID]; dup {
+		c.errorf(c.u.Line("id"), "id", "duplicate id; it is already used by the unit on line %d (ids must be unique)", first)
+		return true
+	}
+	d.firstLine[c.u.ID] = c.u.Line("id")
+	d.fleet.Units = append(d.fleet.Units, c.u)
+	d.fleet.byID[c.u.ID] = c.u
+	return true
 }
 
 // decodeUnit decodes the i-th unit of the list.
