@@ -6,6 +6,7 @@ package metrics
 
 import (
 	"math"
+	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -30,7 +31,26 @@ type family struct {
 
 // sink receives the series of one scrape.
 type sink interface {
-	add(f *family, v float64, lv ...string)
+	add(f *family, v float64, lv labels)
+}
+
+// labels are a series' label values, in the family's order. A value, not
+// a slice: passed through the sink interface, a slice would be allocated
+// for every series (438,000 a scrape at 10,000 units).
+type labels struct {
+	v [maxLabels]string
+	n int
+}
+
+// maxLabels is the most labels a family has (unit_info: unit, site,
+// name, rotor).
+const maxLabels = 4
+
+// lv makes the labels of a series.
+func lv(s ...string) labels {
+	var l labels
+	l.n = copy(l.v[:], s)
+	return l
 }
 
 // Collector exports the units of a store. It is a prometheus.Collector,
@@ -51,6 +71,9 @@ type Collector struct {
 	rotorFrequency, rotorDamping                           *family
 	limiters                                               limiterFamilies // limiters.go
 	dataState, suspects                                    *family
+
+	sizeMu sync.Mutex
+	sizes  map[*family]int // each family's text at the last scrape, bytes (text.go)
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -61,6 +84,9 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	}
 	c := &Collector{store: store, now: now}
 	mk := func(name, help string, counter bool, labels ...string) *family {
+		if len(labels) > maxLabels {
+			panic("metrics: more than maxLabels labels") // a programming error, met at start
+		}
 		f := &family{name: Namespace + "_" + name, help: help, counter: counter, labels: labels}
 		f.desc = prometheus.NewDesc(f.name, help, labels, nil)
 		c.families = append(c.families, f)
@@ -111,12 +137,12 @@ func (c *Collector) Describe(ch chan<- *prometheus.Desc) {
 // constSink builds const metrics for a registry.
 type constSink chan<- prometheus.Metric
 
-func (ch constSink) add(f *family, v float64, lv ...string) {
+func (ch constSink) add(f *family, v float64, l labels) {
 	t := prometheus.GaugeValue
 	if f.counter {
 		t = prometheus.CounterValue
 	}
-	ch <- prometheus.MustNewConstMetric(f.desc, t, v, lv...)
+	ch <- prometheus.MustNewConstMetric(f.desc, t, v, l.v[:l.n]...)
 }
 
 // Collect builds the metrics from the store as it is now.
@@ -126,40 +152,40 @@ func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch
 func (c *Collector) series(out sink) {
 	counts := c.store.Counts()
 	for r := ingest.Result(0); r < ingest.NumResults; r++ {
-		out.add(c.samples, float64(counts[r]), r.String())
+		out.add(c.samples, float64(counts[r]), lv(r.String()))
 	}
 	tr := c.store.Transitions()
 	for k := range tr {
 		for l := alarm.Normal; l <= alarm.Critical; l++ {
-			out.add(c.transitions, float64(tr[k][l]), alarm.Kind(k).String(), l.String())
+			out.add(c.transitions, float64(tr[k][l]), lv(alarm.Kind(k).String(), l.String()))
 		}
 	}
 	units := c.store.Units()
-	out.add(c.units, float64(len(units)))
+	out.add(c.units, float64(len(units)), lv())
 	now := c.now()
 	nowNS := now.UnixNano()
 	for _, u := range units {
 		v := u.View()
 		cfg := v.Config
 		id, site := cfg.ID, cfg.Site
-		out.add(c.info, 1, id, site, cfg.DisplayName(), cfg.Machine.Rotor.String())
-		out.add(c.accepted, float64(v.Accepted), id, site)
+		out.add(c.info, 1, lv(id, site, cfg.DisplayName(), cfg.Machine.Rotor.String()))
+		out.add(c.accepted, float64(v.Accepted), lv(id, site))
 		for st := ingest.NoData; st < ingest.NumDataStates; st++ {
-			out.add(c.dataState, boolFloat(v.Data == st), id, site, st.String())
+			out.add(c.dataState, boolFloat(v.Data == st), lv(id, site, st.String()))
 		}
-		out.add(c.suspects, float64(v.Suspects), id, site)
-		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
-		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		out.add(c.suspects, float64(v.Suspects), lv(id, site))
+		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), lv(id, site, "armature"))
+		out.add(c.thermal, v.Field.Used(limits.FieldK), lv(id, site, "field"))
 		c.limiters.series(out, &v, id, site)
 		for k := range v.Alarms {
 			m := &v.Alarms[k]
 			name := alarm.Kind(k).String()
-			out.add(c.alarmLevel, float64(m.Level), id, site, name)
+			out.add(c.alarmLevel, float64(m.Level), lv(id, site, name))
 			if m.Shelved(nowNS) {
-				out.add(c.alarmShelved, 1, id, site, name)
+				out.add(c.alarmShelved, 1, lv(id, site, name))
 			}
 			if m.Acknowledged && m.Level != alarm.Normal {
-				out.add(c.alarmAcked, 1, id, site, name)
+				out.add(c.alarmAcked, 1, lv(id, site, name))
 			}
 		}
 		if !v.HasSample {
@@ -168,47 +194,47 @@ func (c *Collector) series(out sink) {
 		e, s, b, pt := &v.Eval, &v.Latest, cfg.Base, &v.Point
 		up, down := e.Headroom(pt.Q)
 		if up.OK {
-			out.add(c.headroom, b.PowerMW(up.V)*1e6, id, site, "up")
+			out.add(c.headroom, b.PowerMW(up.V)*1e6, lv(id, site, "up"))
 		}
 		if down.OK {
-			out.add(c.headroom, b.PowerMW(down.V)*1e6, id, site, "down")
+			out.add(c.headroom, b.PowerMW(down.V)*1e6, lv(id, site, "down"))
 		}
 		if e.QMax.OK {
-			out.add(c.qLimit, b.PowerMW(e.QMax.V)*1e6, id, site, "upper")
+			out.add(c.qLimit, b.PowerMW(e.QMax.V)*1e6, lv(id, site, "upper"))
 		}
 		if e.QMin.OK {
-			out.add(c.qLimit, b.PowerMW(e.QMin.V)*1e6, id, site, "lower")
+			out.add(c.qLimit, b.PowerMW(e.QMin.V)*1e6, lv(id, site, "lower"))
 		}
 		for _, l := range limits.Limits() {
 			if m := e.Margins[l]; m.OK {
-				out.add(c.margin, m.V, id, site, report.LimitOf(l).Name)
+				out.add(c.margin, m.V, lv(id, site, report.LimitOf(l).Name))
 			}
 		}
 		if e.Binding != limits.NoLimit {
-			out.add(c.binding, 1, id, site, report.LimitOf(e.Binding).Name)
+			out.add(c.binding, 1, lv(id, site, report.LimitOf(e.Binding).Name))
 		}
-		out.add(c.feasible, boolFloat(e.Feasible), id, site)
-		out.add(c.zone, float64(e.Zone), id, site)
-		out.add(c.activePower, s.PMW*1e6, id, site)
-		out.add(c.reactivePower, s.QMvar*1e6, id, site)
-		out.add(c.voltage, s.VKV*1e3, id, site)
-		out.add(c.voltagePU, pt.V, id, site)
+		out.add(c.feasible, boolFloat(e.Feasible), lv(id, site))
+		out.add(c.zone, float64(e.Zone), lv(id, site))
+		out.add(c.activePower, s.PMW*1e6, lv(id, site))
+		out.add(c.reactivePower, s.QMvar*1e6, lv(id, site))
+		out.add(c.voltage, s.VKV*1e3, lv(id, site))
+		out.add(c.voltagePU, pt.V, lv(id, site))
 		if s.HasFieldA {
-			out.add(c.fieldCurrent, s.FieldA, id, site, "measured")
+			out.add(c.fieldCurrent, s.FieldA, lv(id, site, "measured"))
 		}
-		out.add(c.fieldCurrent, b.FieldA(e.IfdModel), id, site, "model")
-		out.add(c.loadAngle, cfg.Model.LoadAngle(pt.P, pt.Q, pt.V), id, site)
+		out.add(c.fieldCurrent, b.FieldA(e.IfdModel), lv(id, site, "model"))
+		out.add(c.loadAngle, cfg.Model.LoadAngle(pt.P, pt.Q, pt.V), lv(id, site))
 		if t := cfg.Model.CriticalClearingTime(pt.P, pt.Q, pt.V); t.OK && !math.IsInf(t.V, 0) {
-			out.add(c.cct, t.V, id, site)
+			out.add(c.cct, t.V, lv(id, site))
 		}
 		// An eigen decomposition, tens of microseconds: here, at scrape
 		// time, never per sample.
 		if m, ok, err := cfg.Model.RotorMode(*pt); ok && err == nil && !math.IsNaN(m.FrequencyHz) && !math.IsNaN(m.DampingRatio) {
-			out.add(c.rotorFrequency, m.FrequencyHz, id, site)
-			out.add(c.rotorDamping, m.DampingRatio, id, site)
+			out.add(c.rotorFrequency, m.FrequencyHz, lv(id, site))
+			out.add(c.rotorDamping, m.DampingRatio, lv(id, site))
 		}
-		out.add(c.age, now.Sub(v.Received).Seconds(), id, site)
-		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, id, site)
+		out.add(c.age, now.Sub(v.Received).Seconds(), lv(id, site))
+		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, lv(id, site))
 	}
 }
 

@@ -15,7 +15,8 @@ type textSink struct {
 	bufs map[*family][]byte
 }
 
-func (t *textSink) add(f *family, v float64, lv ...string) {
+func (t *textSink) add(f *family, v float64, l labels) {
+	lv := l.v[:l.n]
 	b := t.bufs[f]
 	b = append(b, f.name...)
 	if len(f.labels) > 0 {
@@ -75,7 +76,25 @@ func appendValue(b []byte, v float64) []byte {
 // Families without a series are left out, as a registry does.
 func (c *Collector) WriteText(w io.Writer) error {
 	t := &textSink{bufs: make(map[*family][]byte, len(c.families))}
+	// Each family's buffer starts at the size it reached last time (a
+	// little more): growing 30 buffers by doubling to 36 MB in all took
+	// a third of a scrape's CPU in copying at 10,000 units.
+	c.sizeMu.Lock()
+	for _, f := range c.families {
+		if n := c.sizes[f]; n > 0 {
+			t.bufs[f] = make([]byte, 0, n+n/16)
+		}
+	}
+	c.sizeMu.Unlock()
 	c.series(t)
+	c.sizeMu.Lock()
+	if c.sizes == nil {
+		c.sizes = make(map[*family]int, len(c.families))
+	}
+	for f, b := range t.bufs {
+		c.sizes[f] = len(b)
+	}
+	c.sizeMu.Unlock()
 	bw := bufio.NewWriterSize(w, 64<<10)
 	for _, f := range c.families {
 		b := t.bufs[f]
