@@ -808,6 +808,13 @@ type View struct {
 	Limiters       LimiterView // the OEL and SCL timers, the V/Hz limiter margin
 }
 
+// Config returns the unit's configuration (a reload replaces it).
+func (u *Unit) Config() *fleet.Unit {
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	return u.cfg
+}
+
 // View returns a consistent copy of the unit's state.
 func (u *Unit) View() View {
 	u.mu.Lock()

@@ -6,6 +6,7 @@ package metrics
 
 import (
 	"math"
+	"slices"
 	"sync"
 	"time"
 
@@ -146,10 +147,66 @@ func (ch constSink) add(f *family, v float64, l labels) {
 }
 
 // Collect builds the metrics from the store as it is now.
-func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch)) }
+func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch), Filter{}) }
 
-// series walks the store once and hands every series to s.
-func (c *Collector) series(out sink) {
+// Filter chooses what one scrape serves: the fleet-wide families
+// (samples by result, alarm transitions, the number of units) and the
+// units whose series it carries. A fleet of 100,000 units is scraped as
+// several targets, each a part of the units (see the README, "Metrics
+// at scale").
+type Filter struct {
+	NoFleet bool     // leave out the fleet-wide families
+	NoUnits bool     // leave out every unit
+	Sites   []string // only these sites' units (none: every site)
+	// Shard and Shards: only the units whose id hashes to Shard (0 ≤
+	// Shard < Shards) by the 32-bit FNV-1a of the id's bytes modulo
+	// Shards; Shards 0 means no sharding.
+	Shard, Shards uint32
+}
+
+// whole reports whether f serves every unit.
+func (f *Filter) whole() bool { return !f.NoUnits && len(f.Sites) == 0 && f.Shards == 0 }
+
+// keeps reports whether the filter serves the unit.
+func (f *Filter) keeps(id, site string) bool {
+	if f.NoUnits {
+		return false
+	}
+	if len(f.Sites) > 0 && !slices.Contains(f.Sites, site) {
+		return false
+	}
+	if f.Shards > 0 {
+		h := uint32(2166136261) // FNV-1a, 32 bits
+		for i := 0; i < len(id); i++ {
+			h ^= uint32(id[i])
+			h *= 16777619
+		}
+		return h%f.Shards == f.Shard
+	}
+	return true
+}
+
+// series walks the store once and hands every series f serves to out.
+func (c *Collector) series(out sink, f Filter) {
+	c.fleetSeries(out, f)
+	now := c.now()
+	nowNS := now.UnixNano()
+	for _, u := range c.store.Units() {
+		if !f.whole() {
+			cfg := u.Config()
+			if !f.keeps(cfg.ID, cfg.Site) {
+				continue
+			}
+		}
+		c.unitSeries(out, u, now, nowNS)
+	}
+}
+
+// fleetSeries hands the fleet-wide series to out, unless f leaves them out.
+func (c *Collector) fleetSeries(out sink, f Filter) {
+	if f.NoFleet {
+		return
+	}
 	counts := c.store.Counts()
 	for r := ingest.Result(0); r < ingest.NumResults; r++ {
 		out.add(c.samples, float64(counts[r]), lv(r.String()))
@@ -160,11 +217,12 @@ func (c *Collector) series(out sink) {
 			out.add(c.transitions, float64(tr[k][l]), lv(alarm.Kind(k).String(), l.String()))
 		}
 	}
-	units := c.store.Units()
-	out.add(c.units, float64(len(units)), lv())
-	now := c.now()
-	nowNS := now.UnixNano()
-	for _, u := range units {
+	out.add(c.units, float64(len(c.store.Units())), lv())
+}
+
+// unitSeries hands one unit's series to out.
+func (c *Collector) unitSeries(out sink, u *ingest.Unit, now time.Time, nowNS int64) {
+	{
 		v := u.View()
 		cfg := v.Config
 		id, site := cfg.ID, cfg.Site
@@ -189,7 +247,7 @@ func (c *Collector) series(out sink) {
 			}
 		}
 		if !v.HasSample {
-			continue
+			return
 		}
 		e, s, b, pt := &v.Eval, &v.Latest, cfg.Base, &v.Point
 		up, down := e.Headroom(pt.Q)
