@@ -2,6 +2,8 @@ package fleet
 
 import (
 	"bytes"
+	"runtime"
+	"sync"
 
 	"go.yaml.in/yaml/v3"
 )
@@ -98,25 +100,59 @@ func splitUnits(data []byte) (skeleton []byte, chunks []unitChunk, ok bool) {
 	return skeleton, chunks, true
 }
 
-// decodeChunks decodes the units: list item by item (d.chunks).
+// decodeChunks decodes the units: list item by item (d.chunks). The
+// YAML parsing, most of the work, runs on every core ahead of the
+// decoding, which takes the items in file order: a worker per core parses
+// the items of its turn (i modulo the workers) into a small queue of its
+// own, so at most a few hundred items' trees exist at once.
 func (d *decoder) decodeChunks() {
-	for i, ch := range d.chunks {
-		var doc yaml.Node
-		if err := yaml.Unmarshal(ch.text, &doc); err != nil || doc.Kind != yaml.DocumentNode || len(doc.Content) != 1 {
+	workers := min(runtime.GOMAXPROCS(0), 8, len(d.chunks))
+	queues := make([]chan *yaml.Node, workers) // nil: the item did not parse alone
+	done := make(chan struct{})
+	var wg sync.WaitGroup
+	for w := range workers {
+		queues[w] = make(chan *yaml.Node, 64)
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for i := w; i < len(d.chunks); i += workers {
+				item := parseChunk(d.chunks[i])
+				select {
+				case queues[w] <- item:
+				case <-done:
+					return
+				}
+			}
+		}()
+	}
+	defer wg.Wait()
+	defer close(done)
+	for i := range d.chunks {
+		item := <-queues[i%workers]
+		if item == nil {
 			d.splitFailed = true
 			return
 		}
-		seq := doc.Content[0]
-		if seq.Kind != yaml.SequenceNode || len(seq.Content) != 1 {
-			d.splitFailed = true
-			return
-		}
-		item := seq.Content[0]
-		shiftLines(item, ch.line-1)
 		if !d.unitItem(i, item) {
 			return
 		}
 	}
+}
+
+// parseChunk parses one item's text into its node, with the file's line
+// numbers, or returns nil when the text is not one list item on its own.
+func parseChunk(ch unitChunk) *yaml.Node {
+	var doc yaml.Node
+	if err := yaml.Unmarshal(ch.text, &doc); err != nil || doc.Kind != yaml.DocumentNode || len(doc.Content) != 1 {
+		return nil
+	}
+	seq := doc.Content[0]
+	if seq.Kind != yaml.SequenceNode || len(seq.Content) != 1 {
+		return nil
+	}
+	item := seq.Content[0]
+	shiftLines(item, ch.line-1)
+	return item
 }
 
 // shiftLines adds offset to the line of n and every node under it.
