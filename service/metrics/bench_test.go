@@ -36,6 +36,7 @@ func BenchmarkWriteText(b *testing.B) {
 	}
 	c := NewCollector(s, func() time.Time { return now })
 	b.ReportAllocs()
+	b.ResetTimer()
 	for range b.N {
 		if err := c.WriteText(io.Discard); err != nil {
 			b.Fatal(err)

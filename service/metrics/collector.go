@@ -28,6 +28,8 @@ type family struct {
 	counter bool
 	labels  []string
 	desc    *prometheus.Desc
+	index   int  // in Collector.families
+	perUnit bool // its first labels are unit and site
 }
 
 // sink receives the series of one scrape.
@@ -73,8 +75,10 @@ type Collector struct {
 	limiters                                               limiterFamilies // limiters.go
 	dataState, suspects                                    *family
 
+	rotor rotorModes // rotormode.go
+
 	sizeMu sync.Mutex
-	sizes  map[*family]int // each family's text at the last scrape, bytes (text.go)
+	sizes  []int // each family's series at the last whole scrape (text.go)
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -88,7 +92,11 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 		if len(labels) > maxLabels {
 			panic("metrics: more than maxLabels labels") // a programming error, met at start
 		}
-		f := &family{name: Namespace + "_" + name, help: help, counter: counter, labels: labels}
+		f := &family{name: Namespace + "_" + name, help: help, counter: counter, labels: labels, index: len(c.families),
+			perUnit: len(labels) >= 2 && labels[0] == "unit" && labels[1] == "site"}
+		if n := len(labels); f.perUnit && n > 4 || !f.perUnit && n > 2 {
+			panic("metrics: a family with more labels than a record holds") // a programming error, met at start
+		}
 		f.desc = prometheus.NewDesc(f.name, help, labels, nil)
 		c.families = append(c.families, f)
 		return f
@@ -200,6 +208,14 @@ func (c *Collector) series(out sink, f Filter) {
 		}
 		c.unitSeries(out, u, now, nowNS)
 	}
+	if f.whole() {
+		c.rotor.endWhole()
+	}
+}
+
+// unitSink is a sink told which unit's series come next.
+type unitSink interface {
+	beginUnit(id, site string)
 }
 
 // fleetSeries hands the fleet-wide series to out, unless f leaves them out.
@@ -226,6 +242,9 @@ func (c *Collector) unitSeries(out sink, u *ingest.Unit, now time.Time, nowNS in
 		v := u.View()
 		cfg := v.Config
 		id, site := cfg.ID, cfg.Site
+		if us, ok := out.(unitSink); ok {
+			us.beginUnit(id, site)
+		}
 		out.add(c.info, 1, lv(id, site, cfg.DisplayName(), cfg.Machine.Rotor.String()))
 		out.add(c.accepted, float64(v.Accepted), lv(id, site))
 		for st := ingest.NoData; st < ingest.NumDataStates; st++ {
@@ -285,11 +304,14 @@ func (c *Collector) unitSeries(out sink, u *ingest.Unit, now time.Time, nowNS in
 		if t := cfg.Model.CriticalClearingTime(pt.P, pt.Q, pt.V); t.OK && !math.IsInf(t.V, 0) {
 			out.add(c.cct, t.V, lv(id, site))
 		}
-		// An eigen decomposition, tens of microseconds: here, at scrape
-		// time, never per sample.
-		if m, ok, err := cfg.Model.RotorMode(*pt); ok && err == nil && !math.IsNaN(m.FrequencyHz) && !math.IsNaN(m.DampingRatio) {
-			out.add(c.rotorFrequency, m.FrequencyHz, lv(id, site))
-			out.add(c.rotorDamping, m.DampingRatio, lv(id, site))
+		// An eigen decomposition, 100 µs or more: here, at scrape time,
+		// never per sample, and again only when the point moved
+		// (rotormode.go). Only the avr basis has a rotor mode.
+		if cfg.Model.Params().Basis == limits.BasisAVR {
+			if m, ok := c.rotor.get(u, cfg.Model, *pt); ok {
+				out.add(c.rotorFrequency, m.FrequencyHz, lv(id, site))
+				out.add(c.rotorDamping, m.DampingRatio, lv(id, site))
+			}
 		}
 		out.add(c.age, now.Sub(v.Received).Seconds(), lv(id, site))
 		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, lv(id, site))

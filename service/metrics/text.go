@@ -8,34 +8,88 @@ import (
 	"strings"
 )
 
-// textSink writes each family's series into a buffer of its own, so that
-// one walk over the units yields every family contiguous, as the text
-// format needs.
+// textSink records each series of a scrape as a small fixed-size record
+// (no text, no pointers) in its family's list, so that one walk over the
+// units yields every family contiguous, as the text format needs; the
+// text is written family by family afterwards, straight to the output.
+// At 10,000 units a scrape's 438,000 series take 10 MB of records
+// against 36 MB of text kept in per-family buffers before.
 type textSink struct {
-	bufs map[*family][]byte
+	recs    [][]rec      // by family index
+	units   []scrapeUnit // the units served, in walk order
+	strs    []string     // the other label values, interned
+	strIdx  map[string]uint32
+	current int32 // the unit being walked (index into units), -1 for fleet-wide series
+}
+
+// rec is one series: its value, its unit (index into textSink.units, -1
+// for a fleet-wide series) and its further label values (indexes into
+// textSink.strs; unit families have at most two beyond unit and site).
+type rec struct {
+	v     float64
+	unit  int32
+	extra [2]uint32
+}
+
+// scrapeUnit is a served unit's identity labels.
+type scrapeUnit struct{ id, site string }
+
+func (t *textSink) intern(s string) uint32 {
+	i, ok := t.strIdx[s]
+	if !ok {
+		i = uint32(len(t.strs))
+		t.strs = append(t.strs, s)
+		t.strIdx[s] = i
+	}
+	return i
 }
 
 func (t *textSink) add(f *family, v float64, l labels) {
-	lv := l.v[:l.n]
-	b := t.bufs[f]
+	r := rec{v: v, unit: -1}
+	first := 0
+	if f.perUnit {
+		r.unit, first = t.current, 2
+	}
+	for i := first; i < l.n; i++ {
+		r.extra[i-first] = t.intern(l.v[i])
+	}
+	t.recs[f.index] = append(t.recs[f.index], r)
+}
+
+// beginUnit starts the series of a unit.
+func (t *textSink) beginUnit(id, site string) {
+	t.current = int32(len(t.units))
+	t.units = append(t.units, scrapeUnit{id, site})
+}
+
+// appendSeries appends one series' line.
+func (t *textSink) appendSeries(b []byte, f *family, r *rec) []byte {
 	b = append(b, f.name...)
 	if len(f.labels) > 0 {
 		b = append(b, '{')
-		for i, l := range f.labels {
+		extra := 0
+		for i, name := range f.labels {
 			if i > 0 {
 				b = append(b, ',')
 			}
-			b = append(b, l...)
+			b = append(b, name...)
 			b = append(b, '=', '"')
-			b = appendEscaped(b, lv[i])
+			switch {
+			case f.perUnit && i == 0:
+				b = appendEscaped(b, t.units[r.unit].id)
+			case f.perUnit && i == 1:
+				b = appendEscaped(b, t.units[r.unit].site)
+			default:
+				b = appendEscaped(b, t.strs[r.extra[extra]])
+				extra++
+			}
 			b = append(b, '"')
 		}
 		b = append(b, '}')
 	}
 	b = append(b, ' ')
-	b = appendValue(b, v)
-	b = append(b, '\n')
-	t.bufs[f] = b
+	b = appendValue(b, r.v)
+	return append(b, '\n')
 }
 
 // appendEscaped escapes a label value for the text format: backslash,
@@ -78,34 +132,31 @@ func (c *Collector) WriteText(w io.Writer) error { return c.WriteTextFiltered(w,
 
 // WriteTextFiltered is WriteText for what f serves.
 func (c *Collector) WriteTextFiltered(w io.Writer, f Filter) error {
-	t := &textSink{bufs: make(map[*family][]byte, len(c.families))}
-	// Each family's buffer starts at the size it reached last time (a
-	// little more): growing 30 buffers by doubling to 36 MB in all took
-	// a third of a scrape's CPU in copying at 10,000 units.
-	// (The whole fleet's scrape only: a part's size varies with the part.)
+	t := &textSink{recs: make([][]rec, len(c.families)), strIdx: map[string]uint32{}, current: -1}
+	// Each family's list starts at the length it reached at the last
+	// whole scrape (a little more), so that it is not grown by copying.
 	whole := f.whole() && !f.NoFleet
 	c.sizeMu.Lock()
-	for _, fam := range c.families {
-		if n := c.sizes[fam]; n > 0 && whole {
-			t.bufs[fam] = make([]byte, 0, n+n/16)
+	for i, n := range c.sizes {
+		if n > 0 && whole {
+			t.recs[i] = make([]rec, 0, n+n/16)
 		}
 	}
 	c.sizeMu.Unlock()
 	c.series(t, f)
 	if whole {
 		c.sizeMu.Lock()
-		if c.sizes == nil {
-			c.sizes = make(map[*family]int, len(c.families))
-		}
-		for fam, b := range t.bufs {
-			c.sizes[fam] = len(b)
+		c.sizes = make([]int, len(c.families))
+		for i, r := range t.recs {
+			c.sizes[i] = len(r)
 		}
 		c.sizeMu.Unlock()
 	}
 	bw := bufio.NewWriterSize(w, 64<<10)
+	line := make([]byte, 0, 256)
 	for _, fam := range c.families {
-		b := t.bufs[fam]
-		if len(b) == 0 {
+		recs := t.recs[fam.index]
+		if len(recs) == 0 {
 			continue
 		}
 		typ := "gauge"
@@ -113,7 +164,12 @@ func (c *Collector) WriteTextFiltered(w io.Writer, f Filter) error {
 			typ = "counter"
 		}
 		bw.WriteString("# HELP " + fam.name + " " + escapeHelp(fam.help) + "\n# TYPE " + fam.name + " " + typ + "\n")
-		bw.Write(b)
+		for i := range recs {
+			line = t.appendSeries(line[:0], fam, &recs[i])
+			if _, err := bw.Write(line); err != nil {
+				return err
+			}
+		}
 	}
 	return bw.Flush()
 }
