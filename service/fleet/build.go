@@ -90,14 +90,14 @@ func (u *Unit) Params() limits.Params {
 func (d *decoder) build(c *unitCtx) {
 	u := c.u
 	hadErrors := c.bad
-	if hadErrors && !(c.ok["rating.mva"] && c.ok["rating.kv"] && c.ok["field.air_gap_a"]) {
+	if hadErrors && !(c.isOK("rating.mva") && c.isOK("rating.kv") && c.isOK("field.air_gap_a")) {
 		return // without the base every value in MW or A converts wrong
 	}
 	m, err := limits.New(u.Params())
 	if err != nil {
 		pes := limits.ParamErrors(err)
 		for _, pe := range pes {
-			if !hadErrors || c.ok[pe.Field] {
+			if !hadErrors || c.isOK(pe.Field) {
 				c.errorf(u.Line(pe.Field), pe.Field, "%s", pe.Reason)
 			}
 		}

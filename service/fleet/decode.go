@@ -29,6 +29,7 @@ type decoder struct {
 	diags Diagnostics
 	units []*unitCtx
 	fleet *Fleet
+	paths map[string]pathEntry // see path
 
 	// The units' text, item by item, when the file has the plain shape
 	// splitUnits reads (split.go): then each unit's YAML tree is built,
@@ -45,9 +46,53 @@ type decoder struct {
 type unitCtx struct {
 	d     *decoder
 	u     *Unit
-	label string          // the unit's id, or "#n" when it has none
-	bad   bool            // an error was reported for this unit
-	ok    map[string]bool // dotted paths of the values read without problems
+	label string   // the unit's id, or "#n" when it has none
+	bad   bool     // an error was reported for this unit
+	ok    []uint64 // dotted paths of the values read without problems: a bit per path (decoder.paths)
+}
+
+// path returns the one copy of a dotted key path that every unit shares
+// (the units' line tables are keyed by them), and its number. A fleet of
+// 100,000 units otherwise holds a copy of each of some sixty paths per
+// unit, twice. Only the decoding, one unit at a time, adds paths.
+func (d *decoder) path(p string) (string, int) {
+	if e, ok := d.paths[p]; ok {
+		return e.s, e.n
+	}
+	if d.paths == nil {
+		d.paths = map[string]pathEntry{}
+	}
+	e := pathEntry{p, len(d.paths)}
+	d.paths[p] = e
+	return e.s, e.n
+}
+
+type pathEntry struct {
+	s string
+	n int
+}
+
+// setOK records that the value at field was read without problems.
+func (c *unitCtx) setOK(field string) {
+	_, n := c.d.path(field)
+	for len(c.ok) <= n/64 {
+		c.ok = append(c.ok, 0)
+	}
+	c.ok[n/64] |= 1 << (n % 64)
+}
+
+// clearOK takes back setOK.
+func (c *unitCtx) clearOK(field string) {
+	if e, ok := c.d.paths[field]; ok && e.n/64 < len(c.ok) {
+		c.ok[e.n/64] &^= 1 << (e.n % 64)
+	}
+}
+
+// isOK reports whether the value at field was read without problems. It
+// only reads the decoder's paths, so units may be built concurrently.
+func (c *unitCtx) isOK(field string) bool {
+	e, ok := c.d.paths[field]
+	return ok && e.n/64 < len(c.ok) && c.ok[e.n/64]&(1<<(e.n%64)) != 0
 }
 
 // topKey is one key allowed at the top of the fleet file.
@@ -304,7 +349,7 @@ func (m *mapping) get(key string) (*yaml.Node, int, bool) {
 // openMapping checks that n is a mapping whose keys are all in allowed and
 // appear once, reporting through errf. lines, when not nil, receives the
 // line of every key by dotted path.
-func openMapping(n *yaml.Node, line int, path string, allowed []string, errf func(int, string, string, ...any), lines map[string]int) (*mapping, bool) {
+func openMapping(n *yaml.Node, line int, path string, allowed []string, errf func(int, string, string, ...any), lines func(field string, line int)) (*mapping, bool) {
 	n = resolve(n)
 	if n.Kind != yaml.MappingNode {
 		what := "the file"
@@ -338,7 +383,7 @@ func openMapping(n *yaml.Node, line int, path string, allowed []string, errf fun
 		m.vals[key] = vn
 		m.keyLn[key] = kn.Line
 		if lines != nil {
-			lines[field] = kn.Line
+			lines(field, kn.Line)
 		}
 	}
 	// An unknown or repeated key is reported; the known keys are still read.
@@ -356,7 +401,13 @@ func contains(list []string, s string) bool {
 
 // open opens the mapping of a unit block, recording key lines.
 func (c *unitCtx) open(v *yaml.Node, path string, line int, allowed ...string) (*mapping, bool) {
-	return openMapping(v, line, path, allowed, c.errorf, c.u.lines)
+	return openMapping(v, line, path, allowed, c.errorf, c.line)
+}
+
+// line records the line of the key at field.
+func (c *unitCtx) line(field string, line int) {
+	p, _ := c.d.path(field)
+	c.u.lines[p] = line
 }
 
 // number reads the number at key. rule checks the value and returns ""
@@ -382,7 +433,7 @@ func (c *unitCtx) number(m *mapping, key string, required bool, what string, rul
 			return 0, false
 		}
 	}
-	c.ok[field] = true
+	c.setOK(field)
 	return x, true
 }
 
@@ -432,7 +483,7 @@ func (c *unitCtx) text(m *mapping, key string, required bool, what string) (stri
 		c.errorf(line, field, "must be text (%s); got %s", what, describe(n))
 		return "", false
 	}
-	c.ok[field] = true
+	c.setOK(field)
 	return n.Value, true
 }
 
@@ -442,7 +493,7 @@ func (c *unitCtx) text(m *mapping, key string, required bool, what string) (stri
 // (field[i+1]); ok is false, and the problem reported, when it is not one.
 func (c *unitCtx) openItem(n *yaml.Node, field string, i int, keys ...string) (m *mapping, itemPath string, ok bool) {
 	itemPath = fmt.Sprintf("%s[%d]", field, i+1)
-	c.u.lines[itemPath] = n.Line
+	c.line(itemPath, n.Line)
 	m, ok = c.open(n, itemPath, n.Line, keys...)
 	return m, itemPath, ok
 }
@@ -542,7 +593,7 @@ func (d *decoder) decodeUnit(i int, item *yaml.Node) *unitCtx {
 		line:  item.Line,
 		lines: map[string]int{},
 	}
-	c := &unitCtx{d: d, u: u, label: label, ok: map[string]bool{}}
+	c := &unitCtx{d: d, u: u, label: label}
 	keys := unitKeys()
 	allowed := make([]string, len(keys))
 	for i, k := range keys {
@@ -649,7 +700,7 @@ func (c *unitCtx) decodeMachine(v *yaml.Node, path string, line int) {
 			mc.Rotor = limits.Salient
 		default:
 			c.errorf(c.u.Line("machine.rotor"), "machine.rotor", "must be round or salient; got %q", clip(rotor))
-			delete(c.ok, "machine.rotor")
+			c.clearOK("machine.rotor")
 		}
 	}
 	// The values' domains (positive reactances, xq <= xd, ...) are
@@ -715,7 +766,7 @@ func (c *unitCtx) decodeStability(v *yaml.Node, path string, line int) {
 			c.u.Stability.Basis = limits.BasisAVR
 		default:
 			c.errorf(c.u.Line("stability.basis"), "stability.basis", "must be manual or avr; got %q", clip(b))
-			delete(c.ok, "stability.basis")
+			c.clearOK("stability.basis")
 		}
 	}
 	c.u.Stability.ZetaMin, _ = c.number(m, "zeta_min", false, "the lowest damping ratio of an electromechanical mode, in [0, 1)", nil)
@@ -874,7 +925,7 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 	if q, ok := c.text(m, "quantity", true, "what the table is indexed by: "+allowed); ok {
 		if !contains(names, q) {
 			c.errorf(c.u.Line("coolant.quantity"), "coolant.quantity", "unknown quantity %q; allowed: %s", clip(q), allowed)
-			delete(c.ok, "coolant.quantity")
+			c.clearOK("coolant.quantity")
 		}
 		co.Quantity = CoolantQuantity(q)
 	}
@@ -899,7 +950,7 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 		}
 		co.Points = append(co.Points, CoolantPoint{At: at, Armature: arm, Field: fld, Line: item.Line})
 	}
-	if good && c.ok["coolant.quantity"] {
+	if good && c.isOK("coolant.quantity") {
 		c.u.Coolant = co
 	}
 }
@@ -909,15 +960,15 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 // relations (xq <= xd, p_min < p_max, ...) are limits.New's rules,
 // reported through build.
 func (c *unitCtx) crossChecks() {
-	u, ok := c.u, c.ok
+	u, ok := c.u, c.isOK
 	mc := &u.Machine
-	if ok["machine.rotor"] && mc.Rotor == limits.Salient && !u.Has("machine.xq") {
+	if ok("machine.rotor") && mc.Rotor == limits.Salient && !u.Has("machine.xq") {
 		c.errorf(u.Line("machine"), "machine.xq", "missing; a salient-pole rotor needs xq, the quadrature-axis synchronous reactance in pu (below xd)")
 	}
-	if !u.Has("machine.xq") && ok["machine.xd"] {
+	if !u.Has("machine.xq") && ok("machine.xd") {
 		mc.Xq = mc.Xd
 	}
-	if !u.Has("machine.xp") && ok["machine.xl"] {
+	if !u.Has("machine.xp") && ok("machine.xl") {
 		mc.Xp = mc.Xl
 	}
 	if !u.Has("stability.basis") && u.Excitation != nil {
