@@ -68,26 +68,10 @@ func ReadCheckpoint(path string) (*Checkpoint, error) {
 	if cp.Version == 1 {
 		return &cp, nil
 	}
-	d, err := ingest.NewStateDecoder(r)
-	if err != nil {
-		return nil, fmt.Errorf("checkpoint %s: %w", path, err)
+	if cp.State, err = ingest.ReadSnapshot(r); err != nil {
+		return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
 	}
-	cp.State = &ingest.Snapshot{Format: "genvelope-state", Version: d.Version, Written: d.Written, Units: map[string]ingest.UnitSnapshot{}}
-	for {
-		var us ingest.UnitSnapshot
-		id, err := d.Next(&us)
-		var bad *ingest.BadEntryError
-		switch {
-		case errors.Is(err, io.EOF):
-			return &cp, nil
-		case errors.As(err, &bad):
-			cp.State.Bad = append(cp.State.Bad, bad)
-		case err != nil:
-			return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
-		default:
-			cp.State.Units[id] = us
-		}
-	}
+	return &cp, nil
 }
 
 // Attach restores the checkpoint into store (moving aside one that does

@@ -2,11 +2,8 @@ package ingest
 
 import (
 	"encoding/json"
-	"fmt"
 	"testing"
 	"time"
-
-	"github.com/genvelope/genvelope/service/fleet"
 )
 
 // BenchmarkAccept is the per-sample cost of ingest after decoding: the
@@ -30,13 +27,7 @@ func BenchmarkAccept(b *testing.B) {
 // windows: the binary stream the saver writes against the JSON of
 // version 2 (a snapshot copied, then encoded).
 func BenchmarkSaveState(b *testing.B) {
-	ex := exampleFleet(b).Unit("harrowmere-1")
-	fl := &fleet.Fleet{}
-	for i := range 10000 {
-		c := *ex
-		c.ID = fmt.Sprintf("syn-%05d", i)
-		fl.Units = append(fl.Units, &c)
-	}
+	fl := cloneFleet(b, 10000)
 	now := t0.Add(time.Hour)
 	s := NewStore(fl, Options{})
 	for i := range ringSize {

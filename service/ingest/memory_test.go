@@ -1,12 +1,9 @@
 package ingest
 
 import (
-	"fmt"
 	"runtime"
 	"testing"
 	"time"
-
-	"github.com/genvelope/genvelope/service/fleet"
 )
 
 // The live state a store holds per configured unit, measured on the
@@ -18,13 +15,7 @@ import (
 // 2,304 for the trend ring with the first sample.
 func TestMemoryPerUnit(t *testing.T) {
 	const units = 2000
-	ex := exampleFleet(t).Unit("harrowmere-1")
-	fl := &fleet.Fleet{}
-	for i := range units {
-		c := *ex
-		c.ID = fmt.Sprintf("u%05d", i)
-		fl.Units = append(fl.Units, &c)
-	}
+	fl := cloneFleet(t, units)
 	heap := func() uint64 {
 		var ms runtime.MemStats
 		runtime.GC()

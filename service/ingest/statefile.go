@@ -383,6 +383,31 @@ func (d *StateDecoder) Next(us *UnitSnapshot) (string, error) {
 	return id, nil
 }
 
+// ReadSnapshot decodes a whole binary state stream into a Snapshot; the
+// entries that did not decode are in its Bad.
+func ReadSnapshot(r io.Reader) (*Snapshot, error) {
+	d, err := NewStateDecoder(r)
+	if err != nil {
+		return nil, err
+	}
+	sn := &Snapshot{Format: "genvelope-state", Version: d.Version, Written: d.Written, Units: map[string]UnitSnapshot{}}
+	for {
+		var us UnitSnapshot
+		id, err := d.Next(&us)
+		var bad *BadEntryError
+		switch {
+		case errors.Is(err, io.EOF):
+			return sn, nil
+		case errors.As(err, &bad):
+			sn.Bad = append(sn.Bad, bad)
+		case err != nil:
+			return nil, err
+		default:
+			sn.Units[id] = us
+		}
+	}
+}
+
 // end checks the checksum after the end mark and that nothing follows.
 func (d *StateDecoder) end() error {
 	var want, got [sha256.Size]byte

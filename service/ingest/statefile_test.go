@@ -18,26 +18,24 @@ import (
 // decodeAll decodes a whole binary state stream into a Snapshot.
 func decodeAll(t testing.TB, b []byte) *Snapshot {
 	t.Helper()
-	d, err := NewStateDecoder(bytes.NewReader(b))
+	sn, err := ReadSnapshot(bytes.NewReader(b))
 	if err != nil {
 		t.Fatal(err)
 	}
-	sn := &Snapshot{Format: "genvelope-state", Version: d.Version, Written: d.Written, Units: map[string]UnitSnapshot{}}
-	for {
-		var us UnitSnapshot
-		id, err := d.Next(&us)
-		var bad *BadEntryError
-		switch {
-		case errors.Is(err, io.EOF):
-			return sn
-		case errors.As(err, &bad):
-			sn.Bad = append(sn.Bad, err)
-		case err != nil:
-			t.Fatal(err)
-		default:
-			sn.Units[id] = us
-		}
+	return sn
+}
+
+// cloneFleet is a fleet of n copies of the example fleet's harrowmere-1,
+// ids u00000...
+func cloneFleet(t testing.TB, n int) *fleet.Fleet {
+	ex := exampleFleet(t).Unit("harrowmere-1")
+	fl := &fleet.Fleet{}
+	for i := range n {
+		c := *ex
+		c.ID = fmt.Sprintf("u%05d", i)
+		fl.Units = append(fl.Units, &c)
 	}
+	return fl
 }
 
 func steady(n int, t0, step int64) []int64 {
@@ -209,13 +207,7 @@ func TestStateFileBadEntryAlone(t *testing.T) {
 func TestEncodeStateAllocations(t *testing.T) {
 	now := t0.Add(time.Hour)
 	allocs := func(units int) float64 {
-		ex := exampleFleet(t).Unit("harrowmere-1")
-		fl := &fleet.Fleet{}
-		for i := range units {
-			c := *ex
-			c.ID = fmt.Sprintf("u%d", i)
-			fl.Units = append(fl.Units, &c)
-		}
+		fl := cloneFleet(t, units)
 		s := NewStore(fl, Options{})
 		for i := range 300 {
 			for _, c := range fl.Units {

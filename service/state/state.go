@@ -96,26 +96,11 @@ func Read(path string) (*ingest.Snapshot, error) {
 	if head, _ := br.Peek(len(ingest.StateMagic)); !ingest.IsBinaryState(head) {
 		return readJSON(path, br)
 	}
-	d, err := ingest.NewStateDecoder(br)
+	sn, err := ingest.ReadSnapshot(br)
 	if err != nil {
 		return nil, fmt.Errorf("state file %s: %w", path, err)
 	}
-	sn := &ingest.Snapshot{Format: "genvelope-state", Version: d.Version, Written: d.Written, Units: map[string]ingest.UnitSnapshot{}}
-	for {
-		var us ingest.UnitSnapshot
-		id, err := d.Next(&us)
-		var bad *ingest.BadEntryError
-		switch {
-		case errors.Is(err, io.EOF):
-			return sn, nil
-		case errors.As(err, &bad):
-			sn.Bad = append(sn.Bad, bad)
-		case err != nil:
-			return nil, fmt.Errorf("state file %s is corrupt: %w", path, err)
-		default:
-			sn.Units[id] = us
-		}
-	}
+	return sn, nil
 }
 
 // readJSON reads a state file of versions 1 and 2 (JSON).
