@@ -68,7 +68,7 @@ func TestStateFileRoundTrip(t *testing.T) {
 		"irregular":              {Times: []int64{math.MinInt64, -1, 0, 1, math.MaxInt64, 3, 3}, ArmatureH: math.SmallestNonzeroFloat64},
 		"one time":               {Times: []int64{42}},
 		"two times":              {Times: []int64{42, 40}},
-		"ünïcode id":             {XArmature: -0.0},
+		"ünïcode id":             {XArmature: math.Copysign(0, -1)},
 		strings.Repeat("x", 300): {},
 	}}
 	var buf bytes.Buffer
