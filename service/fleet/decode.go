@@ -37,6 +37,7 @@ type decoder struct {
 	// exists. splitFailed: an item did not parse alone; the file is then
 	// decoded whole, which reports it as before.
 	chunks      []unitChunk
+	text        []byte // the file the chunks are in
 	splitFailed bool
 	budget      int            // YAML nodes the units may still expand to (maxNodes)
 	firstLine   map[string]int // the line of each unit id's first use
@@ -201,14 +202,14 @@ func (c *unitCtx) warnf(line int, field, format string, args ...any) {
 func (d *decoder) document(data []byte, f *Fleet) {
 	if skeleton, chunks, ok := splitUnits(data); ok {
 		saved := *f
-		d.chunks = chunks
+		d.chunks, d.text = chunks, data
 		d.tree(skeleton, data, f)
 		if !d.splitFailed {
 			return
 		}
 		*f = saved
 		f.byID = map[string]*Unit{}
-		d.diags, d.units, d.chunks = nil, nil, nil
+		d.diags, d.units, d.chunks, d.text = nil, nil, nil, nil
 	}
 	d.tree(data, data, f)
 }

@@ -21,9 +21,8 @@ import (
 
 // unitChunk is the text of one item of the units: list.
 type unitChunk struct {
-	line       int    // the file's line of its first line (1-based)
-	start, end int    // its bytes in the file
-	text       []byte // data[start:end]
+	line       int // the file's line of its first line (1-based)
+	start, end int // its bytes in the file
 }
 
 // splitUnits returns the file with the items of its units: list blanked
@@ -94,31 +93,31 @@ func splitUnits(data []byte) (skeleton []byte, chunks []unitChunk, ok bool) {
 	if len(chunks) == 0 {
 		return nil, nil, false
 	}
-	for i := range chunks {
-		chunks[i].text = data[chunks[i].start:chunks[i].end]
-	}
 	return skeleton, chunks, true
 }
 
 // decodeChunks decodes the units: list item by item (d.chunks). The
 // YAML parsing, most of the work, runs on every core ahead of the
 // decoding, which takes the items in file order: a worker per core parses
-// the items of its turn (i modulo the workers) into a small queue of its
-// own, so at most a few hundred items' trees exist at once.
+// the batches of its turn (b modulo the workers; a batch is chunkBatch
+// neighbouring items, parsed at once to spare the parser's set-up) into
+// a small queue of its own, so at most a few hundred items' trees exist
+// at once.
 func (d *decoder) decodeChunks() {
-	workers := min(runtime.GOMAXPROCS(0), 8, len(d.chunks))
-	queues := make([]chan *yaml.Node, workers) // nil: the item did not parse alone
+	batches := (len(d.chunks) + chunkBatch - 1) / chunkBatch
+	workers := min(runtime.GOMAXPROCS(0), 8, batches)
+	queues := make([]chan []*yaml.Node, workers) // nil: the batch did not parse as its items
 	done := make(chan struct{})
 	var wg sync.WaitGroup
 	for w := range workers {
-		queues[w] = make(chan *yaml.Node, 64)
+		queues[w] = make(chan []*yaml.Node, 4)
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			for i := w; i < len(d.chunks); i += workers {
-				item := parseChunk(d.chunks[i])
+			for b := w; b < batches; b += workers {
+				items := parseChunks(d.text, d.chunks[b*chunkBatch:min((b+1)*chunkBatch, len(d.chunks))])
 				select {
-				case queues[w] <- item:
+				case queues[w] <- items:
 				case <-done:
 					return
 				}
@@ -127,32 +126,43 @@ func (d *decoder) decodeChunks() {
 	}
 	defer wg.Wait()
 	defer close(done)
-	for i := range d.chunks {
-		item := <-queues[i%workers]
-		if item == nil {
+	for b := range batches {
+		items := <-queues[b%workers]
+		if items == nil {
 			d.splitFailed = true
 			return
 		}
-		if !d.unitItem(i, item) {
-			return
+		for j, item := range items {
+			if !d.unitItem(b*chunkBatch+j, item) {
+				return
+			}
 		}
 	}
 }
 
-// parseChunk parses one item's text into its node, with the file's line
-// numbers, or returns nil when the text is not one list item on its own.
-func parseChunk(ch unitChunk) *yaml.Node {
+// chunkBatch is how many neighbouring items are parsed at once.
+const chunkBatch = 32
+
+// parseChunks parses neighbouring items of the file at once into their
+// nodes, with the file's line numbers, or returns nil when their text is
+// not exactly these list items.
+func parseChunks(file []byte, chunks []unitChunk) []*yaml.Node {
 	var doc yaml.Node
-	if err := yaml.Unmarshal(ch.text, &doc); err != nil || doc.Kind != yaml.DocumentNode || len(doc.Content) != 1 {
+	text := file[chunks[0].start:chunks[len(chunks)-1].end]
+	if err := yaml.Unmarshal(text, &doc); err != nil || doc.Kind != yaml.DocumentNode || len(doc.Content) != 1 {
 		return nil
 	}
 	seq := doc.Content[0]
-	if seq.Kind != yaml.SequenceNode || len(seq.Content) != 1 {
+	if seq.Kind != yaml.SequenceNode || len(seq.Content) != len(chunks) {
 		return nil
 	}
-	item := seq.Content[0]
-	shiftLines(item, ch.line-1)
-	return item
+	for i, item := range seq.Content {
+		shiftLines(item, chunks[0].line-1)
+		if item.Line != chunks[i].line {
+			return nil // an item is not where the split put it
+		}
+	}
+	return seq.Content
 }
 
 // shiftLines adds offset to the line of n and every node under it.
