@@ -18,11 +18,18 @@ import (
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
-func store(t *testing.T) *ingest.Store {
+func store(t *testing.T) *ingest.Store { return storeNamed(t, "") }
+
+// storeNamed is store with harrowmere-1's name and site set to name
+// (unless it is "").
+func storeNamed(t *testing.T, name string) *ingest.Store {
 	t.Helper()
 	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
+	}
+	if name != "" {
+		fl.Unit("harrowmere-1").Name, fl.Unit("harrowmere-1").Site = name, name
 	}
 	s := ingest.NewStore(fl, ingest.Options{})
 	at := time.Date(2026, 6, 1, 12, 0, 0, 0, time.UTC)
@@ -86,7 +93,12 @@ func TestCollectorSeries(t *testing.T) {
 // The text writer says exactly what the registry says, and passes the
 // Prometheus linter (Prometheus documentation; the tool is the check).
 func TestWriteTextMatchesRegistry(t *testing.T) {
-	s := store(t)
+	for _, name := range []string{"", "Unit \"one\" \\ of\nthe site"} { // label values to escape
+		t.Run(name, func(t *testing.T) { writeTextMatchesRegistry(t, storeNamed(t, name)) })
+	}
+}
+
+func writeTextMatchesRegistry(t *testing.T, s *ingest.Store) {
 	now := func() time.Time { return time.Date(2026, 6, 1, 12, 0, 5, 0, time.UTC) }
 	c := NewCollector(s, now)
 	reg := prometheus.NewPedanticRegistry()

@@ -31,17 +31,30 @@ type rec struct {
 	extra [2]uint32
 }
 
-// scrapeUnit is a served unit's identity labels.
+// scrapeUnit is a served unit's identity labels, escaped for the text
+// format once for all its series.
 type scrapeUnit struct{ id, site string }
 
+// intern returns the index of s, escaped for the text format, in t.strs.
 func (t *textSink) intern(s string) uint32 {
 	i, ok := t.strIdx[s]
 	if !ok {
 		i = uint32(len(t.strs))
-		t.strs = append(t.strs, s)
+		t.strs = append(t.strs, escaped(s))
 		t.strIdx[s] = i
 	}
 	return i
+}
+
+// escaped returns s escaped for a label value (see appendEscaped),
+// without a copy when nothing needs escaping.
+func escaped(s string) string {
+	for i := 0; i < len(s); i++ {
+		if c := s[i]; c == '\\' || c == '"' || c == '\n' {
+			return string(appendEscaped(nil, s))
+		}
+	}
+	return s
 }
 
 func (t *textSink) add(f *family, v float64, l labels) {
@@ -59,7 +72,7 @@ func (t *textSink) add(f *family, v float64, l labels) {
 // beginUnit starts the series of a unit.
 func (t *textSink) beginUnit(id, site string) {
 	t.current = int32(len(t.units))
-	t.units = append(t.units, scrapeUnit{id, site})
+	t.units = append(t.units, scrapeUnit{escaped(id), escaped(site)})
 }
 
 // appendSeries appends one series' line.
@@ -74,13 +87,13 @@ func (t *textSink) appendSeries(b []byte, f *family, r *rec) []byte {
 			}
 			b = append(b, name...)
 			b = append(b, '=', '"')
-			switch {
+			switch { // every value escaped already
 			case f.perUnit && i == 0:
-				b = appendEscaped(b, t.units[r.unit].id)
+				b = append(b, t.units[r.unit].id...)
 			case f.perUnit && i == 1:
-				b = appendEscaped(b, t.units[r.unit].site)
+				b = append(b, t.units[r.unit].site...)
 			default:
-				b = appendEscaped(b, t.strs[r.extra[extra]])
+				b = append(b, t.strs[r.extra[extra]]...)
 				extra++
 			}
 			b = append(b, '"')
@@ -95,9 +108,6 @@ func (t *textSink) appendSeries(b []byte, f *family, r *rec) []byte {
 // appendEscaped escapes a label value for the text format: backslash,
 // double quote and line feed.
 func appendEscaped(b []byte, s string) []byte {
-	if !strings.ContainsAny(s, "\\\"\n") {
-		return append(b, s...)
-	}
 	for i := 0; i < len(s); i++ {
 		switch c := s[i]; c {
 		case '\\':
