@@ -197,6 +197,9 @@ func (f *Filter) keeps(id, site string) bool {
 // series walks the store once and hands every series f serves to out.
 func (c *Collector) series(out sink, f Filter) {
 	c.fleetSeries(out, f)
+	if f.NoUnits {
+		return
+	}
 	now := c.now()
 	nowNS := now.UnixNano()
 	for _, u := range c.store.Units() {
