@@ -92,10 +92,10 @@ func (c *unitCtx) decodeLossOfField(v *yaml.Node, path string, line int) *LossOf
 			good = false
 			continue
 		}
-		_, ohm := zm.vals["diameter_ohm"]
-		_, ohmO := zm.vals["offset_ohm"]
-		_, pu := zm.vals["diameter_pu"]
-		_, puO := zm.vals["offset_pu"]
+		ohm := zm.has("diameter_ohm")
+		ohmO := zm.has("offset_ohm")
+		pu := zm.has("diameter_pu")
+		puO := zm.has("offset_pu")
 		z := MhoZone{Line: item.Line}
 		switch {
 		case (ohm || ohmO) && (pu || puO):
