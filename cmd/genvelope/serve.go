@@ -58,6 +58,9 @@ replicas by the FNV-1a hash of the unit id.`,
 			journalMax := fs.Int64("journal-max-bytes", 8<<20, "size at which the journal is rotated")
 			pprof := fs.Bool("pprof", false, "serve /debug/pprof/ on the HTTP listener (admin role under --access; see --pprof-listen)")
 			sec := addSecurityFlags(fs)
+			var lim server.Limits
+			fs.IntVar(&lim.GRPCConnsPerCaller, "grpc-conns-per-client", 32, "gRPC connections one client (certificate identity, else address) may hold open; more are answered RESOURCE_EXHAUSTED and closed")
+			fs.IntVar(&lim.HTTPConnsPerCaller, "http-conns-per-client", 32, "HTTP connections one client (certificate or basic-auth identity, else address) may hold open; more are answered 429")
 			gc := addGCFlags(fs)
 			statePath := fs.String("state", defaultStatePath, "state `FILE`: thermal memory, alarm states, acknowledgements, shelves and recent timestamps, written every few seconds and at stop, restored at start; \"\" keeps none")
 			nf := addNATSFlags(fs)
@@ -77,7 +80,7 @@ replicas by the FNV-1a hash of the unit id.`,
 					FleetPath: *fleetPath, GRPCListen: *grpcListen, HTTPListen: *httpListen,
 					Ingest: ingest.Options{MaxFuture: *maxFuture, Horizon: *horizon}, MaxBatch: *maxBatch, Pprof: *pprof, Logger: log,
 					StatePath: *statePath, JournalPath: *journalPath, JournalMaxBytes: *journalMax,
-					Security: *sec,
+					Security: *sec, Limits: lim,
 				}
 				if nf.enabled() {
 					dl, err := nf.open(*statePath, log)

@@ -17,11 +17,12 @@ import (
 type check uint8
 
 const (
-	checkNone    check = iota // open to all (health)
-	checkAnyUnit              // the role over at least one unit; answers are filtered to the caller's units
-	checkUnit                 // the role over the request's unit_id
-	checkAnyRole              // any grant at all (reflection)
-	checkDenied               // a method the access file cannot grant
+	checkNone      check = iota // open to all (health)
+	checkAnyUnit                // the role over at least one unit; answers are filtered to the caller's units
+	checkUnit                   // the role over the request's unit_id
+	checkAnyRole                // any grant at all (reflection)
+	checkDenied                 // a method the access file cannot grant
+	checkUnitOrAll              // the role over the request's unit_id, or over one unit at least when it is empty (answers filtered)
 )
 
 // methodCheck returns the role and check of a gRPC method. A method not
@@ -39,6 +40,8 @@ func methodCheck(fullMethod string) (Role, check) {
 		return Operator, checkUnit
 	case pb.JournalService_ListJournal_FullMethodName:
 		return Viewer, checkAnyUnit // entries of other units are filtered out
+	case pb.CoordinationService_GetCoordination_FullMethodName:
+		return Viewer, checkUnitOrAll // one unit, or the caller's units when unit_id is empty
 	}
 	switch {
 	case strings.HasPrefix(fullMethod, "/grpc.health.v1.Health/"):
@@ -81,6 +84,12 @@ func (g *Guard) allow(ctx context.Context, c *Caller, method string, req any) er
 		ok = c.Has(role)
 	case checkUnit:
 		ok = c.May(role, unit)
+	case checkUnitOrAll:
+		if unit == "" {
+			ok = c.Has(role)
+		} else {
+			ok, chk = c.May(role, unit), checkUnit
+		}
 	case checkAnyRole:
 		ok = c.rights.all || len(c.rights.grants) > 0
 	case checkDenied:
@@ -91,6 +100,11 @@ func (g *Guard) allow(ctx context.Context, c *Caller, method string, req any) er
 	}
 	reason := DenyReason(c)
 	g.Deny(ctx, c, "grpc "+method, clip(unit), reason)
+	if chk == checkUnit && role == Viewer && unit != "" && c.Has(Viewer) {
+		// A unit outside a viewer's scope is answered as one that does
+		// not exist: its existence is not revealed.
+		return UnknownUnit(c, unit, g.opts.UnitIDs())
+	}
 	if reason == ReasonUnauthenticated {
 		return status.Error(codes.Unauthenticated, "genvelope: this call needs a client certificate the access file knows")
 	}
@@ -146,6 +160,8 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 		r.Units = visible(c, r.Units, (*pb.Unit).GetId)
 	case *pb.ListAlarmsResponse:
 		r.Alarms = visible(c, r.Alarms, (*pb.AlarmEvent).GetUnitId)
+	case *pb.GetCoordinationResponse:
+		r.Units = visible(c, r.Units, (*pb.UnitCoordination).GetUnitId)
 	case *pb.ListJournalResponse:
 		// Fleet-wide entries (reloads) carry no unit and stay.
 		kept := r.Entries[:0]
@@ -157,6 +173,32 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 		r.Entries = kept
 	}
 	return resp, err
+}
+
+// UnknownUnit is the answer to a request for a unit that is not in the
+// fleet, or that c may not view: NOT_FOUND, naming the units c may view.
+func UnknownUnit(c *Caller, id string, ids []string) error {
+	var known []string
+	for _, u := range ids {
+		if c == nil || c.May(Viewer, u) {
+			known = append(known, u)
+		}
+	}
+	return status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", ClipID(id), strings.Join(known, ", "))
+}
+
+// ClipID shortens a unit id for a message: at most 64 bytes, cut at a
+// character boundary, with an ellipsis when cut.
+func ClipID(id string) string {
+	const max = 64
+	if len(id) <= max {
+		return id
+	}
+	cut := max
+	for cut > 0 && !utf8RuneStart(id[cut]) {
+		cut--
+	}
+	return id[:cut] + "…"
 }
 
 // visible keeps the items of the units c may view, in place.

@@ -91,6 +91,9 @@ type Options struct {
 	Policy *Policy
 	// SiteOf returns a unit's site from the fleet being served.
 	SiteOf func(unitID string) (site string, ok bool)
+	// UnitIDs returns the ids of the fleet being served (to name the
+	// units a viewer may see when it asks for one it may not).
+	UnitIDs func() []string
 	// Auditor receives denials and operator actions; default a
 	// LogAuditor on Logger.
 	Auditor Auditor
@@ -105,6 +108,7 @@ type Guard struct {
 	loadMu  sync.Mutex
 	denied  *prometheus.CounterVec
 	auditor Auditor
+	gate    gate // bounds the audit of repeated failures (authfail.go)
 }
 
 // NewGuard reads the access file, if any; it fails when the file has
@@ -119,15 +123,18 @@ func NewGuard(o Options) (*Guard, error) {
 	if o.SiteOf == nil {
 		o.SiteOf = func(string) (string, bool) { return "", false }
 	}
+	if o.UnitIDs == nil {
+		o.UnitIDs = func() []string { return nil }
+	}
 	g := &Guard{opts: o, auditor: o.Auditor}
 	if g.auditor == nil {
 		g.auditor = LogAuditor{Log: o.Logger}
 	}
 	g.denied = prometheus.NewCounterVec(prometheus.CounterOpts{
 		Namespace: "genvelope", Name: "access_denied_total",
-		Help: "Calls (and samples, for permission_denied) refused by access control, by reason.",
+		Help: "Calls (and samples, for permission_denied) refused by access control, and failed authentications, by reason.",
 	}, []string{"reason"})
-	for _, r := range []string{ReasonUnauthenticated, ReasonNotGranted, ReasonSampleDenied, ReasonCrossOrigin, ReasonHost, ReasonLimit, ReasonProtocol} {
+	for _, r := range append([]string{ReasonUnauthenticated, ReasonNotGranted, ReasonSampleDenied, ReasonCrossOrigin, ReasonHost, ReasonLimit, ReasonProtocol}, AuthFailureReasons()...) {
 		g.denied.WithLabelValues(r)
 	}
 	if o.Policy != nil && o.Path == "" {
@@ -251,6 +258,12 @@ func (g *Guard) DenyN(ctx context.Context, c *Caller, action, target, reason str
 	}
 	if n > 1 {
 		e.Detail = fmt.Sprintf("%d refused", n)
+	}
+	if reason == ReasonUnauthenticated {
+		// A caller the access file does not know may repeat itself
+		// without end: through the flood gate, as failed sign-ins.
+		g.gated(ctx, e)
+		return
 	}
 	g.auditor.Audit(ctx, e)
 }

@@ -170,10 +170,16 @@ type Filter struct {
 	// Shard < Shards) by the 32-bit FNV-1a of the id's bytes modulo
 	// Shards; Shards 0 means no sharding.
 	Shard, Shards uint32
+	// Keep, when set, is the caller's scope: only the units it admits are
+	// served, and the unit count is of those (the other fleet-wide
+	// counts stay).
+	Keep func(unitID string) bool
 }
 
 // whole reports whether f serves every unit.
-func (f *Filter) whole() bool { return !f.NoUnits && len(f.Sites) == 0 && f.Shards == 0 }
+func (f *Filter) whole() bool {
+	return !f.NoUnits && len(f.Sites) == 0 && f.Shards == 0 && f.Keep == nil
+}
 
 // keeps reports whether the filter serves the unit.
 func (f *Filter) keeps(id, site string) bool {
@@ -197,15 +203,28 @@ func (f *Filter) keeps(id, site string) bool {
 // series walks the store once and hands every series f serves to out.
 func (c *Collector) series(out sink, f Filter) {
 	c.fleetSeries(out, f)
+	units := c.store.Units()
+	inScope := len(units) // the units the caller may see
+	if f.Keep != nil {
+		inScope = 0
+		for _, u := range units {
+			if f.Keep(u.Config().ID) {
+				inScope++
+			}
+		}
+	}
+	if !f.NoFleet {
+		out.add(c.units, float64(inScope), lv())
+	}
 	if f.NoUnits {
 		return
 	}
 	now := c.now()
 	nowNS := now.UnixNano()
-	for _, u := range c.store.Units() {
+	for _, u := range units {
 		if !f.whole() {
 			cfg := u.Config()
-			if !f.keeps(cfg.ID, cfg.Site) {
+			if f.Keep != nil && !f.Keep(cfg.ID) || !f.keeps(cfg.ID, cfg.Site) {
 				continue
 			}
 		}
@@ -236,7 +255,6 @@ func (c *Collector) fleetSeries(out sink, f Filter) {
 			out.add(c.transitions, float64(tr[k][l]), lv(alarm.Kind(k).String(), l.String()))
 		}
 	}
-	out.add(c.units, float64(len(c.store.Units())), lv())
 }
 
 // unitSeries hands one unit's series to out.

@@ -140,6 +140,13 @@ func appendValue(b []byte, v float64) []byte {
 // Families without a series are left out, as a registry does.
 func (c *Collector) WriteText(w io.Writer) error { return c.WriteTextFiltered(w, Filter{}) }
 
+// WriteTextOf is WriteText for the units keep admits (nil: all): a
+// viewer scoped to some units sees their series and the fleet-wide
+// ones, nothing of the other units.
+func (c *Collector) WriteTextOf(w io.Writer, keep func(unitID string) bool) error {
+	return c.WriteTextFiltered(w, Filter{Keep: keep})
+}
+
 // WriteTextFiltered is WriteText for what f serves.
 func (c *Collector) WriteTextFiltered(w io.Writer, f Filter) error {
 	t := &textSink{recs: make([][]rec, len(c.families)), strIdx: map[string]uint32{}, current: -1}

@@ -3,10 +3,10 @@ package rpc
 import (
 	"context"
 
-	"google.golang.org/grpc/codes"
 	"google.golang.org/grpc/status"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/coord"
 	"github.com/genvelope/genvelope/service/fleet"
 	"github.com/genvelope/genvelope/service/ingest"
@@ -25,13 +25,21 @@ func NewCoordination(store *ingest.Store) *Coordination { return &Coordination{s
 // GetCoordination studies one unit, or every unit when unit_id is empty.
 func (c *Coordination) GetCoordination(ctx context.Context, req *pb.GetCoordinationRequest) (*pb.GetCoordinationResponse, error) {
 	fl := c.store.Fleet()
-	units := fl.Units
+	caller := access.FromContext(ctx)
+	var units []*fleet.Unit
 	if req.UnitId != "" {
 		u := fl.Unit(req.UnitId)
 		if u == nil {
-			return nil, status.Errorf(codes.NotFound, "unknown unit %q", req.UnitId)
+			return nil, access.UnknownUnit(caller, req.UnitId, fl.IDs())
 		}
 		units = []*fleet.Unit{u}
+	} else {
+		// Every unit the caller may view (all without an access file).
+		for _, u := range fl.Units {
+			if caller == nil || caller.May(access.Viewer, u.ID) {
+				units = append(units, u)
+			}
+		}
 	}
 	resp := &pb.GetCoordinationResponse{Caution: fleet.Caution}
 	for _, u := range units {

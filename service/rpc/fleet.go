@@ -12,6 +12,7 @@ import (
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
 	"github.com/genvelope/genvelope/limits"
+	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/fleet"
 	"github.com/genvelope/genvelope/service/ingest"
 	"github.com/genvelope/genvelope/service/report"
@@ -45,7 +46,7 @@ func (f *Fleet) ListUnits(ctx context.Context, _ *pb.ListUnitsRequest) (*pb.List
 
 // GetUnit returns one unit, its latest sample and the evaluation of it.
 func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUnitResponse, error) {
-	u, err := f.unit(req.UnitId)
+	u, err := f.unit(ctx, req.UnitId)
 	if err != nil {
 		return nil, err
 	}
@@ -73,7 +74,7 @@ func (f *Fleet) GetUnit(ctx context.Context, req *pb.GetUnitRequest) (*pb.GetUni
 // GetEnvelope returns a unit's envelope at the requested voltage and
 // coolant, by default those of its latest sample.
 func (f *Fleet) GetEnvelope(ctx context.Context, req *pb.GetEnvelopeRequest) (*pb.GetEnvelopeResponse, error) {
-	u, err := f.unit(req.UnitId)
+	u, err := f.unit(ctx, req.UnitId)
 	if err != nil {
 		return nil, err
 	}
@@ -128,14 +129,14 @@ func (f *Fleet) GetEnvelope(ctx context.Context, req *pb.GetEnvelopeRequest) (*p
 	return resp, nil
 }
 
-func (f *Fleet) unit(id string) (*ingest.Unit, error) {
+func (f *Fleet) unit(ctx context.Context, id string) (*ingest.Unit, error) {
 	if id == "" {
 		return nil, status.Error(codes.InvalidArgument, "unit_id is empty")
 	}
 	u := f.store.Unit(id)
 	if u == nil {
-		ids := f.store.Fleet().IDs()
-		return nil, status.Errorf(codes.NotFound, "unit %q is not in the fleet; known units: %s", ingest.ClipID(id), strings.Join(ids, ", "))
+		// Only the units the caller may view are named.
+		return nil, access.UnknownUnit(access.FromContext(ctx), id, f.store.Fleet().IDs())
 	}
 	return u, nil
 }

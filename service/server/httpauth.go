@@ -1,6 +1,7 @@
 package server
 
 import (
+	"fmt"
 	"net"
 	"net/http"
 	"net/url"
@@ -46,6 +47,10 @@ type httpGuard struct {
 	hosts     map[string]bool
 	basicAuth bool // the web configuration checks basic-auth users
 	next      http.Handler
+	// hideUnits passes a viewer's read of a unit outside its scope on to
+	// the pages, which answer it as for a unit that does not exist
+	// (false: 403).
+	hideUnits bool
 }
 
 // route is what an HTTP request asks of its caller.
@@ -78,14 +83,24 @@ func routeOf(r *http.Request) route {
 		}
 		return route{role: access.Viewer, unit: id}
 	}
-	// The overview, its refresh, /metrics: every unit at once.
+	// The overview, its refresh, the journal, /metrics: the units the
+	// caller may view (the pages and metrics are filtered to them).
 	return route{role: access.Viewer, fleet: true}
 }
 
 func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	markReached(r.Context())
 	c := h.guard.FromHTTP(r, h.basicAuth)
 	ctx := access.NewContext(r.Context(), c)
 	r = r.WithContext(ctx)
+	if ok, max := admit(ctx, limitKey(c)); !ok {
+		h.guard.DenyGated(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.ReasonLimit, fmt.Sprintf("more than %d HTTP connections", max))
+		if r.ProtoMajor == 1 {
+			w.Header().Set("Connection", "close")
+		}
+		http.Error(w, fmt.Sprintf("genvelope: %s already has %d HTTP connections open, the most allowed for one client; this connection is refused (close one first)", c.Who(), max), http.StatusTooManyRequests)
+		return
+	}
 	// An IP address as the host is no rebinding (that needs a name the
 	// attacker controls), and is what Prometheus' service discovery
 	// uses.
@@ -101,11 +116,17 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		case rt.unit != "":
 			ok = c.May(rt.role, rt.unit)
 		case rt.fleet:
-			ok = c.HasAll(rt.role)
+			ok = c.Has(rt.role)
 		}
 		if !ok {
 			reason := access.DenyReason(c)
 			h.guard.Deny(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.Sanitize(rt.unit, 128), reason)
+			if rt.role == access.Viewer && rt.unit != "" && c.Has(access.Viewer) && h.hideUnits && r.Method == http.MethodGet {
+				// Not revealed: the pages answer it as a unit that does
+				// not exist (their scope excludes it).
+				h.next.ServeHTTP(w, r)
+				return
+			}
 			if reason == access.ReasonUnauthenticated && h.basicAuth {
 				w.Header().Set("WWW-Authenticate", `Basic realm="genvelope"`)
 				http.Error(w, "genvelope: sign in", http.StatusUnauthorized)

@@ -19,17 +19,20 @@ import (
 // Limits bound what one client, and all of them, may hold of the
 // service. The zero value takes the defaults (in parentheses).
 type Limits struct {
-	GRPCConns         int           // open gRPC connections (512); more wait in the kernel's backlog
-	HTTPConns         int           // open HTTP connections (128)
-	StreamsPerConn    uint32        // concurrent calls per gRPC connection (64)
-	Watchers          int           // alarm watchers in all (256)
-	WatchersPerCaller int           // alarm watchers per identity, or per address when anonymous (16)
-	InFlightPerCaller int           // telemetry calls (Push, Stream) at once per identity or address (64)
-	GRPCIdle          time.Duration // a gRPC connection without calls is closed after this (5 min)
-	StreamIdle        time.Duration // a telemetry stream without a batch for this long is ended, UNAVAILABLE (10 min)
-	HTTPRead          time.Duration // whole request, body included (30 s)
-	HTTPWrite         time.Duration // whole answer (60 s)
-	HTTPIdle          time.Duration // keep-alive between requests (120 s)
+	GRPCConns          int           // open gRPC connections (512); more wait in the kernel's backlog
+	HTTPConns          int           // open HTTP connections (128)
+	GRPCConnsPerCaller int           // open gRPC connections per identity, or per address when anonymous (32)
+	HTTPConnsPerCaller int           // open HTTP connections per identity, or per address when anonymous (32)
+	StreamsPerConn     uint32        // concurrent calls per gRPC connection (64)
+	Watchers           int           // alarm watchers in all (256)
+	WatchersPerCaller  int           // alarm watchers per identity, or per address when anonymous (16)
+	InFlightPerCaller  int           // telemetry calls (Push, Stream) at once per identity or address (64)
+	GRPCIdle           time.Duration // a gRPC connection without calls is closed after this (5 min)
+	PingMinTime        time.Duration // a client pinging more often is sent GOAWAY too_many_pings (10 s)
+	StreamIdle         time.Duration // a telemetry stream without a batch for this long is ended, UNAVAILABLE (10 min)
+	HTTPRead           time.Duration // whole request, body included (30 s)
+	HTTPWrite          time.Duration // whole answer (60 s)
+	HTTPIdle           time.Duration // keep-alive between requests (120 s)
 }
 
 func (l Limits) withDefaults() Limits {
@@ -40,6 +43,8 @@ func (l Limits) withDefaults() Limits {
 	}
 	def(&l.GRPCConns, 512)
 	def(&l.HTTPConns, 128)
+	def(&l.GRPCConnsPerCaller, 32)
+	def(&l.HTTPConnsPerCaller, 32)
 	def(&l.Watchers, 256)
 	def(&l.WatchersPerCaller, 16)
 	def(&l.InFlightPerCaller, 64)
@@ -49,7 +54,7 @@ func (l Limits) withDefaults() Limits {
 	for _, d := range []struct {
 		v *time.Duration
 		d time.Duration
-	}{{&l.GRPCIdle, 5 * time.Minute}, {&l.StreamIdle, 10 * time.Minute}, {&l.HTTPRead, 30 * time.Second}, {&l.HTTPWrite, 60 * time.Second}, {&l.HTTPIdle, 120 * time.Second}} {
+	}{{&l.GRPCIdle, 5 * time.Minute}, {&l.PingMinTime, 10 * time.Second}, {&l.StreamIdle, 10 * time.Minute}, {&l.HTTPRead, 30 * time.Second}, {&l.HTTPWrite, 60 * time.Second}, {&l.HTTPIdle, 120 * time.Second}} {
 		if *d.v <= 0 {
 			*d.v = d.d
 		}
@@ -68,7 +73,7 @@ func grpcLimitOptions(l Limits, maxBatch int) []grpc.ServerOption {
 	return []grpc.ServerOption{
 		grpc.MaxRecvMsgSize(recvLimit(maxBatch)),
 		grpc.MaxConcurrentStreams(l.StreamsPerConn),
-		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: 10 * time.Second, PermitWithoutStream: true}),
+		grpc.KeepaliveEnforcementPolicy(keepalive.EnforcementPolicy{MinTime: l.PingMinTime, PermitWithoutStream: true}),
 		grpc.KeepaliveParams(keepalive.ServerParameters{MaxConnectionIdle: l.GRPCIdle, Time: time.Minute, Timeout: 20 * time.Second}),
 		grpc.ConnectionTimeout(10 * time.Second), // the TLS handshake
 	}

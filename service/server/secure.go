@@ -12,6 +12,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/exporter-toolkit/web"
 	"google.golang.org/grpc"
+	grpcinsecure "google.golang.org/grpc/credentials/insecure"
 
 	"github.com/genvelope/genvelope/service/access"
 	"github.com/genvelope/genvelope/service/journal"
@@ -69,6 +70,7 @@ func (s *Server) secure(reg *prometheus.Registry) ([]grpc.ServerOption, error) {
 			}
 			return u.Site, true
 		},
+		UnitIDs: func() []string { return s.store.Fleet().IDs() },
 	})
 	if err != nil {
 		return nil, err
@@ -91,14 +93,15 @@ func (s *Server) secure(reg *prometheus.Registry) ([]grpc.ServerOption, error) {
 		maxBatch = rpc.DefaultMaxBatch
 	}
 	codec := newStrictCodec()
+	if creds == nil {
+		creds = grpcinsecure.NewCredentials()
+	}
 	opts := append(grpcLimitOptions(s.limits, maxBatch),
 		grpc.ForceServerCodecV2(codec),
-		grpc.ChainUnaryInterceptor(codec.Unary, s.guard.UnaryInterceptor, caps.Unary),
-		grpc.ChainStreamInterceptor(codec.Stream, s.guard.StreamInterceptor, caps.Stream),
+		grpc.ChainUnaryInterceptor(connCapUnary, codec.Unary, s.guard.UnaryInterceptor, caps.Unary),
+		grpc.ChainStreamInterceptor(connCapStream, codec.Stream, s.guard.StreamInterceptor, caps.Stream),
+		grpc.Creds(&capCreds{TransportCredentials: creds, guard: s.guard, conns: newConnCounts(s.limits.GRPCConnsPerCaller)}),
 	)
-	if creds != nil {
-		opts = append(opts, grpc.Creds(creds))
-	}
 	return opts, nil
 }
 
@@ -111,11 +114,14 @@ func (s *Server) denied(ctx context.Context, n int, unitID string) {
 // httpServer returns an HTTP server for handler behind the host check
 // and the guard, with the read, write and idle timeouts.
 func (s *Server) httpServer(handler http.Handler, listen string, write bool) *http.Server {
+	caps := newHTTPConnCaps(s.limits.HTTPConnsPerCaller)
 	h := &httpGuard{guard: s.guard, hosts: allowedHosts(listen, s.cfg.Security.HTTPHosts), basicAuth: s.webCfg.Users, next: handler}
+	h.hideUnits = true // the pages check the scope of /units/{id} themselves (web.Options.Scope)
 	srv := &http.Server{
 		Handler: h, ReadHeaderTimeout: 10 * time.Second, ReadTimeout: s.limits.HTTPRead,
 		IdleTimeout: s.limits.HTTPIdle, MaxHeaderBytes: 64 << 10,
-		ErrorLog: slog.NewLogLogger(s.log.Handler(), slog.LevelDebug),
+		ErrorLog:    newHandshakeLog(s.guard, s.log),
+		ConnContext: caps.connContext, ConnState: caps.connState,
 	}
 	if write {
 		srv.WriteTimeout = s.limits.HTTPWrite
@@ -139,6 +145,10 @@ func pprofMux() *http.ServeMux {
 // and reads it again for every new connection.
 func (s *Server) serveHTTP(srv *http.Server, ln net.Listener) error {
 	path := s.cfg.Security.WebConfig
+	users := &webUsers{path: path}
+	ln = &observeListener{Listener: ln, hook: func() {
+		srv.Handler = &authObserver{next: srv.Handler, guard: s.guard, users: users}
+	}}
 	return web.Serve(ln, srv, &web.FlagConfig{WebConfigFile: &path}, s.log)
 }
 
@@ -165,6 +175,16 @@ func webIdentity(r *http.Request) (name string, mayOperate func(unitID string) b
 		return "", func(string) bool { return true }
 	}
 	return c.Name, func(id string) bool { return c.May(access.Operator, id) }
+}
+
+// viewScope returns which units a request's caller may view: nil (all)
+// without an access file or with the viewer role over every unit.
+func viewScope(r *http.Request) func(unitID string) bool {
+	c := access.FromContext(r.Context())
+	if c == nil || c.HasAll(access.Viewer) {
+		return nil
+	}
+	return func(id string) bool { return c.May(access.Viewer, id) }
 }
 
 // PprofAddr returns the bound address of the profiling listener, or ""

@@ -377,8 +377,8 @@ func TestHTTPWebConfigAndRights(t *testing.T) {
 		{"admin reloads", "POST", "/-/reload", "admin", "", http.StatusOK},
 		{"admin reads pages", "GET", "/", "admin", "", http.StatusForbidden},
 		{"site viewer reads its unit", "GET", "/units/larchwater-2", "viewer-larchwater", "", http.StatusOK},
-		{"site viewer reads another site's unit", "GET", "/units/harrowmere-1", "viewer-larchwater", "", http.StatusForbidden},
-		{"site viewer reads the whole fleet", "GET", "/metrics", "viewer-larchwater", "", http.StatusForbidden},
+		{"site viewer reads another site's unit: not revealed", "GET", "/units/harrowmere-1", "viewer-larchwater", "", http.StatusNotFound},
+		{"site viewer scrapes its site", "GET", "/metrics", "viewer-larchwater", "", http.StatusOK},
 		{"rebinding host", "GET", "/", "viewer-all", "attacker.example:9471", http.StatusMisdirectedRequest},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
@@ -391,10 +391,19 @@ func TestHTTPWebConfigAndRights(t *testing.T) {
 		t.Errorf("reload audit %+v, want one by admin", got)
 	}
 	// The viewer's reload and acknowledge, the admin's page, the site
-	// viewer's two, the rebinding request (the toolkit refuses missing
-	// credentials first).
-	if got := len(audit.Find("http", access.OutcomeDenied)); got != 6 {
-		t.Errorf("%d HTTP denials audited, want 6", got)
+	// viewer's other unit, the rebinding request; and the two requests
+	// without credentials, refused by the toolkit.
+	var denials, noCreds int
+	for _, e := range audit.Find("http", access.OutcomeDenied) {
+		switch e.Reason {
+		case access.ReasonNoCredentials:
+			noCreds++
+		default:
+			denials++
+		}
+	}
+	if denials != 5 || noCreds != 2 {
+		t.Errorf("%d HTTP denials and %d requests without credentials audited, want 5 and 2", denials, noCreds)
 	}
 	// A cross-origin browser request to reload is refused even for the
 	// admin.
@@ -463,9 +472,57 @@ func TestGRPCScopedLists(t *testing.T) {
 	if len(resp.Units) != 1 || resp.Units[0].Id != "harrowmere-1" {
 		t.Errorf("op-harrowmere lists %v, want harrowmere-1 only", resp.Units)
 	}
-	if _, err := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "larchwater-2"}); status.Code(err) != codes.PermissionDenied {
-		t.Errorf("op-harrowmere gets larchwater-2: %v, want PERMISSION_DENIED", err)
+	// Another site's unit is answered as one that does not exist, and
+	// neither answer names units outside the scope.
+	_, hidden := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "larchwater-2"})
+	_, absent := pb.NewFleetServiceClient(conn).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "harrowmere-9"})
+	h, a := status.Convert(hidden), status.Convert(absent)
+	if h.Code() != codes.NotFound || a.Code() != codes.NotFound || strings.Replace(h.Message(), "larchwater-2", "X", 1) != strings.Replace(a.Message(), "harrowmere-9", "X", 1) {
+		t.Errorf("op-harrowmere gets larchwater-2: %v; a missing unit: %v; want the same NOT_FOUND", hidden, absent)
 	}
+	if !strings.HasSuffix(a.Message(), "known units: harrowmere-1") {
+		t.Errorf("the answer names units outside the scope: %q", a.Message())
+	}
+	// The coordination study: of the caller's units only (it was denied
+	// to everyone under an access file).
+	coord := pb.NewCoordinationServiceClient(conn)
+	if cr, err := coord.GetCoordination(ctx, &pb.GetCoordinationRequest{}); err != nil || len(cr.Units) != 1 || cr.Units[0].UnitId != "harrowmere-1" {
+		t.Errorf("op-harrowmere's coordination study: %v, want harrowmere-1 only", err)
+	}
+	if _, err := coord.GetCoordination(ctx, &pb.GetCoordinationRequest{UnitId: "larchwater-2"}); status.Code(err) != codes.NotFound {
+		t.Errorf("op-harrowmere's study of larchwater-2: %v, want NOT_FOUND", err)
+	}
+	// The viewer of everything is told every unit.
+	all := dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["viewer-all"])
+	if cr, err := pb.NewCoordinationServiceClient(all).GetCoordination(ctx, &pb.GetCoordinationRequest{}); err != nil || len(cr.Units) != 3 {
+		t.Errorf("viewer-all's coordination study: %v", err)
+	}
+	_, err = pb.NewFleetServiceClient(all).GetUnit(ctx, &pb.GetUnitRequest{UnitId: "harrowmere-9"})
+	if m := status.Convert(err).Message(); status.Code(err) != codes.NotFound || !strings.Contains(m, "larchwater-2") || !strings.Contains(m, "brindle-gt3") {
+		t.Errorf("viewer-all gets a missing unit: %v", err)
+	}
+}
+
+// A renewed HTTP certificate (the web configuration's files) is served
+// to new connections without a restart.
+func TestHTTPCertificateReload(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, nil)
+	served := func() string {
+		c, err := tls.Dial("tcp", r.srv.HTTPAddr(), &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost"})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer c.Close()
+		return c.ConnectionState().PeerCertificates[0].Subject.CommonName
+	}
+	if cn := served(); cn != "genvelope-test" {
+		t.Fatalf("served %q first", cn)
+	}
+	renewed := p.ca.Issue(t, testpki.Options{CN: "genvelope-renewed", DNS: []string{"localhost"}, Server: true})
+	testpki.Write(t, p.dir, "server.key", renewed.KeyPEM)
+	testpki.Write(t, p.dir, "server.crt", renewed.CertPEM)
+	waitFor(t, "the renewed HTTP certificate served", func() bool { return served() == "genvelope-renewed" })
 }
 
 // Profiling is on a listener of its own, for the admin role only.

@@ -240,7 +240,7 @@ func New(cfg Config) (*Server, error) {
 	mux.HandleFunc("GET /healthz", func(w http.ResponseWriter, r *http.Request) { fmt.Fprintln(w, "ok") })
 	mux.HandleFunc("GET /readyz", s.readyz)
 	mux.Handle("POST /-/reload", http.NewCrossOriginProtection().Handler(http.HandlerFunc(s.reloadHandler)))
-	s.web = web.New(s.store, web.Options{Logger: s.log, Identity: webIdentity, Actions: actions, Journal: s.journal})
+	s.web = web.New(s.store, web.Options{Logger: s.log, Identity: webIdentity, Scope: viewScope, Actions: actions, Journal: s.journal})
 	mux.Handle("/", s.web) // the operator pages: /, /units/{id} and their endpoints
 	if cfg.Pprof {
 		mux.Handle("/debug/pprof/", pprofMux()) // admin only (routeOf); prefer --pprof-listen
@@ -435,6 +435,7 @@ func metricsHandler(reg *prometheus.Registry, fleetMetrics *metrics.Collector, l
 				}
 			}
 		}
+		filter.Keep = viewScope(r) // a viewer scoped to some units sees only theirs
 		if err := fleetMetrics.WriteTextFiltered(out, filter); err != nil {
 			log.Warn("writing metrics", "err", err)
 		}
@@ -486,6 +487,7 @@ func (s *Server) sweep(ctx context.Context) {
 			return
 		case now := <-t.C:
 			s.store.Sweep(now)
+			s.guard.FlushGate(ctx, now)
 		}
 	}
 }

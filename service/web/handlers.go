@@ -140,7 +140,7 @@ func writeJSON(w http.ResponseWriter, status int, v any) {
 }
 
 func (ui *UI) overview(w http.ResponseWriter, r *http.Request) {
-	p := ui.newPage("Fleet", "/fleet/live", ui.fleetData())
+	p := ui.newPage("Fleet", "/fleet/live", ui.fleetDataFor(ui.opts.Scope(r)))
 	p.User, _ = ui.opts.Identity(r)
 	ui.render(w, "overview.html", p)
 }
@@ -162,7 +162,7 @@ type liveRow struct {
 }
 
 func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
-	d := ui.fleetData()
+	d := ui.fleetDataFor(ui.opts.Scope(r))
 	secs, err := ui.fragments("overview.html", d, "fleet-rows", "fleet-summary")
 	if err != nil {
 		ui.log.Error("overview fragments not rendered", "err", err)
@@ -177,7 +177,7 @@ func (ui *UI) overviewLive(w http.ResponseWriter, r *http.Request) {
 }
 
 func (ui *UI) unitPage(w http.ResponseWriter, r *http.Request) {
-	u := ui.store.Unit(r.PathValue("id"))
+	u := ui.unitOf(r)
 	if u == nil {
 		ui.notFound(w, r)
 		return
@@ -211,7 +211,7 @@ type liveAlarm struct {
 }
 
 func (ui *UI) unitLive(w http.ResponseWriter, r *http.Request) {
-	u := ui.store.Unit(r.PathValue("id"))
+	u := ui.unitOf(r)
 	if u == nil {
 		writeJSON(w, http.StatusNotFound, map[string]string{"error": fmt.Sprintf("unit %q is not in the fleet", r.PathValue("id"))})
 		return
@@ -341,6 +341,16 @@ func operator(s string) string {
 		s = string(rs[:64])
 	}
 	return strings.TrimSpace(s)
+}
+
+// unitOf returns the unit the request's path names, or nil when there
+// is none or it is outside the request's scope (answered alike).
+func (ui *UI) unitOf(r *http.Request) *ingest.Unit {
+	id := r.PathValue("id")
+	if keep := ui.opts.Scope(r); keep != nil && !keep(id) {
+		return nil
+	}
+	return ui.store.Unit(id)
 }
 
 func (ui *UI) notFound(w http.ResponseWriter, r *http.Request) {

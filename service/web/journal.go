@@ -7,6 +7,7 @@ import (
 	"html/template"
 	"net/http"
 	"net/url"
+	"slices"
 	"strconv"
 	"time"
 
@@ -46,7 +47,11 @@ func (ui *UI) journalPage(w http.ResponseWriter, r *http.Request) {
 	q := r.URL.Query()
 	form := journalForm{Unit: q.Get("unit"), Limit: q.Get("limit"), Change: q.Get("change"), MinLevel: q.Get("min_level"), Operator: q.Get("operator")}
 	d := &journalData{Filter: form, Changes: journal.Changes(), Levels: []string{"warning", "critical"}}
+	scope := ui.opts.Scope(r)
 	d.Units = ui.store.Fleet().IDs()
+	if scope != nil {
+		d.Units = slices.DeleteFunc(d.Units, func(id string) bool { return !scope(id) })
+	}
 	for _, k := range alarm.Kinds() {
 		d.Limits = append(d.Limits, k.String())
 	}
@@ -60,6 +65,18 @@ func (ui *UI) journalPage(w http.ResponseWriter, r *http.Request) {
 	f := journal.Filter{MinLevel: form.MinLevel, Operator: form.Operator}
 	if form.Unit != "" {
 		f.Units = []string{form.Unit}
+	}
+	if scope != nil {
+		// Only the scope's units, and no fleet-wide entries (denials name
+		// other callers and units).
+		if form.Unit == "" {
+			f.Units = d.Units
+		} else if !scope(form.Unit) {
+			f.Units = nil
+		}
+		if len(f.Units) == 0 {
+			f.Units = []string{"\x00"} // matches no unit
+		}
 	}
 	if form.Limit != "" {
 		f.Limits = []string{form.Limit}

@@ -321,7 +321,10 @@ func stateRank(s dataState) int {
 	return 2
 }
 
-func (ui *UI) fleetData() *fleetData {
+func (ui *UI) fleetData() *fleetData { return ui.fleetDataFor(nil) }
+
+// fleetDataFor is the overview of the units keep admits (nil: all).
+func (ui *UI) fleetDataFor(keep func(unitID string) bool) *fleetData {
 	now := ui.opts.Now()
 	units := ui.store.Units()
 	d := &fleetData{Now: now, Units: len(units), Rows: make([]row, 0, len(units))}
@@ -333,6 +336,10 @@ func (ui *UI) fleetData() *fleetData {
 	for _, u := range units {
 		v := u.View()
 		cfg := v.Config
+		if keep != nil && !keep(cfg.ID) {
+			d.Units--
+			continue
+		}
 		r := row{ID: cfg.ID, Name: cfg.DisplayName(), Site: cfg.Site, Href: unitURL(cfg.ID), HasSample: v.HasSample,
 			State: stateOf(&v), Alarms: summarize(&v.Alarms, now), Cause: ui.causeOf(&v, now)}
 		r.Badge = badgeOf(&r.Alarms, r.State)
@@ -437,6 +444,7 @@ type unitData struct {
 
 	Margins  []marginRow
 	Thermal  []thermalRow
+	Limiters []limiterRow // the regulator's OEL and SCL timers, those configured
 	Headroom struct{ Up, Down, QMax, QMin num }
 
 	User string // the signed-in identity, "" when none (see signIn)
@@ -460,6 +468,18 @@ type thermalRow struct {
 	TimeLeft string
 	Level    level
 	Unknown  bool // the unit is stale: its thermal state is not known
+}
+
+// limiterRow is one inverse-time limiter's timer (OEL, SCL).
+type limiterRow struct {
+	Title   string
+	Used    num // fraction of its delay used, 1 is the limiter acting
+	Fill    int
+	Current num    // the current it acts on, pu of its rating
+	ActsIn  string // time to action at the present current; "" below pickup
+	Timing  bool   // the current is above the pickup
+	Level   level
+	Unknown bool // the unit is stale
 }
 
 // alarmRow is one alarm on the unit page.
@@ -552,6 +572,30 @@ func (ui *UI) unitData(u *ingest.Unit) *unitData {
 				}
 			}
 			d.Thermal = append(d.Thermal, tr)
+		}
+		for _, l := range []struct {
+			title string
+			t     ingest.LimiterTimerView
+			kind  alarm.Kind
+		}{
+			{"Overexcitation limiter (OEL)", v.Limiters.OEL, alarm.OELTimer},
+			{"Stator current limiter (SCL)", v.Limiters.SCL, alarm.SCLTimer},
+		} {
+			if !l.t.Configured {
+				continue
+			}
+			used := l.t.Used
+			lr := limiterRow{Title: l.title, Used: fmtPct(&used, 0), Fill: fill(used), Current: fmtNum(&l.t.X, 3), Timing: l.t.Timing, Level: d.Alarms.ByKind[l.kind]}
+			if l.t.Timing && !math.IsInf(l.t.ToActionS, 0) && !math.IsNaN(l.t.ToActionS) {
+				lr.ActsIn = fmtAge(time.Duration(l.t.ToActionS * float64(time.Second)))
+			}
+			if v.ThermalUnknown {
+				lr.Used, lr.Fill, lr.ActsIn, lr.Timing, lr.Unknown = num{Text: "unknown (stale)"}, 0, "", false, true
+				if lr.Level.Level == alarm.Normal {
+					lr.Level = badgeOf(&alarmSummary{Highest: lr.Level}, stateStale)
+				}
+			}
+			d.Limiters = append(d.Limiters, lr)
 		}
 	}
 	d.AlarmRows = ui.alarmRows(cfg.ID, &v, now)

@@ -67,7 +67,11 @@ type Options struct {
 	// act on a unit's alarms (the pages hide the actions they may not
 	// take). Nil: anonymous, and everyone may act.
 	Identity func(r *http.Request) (name string, mayOperate func(unitID string) bool)
-	Journal  *journal.Journal // the alarm journal for /journal; nil when none is kept
+	// Scope, when set, returns which units a request may see (nil: all).
+	// The overview, its refresh and the journal show only those; a unit
+	// page outside the scope is refused before it gets here.
+	Scope   func(r *http.Request) (mayView func(unitID string) bool)
+	Journal *journal.Journal // the alarm journal for /journal; nil when none is kept
 	// Actions apply acknowledgements and shelves; default the store
 	// itself (a replicated service passes its log).
 	Actions ingest.Actions
@@ -91,6 +95,9 @@ func (o Options) withDefaults() Options {
 	}
 	if o.Identity == nil {
 		o.Identity = func(*http.Request) (string, func(string) bool) { return "", func(string) bool { return true } }
+	}
+	if o.Scope == nil {
+		o.Scope = func(*http.Request) func(string) bool { return nil }
 	}
 	return o
 }

@@ -208,9 +208,11 @@ func TestIdleWatchersBounded(t *testing.T) {
 	s.hwm(t, "after 4,000 watchers and alarm traffic")
 }
 
-// 1,000 slow HTTP bodies: the listener holds at most its cap of
-// connections, closes each slow one at the read timeout, and gRPC ingest
-// is answered all the while; memory stays bounded.
+// 1,000 slow HTTP bodies from one address: the listener holds at most
+// its cap of connections (128), of which 32 for one client (the rest are
+// answered 429 and closed at their first request), closes each slow one
+// at the read timeout, and gRPC ingest is answered all the while; memory
+// stays bounded.
 func TestSlowHTTPBodiesBounded(t *testing.T) {
 	s := start(t)
 	ctx, cancel := context.WithTimeout(context.Background(), 3*testenv.WaitLong)

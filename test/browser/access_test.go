@@ -137,6 +137,17 @@ func TestSignedInRights(t *testing.T) {
 		t.Errorf("no audit entry of op-harrowmere's acknowledgement in %+v", audit.Find("", ""))
 	}
 	screenshot(t, tab, dir, "operator-acknowledged.png")
+
+	// The operator of one site sees only its units in the overview, also
+	// after the page has refreshed itself from /fleet/live.
+	if err := chromedp.Do(tab, chromedp.Navigate(base+"/"), chromedp.WaitVisible(chromedp.CSS(`tr[data-unit]`))); err != nil {
+		t.Fatalf("overview as op-harrowmere: %v", err)
+	}
+	waitFor(t, tab, "the overview to refresh", `document.querySelector("[data-live-status]").classList.contains("is-live")`)
+	if got := eval[string](t, tab, `Array.from(document.querySelectorAll("tr[data-unit]")).map(r => r.dataset.unit).join(",")`); got != "harrowmere-1" {
+		t.Errorf("overview rows for the harrowmere operator: %q, want harrowmere-1 only", got)
+	}
+	screenshot(t, tab, dir, "operator-scoped-overview.png")
 	if errs := consoleErrors(); len(errs) > 0 {
 		t.Errorf("console errors: %v", errs)
 	}

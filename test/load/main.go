@@ -63,6 +63,7 @@ import (
 	"path/filepath"
 	"runtime"
 	"slices"
+	"strconv"
 	"strings"
 	"syscall"
 	"time"
@@ -341,20 +342,27 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 			log.Info("built genvelope", "bin", bin, "took", time.Since(t).Round(time.Millisecond))
 		}
 	}
+	// The service caps connections per client (address, here) at 32 by
+	// default; more streams need a higher cap (the flag is left out
+	// otherwise, so that older builds given with -genvelope still run).
+	extra := cfg.tls.serveArgs()
+	if cfg.Streams+8 > 32 {
+		extra = append(extra, "--grpc-conns-per-client", strconv.Itoa(cfg.Streams+8))
+	}
 	if cfg.has("nats") {
 		var url string
 		if natsProc, url, err = startNATS(ctx, log, cfg.NATSServer, dir, cfg.StartWait); err != nil {
 			return rep, err
 		}
 		if durableProc, _, err = startServe(ctx, log, "serve-nats", bin, fi.Path, dir, cfg.Pprof, true, cfg.ServeEnv,
-			append([]string{"--nats", url}, cfg.tls.serveArgs()...), cfg.StartWait); err != nil {
+			append([]string{"--nats", url}, extra...), cfg.StartWait); err != nil {
 			return rep, err
 		}
 		durableProc.companion = natsProc.pid()
 	}
 	if cfg.has("full") {
 		var took time.Duration
-		if serveProc, took, err = startServe(ctx, log, "serve", bin, fi.Path, dir, cfg.Pprof, cfg.State, cfg.ServeEnv, cfg.tls.serveArgs(), cfg.StartWait); err != nil {
+		if serveProc, took, err = startServe(ctx, log, "serve", bin, fi.Path, dir, cfg.Pprof, cfg.State, cfg.ServeEnv, extra, cfg.StartWait); err != nil {
 			return rep, err
 		}
 		rep.Service = &serviceReport{StartupMS: ms(took)}
