@@ -166,3 +166,32 @@ func value(m *dto.Metric) float64 {
 	}
 	return m.GetCounter().GetValue()
 }
+
+// A caller's scope and the parts of /metrics combine: each shard serves
+// only the units both admit, the shards together every unit in scope,
+// and the unit count of ?units=none is of the units in scope.
+func TestFilterScopeAndShards(t *testing.T) {
+	c := NewCollector(store(t), nil)
+	scope := func(id string) bool { return id != "brindle-gt3" }
+	count := func(f Filter, family string) int {
+		var b bytes.Buffer
+		if err := c.WriteTextFiltered(&b, f); err != nil {
+			t.Fatal(err)
+		}
+		return strings.Count(b.String(), "\n"+family)
+	}
+	units := 0
+	for shard := range uint32(2) {
+		units += count(Filter{Keep: scope, NoFleet: true, Shard: shard, Shards: 2}, "genvelope_unit_info{")
+	}
+	if units != 2 {
+		t.Errorf("the two shards serve %d units in scope, want 2", units)
+	}
+	var b bytes.Buffer
+	if err := c.WriteTextFiltered(&b, Filter{Keep: scope, NoUnits: true}); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(b.String(), "\ngenvelope_fleet_units 2\n") || strings.Contains(b.String(), "unit=") {
+		t.Errorf("?units=none in scope:\n%s", b.String())
+	}
+}
