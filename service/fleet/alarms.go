@@ -26,7 +26,7 @@ import (
 var alarmLimitKeys = []string{"warning", "critical", "deadband", "on_delay_s", "off_delay_s", "enabled"}
 
 func (d *decoder) decodeFleetAlarms(v *yaml.Node, line int) {
-	c := &unitCtx{d: d, u: &Unit{line: line, lines: map[string]int{}}}
+	c := &unitCtx{d: d, u: &Unit{line: line, paths: d.paths}}
 	c.decodeAlarmsInto(v, "alarms", line, &d.fleet.Alarms)
 }
 

@@ -29,7 +29,7 @@ type decoder struct {
 	diags Diagnostics
 	units []*unitCtx
 	fleet *Fleet
-	paths map[string]pathEntry // see path
+	paths *pathTable // see path
 
 	// The units' text, item by item, when the file has the plain shape
 	// splitUnits reads (split.go): then each unit's YAML tree is built,
@@ -52,30 +52,34 @@ type unitCtx struct {
 	ok    []uint64 // dotted paths of the values read without problems: a bit per path (decoder.paths)
 }
 
-// path returns the one copy of a dotted key path that every unit shares
-// (the units' line tables are keyed by them), and its number. A fleet of
-// 100,000 units otherwise holds a copy of each of some sixty paths per
-// unit, twice. Only the decoding, one unit at a time, adds paths.
-func (d *decoder) path(p string) (string, int) {
-	if e, ok := d.paths[p]; ok {
-		return e.s, e.n
+// path returns the number of a dotted key path in the fleet's path
+// table, adding it. Every unit's line table and "read without problems"
+// set are keyed by these numbers: a fleet of 100,000 units otherwise
+// holds a map of some sixty paths per unit. Only the decoding, one unit
+// at a time, adds paths.
+func (d *decoder) path(p string) int {
+	if n, ok := d.paths.ids[p]; ok {
+		return n
 	}
-	if d.paths == nil {
-		d.paths = map[string]pathEntry{}
-	}
-	e := pathEntry{p, len(d.paths)}
-	d.paths[p] = e
-	return e.s, e.n
+	n := len(d.paths.ids)
+	d.paths.ids[p] = n
+	return n
 }
 
-type pathEntry struct {
-	s string
-	n int
+// pathTable numbers the dotted key paths of a fleet file.
+type pathTable struct {
+	ids map[string]int
+}
+
+// keyLine is the line of the key at a path (pathTable's number).
+type keyLine struct {
+	path uint32
+	line int32
 }
 
 // setOK records that the value at field was read without problems.
 func (c *unitCtx) setOK(field string) {
-	_, n := c.d.path(field)
+	n := c.d.path(field)
 	for len(c.ok) <= n/64 {
 		c.ok = append(c.ok, 0)
 	}
@@ -84,16 +88,16 @@ func (c *unitCtx) setOK(field string) {
 
 // clearOK takes back setOK.
 func (c *unitCtx) clearOK(field string) {
-	if e, ok := c.d.paths[field]; ok && e.n/64 < len(c.ok) {
-		c.ok[e.n/64] &^= 1 << (e.n % 64)
+	if n, ok := c.d.paths.ids[field]; ok && n/64 < len(c.ok) {
+		c.ok[n/64] &^= 1 << (n % 64)
 	}
 }
 
 // isOK reports whether the value at field was read without problems. It
 // only reads the decoder's paths, so units may be built concurrently.
 func (c *unitCtx) isOK(field string) bool {
-	e, ok := c.d.paths[field]
-	return ok && e.n/64 < len(c.ok) && c.ok[e.n/64]&(1<<(e.n%64)) != 0
+	n, ok := c.d.paths.ids[field]
+	return ok && n/64 < len(c.ok) && c.ok[n/64]&(1<<(n%64)) != 0
 }
 
 // topKey is one key allowed at the top of the fleet file.
@@ -218,6 +222,7 @@ func (d *decoder) document(data []byte, f *Fleet) {
 // skeleton: the file with the units' items blanked) into f.
 func (d *decoder) tree(data, file []byte, f *Fleet) {
 	d.fleet = f
+	d.paths = &pathTable{ids: map[string]int{}}
 	d.budget = maxNodes + len(file)
 	d.firstLine = map[string]int{}
 	dec := yaml.NewDecoder(bytes.NewReader(data))
@@ -421,8 +426,7 @@ func (c *unitCtx) open(v *yaml.Node, path string, line int, allowed ...string) (
 
 // line records the line of the key at field.
 func (c *unitCtx) line(field string, line int) {
-	p, _ := c.d.path(field)
-	c.u.lines[p] = line
+	c.u.setLine(c.d.path(field), line)
 }
 
 // number reads the number at key. rule checks the value and returns ""
@@ -606,7 +610,7 @@ func (d *decoder) decodeUnit(i int, item *yaml.Node) *unitCtx {
 	}
 	u := &Unit{
 		line:  item.Line,
-		lines: map[string]int{},
+		paths: d.paths,
 	}
 	c := &unitCtx{d: d, u: u, label: label}
 	keys := unitKeys()
