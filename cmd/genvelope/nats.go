@@ -14,7 +14,8 @@ import (
 type natsFlags struct {
 	urls, creds, tlsCA, tlsCert, tlsKey, prefix, stream, serves *string
 	partitions, replicas                                        *int
-	maxAge, timeout, checkpoint                                 *time.Duration
+	maxAge, timeout, checkpoint, maxLag                         *time.Duration
+	maxLagMsgs                                                  *uint64
 }
 
 func addNATSFlags(fs *flag.FlagSet) *natsFlags {
@@ -32,6 +33,8 @@ func addNATSFlags(fs *flag.FlagSet) *natsFlags {
 		maxAge:     fs.Duration("nats-max-age", 7*24*time.Hour, "how long the stream keeps messages"),
 		checkpoint: fs.Duration("nats-checkpoint-interval", 5*time.Second, "how often the checkpoint (state and the stream sequence it includes) is written to --state; a restart replays the log from it"),
 		timeout:    fs.Duration("nats-timeout", 5*time.Second, "longest wait for the stream to confirm a write and for this replica to apply it; past it the batch is answered UNAVAILABLE"),
+		maxLag:     fs.Duration("nats-max-lag", 5*time.Second, "/readyz says not ready while this replica is further behind the log than this (the age of what it applies); ready again once within half of it and of --nats-max-lag-messages for 2 s"),
+		maxLagMsgs: fs.Uint64("nats-max-lag-messages", 10000, "/readyz says not ready while more messages of the log than this wait to be applied here"),
 	}
 }
 
@@ -50,6 +53,7 @@ func (f *natsFlags) open(statePath string, log *slog.Logger) (*durable.Log, erro
 	return durable.Open(ctx, durable.Config{
 		URLs: urls, CredsFile: *f.creds, TLSCA: *f.tlsCA, TLSCert: *f.tlsCert, TLSKey: *f.tlsKey,
 		Prefix: *f.prefix, Stream: *f.stream, Partitions: *f.partitions, Serves: *f.serves, Replicas: *f.replicas,
-		MaxAge: *f.maxAge, Timeout: *f.timeout, CheckpointPath: statePath, CheckpointInterval: *f.checkpoint, Logger: log,
+		MaxAge: *f.maxAge, Timeout: *f.timeout, CheckpointPath: statePath, CheckpointInterval: *f.checkpoint,
+		MaxLag: *f.maxLag, MaxLagMessages: *f.maxLagMsgs, Logger: log,
 	})
 }

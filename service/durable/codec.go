@@ -134,14 +134,19 @@ func decodeSamples(data []byte, out []ingest.Sample, intern func([]byte) string)
 	return out, nil
 }
 
-// op is an operator action in the log.
+// op is an operator action in the log, or the wall-clock supervision
+// ("sweep", Store.Sweep at AtUnixNS), which goes through the log so that
+// every replica runs it at the same place among the samples.
 type op struct {
-	Op          string `json:"op"` // "acknowledge", "shelve" or "reload"
-	Unit        string `json:"unit,omitempty"`
-	Alarm       string `json:"alarm,omitempty"`
-	By          string `json:"by,omitempty"`
-	AtUnixNS    int64  `json:"at_unix_ns"`
-	UntilUnixNS int64  `json:"until_unix_ns,omitempty"` // shelve: 0 lifts the shelf
+	Op           string `json:"op"` // "acknowledge", "shelve", "reset", "discard", "reload" or "sweep"
+	Unit         string `json:"unit,omitempty"`
+	Alarm        string `json:"alarm,omitempty"`
+	By           string `json:"by,omitempty"`
+	AtUnixNS     int64  `json:"at_unix_ns"`
+	UntilUnixNS  int64  `json:"until_unix_ns,omitempty"`  // shelve: 0 lifts the shelf
+	Winding      string `json:"winding,omitempty"`        // reset: armature, field, or "" for both
+	SampleUnixNS int64  `json:"sample_unix_ns,omitempty"` // discard: the sample's time
+	Reason       string `json:"reason,omitempty"`         // reset, discard
 }
 
 func decodeOp(data []byte) (op, error) {
@@ -150,7 +155,7 @@ func decodeOp(data []byte) (op, error) {
 		return o, err
 	}
 	switch o.Op {
-	case "acknowledge", "shelve", "reload":
+	case "acknowledge", "shelve", "reset", "discard", "reload", "sweep":
 		return o, nil
 	}
 	return o, fmt.Errorf("unknown operator action %q", o.Op)

@@ -1,7 +1,7 @@
 package durable
 
 import (
-	"bufio"
+	"bytes"
 	"context"
 	"encoding/json"
 	"errors"
@@ -29,15 +29,21 @@ func jsonMarshal(v any) ([]byte, error) { return json.Marshal(v) }
 // with its own checksum); version 1, one JSON object with the state in
 // it, is still read.
 type Checkpoint struct {
-	Format     string             `json:"format"` // "genvelope-log-state"
-	Version    int                `json:"version"`
-	Stream     string             `json:"stream"`
-	Prefix     string             `json:"prefix"`
-	Partitions int                `json:"partitions"`
-	Serves     string             `json:"serves"`
-	Sequence   uint64             `json:"stream_sequence"` // the last message the state includes
-	Ledger     map[string]*Ledger `json:"ledger"`
-	State      *ingest.Snapshot   `json:"state,omitempty"`
+	Format     string `json:"format"` // "genvelope-log-state"
+	Version    int    `json:"version"`
+	Stream     string `json:"stream"`
+	Prefix     string `json:"prefix"`
+	Partitions int    `json:"partitions"`
+	Serves     string `json:"serves"`
+	Sequence   uint64 `json:"stream_sequence"`              // the last message the state includes
+	LastSweep  int64  `json:"last_sweep_unix_ns,omitempty"` // the latest time swept (Log.Sweep)
+	// The journal's log position when the checkpoint was taken (its last
+	// entry from the log, and how many entries that message made): a
+	// journal found behind it at a restart has lost entries.
+	JournalLogSeq     uint64             `json:"journal_log_sequence,omitempty"`
+	JournalLogEntries uint64             `json:"journal_log_entries,omitempty"`
+	Ledger            map[string]*Ledger `json:"ledger"`
+	State             *ingest.Snapshot   `json:"state,omitempty"` // version 1 only; version 2 has it after the JSON line
 }
 
 const (
@@ -47,19 +53,19 @@ const (
 
 // ReadCheckpoint reads a checkpoint file, of version 2 or 1.
 func ReadCheckpoint(path string) (*Checkpoint, error) {
-	f, err := os.Open(path)
+	data, err := os.ReadFile(path)
 	if err != nil {
 		return nil, err
 	}
-	defer f.Close()
-	r := bufio.NewReaderSize(f, 64<<10)
-	line, err := r.ReadBytes('\n') // version 1 has no newline: the line is the file
-	if err != nil && !errors.Is(err, io.EOF) {
-		return nil, err
-	}
+	// Version 2: a JSON line, then the binary state. Version 1: the file
+	// is one JSON object (on any number of lines).
 	var cp Checkpoint
-	if err := json.Unmarshal(line, &cp); err != nil {
-		return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
+	head, rest, two := bytes.Cut(data, []byte("\n"))
+	if !two || json.Unmarshal(head, &cp) != nil || cp.Version != checkpointVersion {
+		cp = Checkpoint{}
+		if err := json.Unmarshal(data, &cp); err != nil {
+			return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
+		}
 	}
 	if cp.Format != checkpointFormat || cp.Version < 1 || cp.Version > checkpointVersion || (cp.Version == 1) != (cp.State != nil) {
 		return nil, fmt.Errorf("checkpoint %s has format %q version %d; this genvelope reads %q versions 1 and %d",
@@ -68,7 +74,7 @@ func ReadCheckpoint(path string) (*Checkpoint, error) {
 	if cp.Version == 1 {
 		return &cp, nil
 	}
-	if cp.State, err = ingest.ReadSnapshot(r); err != nil {
+	if cp.State, err = ingest.ReadSnapshot(bytes.NewReader(rest)); err != nil {
 		return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
 	}
 	return &cp, nil
@@ -76,8 +82,17 @@ func ReadCheckpoint(path string) (*Checkpoint, error) {
 
 // Attach restores the checkpoint into store (moving aside one that does
 // not fit this stream) and prepares to apply the log from the next
-// sequence. reload reads the fleet file again on this replica.
-func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func() error) error {
+// sequence. reload reads the fleet file again on this replica, at the
+// time of the reload's message.
+//
+// The alarm journal (the store's) is written as each message is
+// applied, with the message's sequence (journal.Entry.LogSeq), and is
+// synced before every checkpoint is written: it is always at or beyond
+// the checkpoint's sequence. Replaying the log from the checkpoint gives
+// the journal entries of the messages after it again, and the journal
+// skips those it has (journal.Journal.Append); so a restart neither
+// duplicates nor loses an entry.
+func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func(at time.Time) error) error {
 	l.store, l.reload = store, reload
 	ictx, cancel := context.WithTimeout(ctx, 4*l.cfg.Timeout)
 	defer cancel()
@@ -86,6 +101,18 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func() err
 		return fmt.Errorf("stream %s: %w", l.cfg.Stream, err)
 	}
 	l.lastSeq.Store(info.State.LastSeq)
+	// A unit that never reported is silent from the stream's creation,
+	// the same moment on every replica.
+	store.SetStart(info.Created)
+	if j := store.Journal(); j != nil {
+		if seq, _ := j.LogPosition(); seq > info.State.LastSeq {
+			l.log.Error("JOURNAL OF ANOTHER STREAM: the journal has entries up to log sequence beyond the stream's end; it takes every entry from this log",
+				"journal_log_sequence", seq, "stream_last_sequence", info.State.LastSeq)
+			j.ForgetLogPosition()
+		} else if seq > 0 {
+			l.log.Info("journal", "log_sequence", seq)
+		}
+	}
 	if p := l.cfg.CheckpointPath; p != "" {
 		cp, err := ReadCheckpoint(p)
 		switch {
@@ -103,8 +130,8 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func() err
 			}
 			fallthrough
 		case err != nil:
-			aside := fmt.Sprintf("%s.bad-%s", p, time.Now().UTC().Format("20060102T150405Z"))
-			if rerr := os.Rename(p, aside); rerr != nil && !errors.Is(rerr, os.ErrNotExist) {
+			aside, rerr := state.MoveAside(p, time.Now())
+			if rerr != nil && !errors.Is(rerr, os.ErrNotExist) {
 				return fmt.Errorf("%v; and it could not be moved aside: %w", err, rerr)
 			}
 			l.log.Error("CHECKPOINT UNUSABLE: moved aside; the state is rebuilt from the whole log", "err", err, "moved_to", aside)
@@ -114,6 +141,16 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func() err
 				l.log.Error("CHECKPOINT ENTRY UNUSABLE: not restored; this unit's state comes from the log alone", "checkpoint", p, "err", b)
 			}
 			l.seq = cp.Sequence
+			if j := store.Journal(); j != nil {
+				if seq, n := j.LogPosition(); seq < cp.JournalLogSeq || seq == cp.JournalLogSeq && n < cp.JournalLogEntries {
+					l.log.Error("JOURNAL BEHIND THE CHECKPOINT: the journal has lost entries the checkpoint says it had (a power loss, or the file replaced); they are not in it",
+						"journal_log_sequence", seq, "journal_log_entries", n,
+						"checkpoint_journal_log_sequence", cp.JournalLogSeq, "checkpoint_journal_log_entries", cp.JournalLogEntries)
+				}
+			}
+			if cp.LastSweep != 0 {
+				l.lastSweep = time.Unix(0, cp.LastSweep)
+			}
 			for id, lg := range cp.Ledger {
 				if lg != nil {
 					l.ledger[id] = lg
@@ -179,10 +216,14 @@ func (l *Log) Run(ctx context.Context) error {
 	defer it.Stop()
 
 	var wg sync.WaitGroup
-	wg.Add(1)
+	wg.Add(2)
 	go func() {
 		defer wg.Done()
 		l.keepCheckpoint(ctx)
+	}()
+	go func() {
+		defer wg.Done()
+		l.pollLag(ctx, cons)
 	}()
 	for {
 		msg, err := it.Next()
@@ -193,6 +234,7 @@ func (l *Log) Run(ctx context.Context) error {
 			l.log.Warn("reading the log", "err", err)
 			continue
 		}
+		l.waitPaused(ctx)
 		l.apply(msg)
 	}
 	wg.Wait()
@@ -229,7 +271,10 @@ func (l *Log) apply(msg jetstream.Msg) {
 		return // already applied
 	}
 	result := "applied"
-	if err := l.applyMsg(msg, meta); err != nil {
+	l.store.SetLogSequence(seq)
+	err = l.applyMsg(msg, meta)
+	l.store.SetLogSequence(0)
+	if err != nil {
 		result = "foreign"
 		if errors.Is(err, errOtherPartition) {
 			result = "other_partition"
@@ -243,10 +288,10 @@ func (l *Log) apply(msg jetstream.Msg) {
 	if seq > l.lastSeq.Load() {
 		l.lastSeq.Store(seq)
 	}
-	l.behind.Store(meta.NumPending)
 	if meta.NumPending == 0 {
 		l.caughtUp.Store(true)
 	}
+	l.noteApplied(time.Now(), meta)
 }
 
 var errOtherPartition = errors.New("a partition served by another replica")
@@ -274,6 +319,11 @@ func (l *Log) applyMsg(msg jetstream.Msg, meta *jetstream.MsgMetadata) error {
 		o, err := decodeOp(msg.Data())
 		if err != nil {
 			return err
+		}
+		if d := time.Unix(0, o.AtUnixNS).Sub(meta.Timestamp); o.Op == "sweep" && (d > maxSweepSkew || d < -maxSweepSkew) {
+			// A sweep far from when it was written would expire shelves
+			// or age every unit by its own clock: not one of ours.
+			return fmt.Errorf("sweep at %s, %s from when the log stored it", time.Unix(0, o.AtUnixNS).UTC().Format(time.RFC3339), d.Round(time.Second))
 		}
 		err = l.applyOp(o)
 		if w != nil {
@@ -345,21 +395,32 @@ func (l *Log) applySamples(at time.Time, w *waiter) {
 	}
 }
 
-// applyOp applies an operator action at its own time.
+// applyOp applies an operator action at its own time. l.applyMu must be
+// held.
 func (l *Log) applyOp(o op) error {
 	at := time.Unix(0, o.AtUnixNS)
-	if o.Op == "reload" {
+	switch o.Op {
+	case "reload":
 		if l.reload == nil {
 			return nil
 		}
-		return l.reload()
+		return l.reload(at)
+	case "sweep":
+		l.sweep(at)
+		return nil
+	}
+	if l.store.Unit(o.Unit) == nil {
+		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, ingest.ClipID(o.Unit))
+	}
+	switch o.Op {
+	case "reset":
+		return l.store.ResetThermal(o.Unit, o.Winding, at, o.By, o.Reason)
+	case "discard":
+		return l.store.DiscardSample(o.Unit, time.Unix(0, o.SampleUnixNS), at, o.By, o.Reason)
 	}
 	k, ok := alarm.ParseKind(o.Alarm)
 	if !ok {
 		return fmt.Errorf("operator action on unknown alarm %q", o.Alarm)
-	}
-	if l.store.Unit(o.Unit) == nil {
-		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, o.Unit)
 	}
 	if o.Op == "acknowledge" {
 		return l.store.Acknowledge(o.Unit, k, at, o.By)
@@ -371,6 +432,23 @@ func (l *Log) applyOp(o op) error {
 	return l.store.Shelve(o.Unit, k, until, at, o.By)
 }
 
+// maxSweepSkew is how far a sweep's time may be from the time the log
+// stored it (the clocks of the replica that wrote it and of the NATS
+// servers); beyond, the message is foreign.
+const maxSweepSkew = time.Minute
+
+// sweep runs the store's wall-clock supervision at at, or at the latest
+// time swept when at is earlier (replicas' clocks differ): its time
+// never goes back. l.applyMu must be held.
+func (l *Log) sweep(at time.Time) {
+	if at.Before(l.lastSweep) {
+		at = l.lastSweep
+	}
+	l.lastSweep = at
+	l.store.Sweep(at)
+	l.sweptAt.Store(time.Now().UnixNano())
+}
+
 // encodeCheckpoint writes the checkpoint (version 2) to w: taken under
 // the lock the consumer holds while it applies a message, so the state
 // covers a whole number of messages, and the sequence with it.
@@ -379,6 +457,12 @@ func (l *Log) encodeCheckpoint(w io.Writer) error {
 	defer l.applyMu.Unlock()
 	cp := &Checkpoint{Format: checkpointFormat, Version: checkpointVersion, Stream: l.cfg.Stream, Prefix: l.cfg.Prefix,
 		Partitions: l.cfg.Partitions, Serves: formatPartitions(l.serves), Sequence: l.seq, Ledger: l.ledger}
+	if !l.lastSweep.IsZero() {
+		cp.LastSweep = l.lastSweep.UnixNano()
+	}
+	if j := l.store.Journal(); j != nil {
+		cp.JournalLogSeq, cp.JournalLogEntries = j.LogPosition()
+	}
 	head, err := json.Marshal(cp)
 	if err != nil {
 		return err
@@ -401,6 +485,12 @@ func (l *Log) writeCheckpoint() error {
 	l.cpBuf.Reset()
 	if err := l.encodeCheckpoint(&l.cpBuf); err != nil {
 		return err
+	}
+	// The journal's entries of the messages the checkpoint includes were
+	// written before it was taken: made durable first, the journal is
+	// never behind the checkpoint (see Attach).
+	if err := l.store.SyncJournal(); err != nil {
+		return fmt.Errorf("journal not synced, so no checkpoint beyond it is written: %w", err)
 	}
 	return state.WriteFile(l.cfg.CheckpointPath, l.cpBuf.Bytes())
 }

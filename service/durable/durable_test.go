@@ -114,6 +114,9 @@ func TestDecodeOp(t *testing.T) {
 	}{
 		{`{"op":"acknowledge","unit":"a","alarm":"field","at_unix_ns":1}`, true},
 		{`{"op":"reload","at_unix_ns":1}`, true},
+		{`{"op":"reset","unit":"a","winding":"field","by":"desk","reason":"sensor","at_unix_ns":1}`, true},
+		{`{"op":"discard","unit":"a","sample_unix_ns":5,"by":"desk","at_unix_ns":1}`, true},
+		{`{"op":"sweep","at_unix_ns":1000000000}`, true},
 		{`{"op":"explode"}`, false},
 		{`not json`, false},
 	} {

@@ -2,11 +2,9 @@ package durable_test
 
 import (
 	"context"
-	"fmt"
 	"io"
 	"log/slog"
 	"net/http"
-	"os/exec"
 	"path/filepath"
 	"sync"
 	"testing"
@@ -31,14 +29,8 @@ func TestInProcess(t *testing.T) {
 	if testing.Short() {
 		t.Skip("starts nats-server")
 	}
-	bin := testenv.NeedTool(t, "nats-server", "apt-get install nats-server")
 	dir := t.TempDir()
-	port := testenv.FreePort(t)
-	ns := exec.Command(bin, "-js", "-sd", filepath.Join(dir, "js"), "-a", "127.0.0.1", "-p", fmt.Sprint(port))
-	if err := ns.Start(); err != nil {
-		t.Fatal(err)
-	}
-	t.Cleanup(func() { _ = ns.Process.Kill(); _ = ns.Wait() })
+	url := testenv.StartNATS(t, dir)
 
 	log := slog.New(slog.NewTextHandler(io.Discard, nil))
 	checkpoint := filepath.Join(dir, "checkpoint.json")
@@ -46,7 +38,7 @@ func TestInProcess(t *testing.T) {
 	deadline := time.Now().Add(testenv.WaitLong)
 	for {
 		var err error
-		dl, err = durable.Open(context.Background(), durable.Config{URLs: []string{"nats://" + testenv.Addr(port)},
+		dl, err = durable.Open(context.Background(), durable.Config{URLs: []string{url},
 			CheckpointPath: checkpoint, CheckpointInterval: 20 * time.Millisecond, Logger: log})
 		if err == nil {
 			break

@@ -65,6 +65,16 @@ type Config struct {
 	// of a publish, and this replica applying it. Default 5 s.
 	Timeout time.Duration
 
+	// MaxLag and MaxLagMessages: a replica that has caught up once is
+	// not ready again (Ready, /readyz) while it is behind the log by more
+	// than MaxLag (the age of the message it applies; default 5 s) or
+	// MaxLagMessages messages (default 10000). It is ready again once
+	// both lags have stayed within half of these for LagHold (default
+	// 2 s), so that it does not flap.
+	MaxLag         time.Duration
+	MaxLagMessages uint64
+	LagHold        time.Duration
+
 	Logger *slog.Logger
 }
 
@@ -98,6 +108,15 @@ func (c Config) withDefaults() Config {
 	if c.Timeout <= 0 {
 		c.Timeout = 5 * time.Second
 	}
+	if c.MaxLag <= 0 {
+		c.MaxLag = 5 * time.Second
+	}
+	if c.MaxLagMessages == 0 {
+		c.MaxLagMessages = 10000
+	}
+	if c.LagHold <= 0 {
+		c.LagHold = 2 * time.Second
+	}
 	if c.Logger == nil {
 		c.Logger = slog.Default()
 	}
@@ -118,7 +137,7 @@ type Log struct {
 	full   atomic.Pointer[fleet.Fleet] // the whole fleet, to name the partition of a unit served elsewhere
 
 	store  *ingest.Store
-	reload func() error
+	reload func(at time.Time) error
 
 	mu      sync.Mutex
 	pending map[string]*waiter // messages of this process not yet applied, by id
@@ -134,10 +153,27 @@ type Log struct {
 	cpMu  sync.Mutex   // one checkpoint written at a time
 	cpBuf bytes.Buffer // the checkpoint's encoding, kept between checkpoints
 
+	lastSweep    time.Time    // the latest time swept; sweeps never go back
+	sweptAt      atomic.Int64 // wall clock, Unix ns, of the last sweep applied
+	sweepingHere atomic.Bool  // sweeping by this replica's clock (the log unreachable)
+
 	applied  atomic.Uint64 // seq, for readers without applyMu
 	lastSeq  atomic.Uint64 // the stream's last sequence when last asked
 	caughtUp atomic.Bool
-	behind   atomic.Uint64 // messages of the log not yet delivered to this replica, at the last one
+	behind   atomic.Uint64 // messages of the log not yet applied (the lag in messages)
+
+	// The lag (lag.go): the age of the last message applied when it was
+	// applied, or since the last one while stalled; whether the replica
+	// is too far behind to be ready.
+	lagMu       sync.Mutex
+	lagNS       atomic.Int64
+	tooFar      atomic.Bool
+	lastOver    time.Time                     // last time a lag was over its bound
+	underSince  time.Time                     // since when both lags have been within half their bounds
+	appliedAt   time.Time                     // wall clock of the last message applied
+	appliedCons uint64                        // its consumer sequence
+	lastPollSeq uint64                        // the sequence applied at the previous poll
+	paused      atomic.Pointer[chan struct{}] // tests: the consumer waits while set
 
 	messages   *prometheus.CounterVec
 	pubFailed  prometheus.Counter
@@ -145,6 +181,8 @@ type Log struct {
 	connected  prometheus.GaugeFunc
 	caughtUpGa prometheus.GaugeFunc
 	behindGa   prometheus.GaugeFunc
+	lagGa      prometheus.GaugeFunc
+	tooFarGa   prometheus.GaugeFunc
 }
 
 // Ledger is what a replica has applied of one unit: the number of
@@ -397,18 +435,31 @@ func chunkSamples(smps []ingest.Sample, idx []int, limit int) [][]int {
 	return append(out, idx[start:])
 }
 
+// checkAction refuses, before anything is written to the log, an
+// operator action without an operator or on a unit this replica does
+// not serve.
+func (l *Log) checkAction(id, by string) error {
+	if strings.TrimSpace(by) == "" {
+		return ingest.ErrNoOperator
+	}
+	if l.store.Unit(id) == nil {
+		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, ingest.ClipID(id))
+	}
+	return nil
+}
+
 // Acknowledge implements ingest.Actions through the log.
 func (l *Log) Acknowledge(ctx context.Context, id string, k alarm.Kind, now time.Time, by string) error {
-	if l.store.Unit(id) == nil {
-		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, id)
+	if err := l.checkAction(id, by); err != nil {
+		return err
 	}
 	return l.publishOp(ctx, op{Op: "acknowledge", Unit: id, Alarm: k.String(), By: by, AtUnixNS: now.UnixNano()})
 }
 
 // Shelve implements ingest.Actions through the log.
 func (l *Log) Shelve(ctx context.Context, id string, k alarm.Kind, until, now time.Time, by string) error {
-	if l.store.Unit(id) == nil {
-		return fmt.Errorf("%w %q", ingest.ErrUnknownUnit, id)
+	if err := l.checkAction(id, by); err != nil {
+		return err
 	}
 	o := op{Op: "shelve", Unit: id, Alarm: k.String(), By: by, AtUnixNS: now.UnixNano()}
 	if !until.IsZero() {
@@ -417,10 +468,71 @@ func (l *Log) Shelve(ctx context.Context, id string, k alarm.Kind, until, now ti
 	return l.publishOp(ctx, o)
 }
 
+// ResetThermal implements ingest.Actions through the log.
+func (l *Log) ResetThermal(ctx context.Context, id, winding string, now time.Time, by, reason string) error {
+	if err := l.checkAction(id, by); err != nil {
+		return err
+	}
+	if winding != "" && winding != "armature" && winding != "field" {
+		return fmt.Errorf("winding %q: give armature, field or nothing for both", winding)
+	}
+	return l.publishOp(ctx, op{Op: "reset", Unit: id, Winding: winding, By: by, Reason: reason, AtUnixNS: now.UnixNano()})
+}
+
+// DiscardSample implements ingest.Actions through the log.
+func (l *Log) DiscardSample(ctx context.Context, id string, at, now time.Time, by, reason string) error {
+	if err := l.checkAction(id, by); err != nil {
+		return err
+	}
+	return l.publishOp(ctx, op{Op: "discard", Unit: id, SampleUnixNS: at.UnixNano(), By: by, Reason: reason, AtUnixNS: now.UnixNano()})
+}
+
 // Reload asks every replica, through the log, to read its fleet file
 // again; it returns this replica's result.
 func (l *Log) Reload(ctx context.Context) error {
 	return l.publishOp(ctx, op{Op: "reload", AtUnixNS: time.Now().UnixNano()})
+}
+
+// sweepFallback is how long this replica goes without applying a sweep
+// from the log before it runs its own (the log is unreachable).
+const sweepFallback = 3 * time.Second
+
+// Sweep runs the wall-clock supervision (stale telemetry, shelf expiry,
+// the thermal memory while telemetry pauses: ingest.Store.Sweep) through
+// the log, so that every replica runs it at the same place among the
+// samples and derives the same alarms and journal entries. Every
+// replica writes a sweep for each whole second of its clock, with the
+// message id <prefix>-sweep-<Unix s>: the stream keeps the first and
+// drops the others as duplicates (its de-duplication window, 2 minutes
+// by default, holds one id a second). When the log cannot be written and
+// no sweep has been applied for sweepFallback, the replica sweeps by its
+// own clock (those journal entries carry no log sequence), so that stale
+// telemetry is still raised while NATS is lost.
+func (l *Log) Sweep(ctx context.Context, now time.Time) {
+	sec := now.Truncate(time.Second)
+	data, err := jsonMarshal(op{Op: "sweep", AtUnixNS: sec.UnixNano()})
+	if err == nil {
+		ctx, cancel := context.WithTimeout(ctx, min(l.cfg.Timeout, time.Second))
+		defer cancel()
+		msg := &nats.Msg{Subject: l.cfg.Prefix + ".ops", Header: nats.Header{formatHeader: {formatOp},
+			nats.MsgIdHdr: {l.cfg.Prefix + "-sweep-" + strconv.FormatInt(sec.Unix(), 10)}}, Data: data}
+		_, err = l.js.PublishMsg(ctx, msg, jetstream.WithExpectStream(l.cfg.Stream))
+	}
+	if err == nil {
+		if l.sweepingHere.Swap(false) {
+			l.log.Info("the log takes the sweeps again: supervision back at the same place on every replica")
+		}
+		return
+	}
+	if time.Since(time.Unix(0, l.sweptAt.Load())) < sweepFallback {
+		return
+	}
+	if !l.sweepingHere.Swap(true) {
+		l.log.Warn("the log is unreachable: supervising stale telemetry and shelves by this replica's clock", "err", err)
+	}
+	l.applyMu.Lock()
+	defer l.applyMu.Unlock()
+	l.sweep(now)
 }
 
 func (l *Log) publishOp(ctx context.Context, o op) error {
@@ -454,6 +566,10 @@ func (l *Log) Ready() (bool, string) {
 	if !l.caughtUp.Load() {
 		return false, fmt.Sprintf("replaying the log: at sequence %d of %d", l.applied.Load(), l.lastSeq.Load())
 	}
+	if l.tooFar.Load() {
+		return false, fmt.Sprintf("behind the log: %d messages, %.1f s (bounds --nats-max-lag-messages %d, --nats-max-lag %s; ready again within half of both for %s)",
+			l.behind.Load(), float64(l.lagNS.Load())/1e9, l.cfg.MaxLagMessages, l.cfg.MaxLag, l.cfg.LagHold)
+	}
 	return true, fmt.Sprintf("caught up with the log at sequence %d", l.applied.Load())
 }
 
@@ -486,13 +602,21 @@ func (l *Log) metrics() {
 	}, func() float64 { return b2f(l.caughtUp.Load()) })
 	l.behindGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 		Namespace: "genvelope", Name: "log_pending_messages",
-		Help: "Messages of the log (of the partitions served) not yet delivered to this replica, as of the last one applied.",
+		Help: "Messages of the log (of the partitions served) not yet applied by this replica: its lag in messages.",
 	}, func() float64 { return float64(l.behind.Load()) })
+	l.lagGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+		Namespace: "genvelope", Name: "log_lag_seconds",
+		Help: "How far this replica is behind the log: the age of the last message it applied when it applied it, or the time since while it is stalled with messages pending; 0 when caught up.",
+	}, func() float64 { return float64(l.lagNS.Load()) / 1e9 })
+	l.tooFarGa = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+		Namespace: "genvelope", Name: "log_behind",
+		Help: "1 while this replica is too far behind the log to be ready (--nats-max-lag, --nats-max-lag-messages).",
+	}, func() float64 { return b2f(l.tooFar.Load()) })
 }
 
 // Collectors returns the log's metrics.
 func (l *Log) Collectors() []prometheus.Collector {
-	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa}
+	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa, l.lagGa, l.tooFarGa}
 }
 
 func b2f(b bool) float64 {

@@ -15,6 +15,11 @@ type Actions interface {
 	Acknowledge(ctx context.Context, id string, k alarm.Kind, now time.Time, by string) error
 	// Shelve suppresses the alarm until until; a zero until lifts the shelf.
 	Shelve(ctx context.Context, id string, k alarm.Kind, until, now time.Time, by string) error
+	// ResetThermal clears a unit's thermal accumulators (Store.ResetThermal).
+	ResetThermal(ctx context.Context, id, winding string, now time.Time, by, reason string) error
+	// DiscardSample discards one recent sample's thermal effect
+	// (Store.DiscardSample).
+	DiscardSample(ctx context.Context, id string, at, now time.Time, by, reason string) error
 }
 
 // StoreActions applies operator actions to the store directly.
@@ -28,6 +33,16 @@ func (a StoreActions) Acknowledge(_ context.Context, id string, k alarm.Kind, no
 // Shelve implements Actions.
 func (a StoreActions) Shelve(_ context.Context, id string, k alarm.Kind, until, now time.Time, by string) error {
 	return a.Store.Shelve(id, k, until, now, by)
+}
+
+// ResetThermal implements Actions.
+func (a StoreActions) ResetThermal(_ context.Context, id, winding string, now time.Time, by, reason string) error {
+	return a.Store.ResetThermal(id, winding, now, by, reason)
+}
+
+// DiscardSample implements Actions.
+func (a StoreActions) DiscardSample(_ context.Context, id string, at, now time.Time, by, reason string) error {
+	return a.Store.DiscardSample(id, at, now, by, reason)
 }
 
 // ErrUnavailable is returned by Actions that could not be written to the

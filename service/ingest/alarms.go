@@ -107,8 +107,7 @@ func (s *Store) publish(ev alarm.Event) {
 
 // record writes ev to the journal, if there is one.
 func (s *Store) record(ev *alarm.Event) {
-	j := s.opts.Journal
-	if j == nil {
+	if s.opts.Journal == nil {
 		return
 	}
 	e := journal.Entry{Time: ev.Time, Unit: ev.Unit, Site: ev.Site, Limit: ev.Kind.String(), Change: ev.Change.String(),
@@ -120,7 +119,7 @@ func (s *Store) record(ev *alarm.Event) {
 	if ev.Removed {
 		e.Change = journal.ChangeRemoved
 	}
-	_ = j.Append(e) // a failure is logged and counted by the journal
+	s.appendJournal(e)
 }
 
 // shelvedUntil is the end of m's shelf, or zero when it is not shelved.
@@ -434,9 +433,7 @@ func (s *Store) DiscardSample(id string, at, now time.Time, by, reason string) e
 // recordAction journals an operator's change to unit u's state. u.mu
 // must be held.
 func (s *Store) recordAction(u *Unit, change, limit string, now time.Time, by, msg string) {
-	if j := s.opts.Journal; j != nil {
-		_ = j.Append(journal.Entry{Time: now, Unit: u.cfg.ID, Site: u.cfg.Site, Limit: limit, Change: change, Message: msg, Operator: by})
-	}
+	s.appendJournal(journal.Entry{Time: now, Unit: u.cfg.ID, Site: u.cfg.Site, Limit: limit, Change: change, Message: msg, Operator: by})
 }
 
 func because(reason string) string {

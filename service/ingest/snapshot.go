@@ -48,6 +48,22 @@ type UnitSnapshot struct {
 	Alarms    map[string]alarm.Machine `json:"alarms,omitempty"`          // machines not at rest, by limit name
 	OELUsed   float64                  `json:"oel_used_ratio,omitempty"`  // limiter timers (limiters.go)
 	SCLUsed   float64                  `json:"scl_used_ratio,omitempty"`
+	// The heating each recent sample held, oldest first (DiscardSample
+	// takes one back), and whether the latest sample is suspect and the
+	// unit stale: with them a replica restored from its checkpoint
+	// applies the rest of the log exactly as one that never stopped.
+	Heat    []HeatSnapshot `json:"heat,omitempty"`
+	Suspect bool           `json:"suspect,omitempty"`
+	Stale   bool           `json:"stale,omitempty"`
+}
+
+// HeatSnapshot is the heating (s of the C50.13 integral) one recent
+// sample held into the accumulators.
+type HeatSnapshot struct {
+	TimeUnixNS  int64   `json:"time_unix_ns"`
+	ArmatureS   float64 `json:"armature_s"`
+	FieldS      float64 `json:"field_s"`
+	Discardable bool    `json:"discardable,omitempty"`
 }
 
 // SampleSnapshot is the latest accepted sample and when it arrived.
@@ -108,10 +124,10 @@ func (s *Store) Snapshot(now time.Time) *Snapshot {
 	return sn
 }
 
-// snapshotInto copies u's durable state into us, reusing its Times and
-// Alarms; us.Latest is smp when u has a sample. u.mu must be held.
+// snapshotInto copies u's durable state into us, reusing its Times, Heat
+// and Alarms; us.Latest is smp when u has a sample. u.mu must be held.
 func (u *Unit) snapshotInto(us *UnitSnapshot, smp *SampleSnapshot) {
-	times, alarms := us.Times[:0], us.Alarms
+	times, heat, alarms := us.Times[:0], us.Heat[:0], us.Alarms
 	clear(alarms)
 	*us = UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.hArm, XField: u.hField, ThermalNS: u.thermNS,
 		OELUsed: u.lim.oel.Used, SCLUsed: u.lim.scl.Used}
@@ -122,6 +138,18 @@ func (u *Unit) snapshotInto(us *UnitSnapshot, smp *SampleSnapshot) {
 	if u.has {
 		*smp = SampleSnapshot{Sample: u.latest, ReceivedUnixNS: u.recvNS}
 		us.Latest = smp
+		us.Suspect, us.Stale = u.suspect, u.stale
+	}
+	for i := uint64(heatSize - 1); ; i-- { // oldest first: the newest is heat[accepted % heatSize]
+		if h := u.heat[(u.accepted-i)%heatSize]; h != (heatStep{}) {
+			heat = append(heat, HeatSnapshot{TimeUnixNS: h.t, ArmatureS: h.arm, FieldS: h.field, Discardable: h.discardable})
+		}
+		if i == 0 {
+			break
+		}
+	}
+	if len(heat) > 0 {
+		us.Heat = heat
 	}
 	for k, m := range u.alarms {
 		if m.Level != alarm.Normal || m.ShelvedUntil != 0 || m.Raising != [2]bool{} {
@@ -198,6 +226,12 @@ func (s *Store) RestoreUnit(id string, us *UnitSnapshot) (known bool, err error)
 			}
 		}
 		u.evaluate()
+		u.suspect, u.stale = us.Suspect, us.Stale
+	}
+	u.heat = [heatSize]heatStep{}
+	for i, h := range us.Heat[max(0, len(us.Heat)-heatSize):] { // the newest at heat[accepted % heatSize]
+		back := uint64(min(len(us.Heat), heatSize) - 1 - i)
+		u.heat[(u.accepted-back)%heatSize] = heatStep{t: h.TimeUnixNS, arm: h.ArmatureS, field: h.FieldS, discardable: h.Discardable}
 	}
 	u.hArm, u.hField = us.XArmature, us.XField
 	for name, m := range us.Alarms {
@@ -222,6 +256,13 @@ func checkUnitSnapshot(cfg *fleet.Unit, plaus *fleet.Plausibility, us *UnitSnaps
 		return fmt.Errorf("field_current_pu %v is not in [0, %g]", us.XField, MaxThermalX)
 	case len(us.Times) > ringSize:
 		return fmt.Errorf("%d times, more than the %d a unit remembers", len(us.Times), ringSize)
+	case len(us.Heat) > heatSize:
+		return fmt.Errorf("%d heating steps, more than the %d a unit remembers", len(us.Heat), heatSize)
+	}
+	for _, h := range us.Heat {
+		if !finite(h.ArmatureS) || !finite(h.FieldS) || math.Abs(h.ArmatureS) > maxRestoredHeatingS || math.Abs(h.FieldS) > maxRestoredHeatingS {
+			return fmt.Errorf("heating step at %d: armature %v s, field %v s: not within ±%g s", h.TimeUnixNS, h.ArmatureS, h.FieldS, maxRestoredHeatingS)
+		}
 	}
 	for name, m := range us.Alarms {
 		if _, ok := alarm.ParseKind(name); !ok {

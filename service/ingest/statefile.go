@@ -22,14 +22,15 @@ import (
 //
 //	file    = magic version:uvarint written:varint record* 0x00 sha256[32]
 //	record  = length:uvarint body[length]          (length > 0)
-//	body    = id:string flags:byte
+//	body    = id:string flags:byte (1 latest, 2 suspect, 4 stale)
 //	          armature_heating_s:f64 field_heating_s:f64
 //	          armature_current_pu:f64 field_current_pu:f64
 //	          thermal_unix_ns:varint oel_used:f64 scl_used:f64
-//	          times latest? alarms
+//	          times latest? heat alarms
 //	times   = n:uvarint [t0:varint [d1:varint (dd:varint){n-2}]]
 //	latest  = time:varint received:varint p:f64 q:f64 v:f64
 //	          has:byte field_a:f64 frequency_hz:f64 coolant:f64 quality:byte
+//	heat    = n:uvarint (time:varint armature_s:f64 field_s:f64 discardable:byte)*
 //	alarms  = n:uvarint (kind:string machine)*
 //	machine = level:byte bits:byte raise_since:varint×2 clear_since:varint×2
 //	          shelved_until:varint since:varint value:f64
@@ -151,6 +152,8 @@ func (sn *Snapshot) WriteBinary(w io.Writer) error {
 
 const (
 	flagLatest = 1 << iota
+	flagSuspect
+	flagStale
 )
 
 const (
@@ -173,6 +176,12 @@ func appendUnit(b []byte, id string, us *UnitSnapshot) []byte {
 	var flags byte
 	if us.Latest != nil {
 		flags |= flagLatest
+	}
+	if us.Suspect {
+		flags |= flagSuspect
+	}
+	if us.Stale {
+		flags |= flagStale
 	}
 	b = append(b, flags)
 	b = appendF64(b, us.ArmatureH)
@@ -204,6 +213,17 @@ func appendUnit(b []byte, id string, us *UnitSnapshot) []byte {
 		b = appendF64(b, l.FrequencyHz)
 		b = appendF64(b, l.Coolant)
 		b = append(b, byte(l.Quality))
+	}
+	b = binary.AppendUvarint(b, uint64(len(us.Heat)))
+	for _, h := range us.Heat {
+		b = binary.AppendVarint(b, h.TimeUnixNS)
+		b = appendF64(b, h.ArmatureS)
+		b = appendF64(b, h.FieldS)
+		var d byte
+		if h.Discardable {
+			d = 1
+		}
+		b = append(b, d)
 	}
 	b = binary.AppendUvarint(b, uint64(len(us.Alarms)))
 	if len(us.Alarms) == 0 {
@@ -501,7 +521,7 @@ func decodeUnit(b []byte, us *UnitSnapshot) (string, error) {
 	if c.err != nil {
 		return "", c.err
 	}
-	times := us.Times[:0]
+	times, heat := us.Times[:0], us.Heat[:0]
 	latest := us.Latest
 	alarms := us.Alarms
 	clear(alarms)
@@ -553,6 +573,19 @@ func decodeUnit(b []byte, us *UnitSnapshot) (string, error) {
 		l.Coolant = c.f64("latest coolant")
 		l.Quality = Quality(c.byte("latest quality"))
 		us.Latest = l
+	}
+	us.Suspect, us.Stale = flags&flagSuspect != 0, flags&flagStale != 0
+	nh := c.uvarint("heat")
+	if nh > heatSize {
+		return id, fmt.Errorf("%d heating steps, more than the %d a unit remembers", nh, heatSize)
+	}
+	for range int(nh) {
+		h := HeatSnapshot{TimeUnixNS: c.varint("heat time"), ArmatureS: c.f64("heat armature"), FieldS: c.f64("heat field")}
+		h.Discardable = c.byte("heat discardable") != 0
+		heat = append(heat, h)
+	}
+	if len(heat) > 0 {
+		us.Heat = heat
 	}
 	na := c.uvarint("alarms")
 	if na > uint64(alarm.NumKinds) {

@@ -53,7 +53,8 @@ func TestStateFileRoundTrip(t *testing.T) {
 	at := time.Date(2026, 6, 1, 12, 0, 0, 123456789, time.UTC)
 	full := UnitSnapshot{
 		Times: steady(ringSize, at.UnixNano()-255e9, 1e9), ArmatureH: 12.5, FieldH: 3.25, XArmature: 1.07, XField: 1.46,
-		ThermalNS: at.UnixNano() + 7, OELUsed: 0.25, SCLUsed: 1,
+		ThermalNS: at.UnixNano() + 7, OELUsed: 0.25, SCLUsed: 1, Suspect: true, Stale: true,
+		Heat: []HeatSnapshot{{TimeUnixNS: at.UnixNano() - 1e9, ArmatureS: 0.5, FieldS: -0.25, Discardable: true}, {TimeUnixNS: at.UnixNano(), FieldS: 1e-9}},
 		Latest: &SampleSnapshot{Sample: Sample{UnitID: "b", Time: at, PMW: -12.5, QMvar: 80, VKV: 20.1, FieldA: 2400, HasFieldA: true,
 			FrequencyHz: 49.9, HasFreq: true, Coolant: 38, HasCoolant: true, Quality: QualityQuestionable}, ReceivedUnixNS: at.UnixNano() + 3e6},
 		Alarms: map[string]alarm.Machine{

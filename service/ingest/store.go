@@ -174,6 +174,43 @@ type Store struct {
 
 	replaceMu sync.Mutex             // one Replace at a time
 	removed   map[string]removedUnit // units a reload removed, kept for RemovedGrace
+
+	// logSeq is, with a durable log, the stream sequence of the message
+	// being applied: the journal entries it makes carry it.
+	logSeq atomic.Uint64
+}
+
+// SetLogSequence says which log message the store applies from now on
+// (0: none), so that its journal entries carry it (journal.Entry.LogSeq).
+// A durable log sets it around each message it applies; every change to
+// the store then comes from that one goroutine.
+func (s *Store) SetLogSequence(seq uint64) { s.logSeq.Store(seq) }
+
+// SetStart sets the time from which a unit that never reported counts
+// as silent (stale telemetry); default the store's creation. A durable
+// log sets the stream's creation, the same on every replica. Call it
+// before the store is used.
+func (s *Store) SetStart(t time.Time) { s.startNS = t.UnixNano() }
+
+// appendJournal writes e to the journal, if there is one, with the log
+// sequence being applied.
+func (s *Store) appendJournal(e journal.Entry) {
+	if j := s.opts.Journal; j != nil {
+		e.LogSeq = s.logSeq.Load()
+		_ = j.Append(e) // a failure is logged and counted by the journal
+	}
+}
+
+// Journal returns the store's journal, or nil.
+func (s *Store) Journal() *journal.Journal { return s.opts.Journal }
+
+// SyncJournal makes the journal's entries durable (a durable log does
+// before it writes a checkpoint, so that the journal is never behind it).
+func (s *Store) SyncJournal() error {
+	if j := s.opts.Journal; j != nil {
+		return j.Sync()
+	}
+	return nil
 }
 
 // removedUnit is the state of a unit a reload removed, and when.
@@ -249,10 +286,13 @@ func newSnapshot(fl *fleet.Fleet, old *snapshot, removed map[string]removedUnit)
 // (and a journal entry), and its state is kept for RemovedGrace: added
 // again within it, the unit comes back with its thermal memory. The
 // reload itself is journalled.
-func (s *Store) Replace(fl *fleet.Fleet) {
+func (s *Store) Replace(fl *fleet.Fleet) { s.ReplaceAt(fl, s.opts.Now()) }
+
+// ReplaceAt is Replace at time now (a durable log gives the time of the
+// reload's message, the same on every replica).
+func (s *Store) ReplaceAt(fl *fleet.Fleet, now time.Time) {
 	s.replaceMu.Lock()
 	defer s.replaceMu.Unlock()
-	now := s.opts.Now()
 	for id, r := range s.removed {
 		if now.Sub(r.at) > s.opts.RemovedGrace {
 			delete(s.removed, id)
@@ -286,7 +326,7 @@ func (s *Store) Replace(fl *fleet.Fleet) {
 			slices.Sort(back)
 			msg += fmt.Sprintf(" Back with their state: %s.", strings.Join(back, ", "))
 		}
-		_ = j.Append(journal.Entry{Time: now, Change: journal.ChangeReload, Message: msg})
+		s.appendJournal(journal.Entry{Time: now, Change: journal.ChangeReload, Message: msg})
 		_ = j.Sync()
 	}
 }

@@ -71,6 +71,12 @@ type Entry struct {
 	Units     string    `json:"units,omitempty"`
 	Message   string    `json:"message"`
 	Operator  string    `json:"operator,omitempty"`
+	// LogSeq is, with serve --nats, the stream sequence of the log
+	// message whose application made this entry (0 for an entry of this
+	// process alone, such as a refused call). Every replica writes the
+	// same entries for the same message; see Append for how a replica
+	// that replays the log after a restart skips those it has.
+	LogSeq uint64 `json:"log_seq,omitempty"`
 }
 
 // Num returns a pointer to x, or nil when x is NaN or infinite (JSON
@@ -102,6 +108,13 @@ type Journal struct {
 	dirty  bool
 	failed uint64 // appends that could not be written
 	buf    bytes.Buffer
+
+	// The log position (Entry.LogSeq): the last log sequence written
+	// and how many entries it made; the sequence being appended now and
+	// how many entries it has made so far.
+	logSeq, logN uint64
+	curSeq, curN uint64
+	replayed     uint64 // entries skipped because the journal had them
 }
 
 // Open opens (or creates) the journal at path and continues its
@@ -127,10 +140,67 @@ func Open(path string, o Options) (*Journal, error) {
 		}
 		j.seq = last
 	}
+	// The log position: the last entry from the log, in the newest file
+	// that has one, read after the file before it (a message's entries
+	// may straddle a rotation).
+	for i := 0; i <= o.Keep && j.logSeq == 0; i++ {
+		if err := j.readLogPosition(i); err != nil {
+			return nil, err
+		}
+		if j.logSeq != 0 && i < o.Keep {
+			j.logSeq, j.logN = 0, 0
+			for _, k := range []int{i + 1, i} { // oldest first
+				if err := j.readLogPosition(k); err != nil {
+					return nil, err
+				}
+			}
+		}
+	}
 	if err := j.openFile(); err != nil {
 		return nil, err
 	}
 	return j, nil
+}
+
+// readLogPosition reads file i, in order, into the journal's log
+// position: the LogSeq of the last entry from the log, and how many
+// entries that message made (counting on from the file read before).
+func (j *Journal) readLogPosition(i int) error {
+	return scan(j.file(i), func(e *Entry) bool {
+		switch {
+		case e.LogSeq == 0:
+		case e.LogSeq == j.logSeq:
+			j.logN++
+		default:
+			j.logSeq, j.logN = e.LogSeq, 1
+		}
+		return true
+	})
+}
+
+// LogPosition returns the last log sequence the journal has entries
+// from (0 when none) and how many entries that message made.
+func (j *Journal) LogPosition() (seq, entries uint64) {
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	return j.logSeq, j.logN
+}
+
+// ForgetLogPosition makes the journal write every entry from the log
+// again, whatever its sequence: for a journal whose entries came from
+// another stream (the log is new: its sequences start again).
+func (j *Journal) ForgetLogPosition() {
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	j.logSeq, j.logN, j.curSeq, j.curN = 0, 0, 0, 0
+}
+
+// Replayed returns the number of entries from the log that were not
+// written again because the journal had them.
+func (j *Journal) Replayed() uint64 {
+	j.mu.Lock()
+	defer j.mu.Unlock()
+	return j.replayed
 }
 
 // file returns the name of the i-th file: 0 the one written, 1 the
@@ -210,9 +280,29 @@ func scan(name string, fn func(*Entry) bool) error {
 // Append records e, giving it the next sequence number and the time it
 // is recorded. It never blocks on the disk beyond one write; a failure
 // is counted (Failed), logged and returned.
+//
+// An entry from the log (LogSeq not 0) that the journal already has is
+// not written again: a replica restarted from its checkpoint applies the
+// log again from the checkpoint's sequence, which the journal, written
+// as each message is applied, is at or beyond. Messages are applied one
+// at a time, in sequence order, and applying one gives the same entries
+// in the same order on every replica and at every replay; so the n-th
+// entry of message s is already in the journal when s is below the
+// journal's last LogSeq, or equal to it and n is at most the number of
+// entries the journal has from it.
 func (j *Journal) Append(e Entry) error {
 	j.mu.Lock()
 	defer j.mu.Unlock()
+	if e.LogSeq != 0 {
+		if e.LogSeq != j.curSeq {
+			j.curSeq, j.curN = e.LogSeq, 0
+		}
+		j.curN++
+		if e.LogSeq < j.logSeq || e.LogSeq == j.logSeq && j.curN <= j.logN {
+			j.replayed++
+			return nil
+		}
+	}
 	if j.f == nil {
 		j.failed++
 		return errors.New("journal: closed")
@@ -243,6 +333,9 @@ func (j *Journal) Append(e Entry) error {
 	}
 	j.seq = e.Seq
 	j.dirty = true
+	if e.LogSeq != 0 {
+		j.logSeq, j.logN = e.LogSeq, j.curN
+	}
 	return nil
 }
 

@@ -4,11 +4,13 @@ import (
 	"bufio"
 	"bytes"
 	"encoding/csv"
+	"encoding/json"
 	"errors"
 	"fmt"
 	"os"
 	"os/exec"
 	"path/filepath"
+	"slices"
 	"strings"
 	"syscall"
 	"testing"
@@ -230,4 +232,152 @@ func TestSurvivesKill(t *testing.T) {
 	if es2[0].Seq != es[0].Seq+1 || !strings.Contains(es2[0].Message, "entry 0") {
 		t.Errorf("after the kill: %+v", es2[0])
 	}
+}
+
+// A replica restarted from its checkpoint applies the log again from the
+// checkpoint's sequence; the journal skips the entries from the log it
+// has and writes the rest, so that it ends as if there had been no
+// restart: each (log sequence, n-th entry of it) once, in order.
+func TestReplayFromLog(t *testing.T) {
+	// Messages 1 to 6 of the log, and the entries applying each makes
+	// (message 3 makes none, message 4 three).
+	perMsg := map[uint64]int{1: 1, 2: 2, 3: 0, 4: 3, 5: 1, 6: 2}
+	apply := func(j *Journal, from, to uint64) {
+		for seq := from; seq <= to; seq++ {
+			for n := range perMsg[seq] {
+				e := entry(int(seq)*10+n, "ridge-1", "field", ChangeLevel, "warning")
+				e.LogSeq = seq
+				if err := j.Append(e); err != nil {
+					t.Fatal(err)
+				}
+			}
+		}
+	}
+	type key struct{ seq, n uint64 }
+	read := func(j *Journal) []key {
+		es, _, err := j.Query(Filter{}, MaxPage, "")
+		if err != nil {
+			t.Fatal(err)
+		}
+		var out []key
+		for i := len(es) - 1; i >= 0; i-- {
+			e := es[i]
+			if e.LogSeq == 0 {
+				continue
+			}
+			n := uint64(0)
+			if len(out) > 0 && out[len(out)-1].seq == e.LogSeq {
+				n = out[len(out)-1].n + 1
+			}
+			if want := fmt.Sprintf("ridge-1: entry %d", int(e.LogSeq)*10+int(n)); e.Message != want {
+				t.Errorf("entry %d of message %d says %q, want %q", n, e.LogSeq, e.Message, want)
+			}
+			out = append(out, key{e.LogSeq, n})
+		}
+		return out
+	}
+	var want []key
+	for seq := uint64(1); seq <= 6; seq++ {
+		for n := range perMsg[seq] {
+			want = append(want, key{seq, uint64(n)})
+		}
+	}
+	for _, tc := range []struct {
+		name string
+		// The journal got the entries up to message crashAt, and of it
+		// the first crashN (the process died while applying it); the
+		// checkpoint includes messages up to cp.
+		crashAt uint64
+		crashN  int
+		cp      uint64
+	}{
+		{"checkpoint at the journal's end", 4, 3, 4},
+		{"checkpoint behind the journal", 5, 1, 2},
+		{"died inside a message", 4, 1, 2},
+		{"no checkpoint: the whole log again", 6, 2, 0},
+		{"empty journal", 0, 0, 0},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			path := filepath.Join(t.TempDir(), "j")
+			j := open(t, path, Options{})
+			apply(j, 1, tc.crashAt-min(tc.crashAt, 1))
+			if tc.crashAt > 0 {
+				for n := range tc.crashN {
+					e := entry(int(tc.crashAt)*10+n, "ridge-1", "field", ChangeLevel, "warning")
+					e.LogSeq = tc.crashAt
+					if err := j.Append(e); err != nil {
+						t.Fatal(err)
+					}
+				}
+			}
+			// An entry of this replica alone in between: not from the log.
+			if err := j.Append(Entry{Change: ChangeDenied, Message: "refused"}); err != nil {
+				t.Fatal(err)
+			}
+			j.Close()
+
+			j2 := open(t, path, Options{})
+			if seq, n := j2.LogPosition(); seq != tc.crashAt || n != uint64(tc.crashN) {
+				t.Errorf("log position after reopening: %d, %d entries; want %d, %d", seq, n, tc.crashAt, tc.crashN)
+			}
+			apply(j2, tc.cp+1, 6)
+			got := read(j2)
+			if !slices.Equal(got, want) {
+				t.Errorf("entries (log sequence, n-th of it):\n got  %v\n want %v", got, want)
+			}
+		})
+	}
+}
+
+// The log position read at Open is the last entry from the log, with
+// its message's entries counted across a rotation, and after a journal
+// moved to a new stream (ForgetLogPosition) the new stream's, however
+// high the old one's sequences were.
+func TestLogPositionAtOpen(t *testing.T) {
+	logEntry := func(seq uint64, n int) Entry {
+		e := entry(n, "ridge-1", "field", ChangeLevel, "warning")
+		e.LogSeq = seq
+		return e
+	}
+	t.Run("across a rotation", func(t *testing.T) {
+		// Message 4 made three entries: two went to the file rotated to
+		// FILE.1, the third to FILE after the rotation.
+		path := filepath.Join(t.TempDir(), "j")
+		write := func(name string, es ...Entry) {
+			var b bytes.Buffer
+			for _, e := range es {
+				if err := json.NewEncoder(&b).Encode(&e); err != nil {
+					t.Fatal(err)
+				}
+			}
+			if err := os.WriteFile(name, b.Bytes(), 0o644); err != nil {
+				t.Fatal(err)
+			}
+		}
+		seqd := func(seq uint64, e Entry) Entry { e.Seq = seq; return e }
+		write(path+".1", seqd(1, logEntry(3, 0)), seqd(2, logEntry(4, 0)), seqd(3, logEntry(4, 1)))
+		write(path, seqd(4, logEntry(4, 2)), seqd(5, Entry{Change: ChangeDenied, Message: "refused"}))
+		if s, k := open(t, path, Options{}).LogPosition(); s != 4 || k != 3 {
+			t.Errorf("log position %d, %d entries; want 4, 3 (the message straddles the rotation)", s, k)
+		}
+	})
+	t.Run("a new stream", func(t *testing.T) {
+		path := filepath.Join(t.TempDir(), "j")
+		j := open(t, path, Options{})
+		for _, e := range []Entry{logEntry(100, 0), logEntry(100, 1)} {
+			if err := j.Append(e); err != nil {
+				t.Fatal(err)
+			}
+		}
+		j.ForgetLogPosition()
+		for _, e := range []Entry{logEntry(1, 0), logEntry(2, 0), logEntry(2, 1)} {
+			if err := j.Append(e); err != nil {
+				t.Fatal(err)
+			}
+		}
+		j.Close()
+		if s, k := open(t, path, Options{}).LogPosition(); s != 2 || k != 2 {
+			t.Errorf("log position %d, %d entries; want 2, 2", s, k)
+		}
+	})
 }

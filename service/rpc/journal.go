@@ -20,7 +20,7 @@ import (
 // Journal implements JournalService.
 type Journal struct {
 	pb.UnimplementedJournalServiceServer
-	store   *ingest.Store
+	actions ingest.Actions
 	journal *journal.Journal // nil when the service keeps none
 	now     func() time.Time
 }
@@ -28,10 +28,17 @@ type Journal struct {
 // NewJournal returns a JournalService over store and j (which may be
 // nil: then ListJournal answers FAILED_PRECONDITION).
 func NewJournal(store *ingest.Store, j *journal.Journal, now func() time.Time) *Journal {
+	return NewJournalWith(ingest.StoreActions{Store: store}, j, now)
+}
+
+// NewJournalWith is NewJournal with the thermal actions (ResetThermal,
+// DiscardSample) applied through actions: a replicated service writes
+// them to its log.
+func NewJournalWith(actions ingest.Actions, j *journal.Journal, now func() time.Time) *Journal {
 	if now == nil {
 		now = time.Now
 	}
-	return &Journal{store: store, journal: j, now: now}
+	return &Journal{actions: actions, journal: j, now: now}
 }
 
 // badRequest is INVALID_ARGUMENT with a BadRequest detail naming field.
@@ -97,7 +104,7 @@ func entryProto(e *journal.Entry) *pb.JournalEntry {
 	return &pb.JournalEntry{Seq: e.Seq, Time: timestamppb.New(e.Time), Recorded: timestamppb.New(e.Recorded),
 		UnitId: e.Unit, Site: e.Site, Limit: e.Limit, Change: e.Change, Level: e.Level, PreviousLevel: e.Prev,
 		Value: e.Value, Threshold: e.Threshold, Actual: e.Actual, LimitValue: e.LimitAt, Units: e.Units,
-		Message: e.Message, Operator: e.Operator}
+		Message: e.Message, Operator: e.Operator, LogSeq: e.LogSeq}
 }
 
 // ResetThermal clears a unit's thermal accumulators.
@@ -105,7 +112,7 @@ func (j *Journal) ResetThermal(ctx context.Context, req *pb.ResetThermalRequest)
 	if req.Winding != "" && req.Winding != "armature" && req.Winding != "field" {
 		return nil, badRequest("winding", "give armature, field, or nothing for both; got "+quote(req.Winding))
 	}
-	if err := j.store.ResetThermal(req.UnitId, req.Winding, j.now(), req.Operator, req.Reason); err != nil {
+	if err := j.actions.ResetThermal(ctx, req.UnitId, req.Winding, j.now(), req.Operator, req.Reason); err != nil {
 		return nil, actionError(err)
 	}
 	return &pb.ResetThermalResponse{}, nil
@@ -119,7 +126,7 @@ func (j *Journal) DiscardSample(ctx context.Context, req *pb.DiscardSampleReques
 	if err := req.Time.CheckValid(); err != nil {
 		return nil, badRequest("time", err.Error())
 	}
-	if err := j.store.DiscardSample(req.UnitId, req.Time.AsTime(), j.now(), req.Operator, req.Reason); err != nil {
+	if err := j.actions.DiscardSample(ctx, req.UnitId, req.Time.AsTime(), j.now(), req.Operator, req.Reason); err != nil {
 		return nil, actionError(err)
 	}
 	return &pb.DiscardSampleResponse{}, nil

@@ -85,12 +85,16 @@ type Log interface {
 	// Select returns the part of the fleet this replica serves.
 	Select(fl *fleet.Fleet) *fleet.Fleet
 	// Attach restores the log's checkpoint into store; reload reads the
-	// fleet file again on this replica when the log says so.
-	Attach(ctx context.Context, store *ingest.Store, reload func() error) error
+	// fleet file again on this replica when the log says so, at the
+	// time of the log's message.
+	Attach(ctx context.Context, store *ingest.Store, reload func(at time.Time) error) error
 	// Run applies the log until ctx is done.
 	Run(ctx context.Context) error
 	// Reload asks every replica to read its fleet file again.
 	Reload(ctx context.Context) error
+	// Sweep runs the wall-clock supervision (ingest.Store.Sweep) at now
+	// through the log, so that every replica runs it at the same place.
+	Sweep(ctx context.Context, now time.Time)
 	// Ready says whether the replica has caught up with the log.
 	Ready() (bool, string)
 	Collectors() []prometheus.Collector
@@ -216,6 +220,15 @@ func New(cfg Config) (*Server, error) {
 		}
 		return float64(s.journal.Failed())
 	}))
+	reg.MustRegister(prometheus.NewCounterFunc(prometheus.CounterOpts{
+		Namespace: metrics.Namespace, Name: "journal_replayed_entries_total",
+		Help: "Journal entries from the log not written again because the journal had them (a replica applying the log again from its checkpoint).",
+	}, func() float64 {
+		if s.journal == nil {
+			return 0
+		}
+		return float64(s.journal.Replayed())
+	}))
 	if cfg.Log != nil {
 		reg.MustRegister(cfg.Log.Collectors()...)
 	}
@@ -230,7 +243,7 @@ func New(cfg Config) (*Server, error) {
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
 	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining, Actions: actions}))
 	pb.RegisterCoordinationServiceServer(s.grpc, rpc.NewCoordination(s.store))
-	pb.RegisterJournalServiceServer(s.grpc, rpc.NewJournal(s.store, s.journal, nil))
+	pb.RegisterJournalServiceServer(s.grpc, rpc.NewJournalWith(actions, s.journal, nil))
 	s.health = health.NewServer()
 	healthpb.RegisterHealthServer(s.grpc, s.health)
 	reflection.Register(s.grpc)
@@ -486,6 +499,10 @@ func (s *Server) sweep(ctx context.Context) {
 		case <-ctx.Done():
 			return
 		case now := <-t.C:
+			if s.cfg.Log != nil {
+				s.cfg.Log.Sweep(ctx, now)
+				continue
+			}
 			s.store.Sweep(now)
 			s.guard.FlushGate(ctx, now)
 		}
@@ -530,12 +547,12 @@ func (s *Server) reload() error {
 	if s.cfg.Log != nil {
 		return s.cfg.Log.Reload(context.Background())
 	}
-	return s.reloadLocal()
+	return s.reloadLocal(time.Now())
 }
 
 // reloadLocal reads the fleet file (and the access file) again on this
-// replica.
-func (s *Server) reloadLocal() error {
+// replica, at time now.
+func (s *Server) reloadLocal(now time.Time) error {
 	s.reloadMu.Lock()
 	defer s.reloadMu.Unlock()
 	if err := s.guardReload(); err != nil {
@@ -554,7 +571,7 @@ func (s *Server) reloadLocal() error {
 	if s.cfg.Log != nil {
 		fl = s.cfg.Log.Select(fl)
 	}
-	s.store.Replace(fl)
+	s.store.ReplaceAt(fl, now)
 	s.reloadSuccess.WithLabelValues("success").Inc()
 	s.reloadOK.Set(1)
 	s.reloadTime.SetToCurrentTime()

@@ -171,9 +171,10 @@ func isBinary(path string) bool {
 	return ingest.IsBinaryState(head[:n])
 }
 
-// moveAside renames path to path.bad-TIME, adding -2, -3, ... when that
-// name is taken, so that a moved-aside file never replaces another.
-func moveAside(path string, now time.Time) (string, error) {
+// MoveAside renames path to path.bad-TIME (TIME to the nanosecond),
+// adding -2, -3, ... when that name is taken, so that a moved-aside file
+// never replaces another. The durable log's checkpoint uses it too.
+func MoveAside(path string, now time.Time) (string, error) {
 	base := fmt.Sprintf("%s.bad-%s", path, now.UTC().Format("20060102T150405.000000000Z"))
 	for i := 1; i < 1000; i++ {
 		aside := base
@@ -247,7 +248,7 @@ func loadBinary(path string, store *ingest.Store, log *slog.Logger, now time.Tim
 
 // unusable moves an unusable state file aside and says so loudly.
 func unusable(path string, err error, log *slog.Logger, now time.Time) error {
-	aside, rerr := moveAside(path, now)
+	aside, rerr := MoveAside(path, now)
 	if rerr != nil {
 		return fmt.Errorf("%v; and it could not be moved aside: %w", err, rerr)
 	}

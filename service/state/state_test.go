@@ -2,10 +2,12 @@ package state
 
 import (
 	"encoding/json"
+	"fmt"
 	"io"
 	"log/slog"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -154,5 +156,32 @@ func binaryState(t *testing.T) string {
 func TestNoStateFile(t *testing.T) {
 	if err := Load(filepath.Join(t.TempDir(), "none.json"), newStore(t), slog.New(slog.NewTextHandler(io.Discard, nil)), t0); err != nil {
 		t.Fatal(err)
+	}
+}
+
+// Files moved aside at the same moment keep their own names: the second
+// gets -2, the third -3; none replaces another.
+func TestMoveAsideNeverReplaces(t *testing.T) {
+	dir := t.TempDir()
+	path := filepath.Join(dir, "state.json")
+	var names []string
+	for i := range 3 {
+		if err := os.WriteFile(path, []byte(fmt.Sprint("bad ", i)), 0o600); err != nil {
+			t.Fatal(err)
+		}
+		aside, err := MoveAside(path, t0)
+		if err != nil {
+			t.Fatal(err)
+		}
+		names = append(names, aside)
+	}
+	base := path + ".bad-" + t0.UTC().Format("20060102T150405.000000000Z")
+	if want := []string{base, base + "-2", base + "-3"}; !slices.Equal(names, want) {
+		t.Errorf("moved aside as %v, want %v", names, want)
+	}
+	for i, n := range names {
+		if b, err := os.ReadFile(n); err != nil || string(b) != fmt.Sprint("bad ", i) {
+			t.Errorf("%s holds %q, %v; want the file moved aside %d-th", n, b, err, i+1)
+		}
 	}
 }

@@ -6,6 +6,7 @@ import (
 	"hash/fnv"
 	"math/rand/v2"
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 	"time"
@@ -131,7 +132,36 @@ func TestKillNineLosesNothing(t *testing.T) {
 		t.Error("no restart restored a checkpoint: the replay from a checkpoint was not exercised")
 	}
 	field, arm := thermal(t, r, units)
-	checkLedger(t, r, statePath, ledgerOf(batches))
+	cp := checkLedger(t, r, statePath, ledgerOf(batches))
+
+	// The journal of the replica killed three times holds what one
+	// that applied the log once, from its start, writes: every entry
+	// once, in order.
+	fresh := startReplica(t, fleetPath, filepath.Join(dir, "fresh.json"), "--nats", nd.url())
+	waitSequence(t, fresh, cp.Sequence)
+	var want []string
+	for _, e := range journalOf(t, fresh) {
+		if e.LogSeq <= cp.Sequence {
+			want = append(want, journalLine(e))
+		}
+	}
+	var got []string
+	for _, e := range journalFile(t, statePath+".journal") {
+		got = append(got, journalLine(e))
+	}
+	if len(want) == 0 {
+		t.Error("the traffic made no journal entry: the check would check nothing")
+	}
+	t.Logf("journal: %d entries from the log up to sequence %d, as one applying it once", len(got), cp.Sequence)
+	if !slices.Equal(got, want) {
+		t.Errorf("the journal after kill -9 and replays differs from one applying the log once: %d entries, want %d", len(got), len(want))
+		for i := range min(len(got), len(want)) {
+			if got[i] != want[i] {
+				t.Errorf("entry %d:\n got  %s\n want %s", i, got[i], want[i])
+				break
+			}
+		}
+	}
 
 	// The same traffic through the in-process service, uninterrupted.
 	ref := startReplica(t, fleetPath, filepath.Join(dir, "ref.json"))

@@ -73,6 +73,15 @@ func TestNATSLostDuringOperation(t *testing.T) {
 	if body, _ := get("http://" + r.http + "/readyz"); !strings.Contains(body, "not connected") {
 		t.Errorf("/readyz with NATS down: %q, want it to say not connected", body)
 	}
+	// The sweeps cannot go through the log: after a few seconds the
+	// replica supervises stale telemetry by its own clock.
+	deadline := time.Now().Add(testenv.WaitLong)
+	for !strings.Contains(r.proc.Output(200), "supervising stale telemetry and shelves by this replica's clock") {
+		if time.Now().After(deadline) {
+			r.proc.Failf(t, "no supervision by the replica's own clock while NATS is down")
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
 	nd.start(t) // same port, same store
 	nd.waitJetStream(t, false)
 	for _, b := range batches[half:] {
@@ -107,6 +116,8 @@ func TestForeignMessageSkipped(t *testing.T) {
 		{Subject: "genvelope.telemetry.3", Data: []byte("not telemetry")},
 		{Subject: "genvelope.telemetry.3", Header: nats.Header{"Genvelope-Format": {"samples/1"}}, Data: []byte{200, 1, 2}},
 		{Subject: "genvelope.ops", Header: nats.Header{"Genvelope-Format": {"op/1"}}, Data: []byte(`{"op":"explode"}`)},
+		// A sweep in 2200 would make every unit stale and end every shelf.
+		{Subject: "genvelope.ops", Header: nats.Header{"Genvelope-Format": {"op/1"}}, Data: []byte(`{"op":"sweep","at_unix_ns":7258118400000000000}`)},
 	} {
 		if err := nc.PublishMsg(m); err != nil {
 			t.Fatal(err)
@@ -119,11 +130,16 @@ func TestForeignMessageSkipped(t *testing.T) {
 		pushUntilAnswered(t, r, b)
 	}
 	deadline := time.Now().Add(testenv.WaitLong)
-	for r.metric(t, `genvelope_log_messages_total{result="foreign"}`) != 3 {
+	for r.metric(t, `genvelope_log_messages_total{result="foreign"}`) != 4 {
 		if time.Now().After(deadline) {
-			r.proc.Failf(t, "foreign messages counted: %v, want 3", r.metric(t, `genvelope_log_messages_total{result="foreign"}`))
+			r.proc.Failf(t, "foreign messages counted: %v, want 4", r.metric(t, `genvelope_log_messages_total{result="foreign"}`))
 		}
 		time.Sleep(50 * time.Millisecond)
+	}
+	for series, v := range r.metrics(t, "genvelope_unit_data_state") {
+		if strings.Contains(series, `state="stale"`) && v != 0 {
+			t.Errorf("%s = %v after a foreign sweep in 2200: it was applied", series, v)
+		}
 	}
 	if !strings.Contains(r.proc.Output(200), "foreign message in the log: skipped") {
 		t.Error("the foreign messages were not logged")

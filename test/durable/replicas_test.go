@@ -47,6 +47,25 @@ func waitSameSequence(t *testing.T, rs ...*replica) {
 	}
 }
 
+// sameMoment reads what read returns from both replicas at one place in
+// the log: both caught up at the same sequence, which did not move while
+// reading (a sweep a second goes on arriving).
+func sameMoment[T any](t *testing.T, a, b *replica, read func(*replica) T) (T, T) {
+	t.Helper()
+	deadline := time.Now().Add(testenv.WaitLong)
+	for {
+		waitSameSequence(t, a, b)
+		before := appliedSeq(t, a)
+		ra, rb := read(a), read(b)
+		if appliedSeq(t, a) == before && appliedSeq(t, b) == before {
+			return ra, rb
+		}
+		if time.Now().After(deadline) {
+			t.Fatal("the replicas never held still at one sequence")
+		}
+	}
+}
+
 // TestTwoReplicas: two serve processes on one stream, telemetry sent to
 // either in turn: they export the same sample-driven series, and an
 // acknowledgement made on one is visible on the other.
@@ -71,8 +90,7 @@ func TestTwoReplicas(t *testing.T) {
 			t.Errorf("resend through the other replica: %v, want %d duplicates", resp, len(batch))
 		}
 	}
-	waitSameSequence(t, a, b)
-	ma, mb := a.metrics(t, sampleDriven...), b.metrics(t, sampleDriven...)
+	ma, mb := sameMoment(t, a, b, func(r *replica) map[string]float64 { return r.metrics(t, sampleDriven...) })
 	if len(ma) < units*10 {
 		t.Fatalf("only %d sample-driven series", len(ma))
 	}

@@ -250,3 +250,15 @@ func (p *Proc) Kill() {
 		<-p.done
 	}
 }
+
+// StartNATS starts one JetStream nats-server on a free loopback port with
+// its store under dir, stopped when the test ends, and returns its URL.
+// It needs the nats-server program (NeedTool); a client retries until
+// the server takes connections.
+func StartNATS(t *testing.T, dir string) string {
+	t.Helper()
+	bin := NeedTool(t, "nats-server", "apt-get install nats-server")
+	port := FreePort(t)
+	StartProc(t, "nats-server", bin, "-js", "-sd", filepath.Join(dir, "js"), "-a", "127.0.0.1", "-p", strconv.Itoa(port))
+	return "nats://" + Addr(port)
+}

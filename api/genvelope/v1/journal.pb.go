@@ -53,7 +53,11 @@ type JournalEntry struct {
 	// The operator's sentence.
 	Message string `protobuf:"bytes,15,opt,name=message,proto3" json:"message,omitempty"`
 	// Who acted, for operator actions.
-	Operator      string `protobuf:"bytes,16,opt,name=operator,proto3" json:"operator,omitempty"`
+	Operator string `protobuf:"bytes,16,opt,name=operator,proto3" json:"operator,omitempty"`
+	// With serve --nats: the stream sequence of the log message whose
+	// application made the entry (every replica writes the same entries
+	// for it); 0 for an entry of this replica alone (a refused call).
+	LogSeq        uint64 `protobuf:"varint,17,opt,name=log_seq,json=logSeq,proto3" json:"log_seq,omitempty"`
 	unknownFields protoimpl.UnknownFields
 	sizeCache     protoimpl.SizeCache
 }
@@ -198,6 +202,13 @@ func (x *JournalEntry) GetOperator() string {
 		return x.Operator
 	}
 	return ""
+}
+
+func (x *JournalEntry) GetLogSeq() uint64 {
+	if x != nil {
+		return x.LogSeq
+	}
+	return 0
 }
 
 // JournalFilter selects entries. Empty fields select everything.
@@ -635,7 +646,7 @@ var File_genvelope_v1_journal_proto protoreflect.FileDescriptor
 
 const file_genvelope_v1_journal_proto_rawDesc = "" +
 	"\n" +
-	"\x1agenvelope/v1/journal.proto\x12\fgenvelope.v1\x1a\x1fgoogle/protobuf/timestamp.proto\"\xa0\x04\n" +
+	"\x1agenvelope/v1/journal.proto\x12\fgenvelope.v1\x1a\x1fgoogle/protobuf/timestamp.proto\"\xb9\x04\n" +
 	"\fJournalEntry\x12\x10\n" +
 	"\x03seq\x18\x01 \x01(\x04R\x03seq\x12.\n" +
 	"\x04time\x18\x02 \x01(\v2\x1a.google.protobuf.TimestampR\x04time\x126\n" +
@@ -654,7 +665,8 @@ const file_genvelope_v1_journal_proto_rawDesc = "" +
 	"limitValue\x88\x01\x01\x12\x14\n" +
 	"\x05units\x18\x0e \x01(\tR\x05units\x12\x18\n" +
 	"\amessage\x18\x0f \x01(\tR\amessage\x12\x1a\n" +
-	"\boperator\x18\x10 \x01(\tR\boperatorB\b\n" +
+	"\boperator\x18\x10 \x01(\tR\boperator\x12\x17\n" +
+	"\alog_seq\x18\x11 \x01(\x04R\x06logSeqB\b\n" +
 	"\x06_valueB\f\n" +
 	"\n" +
 	"_thresholdB\t\n" +

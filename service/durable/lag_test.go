@@ -1,0 +1,191 @@
+package durable
+
+import (
+	"context"
+	"io"
+	"log/slog"
+	"net/http"
+	"path/filepath"
+	"strings"
+	"testing"
+	"time"
+
+	"google.golang.org/grpc"
+	"google.golang.org/grpc/credentials/insecure"
+	"google.golang.org/protobuf/types/known/timestamppb"
+
+	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/server"
+	"github.com/genvelope/genvelope/test/testenv"
+)
+
+// TestJudgeLag: readiness from the lags, with hysteresis: not ready at
+// once when either lag is over its bound; ready again only after both
+// have stayed within half their bounds for the hold time.
+func TestJudgeLag(t *testing.T) {
+	cfg := Config{MaxLag: 4 * time.Second, MaxLagMessages: 100, LagHold: 2 * time.Second}.withDefaults()
+	t0 := time.Date(2026, 3, 1, 0, 0, 0, 0, time.UTC)
+	type step struct {
+		atS     float64
+		msgs    uint64
+		lagS    float64
+		tooFar  bool
+		comment string
+	}
+	for _, tc := range []struct {
+		name  string
+		steps []step
+	}{
+		{"messages over, then back", []step{
+			{0, 10, 0, false, "within"},
+			{1, 101, 0, true, "over the message bound"},
+			{2, 60, 0, true, "under the bound but above half: still behind"},
+			{3, 50, 0, true, "within half: the hold starts"},
+			{4.9, 10, 0, true, "within half for 1.9 s"},
+			{5, 0, 0, false, "within half for 2 s: ready"},
+		}},
+		{"seconds over, flapping near the bound", []step{
+			{0, 0, 4.5, true, "over the lag bound"},
+			{1, 0, 1, true, "within half"},
+			{2, 0, 3, true, "above half: the hold starts again"},
+			{3, 0, 1.5, true, "within half again"},
+			{4.5, 0, 1.5, true, "1.5 s only"},
+			{5, 0, 0, false, "2 s"},
+			{6, 0, 3.9, false, "above half but within the bound: stays ready"},
+		}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			l := &Log{cfg: cfg, log: slog.New(slog.NewTextHandler(io.Discard, nil))}
+			l.caughtUp.Store(true)
+			for _, s := range tc.steps {
+				l.behind.Store(s.msgs)
+				l.lagNS.Store(int64(s.lagS * 1e9))
+				l.judgeLag(t0.Add(time.Duration(s.atS * 1e9)))
+				if l.tooFar.Load() != s.tooFar {
+					t.Errorf("at %g s (%d messages, %g s): too far %v, want %v (%s)", s.atS, s.msgs, s.lagS, l.tooFar.Load(), s.tooFar, s.comment)
+				}
+			}
+		})
+	}
+}
+
+// TestReadinessFollowsLag runs two replicas in this process on a real
+// nats-server; the first stops applying the log (its consumer paused:
+// a replica starved or stuck) while the second takes telemetry. The
+// first turns not ready, saying it is behind, its lag metric grows,
+// and it is ready again once it has caught up; the second stays ready.
+func TestReadinessFollowsLag(t *testing.T) {
+	if testing.Short() {
+		t.Skip("starts nats-server")
+	}
+	dir := t.TempDir()
+	url := testenv.StartNATS(t, dir)
+	log := slog.New(slog.NewTextHandler(io.Discard, nil))
+
+	type replica struct {
+		log  *Log
+		srv  *server.Server
+		done chan error
+	}
+	ctx, cancel := context.WithCancel(context.Background())
+	defer cancel()
+	start := func(name string) *replica {
+		dl := openLog(t, Config{URLs: []string{url}, CheckpointPath: filepath.Join(dir, name+".json"),
+			MaxLag: time.Second, LagHold: 500 * time.Millisecond, Logger: log})
+		srv, err := server.New(server.Config{FleetPath: "../../deploy/examples/fleet.yaml", GRPCListen: "127.0.0.1:0",
+			HTTPListen: "127.0.0.1:0", Logger: log, Log: dl})
+		if err != nil {
+			t.Fatal(err)
+		}
+		r := &replica{log: dl, srv: srv, done: make(chan error, 1)}
+		go func() { r.done <- srv.Run(ctx) }()
+		return r
+	}
+	a, b := start("a"), start("b")
+	readyz := func(r *replica) (int, string) {
+		resp, err := http.Get("http://" + r.srv.HTTPAddr() + "/readyz")
+		if err != nil {
+			return 0, err.Error()
+		}
+		defer resp.Body.Close()
+		body, _ := io.ReadAll(resp.Body)
+		return resp.StatusCode, string(body)
+	}
+	waitReady := func(r *replica) {
+		t.Helper()
+		deadline := time.Now().Add(testenv.WaitLong)
+		for {
+			if code, _ := readyz(r); code == http.StatusOK {
+				return
+			}
+			if time.Now().After(deadline) {
+				_, why := readyz(r)
+				t.Fatalf("not ready: %s", why)
+			}
+			time.Sleep(20 * time.Millisecond)
+		}
+	}
+	waitReady(a)
+	waitReady(b)
+
+	conn, err := grpc.NewClient(b.srv.GRPCAddr(), grpc.WithTransportCredentials(insecure.NewCredentials()))
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer conn.Close()
+	tel := pb.NewTelemetryServiceClient(conn)
+	base := time.Now().Add(-10 * time.Minute).Truncate(time.Second)
+	k := 0
+	push := func() {
+		t.Helper()
+		pctx, pcancel := context.WithTimeout(ctx, testenv.WaitLong)
+		defer pcancel()
+		var req pb.PushRequest
+		for range 5 {
+			req.Samples = append(req.Samples, &pb.Sample{UnitId: "larchwater-2", Time: timestamppb.New(base.Add(time.Duration(k) * time.Second)),
+				PMw: 80, QMvar: 20, VKv: 13.8})
+			k++
+		}
+		if resp, err := tel.Push(pctx, &req); err != nil || resp.Accepted != 5 {
+			t.Fatalf("push through the second replica: %v, %v", resp, err)
+		}
+	}
+	push()
+
+	a.log.pauseApply()
+	sawBehind, maxLagS := "", 0.0
+	deadline := time.Now().Add(testenv.WaitLong)
+	for sawBehind == "" {
+		push() // the second replica applies its own traffic: it stays ready
+		if code, why := readyz(b); code != http.StatusOK {
+			t.Fatalf("the replica taking traffic is not ready: %s", why)
+		}
+		if code, why := readyz(a); code == http.StatusServiceUnavailable && strings.Contains(why, "behind the log") {
+			sawBehind = why
+		}
+		maxLagS = max(maxLagS, float64(a.log.lagNS.Load())/1e9)
+		if time.Now().After(deadline) {
+			t.Fatal("the paused replica never said it was behind the log")
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
+	t.Logf("paused replica: %s", strings.TrimSpace(sawBehind))
+	if maxLagS <= 1 {
+		t.Errorf("lag %g s when not ready for being behind; want above the 1 s bound", maxLagS)
+	}
+	if a.log.tooFarGa == nil || !a.log.tooFar.Load() {
+		t.Error("genvelope_log_behind is not 1")
+	}
+
+	a.log.resumeApply()
+	waitReady(a)
+	if a.log.Applied() < b.log.Applied()-1 || a.log.lagNS.Load() != 0 {
+		t.Errorf("ready again at sequence %d (the other at %d), lag %d ns", a.log.Applied(), b.log.Applied(), a.log.lagNS.Load())
+	}
+	cancel()
+	for _, r := range []*replica{a, b} {
+		if err := <-r.done; err != nil {
+			t.Fatal(err)
+		}
+	}
+}
