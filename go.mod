@@ -7,6 +7,7 @@ require (
 	github.com/chromedp/chromedp v0.23.1
 	github.com/klauspost/compress v1.20.1
 	github.com/nats-io/nats.go v1.55.0
+	github.com/planetscale/vtprotobuf v0.6.1-0.20240319094008-0393e58bdf10
 	github.com/prometheus/client_golang v1.25.0
 	github.com/prometheus/client_model v0.6.3
 	github.com/prometheus/common v0.72.0

@@ -52,6 +52,13 @@ func (u *Unit) quantity(k alarm.Kind) float64 {
 // has reached since the latest sample, with the same quantities, so that
 // on- and off-delays and the thermal alarms go on while telemetry
 // pauses. u.mu must be held.
+//
+// An alarm at rest whose quantity stays on the quiet side of its warning
+// threshold is not stepped: its step would change nothing (Machine.Quiet).
+// The per-sample path decides that from u.rest, a copy kept beside the
+// unit's hot state, without touching the machine or its setting, which
+// lie in colder memory; TestRestSkipsOnlyQuietSteps holds it to the
+// machines stepped at every sample.
 func (u *Unit) stepAlarms(t int64, s *Store, sweep bool) {
 	for k := alarm.Kind(0); k < alarm.NumKinds; k++ {
 		x := u.quantity(k)
@@ -61,16 +68,65 @@ func (u *Unit) stepAlarms(t int64, s *Store, sweep bool) {
 			}
 			x = 0 // a sample just arrived
 		}
-		set := &u.cfg.Alarms[k]
-		m := &u.alarms[k]
-		if m.Quiet(x, set, alarm.Rising(k)) {
+		if u.rest.quiet(k, x) {
 			continue
 		}
-		if prev, changed := m.Step(t, x, set, alarm.Rising(k)); changed {
-			s.publishLevel(u, k, prev, time.Unix(0, t), x, 0)
+		set := &u.cfg.Alarms[k]
+		m := &u.alarms[k]
+		if !m.Quiet(x, set, alarm.Rising(k)) {
+			if prev, changed := m.Step(t, x, set, alarm.Rising(k)); changed {
+				s.publishLevel(u, k, prev, time.Unix(0, t), x, 0)
+			}
 		}
+		u.rest.note(k, m, set)
 	}
 }
+
+// restCache says which of a unit's alarms are at rest (normal, no level
+// rising) and up to where their quantity leaves them so: the warning
+// threshold, or for a disabled alarm anything. A kind whose bit is clear
+// is stepped in full; the zero value, everything stepped, is always
+// right, so whatever changes a machine or a setting other than
+// stepAlarms clears the cache (forget).
+type restCache struct {
+	bits  uint16 // bit k: kind k is at rest and bound[k] holds
+	bound [alarm.NumKinds]float64
+}
+
+// quiet reports whether a step of kind k with quantity x may be left
+// out: the kind is at rest and x is strictly on the quiet side of its
+// bound, or NaN (nothing to compare: a step holds the level and changes
+// nothing, and a disabled alarm at rest is not stepped at all).
+func (r *restCache) quiet(k alarm.Kind, x float64) bool {
+	if r.bits&(1<<k) == 0 {
+		return false
+	}
+	if alarm.Rising(k) {
+		return !(x >= r.bound[k])
+	}
+	return !(x <= r.bound[k])
+}
+
+// note records whether machine m of kind k, with setting set, is at
+// rest after its step.
+func (r *restCache) note(k alarm.Kind, m *alarm.Machine, set *alarm.Setting) {
+	if m.Level != alarm.Normal || m.Raising[0] || m.Raising[1] {
+		r.bits &^= 1 << k
+		return
+	}
+	b := set.Warning
+	if set.Disabled {
+		b = math.Inf(1) // Quiet is true for any quantity
+		if !alarm.Rising(k) {
+			b = math.Inf(-1)
+		}
+	}
+	r.bits |= 1 << k
+	r.bound[k] = b
+}
+
+// forget empties the cache: every kind is stepped at the next sample.
+func (r *restCache) forget() { r.bits = 0 }
 
 // publishLevel reports a level change of kind k. u.mu must be held.
 func (s *Store) publishLevel(u *Unit, k alarm.Kind, prev alarm.Level, at time.Time, x, ageS float64) {
@@ -244,6 +300,7 @@ func (s *Store) Sweep(now time.Time) {
 		if prev, changed := m.Step(t, age, staleSet, true); changed {
 			s.publishLevel(u, alarm.StaleTelemetry, prev, now, age, age)
 		}
+		u.rest.forget()
 		if u.has {
 			staleS := staleSet.Warning
 			if !(staleS > 0) {

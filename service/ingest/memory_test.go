@@ -10,9 +10,10 @@ import (
 // heap: idle (configured, never reported), and after a full pass (a
 // sample each, then the whole duplicate window). The fleet's own part
 // (the parsed configuration, the engine's tables) is not counted here.
-// The bounds are the Go allocator's size classes the layout is made to
-// fit: 2,688 bytes for the Unit, then 2,048 for the duplicate window and
-// 2,304 for the trend ring with the first sample.
+// The bounds are the Go allocator's size classes the layout falls in:
+// 3,072 bytes for the Unit (2,704 with the alarms' rest cache), then
+// 2,048 for the duplicate window and 2,304 for the trend ring with the
+// first sample.
 func TestMemoryPerUnit(t *testing.T) {
 	const units = 2000
 	fl := cloneFleet(t, units)
@@ -34,7 +35,7 @@ func TestMemoryPerUnit(t *testing.T) {
 	full := float64(heap()-before) / units
 	runtime.KeepAlive(s)
 	t.Logf("ingest state per unit: %.0f bytes idle, %.0f bytes after a full pass", idle, full)
-	if idle > 3000 || full > 7500 {
-		t.Errorf("%.0f bytes a unit idle, %.0f after a full pass; want at most 3,000 and 7,500", idle, full)
+	if idle > 3500 || full > 8000 {
+		t.Errorf("%.0f bytes a unit idle, %.0f after a full pass; want at most 3,500 and 8,000", idle, full)
 	}
 }

@@ -239,6 +239,7 @@ func (s *Store) RestoreUnit(id string, us *UnitSnapshot) (known bool, err error)
 			u.alarms[k] = m
 		}
 	}
+	u.rest.forget()
 	return true, nil
 }
 

@@ -226,6 +226,60 @@ type entry struct {
 	u     *Unit
 	cfg   *fleet.Unit
 	plaus *fleet.Plausibility // cfg's, with the defaults filled in
+	lim   sampleBounds        // what a good sample of the unit stays within, from cfg and plaus
+}
+
+// sampleBounds are the ranges checkValues holds a sample to, worked
+// out once per unit per fleet snapshot from the rating and the
+// plausibility, so that the per-sample path reads these few numbers
+// beside the unit (in the stream's Resolver) and not the unit's
+// configuration. Each is computed by the same expression as in
+// checkValues and checkPlausible, which give the reason when one fails.
+type sampleBounds struct {
+	vLo, vHi   float64 // kV
+	sMax       float64 // |P| and |Q|, MW and Mvar
+	fieldMax   float64 // A
+	fLo, fHi   float64 // Hz
+	mva, kv    float64 // the rating
+	currentMax float64 // armature current, pu of rated
+}
+
+func newSampleBounds(cfg *fleet.Unit, p *fleet.Plausibility) sampleBounds {
+	r := &cfg.Rating
+	if cfg.Model == nil { // not from a fleet without errors: every sample goes to checkValues
+		return sampleBounds{vLo: math.NaN()}
+	}
+	return sampleBounds{
+		vLo: p.VoltageMinPU * r.KV, vHi: p.VoltageMaxPU * r.KV,
+		sMax:     p.PowerMaxPU * r.MVA,
+		fieldMax: p.FieldMaxPU * cfg.Model.RatedFieldCurrent() * cfg.Field.AirGapA,
+		fLo:      0.5 * r.FrequencyHz, fHi: 1.5 * r.FrequencyHz,
+		mva: r.MVA, kv: r.KV, currentMax: p.CurrentMaxPU,
+	}
+}
+
+// within reports whether checkValues accepts smp: the same comparisons
+// on the same numbers, NaN and infinities failing them. When it says
+// no, checkValues finds the reason.
+func (b *sampleBounds) within(smp *Sample) bool {
+	finite := func(x float64) bool { return x-x == 0 }
+	if !(finite(smp.PMW) && finite(smp.QMvar) && finite(smp.VKV)) {
+		return false
+	}
+	if smp.HasFieldA && !(finite(smp.FieldA) && smp.FieldA >= 0 && !(smp.FieldA > b.fieldMax)) {
+		return false
+	}
+	if smp.HasFreq && !(finite(smp.FrequencyHz) && smp.FrequencyHz >= b.fLo && smp.FrequencyHz <= b.fHi) {
+		return false
+	}
+	if smp.HasCoolant && !finite(smp.Coolant) {
+		return false
+	}
+	if !(smp.VKV > 0 && smp.VKV >= b.vLo && smp.VKV <= b.vHi) || math.Abs(smp.PMW) > b.sMax || math.Abs(smp.QMvar) > b.sMax {
+		return false
+	}
+	iPU := math.Sqrt(smp.PMW*smp.PMW+smp.QMvar*smp.QMvar) / b.mva / (smp.VKV / b.kv)
+	return !(iPU > b.currentMax)
 }
 
 type snapshot struct {
@@ -273,7 +327,7 @@ func newSnapshot(fl *fleet.Fleet, old *snapshot, removed map[string]removedUnit)
 		} else {
 			u = &Unit{cfg: cfg, plaus: plaus}
 		}
-		sn.byID[cfg.ID] = entry{u, cfg, &plaus}
+		sn.byID[cfg.ID] = entry{u, cfg, &plaus, newSampleBounds(cfg, &plaus)}
 		sn.units = append(sn.units, u)
 	}
 	return sn
@@ -336,6 +390,7 @@ func (s *Store) ReplaceAt(fl *fleet.Fleet, now time.Time) {
 func (s *Store) endAlarms(u *Unit, now time.Time) {
 	u.mu.Lock()
 	defer u.mu.Unlock()
+	u.rest.forget()
 	for k := range u.alarms {
 		m := &u.alarms[k]
 		if m.Level == alarm.Normal && m.ShelvedUntil == 0 {
@@ -393,7 +448,13 @@ func (s *Store) Commit(t *Tally) {
 // server clock, used only for the "too far in the future" check. For a
 // rejected sample, detail says what was wrong in words for the sender.
 func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
-	u, res, detail := s.precheck(now, smp)
+	return s.AcceptFrom(nil, now, smp)
+}
+
+// AcceptFrom is Accept with the unit found through r, the resolver of
+// the stream the sample came on (nil: the fleet's map).
+func (s *Store) AcceptFrom(r *Resolver, now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(r, now, smp)
 	if res != Accepted {
 		return res, detail
 	}
@@ -404,25 +465,31 @@ func (s *Store) Accept(now time.Time, smp *Sample) (res Result, detail string) {
 // anything: a replicated service checks a sample before it writes it to
 // its log, and applies it with Accept when it reads it back.
 func (s *Store) Check(now time.Time, smp *Sample) (res Result, detail string) {
-	u, res, detail := s.precheck(now, smp)
+	u, res, detail := s.precheck(nil, now, smp)
 	if res != Accepted {
 		return res, detail
 	}
 	return u.order(smp.Time.UnixNano(), smp)
 }
 
-// precheck runs the checks of a sample that need no unit state.
-func (s *Store) precheck(now time.Time, smp *Sample) (*Unit, Result, string) {
+// precheck runs the checks of a sample that need no unit state. It
+// finds the unit through r, or the fleet's map when r is nil.
+func (s *Store) precheck(r *Resolver, now time.Time, smp *Sample) (*Unit, Result, string) {
 	sn := s.snap.Load()
-	e, ok := sn.byID[smp.UnitID]
-	if !ok {
+	var e *entry
+	if r != nil {
+		e = r.resolve(sn, smp.UnitID)
+	} else if v, ok := sn.byID[smp.UnitID]; ok {
+		e = &v
+	}
+	if e == nil {
 		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
 	}
-	r, d := s.checkSample(e, now, smp)
-	return e.u, r, d
+	res, d := s.checkSample(e, now, smp)
+	return e.u, res, d
 }
 
-func (s *Store) checkSample(e entry, now time.Time, smp *Sample) (Result, string) {
+func (s *Store) checkSample(e *entry, now time.Time, smp *Sample) (Result, string) {
 	if smp.Time.IsZero() {
 		return RejectMissingTime, "the sample has no time"
 	}
@@ -444,6 +511,9 @@ func (s *Store) checkSample(e entry, now time.Time, smp *Sample) (Result, string
 	}
 	if smp.Quality == QualityInvalid {
 		return RejectInvalidQuality, "the sample's quality is INVALID"
+	}
+	if e.lim.within(smp) {
+		return Accepted, "" // what checkValues would say, without reading the configuration
 	}
 	return checkValues(e.cfg, e.plaus, smp)
 }
@@ -562,26 +632,30 @@ func notFiniteDetail(smp *Sample) string {
 // rejections. At one sample a second it covers a little over four minutes.
 const ringSize = 256
 
-// Unit is the live state of one unit.
+// Unit is the live state of one unit. The fields a sample reads and
+// writes come first, together, then the large arrays of which a sample
+// touches one entry (the timestamps, the heating, the trend) and what
+// only readers and alarm changes use: a sample's work then spans few
+// cache lines of the unit, which matters when the fleet's state does
+// not fit in cache.
 type Unit struct {
 	mu sync.Mutex
 
 	cfg    *fleet.Unit
-	plaus  fleet.Plausibility // cfg's, with the defaults filled in
-	hint   limits.Hint
 	has    bool          // a sample has been accepted
+	stale  bool          // no sample for the stale-telemetry threshold (set by Sweep)
+	rest   restCache     // which alarms are at rest, for the per-sample path (alarms.go)
 	latest Sample        // the latest accepted sample
 	eval   limits.Result // its evaluation (see complete)
 	pt     limits.Point  // its operating point, per unit
 	recvNS int64         // server time it was accepted, Unix ns
 	lastNS int64         // its time, Unix ns
-	stale  bool          // no sample for the stale-telemetry threshold (set by Sweep)
+	hint   limits.Hint
 
 	// Accepted timestamps, Unix ns, increasing; ring[(head-1) mod
-	// ringSize] is the latest, n of them are valid. Allocated with the
-	// first sample: a configured unit that never reports costs 2 KiB
-	// less (see "Memory per unit" in DEVELOPERS.md).
-	ring *[ringSize]int64
+	// ringSize] is the latest, n of them are valid. The array is
+	// allocated with the first sample: a configured unit that never
+	// reports costs 2 KiB less (see "Fleet scale" in DEVELOPERS.md).
 	head int
 	n    int
 
@@ -594,14 +668,16 @@ type Unit struct {
 	thermNS      int64 // sample time up to which the accumulators have advanced, Unix ns
 	suspect      bool  // the latest sample is suspect (after a gap, or a jump)
 	suspects     uint64
-	heat         [heatSize]heatStep // the heating each recent sample held
 	accepted     uint64
 
-	alarms [alarm.NumKinds]alarm.Machine
-	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
+	lim   limiterState       // the OEL and SCL timers (limiters.go)
+	plaus fleet.Plausibility // cfg's, with the defaults filled in
 
-	trend trend        // headroom and nearest margin over the last hours (trend.go)
-	lim   limiterState // the OEL and SCL timers (limiters.go)
+	alarms [alarm.NumKinds]alarm.Machine
+	ring   *[ringSize]int64       // see head
+	heat   [heatSize]heatStep     // the heating each recent sample held
+	trend  trend                  // headroom and nearest margin over the last hours (trend.go)
+	raised [alarm.NumKinds]string // the sentence of what raised each active alarm
 }
 
 // heatSize is how many recent samples' heating a unit remembers, so
@@ -797,6 +873,7 @@ func (u *Unit) reconfigure(cfg *fleet.Unit, plaus fleet.Plausibility) {
 	defer u.mu.Unlock()
 	u.cfg, u.plaus = cfg, plaus
 	u.hint = limits.Hint{}
+	u.rest.forget() // new settings
 	if u.has {
 		u.evaluate()
 	}

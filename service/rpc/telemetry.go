@@ -84,7 +84,7 @@ func NewTelemetry(store *ingest.Store, o TelemetryOptions) *Telemetry {
 
 // Push takes one batch.
 func (t *Telemetry) Push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
-	return t.push(ctx, req)
+	return t.push(ctx, req, nil)
 }
 
 // Stream takes batches and answers each, in order.
@@ -92,12 +92,21 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	ctx := st.Context()
 	reqs := make(chan *pb.PushRequest)
 	errc := make(chan error, 1)
+	// Requests answered in process come back here to be decoded into
+	// again: with the service's Codec a batch reuses the samples of an
+	// earlier one instead of allocating its own.
+	free := make(chan *pb.PushRequest, 2)
 	// Receive on a goroutine of its own so that a drain can end the
 	// stream while the client is idle; it ends when the stream does.
 	go func() {
 		for {
-			req, err := st.Recv()
-			if err != nil {
+			var req *pb.PushRequest
+			select {
+			case req = <-free:
+			default:
+				req = new(pb.PushRequest)
+			}
+			if err := st.RecvMsg(req); err != nil {
 				errc <- err
 				return
 			}
@@ -111,10 +120,15 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	if t.log != nil {
 		return t.streamLog(st, reqs, errc)
 	}
+	var units ingest.Resolver // this stream's units, each resolved once
 	answer := func(req *pb.PushRequest) error {
-		resp, err := t.push(ctx, req)
+		resp, err := t.push(ctx, req, &units)
 		if err != nil {
 			return err
+		}
+		select {
+		case free <- req: // push kept nothing of it
+		default:
 		}
 		return st.Send(resp)
 	}
@@ -145,7 +159,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	}
 }
 
-func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResponse, error) {
+// push takes one batch; units, when not nil, is the resolver of the
+// stream it came on.
+func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest, units *ingest.Resolver) (*pb.PushResponse, error) {
 	if err := t.checkSize(req); err != nil {
 		return nil, err
 	}
@@ -161,7 +177,7 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest) (*pb.PushResp
 		var smp ingest.Sample // stays on the stack: Accept is called directly
 		res, detail := t.convert(caller, s, &smp)
 		if res == ingest.Accepted {
-			res, detail = t.store.Accept(now, &smp)
+			res, detail = t.store.AcceptFrom(units, now, &smp)
 		}
 		tally[res]++
 		d.note(res, s.UnitId)

@@ -12,6 +12,7 @@ import (
 	"google.golang.org/protobuf/types/known/timestamppb"
 
 	pb "github.com/genvelope/genvelope/api/genvelope/v1"
+	"github.com/genvelope/genvelope/service/fleet"
 )
 
 // TestMain lets the test binary be the bare sink too: the harness runs
@@ -26,7 +27,7 @@ func TestMain(m *testing.M) {
 // TestEncoder checks the hand-made request encoding against the
 // generated code's, sample by sample.
 func TestEncoder(t *testing.T) {
-	fi, err := writeFleet(t.TempDir(), 7)
+	fi, err := writeFleet(t.TempDir(), 7, 0)
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -79,25 +80,50 @@ func TestEncoder(t *testing.T) {
 	}
 }
 
-// TestHarness runs the whole harness with tiny numbers: it must finish,
-// every answer must add up and nothing may be rejected. It makes no
-// claim about speed.
+// TestFleetWithRegulators: the generated fleet with regulators parses
+// without errors, has the share asked for on the avr basis, and every
+// design and template combination has stable operation at rated power
+// (the fleet reader warns where it has not).
+func TestFleetWithRegulators(t *testing.T) {
+	const n = 24 // every template with every design, twice
+	fi, err := writeFleet(t.TempDir(), n, 0.75)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if fi.AVR != 18 {
+		t.Errorf("%d of %d units on the avr basis, want 18", fi.AVR, n)
+	}
+	_, ds, err := fleet.Load(fi.Path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if ds.Count(fleet.Warning) > 0 {
+		t.Errorf("warnings:\n%s", ds)
+	}
+}
+
+// TestHarness runs the whole harness in its short mode, the one CI
+// runs: a few seconds at small scale, two runs (so that medians are
+// taken), a fleet with some regulators. It must finish, every answer
+// must add up, nothing may be rejected, and the report must carry the
+// figures and weigh the targets. It makes no claim about speed.
 func TestHarness(t *testing.T) {
 	if testing.Short() {
 		t.Skip("builds genvelope and runs it for a few seconds")
 	}
 	cfg := defaultConfig()
-	cfg.Units, cfg.Streams, cfg.Window, cfg.Batch = 50, 1, 2, 40
-	cfg.Warmup, cfg.Duration = 500*time.Millisecond, 1500*time.Millisecond
+	cfg.Units, cfg.Streams, cfg.Window, cfg.Batch = 50, 2, 2, 40
+	cfg.AVR, cfg.Repeat = 0.2, 2
+	cfg.Warmup, cfg.Duration = 300*time.Millisecond, time.Second
 	cfg.MetricsTries = 1
 	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 	defer cancel()
 	log := slog.New(slog.NewTextHandler(t.Output(), nil))
 	rep, err := run(ctx, log, cfg)
+	var table bytes.Buffer
 	if rep != nil {
-		var b bytes.Buffer
-		rep.writeTable(&b)
-		t.Log(b.String())
+		rep.writeTable(&table)
+		t.Log(table.String())
 	}
 	if err != nil {
 		t.Fatal(err)
@@ -105,12 +131,39 @@ func TestHarness(t *testing.T) {
 	if !rep.Checks.OK {
 		t.Fatalf("checks failed: %q", rep.Checks.Problems)
 	}
-	if len(rep.Runs) != 1 || rep.Runs[0].Bare == nil || rep.Runs[0].Full == nil {
+	if len(rep.Runs) != 2 {
 		t.Fatalf("runs: %+v", rep.Runs)
 	}
-	for _, p := range []*phaseResult{rep.Runs[0].Bare, rep.Runs[0].Full} {
-		if p.Batches == 0 || p.TotalSent == 0 || p.TotalAccepted != p.TotalSent || len(p.Rejected) != 0 || p.Mismatches != 0 || p.SeqErrors != 0 {
-			t.Errorf("%s: %+v", p.Server, p)
+	if rep.Fleet.AVR != 10 {
+		t.Errorf("%d units on the avr basis, want 10", rep.Fleet.AVR)
+	}
+	for _, rr := range rep.Runs {
+		if rr.Bare == nil || rr.Full == nil {
+			t.Fatalf("run %d: %+v", rr.Run, rr)
+		}
+		for _, p := range []*phaseResult{rr.Bare, rr.Full} {
+			if p.Batches == 0 || p.TotalSent == 0 || p.TotalAccepted != p.TotalSent || len(p.Rejected) != 0 || p.Mismatches != 0 || p.SeqErrors != 0 {
+				t.Errorf("run %d %s: %+v", rr.Run, p.Server, p)
+			}
+		}
+	}
+	// The figures and the targets, as the lead reads them.
+	s := rep.Summary
+	if s == nil || s.Ratio == nil || s.FullCPUUS == nil || s.BareCPUUS == nil || !(s.FullCPUUS.Median > 0) {
+		t.Fatalf("summary: %+v", s)
+	}
+	weighed := map[string]string{}
+	for _, tg := range rep.Targets {
+		weighed[tg.Name] = tg.Status
+	}
+	for _, name := range []string{"full/bare samples/s (median of 2)", "service ack latency p99, ms (median)", "service VmRSS after a full pass, MiB", "service VmHWM, MiB"} {
+		if st, ok := weighed[name]; !ok || st == "" {
+			t.Errorf("target %q not weighed: %v", name, weighed)
+		}
+	}
+	for _, want := range []string{"targets:", ">= 0.8", "medians of 2 runs", "µs of server CPU a sample"} {
+		if !bytes.Contains(table.Bytes(), []byte(want)) {
+			t.Errorf("the table lacks %q", want)
 		}
 	}
 	sv := rep.Service

@@ -76,6 +76,7 @@ import (
 // config is what one run does.
 type config struct {
 	Units    int           `json:"units"`
+	AVR      float64       `json:"avr_share"` // share of units with a regulator, on the avr basis
 	Streams  int           `json:"streams"`
 	Window   int           `json:"window"`
 	Batch    int           `json:"batch"`
@@ -124,6 +125,9 @@ func (c *config) check() error {
 	var errs []error
 	if c.Units < 1 {
 		errs = append(errs, errors.New("-units must be at least 1"))
+	}
+	if !(c.AVR >= 0 && c.AVR <= 1) {
+		errs = append(errs, errors.New("-avr must be between 0 and 1"))
 	}
 	if c.Streams < 1 || c.Streams > c.Units {
 		errs = append(errs, fmt.Errorf("-streams must be between 1 and -units (%d): each stream sends units of its own", c.Units))
@@ -175,6 +179,7 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 		fs.PrintDefaults()
 	}
 	fs.IntVar(&cfg.Units, "units", cfg.Units, "units in the synthetic fleet")
+	fs.Float64Var(&cfg.AVR, "avr", cfg.AVR, "share (0 to 1) of the units given an invented voltage regulator (four designs), so evaluated on the avr stability basis; the rest on the manual basis")
 	fs.IntVar(&cfg.Streams, "streams", cfg.Streams, "concurrent client streams (one connection each)")
 	fs.IntVar(&cfg.Window, "window", cfg.Window, "batches in flight per stream")
 	fs.IntVar(&cfg.Batch, "batch", cfg.Batch, "samples per batch")
@@ -292,12 +297,12 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 	}
 	rep := newReport(cfg)
 
-	fi, err := writeFleet(dir, cfg.Units)
+	fi, err := writeFleet(dir, cfg.Units, cfg.AVR)
 	if err != nil {
 		return nil, err
 	}
 	rep.Fleet = fi
-	log.Info("synthetic fleet", "units", fi.Units, "sites", fi.Sites, "bytes", fi.Bytes, "parse", fi.parse.Round(time.Millisecond))
+	log.Info("synthetic fleet", "units", fi.Units, "avr_basis", fi.AVR, "sites", fi.Sites, "bytes", fi.Bytes, "parse", fi.parse.Round(time.Millisecond))
 
 	enc := encodeUnits(fi.Fleet, cfg.Seed)
 	base := time.Now().Add(-3 * 24 * time.Hour).Truncate(time.Second).Unix() // within the service's 7-day horizon
