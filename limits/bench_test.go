@@ -124,7 +124,21 @@ func BenchmarkEvaluateTrackingAVR(b *testing.B) { benchmarkTracking(b, benchAVR(
 // BenchmarkNewAVR is the cost of preparing one avr unit (its table);
 // a 10,000-unit fleet pays it 10,000 times at load.
 func BenchmarkNewAVR(b *testing.B) {
-	p := benchAVR(b).Params()
+	u := benchAVR(b)
+	p := u.Params()
+	b.ReportAllocs()
+	for range b.N {
+		if _, err := New(p); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ReportMetric(float64(u.TableBytes()), "table-B")
+}
+
+// BenchmarkNewManual is New on the manual basis (no table), for
+// comparison.
+func BenchmarkNewManual(b *testing.B) {
+	p := benchRound(b).Params()
 	b.ReportAllocs()
 	for range b.N {
 		if _, err := New(p); err != nil {

@@ -127,7 +127,10 @@ type Unit struct {
 // reported: the error is a *ParamError naming the parameter in the fleet
 // file's spelling, or several joined with errors.Join (see ParamErrors).
 // The Unit keeps copies of the curves and tables it is given.
-func New(p Params) (*Unit, error) {
+func New(p Params) (*Unit, error) { return newUnit(p, nil) }
+
+// newUnit is New, with the avr table shared through ts (see NewShared).
+func newUnit(p Params, ts *Tables) (*Unit, error) {
 	var errs []error
 	bad := func(field, format string, args ...any) {
 		errs = append(errs, &ParamError{Field: field, Reason: fmt.Sprintf(format, args...)})
@@ -265,7 +268,7 @@ func New(p Params) (*Unit, error) {
 		u.p.UEL = &cc
 	}
 	// The exciter and stabilizer are copied by prepareAVR.
-	if err := u.prepareAVR(); err != nil {
+	if err := u.prepareAVR(ts); err != nil {
 		return nil, err
 	}
 	u.ifdModel = u.FieldCurrent(p.PowerFactor, math.Sqrt(1-p.PowerFactor*p.PowerFactor), 1)
@@ -418,8 +421,9 @@ func (p *Params) DefaultBasis() Basis {
 
 // prepareAVR checks the avr basis' parameters and, on that basis, builds
 // the per-sample table of the stability limit (stabTable), copying the
-// exciter and stabilizer so that the caller's may change.
-func (u *Unit) prepareAVR() error {
+// exciter and stabilizer so that the caller's may change. The table
+// comes from ts when a unit of the same table parameters built it.
+func (u *Unit) prepareAVR(ts *Tables) error {
 	if err := checkAVR(&u.p); err != nil {
 		return err
 	}
@@ -435,7 +439,7 @@ func (u *Unit) prepareAVR() error {
 		return nil
 	}
 	u.avrChar = u.charParts()
-	t, err := u.buildStabTable()
+	t, err := ts.table(u, u.buildStabTable)
 	if err != nil {
 		return &ParamError{Field: "stability.basis", Reason: "the small-signal model could not be solved while preparing the unit: " + err.Error()}
 	}

@@ -76,7 +76,10 @@ func (u *Unit) HeffronPhillips(p, q, v float64) HeffronPhillips {
 // only withDelta.
 func (u *Unit) heffronPhillips(p, q, v float64, withDelta bool) HeffronPhillips {
 	xd, xq, x1, xe := u.p.Xd, u.p.Xq, u.p.XdTransient, u.p.Xe
-	iR, iI := p/v, -q/v
+	// Reciprocals once, products after: a test of the table's build costs
+	// one of these, and a division costs several multiplications.
+	invV := 1 / v
+	iR, iI := p*invV, -q*invV
 	eqR, eqI := v-xq*iI, xq*iR  // E_Q = V + jXq I
 	vsR, vsI := v+xe*iI, -xe*iR // V_s = V - jXe I
 	n := math.Sqrt(eqR*eqR + eqI*eqI)
@@ -86,24 +89,26 @@ func (u *Unit) heffronPhillips(p, q, v float64, withDelta bool) HeffronPhillips 
 		k.Degener = true
 		return k
 	}
-	c, s := eqR/n, eqI/n // e^(j theta)
+	invN, invEB := 1/n, 1/k.EB
+	c, s := eqR*invN, eqI*invN // e^(j theta)
 	// X e^(-j theta) = (xR c + xI s) + j (xI c - xR s).
 	k.Eq, k.Ed = v*c, v*s
 	k.Iq, k.Id = iR*c+iI*s, -(iI*c - iR*s)
-	usR, usI := vsR/k.EB, vsI/k.EB
+	usR, usI := vsR*invEB, vsI*invEB
 	cosD, sinD := c*usR+s*usI, s*usR-c*usI // e^(j delta) = e^(j theta) conj(u_s)
 	if withDelta {
 		k.Delta = math.Atan2(sinD, cosD)
 	}
 	k.Eq1 = k.Eq + x1*k.Id
 	k.Efd = k.Eq + xd*k.Id
-	eb := k.EB
-	k.K1 = eb*cosD*(k.Eq1+(xq-x1)*k.Id)/(xq+xe) + (xq-x1)*k.Iq*eb*sinD/(x1+xe)
-	k.K2 = eb * sinD / (x1 + xe)
+	rq, r1 := 1/(xq+xe), 1/(x1+xe)
+	ebC, ebS := k.EB*cosD, k.EB*sinD
+	k.K1 = ebC*(k.Eq1+(xq-x1)*k.Id)*rq + (xq-x1)*k.Iq*ebS*r1
+	k.K2 = ebS * r1
 	k.K3 = (x1 + xe) / (xd + xe)
-	k.K4 = (xd - x1) * eb * sinD / (x1 + xe)
-	k.K5 = (k.Ed/v)*xq*eb*cosD/(xq+xe) - (k.Eq/v)*x1*eb*sinD/(x1+xe)
-	k.K6 = (k.Eq / v) * xe / (x1 + xe)
+	k.K4 = (xd - x1) * ebS * r1
+	k.K5 = k.Ed*invV*xq*ebC*rq - k.Eq*invV*x1*ebS*r1
+	k.K6 = k.Eq * invV * xe * r1
 	return k
 }
 

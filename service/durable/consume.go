@@ -336,20 +336,24 @@ func (l *Log) applyMsg(msg jetstream.Msg, meta *jetstream.MsgMetadata) error {
 		if err != nil || p < 0 || p >= l.cfg.Partitions {
 			return fmt.Errorf("subject %s names no partition of 0-%d", subj, l.cfg.Partitions-1)
 		}
-		if format != formatSamples {
+		if format != formatSamples && format != formatSamples1 {
 			return fmt.Errorf("%s %q is not %q", formatHeader, format, formatSamples)
 		}
 		if !l.serves[p] {
 			return errOtherPartition
 		}
-		l.buf, err = decodeSamples(msg.Data(), l.buf, l.internID)
+		smps, err := l.dec.decode(format, msg.Data())
 		if err != nil {
 			return err
 		}
-		if w != nil && len(w.results) != len(l.buf) {
+		if w != nil && len(w.results) != len(smps) {
 			w = nil // not ours after all
 		}
-		l.applySamples(meta.Timestamp, w)
+		l.applySamples(meta.Timestamp, smps, w)
+		if w != nil {
+			// Its batches hold the waiter; the writer registered it.
+			l.forget([]string{msg.Headers().Get(idHeader)})
+		}
 		return nil
 	}
 	return fmt.Errorf("subject %s is neither telemetry nor operator actions", subj)
@@ -370,17 +374,35 @@ func (l *Log) internID(b []byte) string {
 
 // applySamples applies the decoded samples, received at the stream's
 // time at. l.applyMu must be held.
-func (l *Log) applySamples(at time.Time, w *waiter) {
+func (l *Log) applySamples(at time.Time, smps []ingest.Sample, w *waiter) {
 	var tally ingest.Tally
-	for i := range l.buf {
-		smp := &l.buf[i]
+	// With an id table (samples/2), each unit's ledger is looked up once
+	// a message rather than once a sample.
+	refs := l.dec.refs
+	if len(refs) != len(smps) {
+		refs = nil
+	}
+	l.ledgers = l.ledgers[:0]
+	for range l.dec.ids {
+		l.ledgers = append(l.ledgers, nil)
+	}
+	for i := range smps {
+		smp := &smps[i]
 		res, detail := l.store.Accept(at, smp)
 		tally[res]++
 		if res == ingest.Accepted {
-			lg := l.ledger[smp.UnitID]
+			var lg *Ledger
+			if refs != nil {
+				lg = l.ledgers[refs[i]]
+			}
 			if lg == nil {
-				lg = &Ledger{}
-				l.ledger[smp.UnitID] = lg
+				if lg = l.ledger[smp.UnitID]; lg == nil {
+					lg = &Ledger{}
+					l.ledger[smp.UnitID] = lg
+				}
+				if refs != nil {
+					l.ledgers[refs[i]] = lg
+				}
 			}
 			lg.Count++
 			lg.Digest += SampleDigest(smp.UnitID, smp.Time.UnixNano())

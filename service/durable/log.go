@@ -147,11 +147,18 @@ type Log struct {
 	applyMu sync.Mutex
 	seq     uint64             // the last stream sequence applied
 	ledger  map[string]*Ledger // per unit: what has been applied
-	buf     []ingest.Sample    // decoding buffer
+	dec     sampleDecoder
+	ledgers []*Ledger // of the decoded message's id table
 	intern  map[string]string
 
 	cpMu  sync.Mutex   // one checkpoint written at a time
 	cpBuf bytes.Buffer // the checkpoint's encoding, kept between checkpoints
+
+	// The partitions' writers (publish.go).
+	queues   []*partQueue // by partition; nil for one not served
+	quit     chan struct{}
+	stopOnce sync.Once
+	writers  sync.WaitGroup
 
 	lastSweep    time.Time    // the latest time swept; sweeps never go back
 	sweptAt      atomic.Int64 // wall clock, Unix ns, of the last sweep applied
@@ -177,6 +184,8 @@ type Log struct {
 
 	messages   *prometheus.CounterVec
 	pubFailed  prometheus.Counter
+	writtenMsg prometheus.Counter // telemetry messages written
+	writtenSmp prometheus.Counter // and the samples they carry
 	seqGauge   prometheus.GaugeFunc
 	connected  prometheus.GaugeFunc
 	caughtUpGa prometheus.GaugeFunc
@@ -232,6 +241,7 @@ func Open(ctx context.Context, cfg Config) (*Log, error) {
 	_, _ = rand.Read(idb[:])
 	l := &Log{cfg: cfg, log: cfg.Logger, serves: serves, origin: hex.EncodeToString(idb[:]),
 		pending: map[string]*waiter{}, ledger: map[string]*Ledger{}, intern: map[string]string{}}
+	l.dec.intern = l.internID
 	urls := strings.Join(cfg.URLs, ",")
 	opts := []nats.Option{
 		nats.Name("genvelope " + l.origin),
@@ -285,13 +295,18 @@ func Open(ctx context.Context, cfg Config) (*Log, error) {
 			urls, cfg.Stream, cfg.Prefix, cfg.Prefix, cfg.Replicas, err)
 	}
 	l.metrics()
+	l.startWriters()
 	l.log.Info("durable log", "nats", l.nc.ConnectedUrlRedacted(), "stream", cfg.Stream, "prefix", cfg.Prefix,
 		"partitions", cfg.Partitions, "serves", formatPartitions(serves), "replicas", cfg.Replicas)
 	return l, nil
 }
 
-// Close closes the connection to NATS.
-func (l *Log) Close() { l.nc.Close() }
+// Close ends the writers (a batch still waiting for one is answered
+// with an error) and closes the connection to NATS.
+func (l *Log) Close() {
+	l.stopWriters()
+	l.nc.Close()
+}
 
 // served reports whether this replica serves unit id's partition.
 func (l *Log) served(id string) bool { return l.serves[Partition(id, l.cfg.Partitions)] }
@@ -336,51 +351,44 @@ func (l *Log) forget(ids []string) {
 	l.mu.Unlock()
 }
 
-// Append writes smps to the log, one message per partition, and
+// Append hands smps to the partitions' writers (publish.go) and
 // returns at once; wait waits until the stream has stored every message
-// and this replica has applied them, and returns what applying gave for
-// each sample. Batches appended one after another enter the log in that
-// order, so a stream of batches can be pipelined. wait must be called
-// (with a done ctx to give up).
+// carrying them and this replica has applied those, and returns what
+// applying gave for each sample. Batches appended one after another
+// enter each partition of the log in that order, so a stream of batches
+// can be pipelined. wait must be called (with a done ctx to give up).
 func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (func(context.Context) ([]ingest.Result, []string, error), error) {
 	byPart := make([][]int, l.cfg.Partitions)
 	for i := range smps {
 		p := Partition(smps[i].UnitID, l.cfg.Partitions)
 		byPart[p] = append(byPart[p], i)
 	}
-	type sent struct {
-		idx []int
-		w   *waiter
-		fut jetstream.PubAckFuture
-	}
-	var all []sent
-	var ids []string
+	var segs []*segment
+	limit := l.messageLimit()
 	for p, part := range byPart {
-		for _, idx := range l.chunks(smps, part) {
-			id, w := l.register(len(idx))
-			ids = append(ids, id)
-			msg := &nats.Msg{Subject: l.subject(p), Header: nats.Header{formatHeader: {formatSamples}, idHeader: {id}},
-				Data: encodeSamples(make([]byte, 0, 16+len(idx)*64), smps, idx)}
-			fut, err := l.js.PublishMsgAsync(msg, jetstream.WithExpectStream(l.cfg.Stream))
-			if err != nil {
-				l.forget(ids)
-				l.pubFailed.Inc()
-				return nil, fmt.Errorf("writing to the log: %w", err)
-			}
-			all = append(all, sent{idx, w, fut})
+		if len(part) == 0 {
+			continue
 		}
+		chunks := chunkSamples(smps, part, limit)
+		ps := make([]*segment, len(chunks))
+		for k, idx := range chunks {
+			ps[k] = &segment{smps: smps, idx: idx, boundBytes: encodedBound(smps, idx), pub: make(chan error, 1)}
+		}
+		if err := l.queue(p, ps); err != nil {
+			return nil, err // what was queued is written; the batch is not acknowledged
+		}
+		segs = append(segs, ps...)
 	}
 	n := len(smps)
 	return func(ctx context.Context) ([]ingest.Result, []string, error) {
-		defer l.forget(ids)
 		timer := time.NewTimer(l.cfg.Timeout)
 		defer timer.Stop()
-		for _, s := range all {
+		for _, s := range segs {
 			select {
-			case <-s.fut.Ok():
-			case err := <-s.fut.Err():
-				l.pubFailed.Inc()
-				return nil, nil, fmt.Errorf("writing to the log: %w", err)
+			case err := <-s.pub:
+				if err != nil {
+					return nil, nil, err
+				}
 			case <-timer.C:
 				l.pubFailed.Inc()
 				return nil, nil, fmt.Errorf("the log did not confirm the write within %s", l.cfg.Timeout)
@@ -390,30 +398,20 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 		}
 		res := make([]ingest.Result, n)
 		det := make([]string, n)
-		for _, s := range all {
+		for _, s := range segs {
 			select {
-			case <-s.w.done:
+			case <-s.msg.done:
 			case <-timer.C:
 				return nil, nil, fmt.Errorf("written to the log but not applied here within %s (the replica is behind)", l.cfg.Timeout)
 			case <-ctx.Done():
 				return nil, nil, ctx.Err()
 			}
 			for j, i := range s.idx {
-				res[i], det[i] = s.w.results[j], s.w.details[j]
+				res[i], det[i] = s.msg.results[s.off+j], s.msg.details[s.off+j]
 			}
 		}
 		return res, det, nil
 	}, nil
-}
-
-// chunks splits one partition's samples into runs whose messages stay
-// within half the server's largest payload.
-func (l *Log) chunks(smps []ingest.Sample, idx []int) [][]int {
-	limit := int(l.nc.MaxPayload()) / 2
-	if limit <= 0 {
-		limit = 512 << 10
-	}
-	return chunkSamples(smps, idx, limit)
 }
 
 // chunkSamples splits idx into runs of at most limit encoded bytes (a
@@ -588,6 +586,14 @@ func (l *Log) metrics() {
 		Namespace: "genvelope", Name: "log_write_failures_total",
 		Help: "Writes to the log that failed or were not confirmed in time; their batches were answered UNAVAILABLE.",
 	})
+	l.writtenMsg = prometheus.NewCounter(prometheus.CounterOpts{
+		Namespace: "genvelope", Name: "log_telemetry_messages_written_total",
+		Help: "Telemetry messages written to the log and acknowledged by the stream: each carries a partition's samples of one batch or, under load, of several.",
+	})
+	l.writtenSmp = prometheus.NewCounter(prometheus.CounterOpts{
+		Namespace: "genvelope", Name: "log_samples_written_total",
+		Help: "Samples in the telemetry messages written to the log and acknowledged by the stream.",
+	})
 	l.seqGauge = prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 		Namespace: "genvelope", Name: "log_applied_sequence",
 		Help: "The last stream sequence this replica has applied.",
@@ -616,7 +622,7 @@ func (l *Log) metrics() {
 
 // Collectors returns the log's metrics.
 func (l *Log) Collectors() []prometheus.Collector {
-	return []prometheus.Collector{l.messages, l.pubFailed, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa, l.lagGa, l.tooFarGa}
+	return []prometheus.Collector{l.messages, l.pubFailed, l.writtenMsg, l.writtenSmp, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa, l.lagGa, l.tooFarGa}
 }
 
 func b2f(b bool) float64 {

@@ -1,8 +1,11 @@
 package fleet
 
 import (
+	"context"
 	"fmt"
 	"math"
+	"sync"
+	"sync/atomic"
 
 	"github.com/genvelope/genvelope/limits"
 )
@@ -81,19 +84,20 @@ func (u *Unit) Params() limits.Params {
 	return p
 }
 
-// build makes the engine model of a unit, reporting limits.New's
+// build makes the engine model of a unit (its avr table shared through
+// tables, which may be nil), reporting limits.New's
 // findings at the lines of their keys, and checks the model against the
 // unit's own rating (warnings: the unit is monitored all the same). A
 // unit that already has errors is checked too, so that every problem is
 // reported at once, but only the findings about values that were read
 // without a problem (the others would be echoes).
-func (d *decoder) build(c *unitCtx) {
+func (c *unitCtx) build(tables *limits.Tables) {
 	u := c.u
 	hadErrors := c.bad
 	if hadErrors && !(c.isOK("rating.mva") && c.isOK("rating.kv") && c.isOK("field.air_gap_a")) {
 		return // without the base every value in MW or A converts wrong
 	}
-	m, err := limits.New(u.Params())
+	m, err := limits.NewShared(u.Params(), tables)
 	if err != nil {
 		pes := limits.ParamErrors(err)
 		for _, pe := range pes {
@@ -173,4 +177,52 @@ func boundMvar(b limits.Base, x limits.Bound) string {
 		return "no value"
 	}
 	return mw(b.PowerMW(x.V))
+}
+
+// buildAll builds the engine model of every unit (build), on up to
+// workers goroutines (the loader passes GOMAXPROCS): a 10,000-unit avr
+// fleet spends most of its load in limits.New's stability tables. Units
+// of one design share their table (limits.Tables, one per load). Each
+// unit's findings are collected apart and appended in file order, so the
+// diagnostics are those of a build in file order. It returns ctx's error
+// when ctx ends first; every goroutine has ended when it returns.
+func (d *decoder) buildAll(ctx context.Context, workers int) error {
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+	tables := limits.NewTables()
+	own := make([]*decoder, len(d.units))
+	inParallel(ctx, len(d.units), workers, func(i int) {
+		c := d.units[i]
+		own[i] = &decoder{file: d.file, fleet: d.fleet, paths: d.paths} // the path table only read while building
+		c.d = own[i]
+		c.build(tables)
+	})
+	for i, c := range d.units {
+		c.d = d
+		if own[i] != nil {
+			d.diags = append(d.diags, own[i].diags...)
+		}
+	}
+	return ctx.Err()
+}
+
+// inParallel calls do(i) for i in [0, n) on up to workers goroutines
+// (at least one), each taking the next i, until ctx ends; every goroutine
+// has ended when it returns.
+func inParallel(ctx context.Context, n, workers int, do func(i int)) {
+	var next atomic.Int64
+	var wg sync.WaitGroup
+	for range max(1, min(workers, n)) {
+		wg.Go(func() {
+			for ctx.Err() == nil {
+				i := int(next.Add(1)) - 1
+				if i >= n {
+					return
+				}
+				do(i)
+			}
+		})
+	}
+	wg.Wait()
 }

@@ -31,6 +31,8 @@ type decoder struct {
 	fleet *Fleet
 	paths *pathTable // see path
 
+	workers int // goroutines for building the units (at least 1)
+
 	// The units' text, item by item, when the file has the plain shape
 	// splitUnits reads (split.go): then each unit's YAML tree is built,
 	// decoded and dropped in turn, and the whole file's tree never

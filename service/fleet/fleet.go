@@ -11,8 +11,10 @@
 package fleet
 
 import (
+	"context"
 	"fmt"
 	"os"
+	"runtime"
 	"strings"
 
 	"github.com/genvelope/genvelope/limits"
@@ -313,12 +315,17 @@ type CoolantPoint struct {
 // Load reads and parses the fleet file at path. The error is for a file
 // that cannot be read; problems in its content are in the Diagnostics.
 func Load(path string) (*Fleet, Diagnostics, error) {
+	return LoadContext(context.Background(), path)
+}
+
+// LoadContext is Load, stopped by ctx: the error is then ctx's, and
+// neither a fleet nor diagnostics are returned.
+func LoadContext(ctx context.Context, path string) (*Fleet, Diagnostics, error) {
 	data, err := os.ReadFile(path)
 	if err != nil {
 		return nil, nil, fmt.Errorf("fleet file: %w", err)
 	}
-	f, ds := Parse(path, data)
-	return f, ds, nil
+	return ParseContext(ctx, path, data)
 }
 
 // Parse parses a fleet file's content; name is used in the diagnostics.
@@ -326,7 +333,21 @@ func Load(path string) (*Fleet, Diagnostics, error) {
 // nil: it holds every unit that could be read, and a unit with errors has
 // a nil Model. Use the fleet only when the Diagnostics have no errors.
 func Parse(name string, data []byte) (*Fleet, Diagnostics) {
-	d := &decoder{file: name}
+	f, ds, _ := ParseContext(context.Background(), name, data)
+	return f, ds
+}
+
+// ParseContext is Parse, stopped by ctx: the error is then ctx's, and
+// neither a fleet nor diagnostics are returned. The engine models are
+// built concurrently (buildAll); the result, diagnostics included, is
+// the same as one built in file order.
+func ParseContext(ctx context.Context, name string, data []byte) (*Fleet, Diagnostics, error) {
+	return parse(ctx, name, data, runtime.GOMAXPROCS(0))
+}
+
+// parse is ParseContext building the models on up to workers goroutines.
+func parse(ctx context.Context, name string, data []byte, workers int) (*Fleet, Diagnostics, error) {
+	d := &decoder{file: name, workers: workers}
 	f := &Fleet{File: name, byID: map[string]*Unit{}, Alarms: alarm.Defaults()}
 	d.document(data, f)
 	for _, u := range f.Units {
@@ -334,9 +355,9 @@ func Parse(name string, data []byte) (*Fleet, Diagnostics) {
 			u.Alarms = f.Alarms
 		}
 	}
-	for _, c := range d.units {
-		d.build(c)
+	if err := d.buildAll(ctx, workers); err != nil {
+		return nil, nil, err
 	}
 	d.diags.sortByLine()
-	return f, d.diags
+	return f, d.diags, nil
 }

@@ -87,6 +87,9 @@ type config struct {
 	Servers  []string      `json:"servers"` // "bare", "full", "nats", in the order loaded
 	// NATSServer is the nats-server program of the "nats" phase.
 	NATSServer string `json:"-"`
+	// NATSCPUProfile is a CPU profile of nats-server during the first
+	// nats phase; "" for none.
+	NATSCPUProfile string `json:"-"`
 
 	RSS          bool `json:"rss"`
 	Metrics      bool `json:"metrics"`
@@ -202,6 +205,7 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 	fs.BoolVar(&cfg.TLS, "tls", false, "serve gRPC over TLS on both the service and the bare sink (certificates made for the run)")
 	fs.BoolVar(&cfg.Pprof, "pprof", false, "run the service with --pprof (implied by -cpuprofile and -heapprofile)")
 	fs.StringVar(&cfg.CPUProfile, "cpuprofile", "", "write a CPU profile of the service, taken during the first full phase, to this file")
+	fs.StringVar(&cfg.NATSCPUProfile, "nats-cpuprofile", "", "write a CPU profile of nats-server (started with --profile), taken during the first nats phase, to this file")
 	fs.IntVar(&cfg.CPUSeconds, "cpuprofile-seconds", cfg.CPUSeconds, "length of the CPU profile, s (at most -duration)")
 	fs.StringVar(&cfg.HeapProfile, "heapprofile", "", "write a heap profile of the service, taken after the phases, to this file")
 	fs.StringVar(&cfg.MetricsCPUProfile, "metrics-cpuprofile", "", "write a CPU profile of the service answering GET /metrics, after the timed tries, to this file")
@@ -356,14 +360,15 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 	}
 	if cfg.has("nats") {
 		var url string
-		if natsProc, url, err = startNATS(ctx, log, cfg.NATSServer, dir, cfg.StartWait); err != nil {
+		var pprofAddr string
+		if natsProc, url, pprofAddr, err = startNATS(ctx, log, cfg.NATSServer, dir, cfg.NATSCPUProfile != "", cfg.StartWait); err != nil {
 			return rep, err
 		}
 		if durableProc, _, err = startServe(ctx, log, "serve-nats", bin, fi.Path, dir, cfg.Pprof, true, cfg.ServeEnv,
 			append([]string{"--nats", url}, extra...), cfg.StartWait); err != nil {
 			return rep, err
 		}
-		durableProc.companion = natsProc.pid()
+		durableProc.companion, durableProc.companionPprof = natsProc.pid(), pprofAddr
 	}
 	if cfg.has("full") {
 		var took time.Duration
@@ -397,7 +402,11 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 			if r == 1 && cfg.CPUProfile != "" && (server == "full" || server == "nats" && !cfg.has("full")) {
 				profile = cfg.CPUProfile
 			}
-			res, err := runPhase(ctx, log, cfg, server, p, gens, profile)
+			natsProfile := ""
+			if r == 1 && server == "nats" {
+				natsProfile = cfg.NATSCPUProfile
+			}
+			res, err := runPhase(ctx, log, cfg, server, p, gens, profile, natsProfile)
 			if res != nil {
 				if server == "nats" {
 					rr.NATS = res
@@ -499,7 +508,7 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 }
 
 // runPhase loads one server for warm-up plus duration and measures it.
-func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, p *proc, gens []*generator, cpuProfile string) (*phaseResult, error) {
+func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, p *proc, gens []*generator, cpuProfile, companionProfile string) (*phaseResult, error) {
 	spec := phaseSpec{
 		server: server, addr: p.grpcAddr, streams: cfg.Streams, window: cfg.Window, batch: cfg.Batch,
 		rate: cfg.Rate, warmup: cfg.Warmup, duration: cfg.Duration, grace: 30 * time.Second,
@@ -538,22 +547,40 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 		}
 		return !time.Now().Before(t)
 	}
-	var srv0, cli0, all0, srv1, cli1, all1 time.Duration
-	var profErr chan error
+	var srv0, cli0, all0, srv1, cli1, all1, comp0, comp1 time.Duration
+	type profile struct {
+		file string
+		err  chan error
+	}
+	var profiles []profile
+	// Over JetStream: the telemetry messages written and the samples they
+	// carried, so samples per message.
+	written := []string{"genvelope_log_telemetry_messages_written_total", "genvelope_log_samples_written_total"}
+	var written0, written1 []float64
 	if waitUntil(from) {
-		srv0 = p.cpu()
+		if p.companion != 0 {
+			written0, _ = metricValues(ctx, p.httpAddr, written...)
+		}
+		srv0, comp0 = p.cpu()
 		cli0 = selfCPU()
 		all0, _ = machineCPU()
-		if cpuProfile != "" {
-			secs := max(1, min(cfg.CPUSeconds, int(cfg.Duration/time.Second)))
-			profErr = make(chan error, 1)
+		secs := max(1, min(cfg.CPUSeconds, int(cfg.Duration/time.Second)))
+		for _, pr := range []struct{ addr, file string }{{p.httpAddr, cpuProfile}, {p.companionPprof, companionProfile}} {
+			if pr.file == "" || pr.addr == "" {
+				continue
+			}
+			errc := make(chan error, 1)
+			profiles = append(profiles, profile{pr.file, errc})
 			go func() {
-				profErr <- fetchToFile(ctx, fmt.Sprintf("http://%s/debug/pprof/profile?seconds=%d", p.httpAddr, secs), cpuProfile)
+				errc <- fetchToFile(ctx, fmt.Sprintf("http://%s/debug/pprof/profile?seconds=%d", pr.addr, secs), pr.file)
 			}()
 		}
 	}
 	if waitUntil(to) {
-		srv1 = p.cpu()
+		if p.companion != 0 {
+			written1, _ = metricValues(ctx, p.httpAddr, written...)
+		}
+		srv1, comp1 = p.cpu()
 		cli1 = selfCPU()
 		all1, _ = machineCPU()
 	}
@@ -562,11 +589,11 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 		got := <-done
 		o = &got
 	}
-	if profErr != nil {
-		if err := <-profErr; err != nil {
-			log.Warn("CPU profile", "err", err)
+	for _, pr := range profiles {
+		if err := <-pr.err; err != nil {
+			log.Warn("CPU profile", "file", pr.file, "err", err)
 		} else {
-			log.Info("wrote CPU profile", "file", cpuProfile)
+			log.Info("wrote CPU profile", "file", pr.file)
 		}
 	}
 	if o.rs == nil {
@@ -575,6 +602,7 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 	res := summarize(server, o.rs, from, to)
 	if srv1 > 0 {
 		res.ServerCPU = float64(srv1-srv0) / float64(cfg.Duration)
+		res.CompanionCPU = float64(comp1-comp0) / float64(cfg.Duration)
 		res.ClientCPU = float64(cli1-cli0) / float64(cfg.Duration)
 		if all1 > 0 {
 			res.OtherCPU = max(0, float64(all1-all0)/float64(cfg.Duration)-res.ServerCPU-res.ClientCPU)
@@ -582,10 +610,21 @@ func runPhase(ctx context.Context, log *slog.Logger, cfg config, server string, 
 		if res.ServerCPU > 0 {
 			res.SamplesPerCPUS = res.SamplesPerS / res.ServerCPU
 		}
+		if res.SamplesPerS > 0 && p.companion != 0 {
+			res.ServiceUSPerSample = 1e6 * (res.ServerCPU - res.CompanionCPU) / res.SamplesPerS
+			res.CompanionUSPerSample = 1e6 * res.CompanionCPU / res.SamplesPerS
+		}
 	}
 	log.Info("phase done", "server", server, "samples/s", int(res.SamplesPerS), "p50_ms", res.LatencyP50MS,
 		"p99_ms", res.LatencyP99MS, "max_ms", res.LatencyMaxMS, "server_cpu", fmt.Sprintf("%.2f", res.ServerCPU),
 		"client_cpu", fmt.Sprintf("%.2f", res.ClientCPU), "other_cpu", fmt.Sprintf("%.2f", res.OtherCPU))
+	if len(written0) == 2 && len(written1) == 2 && written1[0] > written0[0] {
+		res.SamplesPerMessage = (written1[1] - written0[1]) / (written1[0] - written0[0])
+	}
+	if p.companion != 0 {
+		log.Info("server CPU per sample", "server", server, "genvelope_us", fmt.Sprintf("%.2f", res.ServiceUSPerSample),
+			"nats_server_us", fmt.Sprintf("%.2f", res.CompanionUSPerSample), "samples_per_message", fmt.Sprintf("%.1f", res.SamplesPerMessage))
+	}
 	if o.err == nil && endedEarly {
 		o.err = errors.New("the streams ended before the measured window did")
 	}

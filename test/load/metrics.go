@@ -141,3 +141,36 @@ func fetchToFile(ctx context.Context, url, path string) error {
 	}
 	return f.Close()
 }
+
+// metricValues returns the values of the named series (without labels)
+// in the service's /metrics, 0 for one it does not show.
+func metricValues(ctx context.Context, httpAddr string, names ...string) ([]float64, error) {
+	req, err := http.NewRequestWithContext(ctx, http.MethodGet, "http://"+httpAddr+"/metrics", nil)
+	if err != nil {
+		return nil, err
+	}
+	resp, err := http.DefaultClient.Do(req)
+	if err != nil {
+		return nil, err
+	}
+	defer resp.Body.Close()
+	body, err := io.ReadAll(resp.Body)
+	if err != nil {
+		return nil, err
+	}
+	vals := make([]float64, len(names))
+	for line := range bytes.SplitSeq(body, []byte("\n")) {
+		name, v, ok := bytes.Cut(line, []byte(" "))
+		if !ok {
+			continue
+		}
+		for i, n := range names {
+			if string(name) == n {
+				if vals[i], err = strconv.ParseFloat(string(v), 64); err != nil {
+					return nil, fmt.Errorf("/metrics %s: %w", n, err)
+				}
+			}
+		}
+	}
+	return vals, nil
+}

@@ -59,6 +59,9 @@ type proc struct {
 	// companion is a process whose CPU counts with this one's (the
 	// nats-server behind a durable service); 0 for none.
 	companion int
+	// companionPprof is the companion's profiling HTTP address (host:port),
+	// "" for none.
+	companionPprof string
 }
 
 // lineWatcher is the stdout or stderr of a child: it copies everything
@@ -125,14 +128,14 @@ func startProc(name, bin string, args, env []string, logPath string, withStdin b
 	return p, nil
 }
 
-// cpu returns the CPU time of the child and its companion.
-func (p *proc) cpu() time.Duration {
+// cpu returns the CPU time of the child and its companion together, and
+// the companion's alone.
+func (p *proc) cpu() (all, companion time.Duration) {
 	t, _ := readCPU(p.pid())
 	if p.companion != 0 {
-		c, _ := readCPU(p.companion)
-		t += c
+		companion, _ = readCPU(p.companion)
 	}
-	return t
+	return t + companion, companion
 }
 
 // pid returns the child's process id.
@@ -321,26 +324,32 @@ func startSink(ctx context.Context, log *slog.Logger, dir string, timeout time.D
 
 // startNATS starts a single JetStream node (nats-server from PATH, or
 // bin) on a free loopback port with its store in dir, and waits until
-// it takes connections. It returns the process and its URL.
-func startNATS(ctx context.Context, log *slog.Logger, bin, dir string, timeout time.Duration) (*proc, string, error) {
+// it takes connections. It returns the process, its URL and, with
+// pprof, the address of its profiling HTTP port.
+func startNATS(ctx context.Context, log *slog.Logger, bin, dir string, pprof bool, timeout time.Duration) (_ *proc, url, pprofAddr string, _ error) {
 	if bin == "" {
 		bin = "nats-server"
 	}
 	path, err := exec.LookPath(bin)
 	if err != nil {
-		return nil, "", fmt.Errorf("-nats needs nats-server (apt-get install nats-server, or -nats-server BIN): %w", err)
+		return nil, "", "", fmt.Errorf("-nats needs nats-server (apt-get install nats-server, or -nats-server BIN): %w", err)
 	}
-	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	addr, err := freePort()
 	if err != nil {
-		return nil, "", err
+		return nil, "", "", err
 	}
-	addr := ln.Addr().String()
-	ln.Close()
 	host, port, _ := net.SplitHostPort(addr)
-	p, err := startProc("nats-server", path, []string{"-js", "-sd", filepath.Join(dir, "jetstream"), "-a", host, "-p", port},
-		nil, filepath.Join(dir, "nats-server.log"), false, func(string) {})
+	args := []string{"-js", "-sd", filepath.Join(dir, "jetstream"), "-a", host, "-p", port}
+	if pprof {
+		if pprofAddr, err = freePort(); err != nil {
+			return nil, "", "", err
+		}
+		_, pport, _ := net.SplitHostPort(pprofAddr)
+		args = append(args, "--profile", pport)
+	}
+	p, err := startProc("nats-server", path, args, nil, filepath.Join(dir, "nats-server.log"), false, func(string) {})
 	if err != nil {
-		return nil, "", err
+		return nil, "", "", err
 	}
 	deadline := time.Now().Add(timeout)
 	for {
@@ -351,12 +360,22 @@ func startNATS(ctx context.Context, log *slog.Logger, bin, dir string, timeout t
 		}
 		if p.exited() || time.Now().After(deadline) || ctx.Err() != nil {
 			_, _ = p.stop(5 * time.Second)
-			return nil, "", fmt.Errorf("nats-server did not listen on %s (log: %s)", addr, p.logPath)
+			return nil, "", "", fmt.Errorf("nats-server did not listen on %s (log: %s)", addr, p.logPath)
 		}
 		time.Sleep(20 * time.Millisecond)
 	}
-	log.Info("nats-server ready", "pid", p.pid(), "addr", addr)
-	return p, "nats://" + addr, nil
+	log.Info("nats-server ready", "pid", p.pid(), "addr", addr, "pprof", pprofAddr)
+	return p, "nats://" + addr, pprofAddr, nil
+}
+
+// freePort returns a loopback address with a port the kernel had free.
+func freePort() (string, error) {
+	ln, err := net.Listen("tcp", "127.0.0.1:0")
+	if err != nil {
+		return "", err
+	}
+	defer ln.Close()
+	return ln.Addr().String(), nil
 }
 
 // memory is a process's resident set, from /proc/PID/status.

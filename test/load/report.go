@@ -368,6 +368,10 @@ func (r *report) writeTable(w io.Writer) {
 			fmt.Fprintf(w, "run %d: the service over JetStream takes %.2f of the in-process service's samples/s (cost of durability %.0f %%; its server cores are genvelope's and nats-server's)\n",
 				rr.Run, rr.NATSOverFull, 100*(1-rr.NATSOverFull))
 		}
+		if p := rr.NATS; p != nil && p.SamplesPerS > 0 {
+			fmt.Fprintf(w, "run %d: CPU per acknowledged sample over JetStream: genvelope %.2f µs, nats-server %.2f µs; %.1f samples per message in the stream\n",
+				rr.Run, p.ServiceUSPerSample, p.CompanionUSPerSample, p.SamplesPerMessage)
+		}
 	}
 	if sv := r.Service; sv != nil {
 		fmt.Fprintf(w, "service: ready in %.0f ms", sv.StartupMS)

@@ -284,7 +284,15 @@ type phaseResult struct {
 	LatencyP99MS float64 `json:"ack_latency_p99_ms"`
 	LatencyMaxMS float64 `json:"ack_latency_max_ms"`
 	ServerCPU    float64 `json:"server_cpu_cores"` // CPU time over the window / window
-	ClientCPU    float64 `json:"client_cpu_cores"`
+	// The part of ServerCPU that is nats-server's (the nats phase).
+	CompanionCPU float64 `json:"nats_server_cpu_cores,omitempty"`
+	// CPU microseconds per acknowledged sample of genvelope and of
+	// nats-server (the nats phase).
+	ServiceUSPerSample   float64 `json:"genvelope_cpu_us_per_sample,omitempty"`
+	CompanionUSPerSample float64 `json:"nats_server_cpu_us_per_sample,omitempty"`
+	// Samples per telemetry message written to the stream (the nats phase).
+	SamplesPerMessage float64 `json:"samples_per_log_message,omitempty"`
+	ClientCPU         float64 `json:"client_cpu_cores"`
 	// Busy CPU of the rest of the machine (other processes, and the
 	// kernel's work not charged to either side) over the window, cores.
 	OtherCPU float64 `json:"other_cpu_cores"`
