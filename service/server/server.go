@@ -238,7 +238,7 @@ func New(cfg Config) (*Server, error) {
 		s.closeJournal()
 		return nil, err
 	}
-	s.grpc = grpc.NewServer(append(gopts, rpc.NewCodec().ServerOption())...)
+	s.grpc = grpc.NewServer(gopts...)
 	pb.RegisterTelemetryServiceServer(s.grpc, rpc.NewTelemetry(s.store, rpc.TelemetryOptions{MaxBatch: cfg.MaxBatch, Draining: s.draining, Denied: s.denied, Log: tlog}))
 	pb.RegisterFleetServiceServer(s.grpc, rpc.NewFleet(s.store))
 	pb.RegisterAlarmServiceServer(s.grpc, rpc.NewAlarms(s.store, rpc.AlarmOptions{Draining: s.draining, Actions: actions}))
