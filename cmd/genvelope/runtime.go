@@ -30,7 +30,7 @@ func addGCFlags(fs *flag.FlagSet) *gcFlags {
 	_, g.fromEnvGC = os.LookupEnv("GOGC")
 	_, g.fromEnvML = os.LookupEnv("GOMEMLIMIT")
 	fs.IntVar(&g.percent, "gc-percent", defaultGCPercent, "the Go garbage collector's GOGC (the GOGC environment variable, when set, wins)")
-	fs.IntVar(&g.limitMiB, "memory-limit-mib", 0, "soft limit on the Go runtime's memory in MiB; 0 scales it to the fleet: 128 MiB + 14 KiB per unit (the GOMEMLIMIT environment variable, when set, wins)")
+	fs.IntVar(&g.limitMiB, "memory-limit-mib", 0, "soft limit on the Go runtime's memory in MiB; 0 scales it to the fleet: 64 MiB + 12 KiB per unit (the GOMEMLIMIT environment variable, when set, wins)")
 	return g
 }
 
@@ -45,7 +45,10 @@ func (g *gcFlags) apply(units int, log *slog.Logger) {
 	if !g.fromEnvML {
 		n := int64(g.limitMiB) << 20
 		if n <= 0 {
-			n = 128<<20 + int64(units)*14<<10 // 14 KiB: 2 KiB of it the trend ring (service/ingest/trend.go)
+			// A unit's live state is about 10 KiB after a full pass (7.3 KiB
+			// in ingest, TestMemoryPerUnit; the rest its configuration
+			// and engine tables): see "Memory per unit" in DEVELOPERS.md.
+			n = 64<<20 + int64(units)*12<<10
 		}
 		debug.SetMemoryLimit(n)
 		limit = strconv.FormatInt(n>>20, 10) + " MiB"

@@ -189,17 +189,20 @@ func (s Setting) Check(k Kind) string {
 
 // Machine is the state of one alarm. The zero value is normal. It is a
 // plain value: copy it, store it, restore it.
+//
+// The small fields come first, together, so that the machine packs into
+// 64 bytes (a unit holds one per alarm kind).
 type Machine struct {
 	Level Level
 
 	// For each level above normal, whether its raise condition (or, for
 	// a level held, its clear condition) holds and since when (Unix ns).
-	Raising    [2]bool
-	RaiseSince [2]int64
-	Clearing   [2]bool
-	ClearSince [2]int64
+	Raising      [2]bool
+	Clearing     [2]bool
+	Acknowledged bool // an operator acknowledged the current level
+	RaiseSince   [2]int64
+	ClearSince   [2]int64
 
-	Acknowledged bool    // an operator acknowledged the current level
 	ShelvedUntil int64   // wall-clock Unix ns until which the alarm is shelved; 0 when not
 	Since        int64   // sample time (Unix ns) of the last level change
 	Value        float64 // the quantity at the last step that was not at rest

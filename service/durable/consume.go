@@ -1,10 +1,12 @@
 package durable
 
 import (
+	"bytes"
 	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"os"
 	"strconv"
 	"strings"
@@ -21,7 +23,11 @@ import (
 func jsonMarshal(v any) ([]byte, error) { return json.Marshal(v) }
 
 // Checkpoint is the checkpoint file: a replica's state and the stream
-// sequence it includes.
+// sequence it includes. Version 2 (written since the binary state
+// format) is this struct in JSON without State on the first line, then
+// the state in the binary format of the state file (ingest.StateEncoder,
+// with its own checksum); version 1, one JSON object with the state in
+// it, is still read.
 type Checkpoint struct {
 	Format     string `json:"format"` // "genvelope-log-state"
 	Version    int    `json:"version"`
@@ -37,27 +43,39 @@ type Checkpoint struct {
 	JournalLogSeq     uint64             `json:"journal_log_sequence,omitempty"`
 	JournalLogEntries uint64             `json:"journal_log_entries,omitempty"`
 	Ledger            map[string]*Ledger `json:"ledger"`
-	State             *ingest.Snapshot   `json:"state"`
+	State             *ingest.Snapshot   `json:"state,omitempty"` // version 1 only; version 2 has it after the JSON line
 }
 
 const (
 	checkpointFormat  = "genvelope-log-state"
-	checkpointVersion = 1
+	checkpointVersion = 2
 )
 
-// ReadCheckpoint reads a checkpoint file.
+// ReadCheckpoint reads a checkpoint file, of version 2 or 1.
 func ReadCheckpoint(path string) (*Checkpoint, error) {
 	data, err := os.ReadFile(path)
 	if err != nil {
 		return nil, err
 	}
+	// Version 2: a JSON line, then the binary state. Version 1: the file
+	// is one JSON object (on any number of lines).
 	var cp Checkpoint
-	if err := json.Unmarshal(data, &cp); err != nil {
-		return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
+	head, rest, two := bytes.Cut(data, []byte("\n"))
+	if !two || json.Unmarshal(head, &cp) != nil || cp.Version != checkpointVersion {
+		cp = Checkpoint{}
+		if err := json.Unmarshal(data, &cp); err != nil {
+			return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
+		}
 	}
-	if cp.Format != checkpointFormat || cp.Version != checkpointVersion || cp.State == nil {
-		return nil, fmt.Errorf("checkpoint %s has format %q version %d; this genvelope reads %q version %d",
+	if cp.Format != checkpointFormat || cp.Version < 1 || cp.Version > checkpointVersion || (cp.Version == 1) != (cp.State != nil) {
+		return nil, fmt.Errorf("checkpoint %s has format %q version %d; this genvelope reads %q versions 1 and %d",
 			path, cp.Format, cp.Version, checkpointFormat, checkpointVersion)
+	}
+	if cp.Version == 1 {
+		return &cp, nil
+	}
+	if cp.State, err = ingest.ReadSnapshot(bytes.NewReader(rest)); err != nil {
+		return nil, fmt.Errorf("checkpoint %s is corrupt: %w", path, err)
 	}
 	return &cp, nil
 }
@@ -453,32 +471,41 @@ func (l *Log) sweep(at time.Time) {
 	l.sweptAt.Store(time.Now().UnixNano())
 }
 
-// checkpoint copies the state and the sequence it includes.
-func (l *Log) checkpoint() *Checkpoint {
+// encodeCheckpoint writes the checkpoint (version 2) to w: taken under
+// the lock the consumer holds while it applies a message, so the state
+// covers a whole number of messages, and the sequence with it.
+func (l *Log) encodeCheckpoint(w io.Writer) error {
 	l.applyMu.Lock()
 	defer l.applyMu.Unlock()
 	cp := &Checkpoint{Format: checkpointFormat, Version: checkpointVersion, Stream: l.cfg.Stream, Prefix: l.cfg.Prefix,
-		Partitions: l.cfg.Partitions, Serves: formatPartitions(l.serves), Sequence: l.seq,
-		Ledger: make(map[string]*Ledger, len(l.ledger)), State: l.store.Snapshot(time.Now())}
+		Partitions: l.cfg.Partitions, Serves: formatPartitions(l.serves), Sequence: l.seq, Ledger: l.ledger}
 	if !l.lastSweep.IsZero() {
 		cp.LastSweep = l.lastSweep.UnixNano()
 	}
 	if j := l.store.Journal(); j != nil {
 		cp.JournalLogSeq, cp.JournalLogEntries = j.LogPosition()
 	}
-	for id, lg := range l.ledger {
-		c := *lg
-		cp.Ledger[id] = &c
+	head, err := json.Marshal(cp)
+	if err != nil {
+		return err
 	}
-	return cp
+	if _, err := w.Write(append(head, '\n')); err != nil {
+		return err
+	}
+	return l.store.EncodeState(w, time.Now())
 }
 
+// writeCheckpoint encodes the checkpoint into a buffer kept from one
+// checkpoint to the next (the consumer waits only for the encoding) and
+// replaces the file with it.
 func (l *Log) writeCheckpoint() error {
 	if l.cfg.CheckpointPath == "" {
 		return nil
 	}
-	data, err := json.Marshal(l.checkpoint())
-	if err != nil {
+	l.cpMu.Lock()
+	defer l.cpMu.Unlock()
+	l.cpBuf.Reset()
+	if err := l.encodeCheckpoint(&l.cpBuf); err != nil {
 		return err
 	}
 	// The journal's entries of the messages the checkpoint includes were
@@ -487,7 +514,7 @@ func (l *Log) writeCheckpoint() error {
 	if err := l.store.SyncJournal(); err != nil {
 		return fmt.Errorf("journal not synced, so no checkpoint beyond it is written: %w", err)
 	}
-	return state.WriteFile(l.cfg.CheckpointPath, data)
+	return state.WriteFile(l.cfg.CheckpointPath, l.cpBuf.Bytes())
 }
 
 func (l *Log) keepCheckpoint(ctx context.Context) {

@@ -18,6 +18,7 @@
 package durable
 
 import (
+	"bytes"
 	"context"
 	"crypto/rand"
 	"encoding/hex"
@@ -149,6 +150,9 @@ type Log struct {
 	dec     sampleDecoder
 	ledgers []*Ledger // of the decoded message's id table
 	intern  map[string]string
+
+	cpMu  sync.Mutex   // one checkpoint written at a time
+	cpBuf bytes.Buffer // the checkpoint's encoding, kept between checkpoints
 
 	// The partitions' writers (publish.go).
 	queues   []*partQueue // by partition; nil for one not served

@@ -164,7 +164,9 @@ func (tl *testLog) waitApplied(t *testing.T) {
 }
 
 func (tl *testLog) ledger(id string) Ledger {
-	if lg := tl.checkpoint().Ledger[id]; lg != nil {
+	tl.applyMu.Lock() // as a checkpoint takes it
+	defer tl.applyMu.Unlock()
+	if lg := tl.Log.ledger[id]; lg != nil {
 		return *lg
 	}
 	return Ledger{}

@@ -26,7 +26,7 @@ import (
 var alarmLimitKeys = []string{"warning", "critical", "deadband", "on_delay_s", "off_delay_s", "enabled"}
 
 func (d *decoder) decodeFleetAlarms(v *yaml.Node, line int) {
-	c := &unitCtx{d: d, u: &Unit{line: line, lines: map[string]int{}}, ok: map[string]bool{}}
+	c := &unitCtx{d: d, u: &Unit{line: line, paths: d.paths}}
 	c.decodeAlarmsInto(v, "alarms", line, &d.fleet.Alarms)
 }
 
@@ -125,7 +125,7 @@ func (c *unitCtx) boolean(m *mapping, key string) (bool, bool) {
 	if n.Kind == yaml.ScalarNode && n.Tag == "!!bool" {
 		var b bool
 		if err := n.Decode(&b); err == nil {
-			c.ok[field] = true
+			c.setOK(field)
 			return b, true
 		}
 	}

@@ -94,14 +94,14 @@ func (u *Unit) Params() limits.Params {
 func (c *unitCtx) build(tables *limits.Tables) {
 	u := c.u
 	hadErrors := c.bad
-	if hadErrors && !(c.ok["rating.mva"] && c.ok["rating.kv"] && c.ok["field.air_gap_a"]) {
+	if hadErrors && !(c.isOK("rating.mva") && c.isOK("rating.kv") && c.isOK("field.air_gap_a")) {
 		return // without the base every value in MW or A converts wrong
 	}
 	m, err := limits.NewShared(u.Params(), tables)
 	if err != nil {
 		pes := limits.ParamErrors(err)
 		for _, pe := range pes {
-			if !hadErrors || c.ok[pe.Field] {
+			if !hadErrors || c.isOK(pe.Field) {
 				c.errorf(u.Line(pe.Field), pe.Field, "%s", pe.Reason)
 			}
 		}
@@ -194,7 +194,7 @@ func (d *decoder) buildAll(ctx context.Context, workers int) error {
 	own := make([]*decoder, len(d.units))
 	inParallel(ctx, len(d.units), workers, func(i int) {
 		c := d.units[i]
-		own[i] = &decoder{file: d.file, fleet: d.fleet}
+		own[i] = &decoder{file: d.file, fleet: d.fleet, paths: d.paths} // the path table only read while building
 		c.d = own[i]
 		c.build(tables)
 	})

@@ -2,7 +2,6 @@ package fleet
 
 import (
 	"bytes"
-	"context"
 	"errors"
 	"fmt"
 	"io"
@@ -26,20 +25,81 @@ import (
 // report what is missing or wrong.
 
 type decoder struct {
-	file    string
-	diags   Diagnostics
-	units   []*unitCtx
-	fleet   *Fleet
-	workers int // goroutines for decoding and building the units (at least 1)
+	file  string
+	diags Diagnostics
+	units []*unitCtx
+	fleet *Fleet
+	paths *pathTable // see path
+
+	workers int // goroutines for building the units (at least 1)
+
+	// The units' text, item by item, when the file has the plain shape
+	// splitUnits reads (split.go): then each unit's YAML tree is built,
+	// decoded and dropped in turn, and the whole file's tree never
+	// exists. splitFailed: an item did not parse alone; the file is then
+	// decoded whole, which reports it as before.
+	chunks      []unitChunk
+	text        []byte // the file the chunks are in
+	splitFailed bool
+	budget      int            // YAML nodes the units may still expand to (maxNodes)
+	firstLine   map[string]int // the line of each unit id's first use
 }
 
 // unitCtx is the state of decoding one unit.
 type unitCtx struct {
 	d     *decoder
 	u     *Unit
-	label string          // the unit's id, or "#n" when it has none
-	bad   bool            // an error was reported for this unit
-	ok    map[string]bool // dotted paths of the values read without problems
+	label string   // the unit's id, or "#n" when it has none
+	bad   bool     // an error was reported for this unit
+	ok    []uint64 // dotted paths of the values read without problems: a bit per path (decoder.paths)
+}
+
+// path returns the number of a dotted key path in the fleet's path
+// table, adding it. Every unit's line table and "read without problems"
+// set are keyed by these numbers: a fleet of 100,000 units otherwise
+// holds a map of some sixty paths per unit. Only the decoding, one unit
+// at a time, adds paths.
+func (d *decoder) path(p string) int {
+	if n, ok := d.paths.ids[p]; ok {
+		return n
+	}
+	n := len(d.paths.ids)
+	d.paths.ids[p] = n
+	return n
+}
+
+// pathTable numbers the dotted key paths of a fleet file.
+type pathTable struct {
+	ids map[string]int
+}
+
+// keyLine is the line of the key at a path (pathTable's number).
+type keyLine struct {
+	path uint32
+	line int32
+}
+
+// setOK records that the value at field was read without problems.
+func (c *unitCtx) setOK(field string) {
+	n := c.d.path(field)
+	for len(c.ok) <= n/64 {
+		c.ok = append(c.ok, 0)
+	}
+	c.ok[n/64] |= 1 << (n % 64)
+}
+
+// clearOK takes back setOK.
+func (c *unitCtx) clearOK(field string) {
+	if n, ok := c.d.paths.ids[field]; ok && n/64 < len(c.ok) {
+		c.ok[n/64] &^= 1 << (n % 64)
+	}
+}
+
+// isOK reports whether the value at field was read without problems. It
+// only reads the decoder's paths, so units may be built concurrently.
+func (c *unitCtx) isOK(field string) bool {
+	n, ok := c.d.paths.ids[field]
+	return ok && n/64 < len(c.ok) && c.ok[n/64]&(1<<(n%64)) != 0
 }
 
 // topKey is one key allowed at the top of the fleet file.
@@ -92,7 +152,10 @@ func unitKeys() []unitKey {
 const maxIDLen = 64
 
 // maxNodes bounds the work of reading the units: the number of YAML
-// nodes they hold, counting an alias's target each time it is used.
+// nodes they hold, counting an alias's target each time it is used,
+// beyond one node per byte of the file (a node takes at least one byte
+// of text unless it is an alias's expansion, so only aliases can reach
+// the bound, whatever the fleet's size).
 const maxNodes = 1_000_000
 
 // countNodes counts the nodes under n, aliases expanded, stopping once the
@@ -140,9 +203,30 @@ func (c *unitCtx) warnf(line int, field, format string, args ...any) {
 	c.d.add(Warning, line, c.label, field, format, args...)
 }
 
-// document decodes the whole file into f.
+// document decodes the whole file into f: unit by unit when splitUnits
+// can split it, else as one tree.
 func (d *decoder) document(data []byte, f *Fleet) {
+	if skeleton, chunks, ok := splitUnits(data); ok {
+		saved := *f
+		d.chunks, d.text = chunks, data
+		d.tree(skeleton, data, f)
+		if !d.splitFailed {
+			return
+		}
+		*f = saved
+		f.byID = map[string]*Unit{}
+		d.diags, d.units, d.chunks, d.text = nil, nil, nil, nil
+	}
+	d.tree(data, data, f)
+}
+
+// tree decodes the YAML document in data (the file itself, or its
+// skeleton: the file with the units' items blanked) into f.
+func (d *decoder) tree(data, file []byte, f *Fleet) {
 	d.fleet = f
+	d.paths = &pathTable{ids: map[string]int{}}
+	d.budget = maxNodes + len(file)
+	d.firstLine = map[string]int{}
 	dec := yaml.NewDecoder(bytes.NewReader(data))
 	var doc yaml.Node
 	err := dec.Decode(&doc)
@@ -255,25 +339,40 @@ func join(path, key string) string {
 
 // mapping is an opened YAML mapping whose keys have been checked.
 type mapping struct {
-	path  string // dotted path of the mapping ("" at the top of the file or of a unit)
-	line  int    // line of the key holding the mapping
-	vals  map[string]*yaml.Node
-	keyLn map[string]int
+	path    string // dotted path of the mapping ("" at the top of the file or of a unit)
+	line    int    // line of the key holding the mapping
+	entries []mappingEntry
+}
+
+// mappingEntry is one key of a mapping. A mapping has a few keys: a
+// list searched in order costs less than two maps per mapping (a unit
+// opens a dozen mappings; a fleet of 100,000 units, a million).
+type mappingEntry struct {
+	key  string
+	val  *yaml.Node
+	line int
 }
 
 // get returns the value of key, the line of the key, and whether it is present.
 func (m *mapping) get(key string) (*yaml.Node, int, bool) {
-	v, ok := m.vals[key]
-	if !ok {
-		return nil, m.line, false
+	for i := range m.entries {
+		if e := &m.entries[i]; e.key == key {
+			return e.val, e.line, true
+		}
 	}
-	return v, m.keyLn[key], true
+	return nil, m.line, false
+}
+
+// has reports whether key is present.
+func (m *mapping) has(key string) bool {
+	_, _, ok := m.get(key)
+	return ok
 }
 
 // openMapping checks that n is a mapping whose keys are all in allowed and
 // appear once, reporting through errf. lines, when not nil, receives the
 // line of every key by dotted path.
-func openMapping(n *yaml.Node, line int, path string, allowed []string, errf func(int, string, string, ...any), lines map[string]int) (*mapping, bool) {
+func openMapping(n *yaml.Node, line int, path string, allowed []string, errf func(int, string, string, ...any), lines func(field string, line int)) (*mapping, bool) {
 	n = resolve(n)
 	if n.Kind != yaml.MappingNode {
 		what := "the file"
@@ -283,7 +382,7 @@ func openMapping(n *yaml.Node, line int, path string, allowed []string, errf fun
 		errf(line, path, "%s must be a mapping with the keys %s; got %s", what, strings.Join(allowed, ", "), describe(n))
 		return nil, false
 	}
-	m := &mapping{path: path, line: line, vals: map[string]*yaml.Node{}, keyLn: map[string]int{}}
+	m := &mapping{path: path, line: line, entries: make([]mappingEntry, 0, len(n.Content)/2)}
 	for i := 0; i+1 < len(n.Content); i += 2 {
 		kn, vn := resolve(n.Content[i]), n.Content[i+1]
 		if kn.Kind != yaml.ScalarNode || kn.Tag == "!!null" {
@@ -300,14 +399,13 @@ func openMapping(n *yaml.Node, line int, path string, allowed []string, errf fun
 			}
 			continue
 		}
-		if first, dup := m.keyLn[key]; dup {
+		if _, first, dup := m.get(key); dup {
 			errf(kn.Line, field, "given twice; it was already given on line %d", first)
 			continue
 		}
-		m.vals[key] = vn
-		m.keyLn[key] = kn.Line
+		m.entries = append(m.entries, mappingEntry{key, vn, kn.Line})
 		if lines != nil {
-			lines[field] = kn.Line
+			lines(field, kn.Line)
 		}
 	}
 	// An unknown or repeated key is reported; the known keys are still read.
@@ -325,7 +423,12 @@ func contains(list []string, s string) bool {
 
 // open opens the mapping of a unit block, recording key lines.
 func (c *unitCtx) open(v *yaml.Node, path string, line int, allowed ...string) (*mapping, bool) {
-	return openMapping(v, line, path, allowed, c.errorf, c.u.lines)
+	return openMapping(v, line, path, allowed, c.errorf, c.line)
+}
+
+// line records the line of the key at field.
+func (c *unitCtx) line(field string, line int) {
+	c.u.setLine(c.d.path(field), line)
 }
 
 // number reads the number at key. rule checks the value and returns ""
@@ -351,7 +454,7 @@ func (c *unitCtx) number(m *mapping, key string, required bool, what string, rul
 			return 0, false
 		}
 	}
-	c.ok[field] = true
+	c.setOK(field)
 	return x, true
 }
 
@@ -401,7 +504,7 @@ func (c *unitCtx) text(m *mapping, key string, required bool, what string) (stri
 		c.errorf(line, field, "must be text (%s); got %s", what, describe(n))
 		return "", false
 	}
-	c.ok[field] = true
+	c.setOK(field)
 	return n.Value, true
 }
 
@@ -411,7 +514,7 @@ func (c *unitCtx) text(m *mapping, key string, required bool, what string) (stri
 // (field[i+1]); ok is false, and the problem reported, when it is not one.
 func (c *unitCtx) openItem(n *yaml.Node, field string, i int, keys ...string) (m *mapping, itemPath string, ok bool) {
 	itemPath = fmt.Sprintf("%s[%d]", field, i+1)
-	c.u.lines[itemPath] = n.Line
+	c.line(itemPath, n.Line)
 	m, ok = c.open(n, itemPath, n.Line, keys...)
 	return m, itemPath, ok
 }
@@ -453,6 +556,10 @@ func fmtNum(x float64) string { return strconv.FormatFloat(x, 'g', -1, 64) }
 
 // decodeUnits decodes the units: list.
 func (d *decoder) decodeUnits(v *yaml.Node, line int) {
+	if d.chunks != nil {
+		d.decodeChunks()
+		return
+	}
 	n := resolve(v)
 	if n.Kind != yaml.SequenceNode {
 		d.errorf(line, "units", "must be a list of units; got %s", describe(n))
@@ -462,50 +569,37 @@ func (d *decoder) decodeUnits(v *yaml.Node, line int) {
 		d.errorf(line, "units", "the list is empty; a fleet file needs at least one unit")
 		return
 	}
-	items := n.Content
-	budget, cut := maxNodes, len(items)
-	for i, item := range items {
-		if budget -= countNodes(item, budget); budget < 0 {
-			cut = i
-			break
+	for i, item := range n.Content {
+		if !d.unitItem(i, item) {
+			return
 		}
-	}
-	cs, own := d.decodeAll(items[:cut])
-	firstLine := map[string]int{}
-	for i, c := range cs {
-		d.diags = append(d.diags, own[i].diags...)
-		if c == nil {
-			continue
-		}
-		c.d = d
-		d.units = append(d.units, c)
-		if c.u.ID == "" {
-			continue
-		}
-		if first, dup := firstLine[c.u.ID]; dup {
-			c.errorf(c.u.Line("id"), "id", "duplicate id; it is already used by the unit on line %d (ids must be unique)", first)
-			continue
-		}
-		firstLine[c.u.ID] = c.u.Line("id")
-		d.fleet.Units = append(d.fleet.Units, c.u)
-		d.fleet.byID[c.u.ID] = c.u
-	}
-	if cut < len(items) {
-		d.errorf(items[cut].Line, "units", "the units expand to more than %d YAML nodes (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
 	}
 }
 
-// decodeAll decodes the units of items (decodeUnit) on up to d.workers
-// goroutines, each into a decoder of its own (own[i] holds unit i's
-// findings), for decodeUnits to merge in file order: the same result as
-// one after the other.
-func (d *decoder) decodeAll(items []*yaml.Node) (cs []*unitCtx, own []*decoder) {
-	cs, own = make([]*unitCtx, len(items)), make([]*decoder, len(items))
-	inParallel(context.Background(), len(items), d.workers, func(i int) {
-		own[i] = &decoder{file: d.file, fleet: d.fleet}
-		cs[i] = own[i].decodeUnit(i, items[i])
-	})
-	return cs, own
+// unitItem decodes the i-th item of the units: list and adds the unit
+// to the fleet. It returns false when the units' YAML nodes exceed the
+// budget: the rest of the file is not read.
+func (d *decoder) unitItem(i int, item *yaml.Node) bool {
+	if d.budget -= countNodes(item, d.budget); d.budget < 0 {
+		d.errorf(item.Line, "units", "the units expand to more than %d YAML nodes beyond one per byte of the file (aliases are counted each time they are used); the rest of the file is not read", maxNodes)
+		return false
+	}
+	c := d.decodeUnit(i, item)
+	if c == nil {
+		return true
+	}
+	d.units = append(d.units, c)
+	if c.u.ID == "" {
+		return true
+	}
+	if first, dup := d.firstLine[c.u.ID]; dup {
+		c.errorf(c.u.Line("id"), "id", "duplicate id; it is already used by the unit on line %d (ids must be unique)", first)
+		return true
+	}
+	d.firstLine[c.u.ID] = c.u.Line("id")
+	d.fleet.Units = append(d.fleet.Units, c.u)
+	d.fleet.byID[c.u.ID] = c.u
+	return true
 }
 
 // decodeUnit decodes the i-th unit of the list.
@@ -518,9 +612,9 @@ func (d *decoder) decodeUnit(i int, item *yaml.Node) *unitCtx {
 	}
 	u := &Unit{
 		line:  item.Line,
-		lines: map[string]int{},
+		paths: d.paths,
 	}
-	c := &unitCtx{d: d, u: u, label: label, ok: map[string]bool{}}
+	c := &unitCtx{d: d, u: u, label: label}
 	keys := unitKeys()
 	allowed := make([]string, len(keys))
 	for i, k := range keys {
@@ -581,14 +675,14 @@ func checkID(id string) string {
 }
 
 func (c *unitCtx) decodeName(v *yaml.Node, path string, line int) {
-	m := &mapping{vals: map[string]*yaml.Node{path: v}, keyLn: map[string]int{path: line}, line: line}
+	m := &mapping{entries: []mappingEntry{{path, v, line}}, line: line}
 	if s, ok := c.text(m, path, false, "a display name"); ok {
 		c.u.Name = s
 	}
 }
 
 func (c *unitCtx) decodeSite(v *yaml.Node, path string, line int) {
-	m := &mapping{vals: map[string]*yaml.Node{path: v}, keyLn: map[string]int{path: line}, line: line}
+	m := &mapping{entries: []mappingEntry{{path, v, line}}, line: line}
 	if s, ok := c.text(m, path, false, "the site name"); ok {
 		c.u.Site = s
 	}
@@ -627,7 +721,7 @@ func (c *unitCtx) decodeMachine(v *yaml.Node, path string, line int) {
 			mc.Rotor = limits.Salient
 		default:
 			c.errorf(c.u.Line("machine.rotor"), "machine.rotor", "must be round or salient; got %q", clip(rotor))
-			delete(c.ok, "machine.rotor")
+			c.clearOK("machine.rotor")
 		}
 	}
 	// The values' domains (positive reactances, xq <= xd, ...) are
@@ -693,7 +787,7 @@ func (c *unitCtx) decodeStability(v *yaml.Node, path string, line int) {
 			c.u.Stability.Basis = limits.BasisAVR
 		default:
 			c.errorf(c.u.Line("stability.basis"), "stability.basis", "must be manual or avr; got %q", clip(b))
-			delete(c.ok, "stability.basis")
+			c.clearOK("stability.basis")
 		}
 	}
 	c.u.Stability.ZetaMin, _ = c.number(m, "zeta_min", false, "the lowest damping ratio of an electromechanical mode, in [0, 1)", nil)
@@ -852,7 +946,7 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 	if q, ok := c.text(m, "quantity", true, "what the table is indexed by: "+allowed); ok {
 		if !contains(names, q) {
 			c.errorf(c.u.Line("coolant.quantity"), "coolant.quantity", "unknown quantity %q; allowed: %s", clip(q), allowed)
-			delete(c.ok, "coolant.quantity")
+			c.clearOK("coolant.quantity")
 		}
 		co.Quantity = CoolantQuantity(q)
 	}
@@ -877,7 +971,7 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 		}
 		co.Points = append(co.Points, CoolantPoint{At: at, Armature: arm, Field: fld, Line: item.Line})
 	}
-	if good && c.ok["coolant.quantity"] {
+	if good && c.isOK("coolant.quantity") {
 		c.u.Coolant = co
 	}
 }
@@ -887,15 +981,15 @@ func (c *unitCtx) decodeCoolant(v *yaml.Node, path string, line int) {
 // relations (xq <= xd, p_min < p_max, ...) are limits.New's rules,
 // reported through build.
 func (c *unitCtx) crossChecks() {
-	u, ok := c.u, c.ok
+	u, ok := c.u, c.isOK
 	mc := &u.Machine
-	if ok["machine.rotor"] && mc.Rotor == limits.Salient && !u.Has("machine.xq") {
+	if ok("machine.rotor") && mc.Rotor == limits.Salient && !u.Has("machine.xq") {
 		c.errorf(u.Line("machine"), "machine.xq", "missing; a salient-pole rotor needs xq, the quadrature-axis synchronous reactance in pu (below xd)")
 	}
-	if !u.Has("machine.xq") && ok["machine.xd"] {
+	if !u.Has("machine.xq") && ok("machine.xd") {
 		mc.Xq = mc.Xd
 	}
-	if !u.Has("machine.xp") && ok["machine.xl"] {
+	if !u.Has("machine.xp") && ok("machine.xl") {
 		mc.Xp = mc.Xl
 	}
 	if !u.Has("stability.basis") && u.Excitation != nil {

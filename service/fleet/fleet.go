@@ -91,8 +91,32 @@ type Unit struct {
 	Base  limits.Base  // converts between the units of the file and per unit
 	Model *limits.Unit // the engine model; nil when the unit has errors
 
-	line  int            // line of the unit's list entry
-	lines map[string]int // dotted key path -> line of the key
+	line  int        // line of the unit's list entry
+	paths *pathTable // the fleet file's dotted key paths, numbered
+	lines []keyLine  // the line of each key given, by path number
+}
+
+// setLine records the line of the key at path number n (a later record
+// of the same path wins, see lineOf).
+func (u *Unit) setLine(n, line int) {
+	u.lines = append(u.lines, keyLine{uint32(n), int32(line)})
+}
+
+// lineOf returns the line of the key at the dotted path field, if given.
+func (u *Unit) lineOf(field string) (int, bool) {
+	if u.paths == nil {
+		return 0, false
+	}
+	n, ok := u.paths.ids[field]
+	if !ok {
+		return 0, false
+	}
+	for i := len(u.lines) - 1; i >= 0; i-- {
+		if u.lines[i].path == uint32(n) {
+			return int(u.lines[i].line), true
+		}
+	}
+	return 0, false
 }
 
 // DisplayName returns the name, or the id when no name is given.
@@ -109,7 +133,7 @@ func (u *Unit) DisplayName() string {
 // that is present, and at worst the line where the unit starts.
 func (u *Unit) Line(field string) int {
 	for field != "" {
-		if l, ok := u.lines[field]; ok {
+		if l, ok := u.lineOf(field); ok {
 			return l
 		}
 		i := strings.LastIndexAny(field, ".[")
@@ -133,7 +157,7 @@ func (f *Fleet) ForgetLines() {
 // Has reports whether the key at the dotted path field is in the file (as
 // opposed to taking its default).
 func (u *Unit) Has(field string) bool {
-	_, ok := u.lines[field]
+	_, ok := u.lineOf(field)
 	return ok
 }
 

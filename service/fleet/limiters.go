@@ -72,9 +72,9 @@ func (c *unitCtx) decodeInverseTime(v *yaml.Node, path string, line int, withCei
 		return nil
 	}
 	it := &InverseTime{}
-	_, hasPoints := m.vals["points"]
-	_, hasPickup := m.vals["pickup_pu"]
-	_, hasK := m.vals["k_s"]
+	hasPoints := m.has("points")
+	hasPickup := m.has("pickup_pu")
+	hasK := m.has("k_s")
 	if hasPoints && (hasPickup || hasK) {
 		c.errorf(line, path, "give either pickup_pu and k_s, or points; not both")
 		return nil
@@ -83,7 +83,7 @@ func (c *unitCtx) decodeInverseTime(v *yaml.Node, path string, line int, withCei
 	if withCeiling {
 		if x, ok := c.number(m, "ceiling_pu", false, "the current in pu at and above which it acts at once", between(1, 10, true, false)); ok {
 			it.CeilingPU = x
-		} else if _, present := m.vals["ceiling_pu"]; present {
+		} else if present := m.has("ceiling_pu"); present {
 			good = false
 		}
 	}

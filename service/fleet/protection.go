@@ -92,10 +92,10 @@ func (c *unitCtx) decodeLossOfField(v *yaml.Node, path string, line int) *LossOf
 			good = false
 			continue
 		}
-		_, ohm := zm.vals["diameter_ohm"]
-		_, ohmO := zm.vals["offset_ohm"]
-		_, pu := zm.vals["diameter_pu"]
-		_, puO := zm.vals["offset_pu"]
+		ohm := zm.has("diameter_ohm")
+		ohmO := zm.has("offset_ohm")
+		pu := zm.has("diameter_pu")
+		puO := zm.has("offset_pu")
 		z := MhoZone{Line: item.Line}
 		switch {
 		case (ohm || ohmO) && (pu || puO):
@@ -199,7 +199,7 @@ func (c *unitCtx) decodeTransformer(v *yaml.Node, path string, line int) {
 // the unit's rating; called once the rating is read.
 func (c *unitCtx) protectionCrossChecks() {
 	u := c.u
-	if t := u.Transformer; t != nil && c.ok["rating.kv"] {
+	if t := u.Transformer; t != nil && c.isOK("rating.kv") {
 		if r := t.KVLV / u.Rating.KV; r < 0.8 || r > 1.2 {
 			c.errorf(u.Line("transformer.kv_lv"), "transformer.kv_lv", "%s kV is %.0f %% of the generator's %s kV; the winding on the generator side must be rated within 20 %% of it",
 				fmtNum(t.KVLV), 100*r, fmtNum(u.Rating.KV))

@@ -1,6 +1,7 @@
 package ingest
 
 import (
+	"encoding/json"
 	"testing"
 	"time"
 )
@@ -21,3 +22,41 @@ func BenchmarkAccept(b *testing.B) {
 		}
 	}
 }
+
+// BenchmarkSaveState is one save of 10,000 units with full duplicate
+// windows: the binary stream the saver writes against the JSON of
+// version 2 (a snapshot copied, then encoded).
+func BenchmarkSaveState(b *testing.B) {
+	fl := cloneFleet(b, 10000)
+	now := t0.Add(time.Hour)
+	s := NewStore(fl, Options{})
+	for i := range ringSize {
+		for _, c := range fl.Units {
+			s.Accept(now, ptr(good(c.ID, t0.Add(time.Duration(i)*time.Second))))
+		}
+	}
+	b.Run("binary", func(b *testing.B) {
+		b.ReportAllocs()
+		for range b.N {
+			var n countWriter
+			if err := s.EncodeState(&n, now); err != nil {
+				b.Fatal(err)
+			}
+			b.ReportMetric(float64(n), "bytes/save")
+		}
+	})
+	b.Run("json", func(b *testing.B) {
+		b.ReportAllocs()
+		for range b.N {
+			data, err := json.Marshal(s.Snapshot(now))
+			if err != nil {
+				b.Fatal(err)
+			}
+			b.ReportMetric(float64(len(data)), "bytes/save")
+		}
+	})
+}
+
+type countWriter int
+
+func (c *countWriter) Write(p []byte) (int, error) { *c += countWriter(len(p)); return len(p), nil }

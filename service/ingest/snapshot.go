@@ -13,10 +13,10 @@ import (
 	"github.com/genvelope/genvelope/service/fleet"
 )
 
-// SnapshotVersion is the version of the Snapshot layout; a snapshot of
-// another version is not restored. Version 2 keeps each unit's whole
-// duplicate window and carries a checksum; version 1 files are still
-// read.
+// SnapshotVersion is the last version of the JSON state layout, which
+// is still read (statefile.go has the binary format the service writes,
+// BinarySnapshotVersion). Version 2 keeps each unit's whole duplicate
+// window and carries a checksum; version 1 has neither.
 const SnapshotVersion = 2
 
 // Snapshot is the state that must survive a restart: what a restart must
@@ -31,6 +31,9 @@ type Snapshot struct {
 	// empty checksum (see Seal): a file changed after it was written is
 	// not restored.
 	Checksum string `json:"checksum,omitempty"`
+	// Bad are the entries of a binary state file that did not decode
+	// (*BadEntryError): Restore reports them with the bad entries.
+	Bad []error `json:"-"`
 }
 
 // UnitSnapshot is one unit's part of a Snapshot.
@@ -79,29 +82,6 @@ func (sn *Snapshot) Seal() error {
 	return nil
 }
 
-// MarshalSealed sets sn's checksum and returns sn encoded in JSON: the
-// bytes of Seal followed by json.Marshal, with one encoding instead of
-// two. The checksum is the last field and hex needs no escaping, so the
-// sealed encoding is the unsealed one with it appended.
-func (sn *Snapshot) MarshalSealed() ([]byte, error) {
-	c := *sn
-	c.Checksum = ""
-	data, err := json.Marshal(&c)
-	if err != nil {
-		return nil, err
-	}
-	h := sha256.Sum256(data)
-	sn.Checksum = hex.EncodeToString(h[:])
-	if len(data) == 0 || data[len(data)-1] != '}' {
-		return nil, fmt.Errorf("snapshot encoding does not end in '}'")
-	}
-	out := make([]byte, 0, len(data)+len(`,"checksum":""`)+len(sn.Checksum))
-	out = append(out, data[:len(data)-1]...)
-	out = append(out, `,"checksum":"`...)
-	out = append(out, sn.Checksum...)
-	return append(out, `"}`...), nil
-}
-
 // Verify reports whether sn's checksum matches its content. A version 1
 // snapshot has none and passes.
 func (sn *Snapshot) Verify() error {
@@ -132,39 +112,56 @@ func (sn *Snapshot) sum() (string, error) {
 
 // Snapshot copies the durable state of every unit.
 func (s *Store) Snapshot(now time.Time) *Snapshot {
-	sn := &Snapshot{Format: "genvelope-state", Version: SnapshotVersion, Written: now.UTC(), Units: map[string]UnitSnapshot{}}
+	sn := &Snapshot{Format: "genvelope-state", Version: BinarySnapshotVersion, Written: now.UTC(), Units: map[string]UnitSnapshot{}}
 	for _, u := range s.Units() {
+		var us UnitSnapshot
+		var smp SampleSnapshot
 		u.mu.Lock()
-		us := UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.hArm, XField: u.hField, ThermalNS: u.thermNS,
-			OELUsed: u.lim.oel.Used, SCLUsed: u.lim.scl.Used}
-		us.Times = make([]int64, 0, u.n)
-		for i := u.n; i > 0; i-- {
-			us.Times = append(us.Times, u.ring[(u.head-i+ringSize)%ringSize])
-		}
-		if u.has {
-			us.Latest = &SampleSnapshot{Sample: u.latest, ReceivedUnixNS: u.recvNS}
-			us.Suspect, us.Stale = u.suspect, u.stale
-		}
-		for i := uint64(heatSize - 1); ; i-- { // oldest first: the newest is heat[accepted % heatSize]
-			if h := u.heat[(u.accepted-i)%heatSize]; h != (heatStep{}) {
-				us.Heat = append(us.Heat, HeatSnapshot{TimeUnixNS: h.t, ArmatureS: h.arm, FieldS: h.field, Discardable: h.discardable})
-			}
-			if i == 0 {
-				break
-			}
-		}
-		for k, m := range u.alarms {
-			if m.Level != alarm.Normal || m.ShelvedUntil != 0 || m.Raising != [2]bool{} {
-				if us.Alarms == nil {
-					us.Alarms = map[string]alarm.Machine{}
-				}
-				us.Alarms[alarm.Kind(k).String()] = m
-			}
-		}
+		u.snapshotInto(&us, &smp)
 		sn.Units[u.cfg.ID] = us
 		u.mu.Unlock()
 	}
 	return sn
+}
+
+// snapshotInto copies u's durable state into us, reusing its Times, Heat
+// and Alarms; us.Latest is smp when u has a sample. u.mu must be held.
+func (u *Unit) snapshotInto(us *UnitSnapshot, smp *SampleSnapshot) {
+	times, heat, alarms := us.Times[:0], us.Heat[:0], us.Alarms
+	clear(alarms)
+	*us = UnitSnapshot{ArmatureH: u.armature.H, FieldH: u.field.H, XArmature: u.hArm, XField: u.hField, ThermalNS: u.thermNS,
+		OELUsed: u.lim.oel.Used, SCLUsed: u.lim.scl.Used}
+	for i := u.n; i > 0; i-- {
+		times = append(times, u.ring[(u.head-i+ringSize)%ringSize])
+	}
+	us.Times = times
+	if u.has {
+		*smp = SampleSnapshot{Sample: u.latest, ReceivedUnixNS: u.recvNS}
+		us.Latest = smp
+		us.Suspect, us.Stale = u.suspect, u.stale
+	}
+	for i := uint64(heatSize - 1); ; i-- { // oldest first: the newest is heat[accepted % heatSize]
+		if h := u.heat[(u.accepted-i)%heatSize]; h != (heatStep{}) {
+			heat = append(heat, HeatSnapshot{TimeUnixNS: h.t, ArmatureS: h.arm, FieldS: h.field, Discardable: h.discardable})
+		}
+		if i == 0 {
+			break
+		}
+	}
+	if len(heat) > 0 {
+		us.Heat = heat
+	}
+	for k, m := range u.alarms {
+		if m.Level != alarm.Normal || m.ShelvedUntil != 0 || m.Raising != [2]bool{} {
+			if alarms == nil {
+				alarms = map[string]alarm.Machine{}
+			}
+			alarms[alarm.Kind(k).String()] = m
+		}
+	}
+	if len(alarms) > 0 {
+		us.Alarms = alarms
+	}
 }
 
 // Restore puts a snapshot's state back into the store's units, matched
@@ -174,59 +171,76 @@ func (s *Store) Snapshot(now time.Time) *Snapshot {
 // others are. It returns how many units were restored and the ids in
 // the snapshot that the fleet no longer has.
 func (s *Store) Restore(sn *Snapshot) (restored int, unknown []string, bad []error) {
+	bad = append(bad, sn.Bad...)
 	for id, us := range sn.Units {
-		u := s.Unit(id)
-		if u == nil {
+		known, err := s.RestoreUnit(id, &us)
+		switch {
+		case !known:
 			unknown = append(unknown, id)
-			continue
+		case err != nil:
+			bad = append(bad, err)
+		default:
+			restored++
 		}
-		u.mu.Lock()
-		cfg, plaus := u.cfg, u.plaus
-		u.mu.Unlock()
-		if err := checkUnitSnapshot(cfg, &plaus, &us); err != nil {
-			bad = append(bad, fmt.Errorf("unit %q: %w", id, err))
-			continue
-		}
-		u.mu.Lock()
-		u.n, u.head = 0, 0
-		for _, t := range us.Times {
-			if u.n > 0 && t <= u.ring[(u.head+ringSize-1)%ringSize] {
-				continue // keep the ring increasing whatever the file says
-			}
-			u.ring[u.head] = t
-			u.head = (u.head + 1) % ringSize
-			u.n = min(u.n+1, ringSize)
-		}
-		u.armature.H, u.field.H = us.ArmatureH, us.FieldH
-		u.lim.oel.Used, u.lim.scl.Used = min(1, max(0, us.OELUsed)), min(1, max(0, us.SCLUsed))
-		if us.Latest != nil {
-			u.latest, u.recvNS, u.has = us.Latest.Sample, us.Latest.ReceivedUnixNS, true
-			u.lastNS = u.latest.Time.UnixNano()
-			u.thermNS = max(u.lastNS, us.ThermalNS)
-			for k, m := range us.Alarms {
-				if k == alarm.FieldCurrentMismatch.String() {
-					u.alarms[alarm.FieldCurrentMismatch] = m // before evaluate: it decides whether the measured field current counts
-				}
-			}
-			u.evaluate()
-			u.suspect, u.stale = us.Suspect, us.Stale
-		}
-		u.heat = [heatSize]heatStep{}
-		for i, h := range us.Heat[max(0, len(us.Heat)-heatSize):] { // the newest at heat[accepted % heatSize]
-			back := uint64(min(len(us.Heat), heatSize) - 1 - i)
-			u.heat[(u.accepted-back)%heatSize] = heatStep{t: h.TimeUnixNS, arm: h.ArmatureS, field: h.FieldS, discardable: h.Discardable}
-		}
-		u.hArm, u.hField = us.XArmature, us.XField
-		for name, m := range us.Alarms {
-			if k, ok := alarm.ParseKind(name); ok {
-				u.alarms[k] = m
-			}
-		}
-		u.rest.forget()
-		u.mu.Unlock()
-		restored++
 	}
 	return restored, unknown, bad
+}
+
+// RestoreUnit puts one unit's saved state back (see Restore). known is
+// false when the fleet has no unit id; err says why a bad entry was not
+// restored.
+func (s *Store) RestoreUnit(id string, us *UnitSnapshot) (known bool, err error) {
+	u := s.Unit(id)
+	if u == nil {
+		return false, nil
+	}
+	u.mu.Lock()
+	cfg, plaus := u.cfg, u.plaus
+	u.mu.Unlock()
+	if err := checkUnitSnapshot(cfg, &plaus, us); err != nil {
+		return true, fmt.Errorf("unit %q: %w", ClipID(id), err)
+	}
+	u.mu.Lock()
+	defer u.mu.Unlock()
+	u.n, u.head = 0, 0
+	if len(us.Times) > 0 && u.ring == nil {
+		u.ring = new([ringSize]int64)
+	}
+	for _, t := range us.Times {
+		if u.n > 0 && t <= u.ring[(u.head+ringSize-1)%ringSize] {
+			continue // keep the ring increasing whatever the file says
+		}
+		u.ring[u.head] = t
+		u.head = (u.head + 1) % ringSize
+		u.n = min(u.n+1, ringSize)
+	}
+	u.armature.H, u.field.H = us.ArmatureH, us.FieldH
+	u.lim.oel.Used, u.lim.scl.Used = min(1, max(0, us.OELUsed)), min(1, max(0, us.SCLUsed))
+	if us.Latest != nil {
+		u.latest, u.recvNS, u.has = us.Latest.Sample, us.Latest.ReceivedUnixNS, true
+		u.lastNS = u.latest.Time.UnixNano()
+		u.thermNS = max(u.lastNS, us.ThermalNS)
+		for k, m := range us.Alarms {
+			if k == alarm.FieldCurrentMismatch.String() {
+				u.alarms[alarm.FieldCurrentMismatch] = m // before evaluate: it decides whether the measured field current counts
+			}
+		}
+		u.evaluate()
+		u.suspect, u.stale = us.Suspect, us.Stale
+	}
+	u.heat = [heatSize]heatStep{}
+	for i, h := range us.Heat[max(0, len(us.Heat)-heatSize):] { // the newest at heat[accepted % heatSize]
+		back := uint64(min(len(us.Heat), heatSize) - 1 - i)
+		u.heat[(u.accepted-back)%heatSize] = heatStep{t: h.TimeUnixNS, arm: h.ArmatureS, field: h.FieldS, discardable: h.Discardable}
+	}
+	u.hArm, u.hField = us.XArmature, us.XField
+	for name, m := range us.Alarms {
+		if k, ok := alarm.ParseKind(name); ok {
+			u.alarms[k] = m
+		}
+	}
+	u.rest.forget()
+	return true, nil
 }
 
 // checkUnitSnapshot says what is wrong with a unit's saved state, or

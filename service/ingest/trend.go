@@ -35,7 +35,7 @@ type trendSlot struct{ up, down, margin int16 }
 type trend struct {
 	has         bool
 	first, last int64
-	slots       [TrendPoints]trendSlot
+	slots       *[TrendPoints]trendSlot // allocated with the first point
 }
 
 // slotIndex returns the ring index of slot s.
@@ -64,6 +64,9 @@ func (u *Unit) recordTrend(t int64) {
 	}
 	if !tr.has {
 		tr.has, tr.first = true, s
+		if tr.slots == nil {
+			tr.slots = new([TrendPoints]trendSlot)
+		}
 	} else {
 		for g := tr.last + 1; g < s && g <= tr.last+TrendPoints; g++ {
 			tr.slots[slotIndex(g)] = trendSlot{trendMissing, trendMissing, trendMissing}

@@ -6,6 +6,8 @@ package metrics
 
 import (
 	"math"
+	"slices"
+	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -26,11 +28,32 @@ type family struct {
 	counter bool
 	labels  []string
 	desc    *prometheus.Desc
+	index   int  // in Collector.families
+	perUnit bool // its first labels are unit and site
 }
 
 // sink receives the series of one scrape.
 type sink interface {
-	add(f *family, v float64, lv ...string)
+	add(f *family, v float64, lv labels)
+}
+
+// labels are a series' label values, in the family's order. A value, not
+// a slice: passed through the sink interface, a slice would be allocated
+// for every series (438,000 a scrape at 10,000 units).
+type labels struct {
+	v [maxLabels]string
+	n int
+}
+
+// maxLabels is the most labels a family has (unit_info: unit, site,
+// name, rotor).
+const maxLabels = 4
+
+// lv makes the labels of a series.
+func lv(s ...string) labels {
+	var l labels
+	l.n = copy(l.v[:], s)
+	return l
 }
 
 // Collector exports the units of a store. It is a prometheus.Collector,
@@ -51,6 +74,11 @@ type Collector struct {
 	rotorFrequency, rotorDamping                           *family
 	limiters                                               limiterFamilies // limiters.go
 	dataState, suspects                                    *family
+
+	rotor rotorModes // rotormode.go
+
+	sizeMu sync.Mutex
+	sizes  []int // each family's series at the last whole scrape (text.go)
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -61,7 +89,14 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	}
 	c := &Collector{store: store, now: now}
 	mk := func(name, help string, counter bool, labels ...string) *family {
-		f := &family{name: Namespace + "_" + name, help: help, counter: counter, labels: labels}
+		if len(labels) > maxLabels {
+			panic("metrics: more than maxLabels labels") // a programming error, met at start
+		}
+		f := &family{name: Namespace + "_" + name, help: help, counter: counter, labels: labels, index: len(c.families),
+			perUnit: len(labels) >= 2 && labels[0] == "unit" && labels[1] == "site"}
+		if n := len(labels); f.perUnit && n > 4 || !f.perUnit && n > 2 {
+			panic("metrics: a family with more labels than a record holds") // a programming error, met at start
+		}
 		f.desc = prometheus.NewDesc(f.name, help, labels, nil)
 		c.families = append(c.families, f)
 		return f
@@ -111,111 +146,196 @@ func (c *Collector) Describe(ch chan<- *prometheus.Desc) {
 // constSink builds const metrics for a registry.
 type constSink chan<- prometheus.Metric
 
-func (ch constSink) add(f *family, v float64, lv ...string) {
+func (ch constSink) add(f *family, v float64, l labels) {
 	t := prometheus.GaugeValue
 	if f.counter {
 		t = prometheus.CounterValue
 	}
-	ch <- prometheus.MustNewConstMetric(f.desc, t, v, lv...)
+	ch <- prometheus.MustNewConstMetric(f.desc, t, v, l.v[:l.n]...)
 }
 
 // Collect builds the metrics from the store as it is now.
-func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch), nil) }
+func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch), Filter{}) }
 
-// series walks the store once and hands every series to s: of every
-// unit, or of the units keep admits (the fleet-wide counts stay; the
-// unit count is of the units kept).
-func (c *Collector) series(out sink, keep func(unitID string) bool) {
+// Filter chooses what one scrape serves: the fleet-wide families
+// (samples by result, alarm transitions, the number of units) and the
+// units whose series it carries. A fleet of 100,000 units is scraped as
+// several targets, each a part of the units (see the README, "Metrics
+// at scale").
+type Filter struct {
+	NoFleet bool     // leave out the fleet-wide families
+	NoUnits bool     // leave out every unit
+	Sites   []string // only these sites' units (none: every site)
+	// Shard and Shards: only the units whose id hashes to Shard (0 ≤
+	// Shard < Shards) by the 32-bit FNV-1a of the id's bytes modulo
+	// Shards; Shards 0 means no sharding.
+	Shard, Shards uint32
+	// Keep, when set, is the caller's scope: only the units it admits are
+	// served, and the unit count is of those (the other fleet-wide
+	// counts stay).
+	Keep func(unitID string) bool
+}
+
+// whole reports whether f serves every unit.
+func (f *Filter) whole() bool {
+	return !f.NoUnits && len(f.Sites) == 0 && f.Shards == 0 && f.Keep == nil
+}
+
+// keeps reports whether the filter serves the unit.
+func (f *Filter) keeps(id, site string) bool {
+	if f.NoUnits {
+		return false
+	}
+	if len(f.Sites) > 0 && !slices.Contains(f.Sites, site) {
+		return false
+	}
+	if f.Shards > 0 {
+		h := uint32(2166136261) // FNV-1a, 32 bits
+		for i := 0; i < len(id); i++ {
+			h ^= uint32(id[i])
+			h *= 16777619
+		}
+		return h%f.Shards == f.Shard
+	}
+	return true
+}
+
+// series walks the store once and hands every series f serves to out.
+func (c *Collector) series(out sink, f Filter) {
+	c.fleetSeries(out, f)
+	units := c.store.Units()
+	inScope := len(units) // the units the caller may see
+	if f.Keep != nil {
+		inScope = 0
+		for _, u := range units {
+			if f.Keep(u.Config().ID) {
+				inScope++
+			}
+		}
+	}
+	if !f.NoFleet {
+		out.add(c.units, float64(inScope), lv())
+	}
+	if f.NoUnits {
+		return
+	}
+	now := c.now()
+	nowNS := now.UnixNano()
+	for _, u := range units {
+		if !f.whole() {
+			cfg := u.Config()
+			if f.Keep != nil && !f.Keep(cfg.ID) || !f.keeps(cfg.ID, cfg.Site) {
+				continue
+			}
+		}
+		c.unitSeries(out, u, now, nowNS)
+	}
+	if f.whole() {
+		c.rotor.endWhole()
+	}
+}
+
+// unitSink is a sink told which unit's series come next.
+type unitSink interface {
+	beginUnit(id, site string)
+}
+
+// fleetSeries hands the fleet-wide series to out, unless f leaves them out.
+func (c *Collector) fleetSeries(out sink, f Filter) {
+	if f.NoFleet {
+		return
+	}
 	counts := c.store.Counts()
 	for r := ingest.Result(0); r < ingest.NumResults; r++ {
-		out.add(c.samples, float64(counts[r]), r.String())
+		out.add(c.samples, float64(counts[r]), lv(r.String()))
 	}
 	tr := c.store.Transitions()
 	for k := range tr {
 		for l := alarm.Normal; l <= alarm.Critical; l++ {
-			out.add(c.transitions, float64(tr[k][l]), alarm.Kind(k).String(), l.String())
+			out.add(c.transitions, float64(tr[k][l]), lv(alarm.Kind(k).String(), l.String()))
 		}
 	}
-	units := c.store.Units()
-	kept := 0
-	defer func() { out.add(c.units, float64(kept)) }()
-	now := c.now()
-	nowNS := now.UnixNano()
-	for _, u := range units {
+}
+
+// unitSeries hands one unit's series to out.
+func (c *Collector) unitSeries(out sink, u *ingest.Unit, now time.Time, nowNS int64) {
+	{
 		v := u.View()
 		cfg := v.Config
-		if keep != nil && !keep(cfg.ID) {
-			continue
-		}
-		kept++
 		id, site := cfg.ID, cfg.Site
-		out.add(c.info, 1, id, site, cfg.DisplayName(), cfg.Machine.Rotor.String())
-		out.add(c.accepted, float64(v.Accepted), id, site)
-		for st := ingest.NoData; st < ingest.NumDataStates; st++ {
-			out.add(c.dataState, boolFloat(v.Data == st), id, site, st.String())
+		if us, ok := out.(unitSink); ok {
+			us.beginUnit(id, site)
 		}
-		out.add(c.suspects, float64(v.Suspects), id, site)
-		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), id, site, "armature")
-		out.add(c.thermal, v.Field.Used(limits.FieldK), id, site, "field")
+		out.add(c.info, 1, lv(id, site, cfg.DisplayName(), cfg.Machine.Rotor.String()))
+		out.add(c.accepted, float64(v.Accepted), lv(id, site))
+		for st := ingest.NoData; st < ingest.NumDataStates; st++ {
+			out.add(c.dataState, boolFloat(v.Data == st), lv(id, site, st.String()))
+		}
+		out.add(c.suspects, float64(v.Suspects), lv(id, site))
+		out.add(c.thermal, v.Armature.Used(limits.ArmatureK), lv(id, site, "armature"))
+		out.add(c.thermal, v.Field.Used(limits.FieldK), lv(id, site, "field"))
 		c.limiters.series(out, &v, id, site)
 		for k := range v.Alarms {
 			m := &v.Alarms[k]
 			name := alarm.Kind(k).String()
-			out.add(c.alarmLevel, float64(m.Level), id, site, name)
+			out.add(c.alarmLevel, float64(m.Level), lv(id, site, name))
 			if m.Shelved(nowNS) {
-				out.add(c.alarmShelved, 1, id, site, name)
+				out.add(c.alarmShelved, 1, lv(id, site, name))
 			}
 			if m.Acknowledged && m.Level != alarm.Normal {
-				out.add(c.alarmAcked, 1, id, site, name)
+				out.add(c.alarmAcked, 1, lv(id, site, name))
 			}
 		}
 		if !v.HasSample {
-			continue
+			return
 		}
 		e, s, b, pt := &v.Eval, &v.Latest, cfg.Base, &v.Point
 		up, down := e.Headroom(pt.Q)
 		if up.OK {
-			out.add(c.headroom, b.PowerMW(up.V)*1e6, id, site, "up")
+			out.add(c.headroom, b.PowerMW(up.V)*1e6, lv(id, site, "up"))
 		}
 		if down.OK {
-			out.add(c.headroom, b.PowerMW(down.V)*1e6, id, site, "down")
+			out.add(c.headroom, b.PowerMW(down.V)*1e6, lv(id, site, "down"))
 		}
 		if e.QMax.OK {
-			out.add(c.qLimit, b.PowerMW(e.QMax.V)*1e6, id, site, "upper")
+			out.add(c.qLimit, b.PowerMW(e.QMax.V)*1e6, lv(id, site, "upper"))
 		}
 		if e.QMin.OK {
-			out.add(c.qLimit, b.PowerMW(e.QMin.V)*1e6, id, site, "lower")
+			out.add(c.qLimit, b.PowerMW(e.QMin.V)*1e6, lv(id, site, "lower"))
 		}
 		for _, l := range limits.Limits() {
 			if m := e.Margins[l]; m.OK {
-				out.add(c.margin, m.V, id, site, report.LimitOf(l).Name)
+				out.add(c.margin, m.V, lv(id, site, report.LimitOf(l).Name))
 			}
 		}
 		if e.Binding != limits.NoLimit {
-			out.add(c.binding, 1, id, site, report.LimitOf(e.Binding).Name)
+			out.add(c.binding, 1, lv(id, site, report.LimitOf(e.Binding).Name))
 		}
-		out.add(c.feasible, boolFloat(e.Feasible), id, site)
-		out.add(c.zone, float64(e.Zone), id, site)
-		out.add(c.activePower, s.PMW*1e6, id, site)
-		out.add(c.reactivePower, s.QMvar*1e6, id, site)
-		out.add(c.voltage, s.VKV*1e3, id, site)
-		out.add(c.voltagePU, pt.V, id, site)
+		out.add(c.feasible, boolFloat(e.Feasible), lv(id, site))
+		out.add(c.zone, float64(e.Zone), lv(id, site))
+		out.add(c.activePower, s.PMW*1e6, lv(id, site))
+		out.add(c.reactivePower, s.QMvar*1e6, lv(id, site))
+		out.add(c.voltage, s.VKV*1e3, lv(id, site))
+		out.add(c.voltagePU, pt.V, lv(id, site))
 		if s.HasFieldA {
-			out.add(c.fieldCurrent, s.FieldA, id, site, "measured")
+			out.add(c.fieldCurrent, s.FieldA, lv(id, site, "measured"))
 		}
-		out.add(c.fieldCurrent, b.FieldA(e.IfdModel), id, site, "model")
-		out.add(c.loadAngle, cfg.Model.LoadAngle(pt.P, pt.Q, pt.V), id, site)
+		out.add(c.fieldCurrent, b.FieldA(e.IfdModel), lv(id, site, "model"))
+		out.add(c.loadAngle, cfg.Model.LoadAngle(pt.P, pt.Q, pt.V), lv(id, site))
 		if t := cfg.Model.CriticalClearingTime(pt.P, pt.Q, pt.V); t.OK && !math.IsInf(t.V, 0) {
-			out.add(c.cct, t.V, id, site)
+			out.add(c.cct, t.V, lv(id, site))
 		}
-		// An eigen decomposition, tens of microseconds: here, at scrape
-		// time, never per sample.
-		if m, ok, err := cfg.Model.RotorMode(*pt); ok && err == nil && !math.IsNaN(m.FrequencyHz) && !math.IsNaN(m.DampingRatio) {
-			out.add(c.rotorFrequency, m.FrequencyHz, id, site)
-			out.add(c.rotorDamping, m.DampingRatio, id, site)
+		// An eigen decomposition, 100 µs or more: here, at scrape time,
+		// never per sample, and again only when the point moved
+		// (rotormode.go). Only the avr basis has a rotor mode.
+		if cfg.Model.Params().Basis == limits.BasisAVR {
+			if m, ok := c.rotor.get(u, cfg.Model, *pt); ok {
+				out.add(c.rotorFrequency, m.FrequencyHz, lv(id, site))
+				out.add(c.rotorDamping, m.DampingRatio, lv(id, site))
+			}
 		}
-		out.add(c.age, now.Sub(v.Received).Seconds(), id, site)
-		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, id, site)
+		out.add(c.age, now.Sub(v.Received).Seconds(), lv(id, site))
+		out.add(c.sampleTime, float64(s.Time.UnixNano())/1e9, lv(id, site))
 	}
 }
 

@@ -18,11 +18,18 @@ import (
 	"github.com/genvelope/genvelope/service/ingest"
 )
 
-func store(t *testing.T) *ingest.Store {
+func store(t *testing.T) *ingest.Store { return storeNamed(t, "") }
+
+// storeNamed is store with harrowmere-1's name and site set to name
+// (unless it is "").
+func storeNamed(t *testing.T, name string) *ingest.Store {
 	t.Helper()
 	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)
+	}
+	if name != "" {
+		fl.Unit("harrowmere-1").Name, fl.Unit("harrowmere-1").Site = name, name
 	}
 	s := ingest.NewStore(fl, ingest.Options{})
 	at := time.Date(2026, 6, 1, 12, 0, 0, 0, time.UTC)
@@ -86,7 +93,12 @@ func TestCollectorSeries(t *testing.T) {
 // The text writer says exactly what the registry says, and passes the
 // Prometheus linter (Prometheus documentation; the tool is the check).
 func TestWriteTextMatchesRegistry(t *testing.T) {
-	s := store(t)
+	for _, name := range []string{"", "Unit \"one\" \\ of\nthe site"} { // label values to escape
+		t.Run(name, func(t *testing.T) { writeTextMatchesRegistry(t, storeNamed(t, name)) })
+	}
+}
+
+func writeTextMatchesRegistry(t *testing.T, s *ingest.Store) {
 	now := func() time.Time { return time.Date(2026, 6, 1, 12, 0, 5, 0, time.UTC) }
 	c := NewCollector(s, now)
 	reg := prometheus.NewPedanticRegistry()
@@ -153,4 +165,33 @@ func value(m *dto.Metric) float64 {
 		return m.GetGauge().GetValue()
 	}
 	return m.GetCounter().GetValue()
+}
+
+// A caller's scope and the parts of /metrics combine: each shard serves
+// only the units both admit, the shards together every unit in scope,
+// and the unit count of ?units=none is of the units in scope.
+func TestFilterScopeAndShards(t *testing.T) {
+	c := NewCollector(store(t), nil)
+	scope := func(id string) bool { return id != "brindle-gt3" }
+	count := func(f Filter, family string) int {
+		var b bytes.Buffer
+		if err := c.WriteTextFiltered(&b, f); err != nil {
+			t.Fatal(err)
+		}
+		return strings.Count(b.String(), "\n"+family)
+	}
+	units := 0
+	for shard := range uint32(2) {
+		units += count(Filter{Keep: scope, NoFleet: true, Shard: shard, Shards: 2}, "genvelope_unit_info{")
+	}
+	if units != 2 {
+		t.Errorf("the two shards serve %d units in scope, want 2", units)
+	}
+	var b bytes.Buffer
+	if err := c.WriteTextFiltered(&b, Filter{Keep: scope, NoUnits: true}); err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(b.String(), "\ngenvelope_fleet_units 2\n") || strings.Contains(b.String(), "unit=") {
+		t.Errorf("?units=none in scope:\n%s", b.String())
+	}
 }

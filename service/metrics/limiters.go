@@ -28,16 +28,16 @@ func (f limiterFamilies) series(out sink, v *ingest.View, id, site string) {
 		if !l.t.Configured {
 			continue
 		}
-		out.add(f.used, l.t.Used, id, site, l.name)
+		out.add(f.used, l.t.Used, lv(id, site, l.name))
 		if !v.HasSample {
 			continue
 		}
-		out.add(f.current, l.t.X, id, site, l.name)
+		out.add(f.current, l.t.X, lv(id, site, l.name))
 		if l.t.Timing {
-			out.add(f.toAction, l.t.ToActionS, id, site, l.name)
+			out.add(f.toAction, l.t.ToActionS, lv(id, site, l.name))
 		}
 	}
 	if m := v.Limiters.VHzMargin; m.OK {
-		out.add(f.vhzMargin, m.V, id, site)
+		out.add(f.vhzMargin, m.V, lv(id, site))
 	}
 }

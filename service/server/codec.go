@@ -10,20 +10,25 @@ import (
 	"google.golang.org/grpc/mem"
 	"google.golang.org/grpc/status"
 	"google.golang.org/protobuf/proto"
+
+	"github.com/genvelope/genvelope/service/rpc"
 )
 
 // strictCodec is the proto codec with one difference: a message that
 // does not decode is answered INVALID_ARGUMENT (the client sent bad
 // bytes) instead of grpc-go's INTERNAL (which says the server failed).
 // grpc-go turns any codec error into INTERNAL, so the codec notes the
-// failure against the message and the interceptors answer it.
+// failure against the message and the interceptors answer it. It wraps
+// rpc.Codec (telemetry requests decoded by generated code into reused
+// messages), so that both hold: grpc-go keeps only the last
+// ForceServerCodecV2 option it is given.
 type strictCodec struct {
 	encoding.CodecV2
 	bad sync.Map // message -> decode error
 }
 
 func newStrictCodec() *strictCodec {
-	return &strictCodec{CodecV2: encoding.GetCodecV2("proto")}
+	return &strictCodec{CodecV2: rpc.NewCodec()}
 }
 
 func (c *strictCodec) Unmarshal(data mem.BufferSlice, v any) error {

@@ -6,10 +6,12 @@
 package state
 
 import (
+	"bufio"
 	"context"
 	"encoding/json"
 	"errors"
 	"fmt"
+	"io"
 	"io/fs"
 	"log/slog"
 	"os"
@@ -24,18 +26,26 @@ import (
 // kill -9 at most this much is lost.
 const MaxInterval = 5 * time.Second
 
-// Write stores sn in path atomically, sealed with its checksum.
+// Write stores sn in path atomically, in the binary state format with
+// its checksum.
 func Write(path string, sn *ingest.Snapshot) error {
-	data, err := sn.MarshalSealed()
-	if err != nil {
-		return fmt.Errorf("state: encoding: %w", err)
-	}
-	return WriteFile(path, data)
+	return WriteStream(path, sn.WriteBinary)
 }
 
 // WriteFile replaces path with data atomically: a crash at any moment
 // leaves either the old file or the new one.
 func WriteFile(path string, data []byte) error {
+	return WriteStream(path, func(w io.Writer) error {
+		_, err := w.Write(data)
+		return err
+	})
+}
+
+// WriteStream replaces path atomically with what encode writes: a
+// crash at any moment leaves either the old file or the new one. encode
+// writes straight to the temporary file (no copy of the whole content is
+// made in memory).
+func WriteStream(path string, encode func(io.Writer) error) error {
 	dir := filepath.Dir(path)
 	f, err := os.CreateTemp(dir, "."+filepath.Base(path)+".*.tmp")
 	if err != nil {
@@ -43,7 +53,7 @@ func WriteFile(path string, data []byte) error {
 	}
 	tmp := f.Name()
 	defer os.Remove(tmp) // after a successful rename there is nothing to remove
-	if _, err := f.Write(data); err != nil {
+	if err := encode(f); err != nil {
 		f.Close()
 		return fmt.Errorf("state: writing %s: %w", tmp, err)
 	}
@@ -67,29 +77,98 @@ func WriteFile(path string, data []byte) error {
 // ErrNoState is returned by Read when there is no state file yet.
 var ErrNoState = errors.New("no state file")
 
-// Read loads the snapshot in path. It returns ErrNoState when the file
-// does not exist, and an error saying what is wrong when the file cannot
-// be used (corrupt, or written by an incompatible version).
+// Read loads the snapshot in path, in either format: the binary one
+// the service writes, or the JSON of versions 1 and 2 that earlier
+// releases wrote. It returns ErrNoState when the file does not exist,
+// and an error saying what is wrong when the file cannot be used
+// (corrupt, or written by an incompatible version). Entries of a binary
+// file that do not decode are in the snapshot's Bad.
 func Read(path string) (*ingest.Snapshot, error) {
-	data, err := os.ReadFile(path)
+	f, err := os.Open(path)
 	if errors.Is(err, fs.ErrNotExist) {
 		return nil, ErrNoState
 	}
 	if err != nil {
 		return nil, fmt.Errorf("state: %w", err)
 	}
+	defer f.Close()
+	br := bufio.NewReader(f)
+	if head, _ := br.Peek(len(ingest.StateMagic)); !ingest.IsBinaryState(head) {
+		return readJSON(path, br)
+	}
+	sn, err := ingest.ReadSnapshot(br)
+	if err != nil {
+		return nil, fmt.Errorf("state file %s: %w", path, err)
+	}
+	return sn, nil
+}
+
+// readJSON reads a state file of versions 1 and 2 (JSON).
+func readJSON(path string, r io.Reader) (*ingest.Snapshot, error) {
 	var sn ingest.Snapshot
-	if err := json.Unmarshal(data, &sn); err != nil {
+	if err := json.NewDecoder(r).Decode(&sn); err != nil {
 		return nil, fmt.Errorf("state file %s is corrupt: %w", path, err)
 	}
 	if sn.Format != "genvelope-state" || sn.Version < 1 || sn.Version > ingest.SnapshotVersion {
-		return nil, fmt.Errorf("state file %s has format %q version %d; this genvelope reads %q versions 1 to %d",
-			path, sn.Format, sn.Version, "genvelope-state", ingest.SnapshotVersion)
+		return nil, fmt.Errorf("state file %s has format %q version %d; this genvelope reads %q versions 1 to %d (JSON) and %d (binary)",
+			path, sn.Format, sn.Version, "genvelope-state", ingest.SnapshotVersion, ingest.BinarySnapshotVersion)
 	}
 	if err := sn.Verify(); err != nil {
 		return nil, fmt.Errorf("state file %s: %w", path, err)
 	}
 	return &sn, nil
+}
+
+// verify reads the binary state file at path to its end: framing and
+// checksum. Nothing is restored from a file before it passed.
+func verify(path string) error {
+	_, err := decodeFile(path, func(string, *ingest.UnitSnapshot, error) {})
+	return err
+}
+
+// decodeFile calls each with every entry of the binary state file at
+// path (err is a *ingest.BadEntryError for an entry that did not
+// decode; us is reused between calls) and returns what ends the file
+// early, or nil at its good end, with the time the file was written.
+func decodeFile(path string, each func(id string, us *ingest.UnitSnapshot, err error)) (written time.Time, err error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return written, fmt.Errorf("state: %w", err)
+	}
+	defer f.Close()
+	d, err := ingest.NewStateDecoder(f)
+	if err != nil {
+		return written, fmt.Errorf("state file %s: %w", path, err)
+	}
+	written = d.Written
+	var us ingest.UnitSnapshot
+	for {
+		id, err := d.Next(&us)
+		var bad *ingest.BadEntryError
+		switch {
+		case errors.Is(err, io.EOF):
+			return written, nil
+		case errors.As(err, &bad):
+			each(id, nil, bad)
+		case err != nil:
+			return written, fmt.Errorf("state file %s is corrupt: %w", path, err)
+		default:
+			each(id, &us, nil)
+		}
+	}
+}
+
+// isBinary reports whether the file at path begins as a binary state
+// file.
+func isBinary(path string) bool {
+	f, err := os.Open(path)
+	if err != nil {
+		return false
+	}
+	defer f.Close()
+	head := make([]byte, len(ingest.StateMagic))
+	n, _ := io.ReadFull(f, head)
+	return ingest.IsBinaryState(head[:n])
 }
 
 // MoveAside renames path to path.bad-TIME (TIME to the nanosecond),
@@ -120,26 +199,69 @@ func MoveAside(path string, now time.Time) (string, error) {
 // starts clean; only a file that exists but cannot be read or moved is
 // an error.
 func Load(path string, store *ingest.Store, log *slog.Logger, now time.Time) error {
+	if isBinary(path) {
+		return loadBinary(path, store, log, now)
+	}
 	sn, err := Read(path)
 	switch {
 	case errors.Is(err, ErrNoState):
 		log.Info("no state file yet; starting with cold windings and no alarms", "state", path)
 		return nil
 	case err != nil:
-		aside, rerr := MoveAside(path, now)
-		if rerr != nil {
-			return fmt.Errorf("%v; and it could not be moved aside: %w", err, rerr)
-		}
-		log.Error("STATE FILE UNUSABLE: moved aside; starting clean — thermal memory, alarm acknowledgements and shelves are lost",
-			"err", err, "moved_to", aside)
-		return nil
+		return unusable(path, err, log, now)
 	}
+	log.Info("state file in the JSON format of earlier releases: read; the next save writes the binary format", "state", path, "version", sn.Version)
 	restored, unknown, bad := store.Restore(sn)
+	logRestored(path, sn.Written, restored, len(unknown), bad, log)
+	return nil
+}
+
+// loadBinary restores a binary state file unit by unit, once the whole
+// file has passed its checksum: the state is never held whole in memory.
+func loadBinary(path string, store *ingest.Store, log *slog.Logger, now time.Time) error {
+	if err := verify(path); err != nil {
+		return unusable(path, err, log, now)
+	}
+	var restored, unknown int
+	var bad []error
+	written, err := decodeFile(path, func(id string, us *ingest.UnitSnapshot, err error) {
+		if err == nil {
+			var known bool
+			known, err = store.RestoreUnit(id, us)
+			if !known {
+				unknown++
+				return
+			}
+		}
+		if err != nil {
+			bad = append(bad, err)
+			return
+		}
+		restored++
+	})
+	if err != nil { // changed between the two reads
+		return unusable(path, err, log, now)
+	}
+	logRestored(path, written, restored, unknown, bad, log)
+	return nil
+}
+
+// unusable moves an unusable state file aside and says so loudly.
+func unusable(path string, err error, log *slog.Logger, now time.Time) error {
+	aside, rerr := MoveAside(path, now)
+	if rerr != nil {
+		return fmt.Errorf("%v; and it could not be moved aside: %w", err, rerr)
+	}
+	log.Error("STATE FILE UNUSABLE: moved aside; starting clean — thermal memory, alarm acknowledgements and shelves are lost",
+		"err", err, "moved_to", aside)
+	return nil
+}
+
+func logRestored(path string, written time.Time, restored, unknown int, bad []error, log *slog.Logger) {
 	for _, b := range bad {
 		log.Error("STATE ENTRY UNUSABLE: not restored; this unit starts clean (the other units are restored)", "state", path, "err", b)
 	}
-	log.Info("state restored", "state", path, "written", sn.Written, "units", restored, "not_in_fleet", len(unknown), "unusable", len(bad))
-	return nil
+	log.Info("state restored", "state", path, "written", written, "units", restored, "not_in_fleet", unknown, "unusable", len(bad))
 }
 
 // DegradedAfter is how many saves in a row may fail before the service
@@ -162,7 +284,8 @@ func NewSaver(path string, store *ingest.Store, log *slog.Logger) *Saver {
 
 // Save writes the state once, counting a failure.
 func (s *Saver) Save(now time.Time) error {
-	if err := Write(s.path, s.store.Snapshot(now)); err != nil {
+	err := WriteStream(s.path, func(w io.Writer) error { return s.store.EncodeState(w, now) })
+	if err != nil {
 		s.failed.Add(1)
 		n := s.inRow.Add(1)
 		s.log.Error("state not saved", "err", err, "failures_in_a_row", n)

@@ -1,6 +1,7 @@
 package state
 
 import (
+	"encoding/json"
 	"fmt"
 	"io"
 	"log/slog"
@@ -45,24 +46,60 @@ func TestRoundTrip(t *testing.T) {
 	if err := s.Acknowledge(u.ID, alarm.FieldThermal, t0.Add(time.Hour), "test"); err != nil {
 		t.Fatalf("acknowledge the thermal alarm: %v", err)
 	}
-	path := filepath.Join(t.TempDir(), "state.json")
-	if err := Write(path, s.Snapshot(t0.Add(time.Hour))); err != nil {
-		t.Fatal(err)
+	sealedJSON := func(path string) error { // what the previous release wrote (version 2)
+		sn := s.Snapshot(t0.Add(time.Hour))
+		sn.Version = ingest.SnapshotVersion
+		if err := sn.Seal(); err != nil {
+			return err
+		}
+		data, err := json.Marshal(sn)
+		if err != nil {
+			return err
+		}
+		return WriteFile(path, data)
 	}
-	s2 := newStore(t)
-	if err := Load(path, s2, slog.New(slog.NewTextHandler(io.Discard, nil)), t0); err != nil {
-		t.Fatal(err)
-	}
-	a, b := s.Unit(u.ID).View(), s2.Unit(u.ID).View()
-	if a.Field != b.Field || a.XField != b.XField || !b.HasSample || b.Latest.Time != a.Latest.Time {
-		t.Errorf("restored field %+v x %v, want %+v x %v", b.Field, b.XField, a.Field, a.XField)
-	}
-	if m := b.Alarms[alarm.FieldThermal]; m.Level == alarm.Normal || !m.Acknowledged {
-		t.Errorf("field thermal alarm not restored: %+v", m)
-	}
-	resend := ingest.Sample{UnitID: u.ID, Time: t0.Add(19 * time.Second), PMW: 250, QMvar: 100, VKV: 20}
-	if r, _ := s2.Accept(t0.Add(time.Hour), &resend); r != ingest.Duplicate {
-		t.Errorf("resent sample after restore: %v, want duplicate", r)
+	for _, tc := range []struct {
+		name  string
+		write func(path string) error
+		log   string
+	}{
+		{"saver (binary, streamed)", func(path string) error {
+			return NewSaver(path, s, slog.New(slog.DiscardHandler)).Save(t0.Add(time.Hour))
+		}, ""},
+		{"snapshot (binary)", func(path string) error { return Write(path, s.Snapshot(t0.Add(time.Hour))) }, ""},
+		{"JSON version 2", sealedJSON, "JSON format of earlier releases"},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			path := filepath.Join(t.TempDir(), "state.json")
+			if err := tc.write(path); err != nil {
+				t.Fatal(err)
+			}
+			s2 := newStore(t)
+			var logs strings.Builder
+			if err := Load(path, s2, slog.New(slog.NewTextHandler(&logs, nil)), t0); err != nil {
+				t.Fatal(err)
+			}
+			if !strings.Contains(logs.String(), tc.log) || !strings.Contains(logs.String(), "state restored") || strings.Contains(logs.String(), "UNUSABLE") {
+				t.Errorf("log:\n%s", logs.String())
+			}
+			a, b := s.Unit(u.ID).View(), s2.Unit(u.ID).View()
+			if a.Field != b.Field || a.XField != b.XField || !b.HasSample || !b.Latest.Time.Equal(a.Latest.Time) {
+				t.Errorf("restored field %+v x %v, want %+v x %v", b.Field, b.XField, a.Field, a.XField)
+			}
+			if m := b.Alarms[alarm.FieldThermal]; m.Level == alarm.Normal || !m.Acknowledged {
+				t.Errorf("field thermal alarm not restored: %+v", m)
+			}
+			for i := range 20 {
+				resend := ingest.Sample{UnitID: u.ID, Time: t0.Add(time.Duration(i) * time.Second), PMW: 250, QMvar: 100, VKV: 20}
+				if r, _ := s2.Accept(t0.Add(time.Hour), &resend); r != ingest.Duplicate {
+					t.Errorf("resent sample %d after restore: %v, want duplicate", i, r)
+				}
+			}
+			// The file is read again the same way (nothing was moved aside).
+			if sn, err := Read(path); err != nil || len(sn.Units[u.ID].Times) != 20 {
+				t.Errorf("Read: %v", err)
+			}
+		})
 	}
 }
 
@@ -71,6 +108,15 @@ func TestCorruptFileMovedAside(t *testing.T) {
 		"corrupt":      `{"format": "genvelope-state", "version": 1, "units": {`,
 		"incompatible": `{"format": "genvelope-state", "version": 99, "units": {}}`,
 		"foreign":      `{"hello": "world"}`,
+		"empty":        "",
+		"binary cut":   binaryState(t)[:40],
+		"binary changed": func() string {
+			b := []byte(binaryState(t))
+			b[len(b)/2] ^= 1
+			return string(b)
+		}(),
+		"binary appended":      binaryState(t) + "\n",
+		"binary other version": ingest.StateMagic + "\x63" + binaryState(t)[len(ingest.StateMagic)+1:],
 	} {
 		t.Run(name, func(t *testing.T) {
 			dir := t.TempDir()
@@ -91,6 +137,20 @@ func TestCorruptFileMovedAside(t *testing.T) {
 			}
 		})
 	}
+}
+
+// binaryState is a good binary state file of the example fleet.
+func binaryState(t *testing.T) string {
+	s := newStore(t)
+	for i := range 5 {
+		smp := ingest.Sample{UnitID: "harrowmere-1", Time: t0.Add(time.Duration(i) * time.Second), PMW: 250, QMvar: 100, VKV: 20}
+		s.Accept(t0.Add(time.Hour), &smp)
+	}
+	var b strings.Builder
+	if err := s.EncodeState(&b, t0); err != nil {
+		t.Fatal(err)
+	}
+	return b.String()
 }
 
 func TestNoStateFile(t *testing.T) {

@@ -209,6 +209,7 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 	fs.IntVar(&cfg.CPUSeconds, "cpuprofile-seconds", cfg.CPUSeconds, "length of the CPU profile, s (at most -duration)")
 	fs.StringVar(&cfg.HeapProfile, "heapprofile", "", "write a heap profile of the service, taken after the phases, to this file")
 	fs.StringVar(&cfg.MetricsCPUProfile, "metrics-cpuprofile", "", "write a CPU profile of the service answering GET /metrics, after the timed tries, to this file")
+	fs.DurationVar(&cfg.StartWait, "start-wait", cfg.StartWait, "how long a child may take to be ready (a fleet of 100,000 units takes a while to build)")
 	fs.Func("serve-env", "`KEY=VALUE` added to the environment of genvelope serve, e.g. GOGC=200 or GODEBUG=gctrace=1 (repeatable)", func(v string) error {
 		if k, _, ok := strings.Cut(v, "="); !ok || k == "" {
 			return errors.New("want KEY=VALUE")
