@@ -349,7 +349,7 @@ func (l *Log) applyMsg(msg jetstream.Msg, meta *jetstream.MsgMetadata) error {
 		if w != nil && len(w.results) != len(smps) {
 			w = nil // not ours after all
 		}
-		l.applySamples(meta.Timestamp, smps, w)
+		l.applySamples(&l.units[p], meta.Timestamp, smps, w)
 		if w != nil {
 			// Its batches hold the waiter; the writer registered it.
 			l.forget([]string{msg.Headers().Get(idHeader)})
@@ -372,9 +372,9 @@ func (l *Log) internID(b []byte) string {
 	return id
 }
 
-// applySamples applies the decoded samples, received at the stream's
-// time at. l.applyMu must be held.
-func (l *Log) applySamples(at time.Time, smps []ingest.Sample, w *waiter) {
+// applySamples applies the decoded samples of a partition whose units
+// resolves, received at the stream's time at. l.applyMu must be held.
+func (l *Log) applySamples(units *ingest.Resolver, at time.Time, smps []ingest.Sample, w *waiter) {
 	var tally ingest.Tally
 	// With an id table (samples/2), each unit's ledger is looked up once
 	// a message rather than once a sample.
@@ -388,7 +388,7 @@ func (l *Log) applySamples(at time.Time, smps []ingest.Sample, w *waiter) {
 	}
 	for i := range smps {
 		smp := &smps[i]
-		res, detail := l.store.Accept(at, smp)
+		res, detail := l.store.AcceptFrom(units, at, smp)
 		tally[res]++
 		if res == ingest.Accepted {
 			var lg *Ledger

@@ -149,6 +149,7 @@ type Log struct {
 	ledger  map[string]*Ledger // per unit: what has been applied
 	dec     sampleDecoder
 	ledgers []*Ledger // of the decoded message's id table
+	units   []ingest.Resolver // by partition: its units, each resolved once (ingest.Resolver)
 	intern  map[string]string
 
 	cpMu  sync.Mutex   // one checkpoint written at a time
@@ -240,7 +241,8 @@ func Open(ctx context.Context, cfg Config) (*Log, error) {
 	var idb [6]byte
 	_, _ = rand.Read(idb[:])
 	l := &Log{cfg: cfg, log: cfg.Logger, serves: serves, origin: hex.EncodeToString(idb[:]),
-		pending: map[string]*waiter{}, ledger: map[string]*Ledger{}, intern: map[string]string{}}
+		pending: map[string]*waiter{}, ledger: map[string]*Ledger{}, intern: map[string]string{},
+		units: make([]ingest.Resolver, cfg.Partitions)}
 	l.dec.intern = l.internID
 	urls := strings.Join(cfg.URLs, ",")
 	opts := []nats.Option{
@@ -320,13 +322,14 @@ func (l *Log) Select(fl *fleet.Fleet) *fleet.Fleet {
 
 // Check says what would become of smp: a unit served by another replica
 // is refused with its partition; the rest is ingest's check against the
-// state applied so far.
-func (l *Log) Check(now time.Time, smp *ingest.Sample) (ingest.Result, string) {
+// state applied so far. units (nil: none) is the resolver of the stream
+// smp came on.
+func (l *Log) Check(units *ingest.Resolver, now time.Time, smp *ingest.Sample) (ingest.Result, string) {
 	if !l.served(smp.UnitID) && l.full.Load().Unit(smp.UnitID) != nil {
 		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is in partition %d, which this replica does not serve (it serves %s): send it to a replica that does",
 			smp.UnitID, Partition(smp.UnitID, l.cfg.Partitions), formatPartitions(l.serves))
 	}
-	return l.store.Check(now, smp)
+	return l.store.CheckFrom(units, now, smp)
 }
 
 func (l *Log) subject(part int) string {

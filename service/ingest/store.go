@@ -465,7 +465,13 @@ func (s *Store) AcceptFrom(r *Resolver, now time.Time, smp *Sample) (res Result,
 // anything: a replicated service checks a sample before it writes it to
 // its log, and applies it with Accept when it reads it back.
 func (s *Store) Check(now time.Time, smp *Sample) (res Result, detail string) {
-	u, res, detail := s.precheck(nil, now, smp)
+	return s.CheckFrom(nil, now, smp)
+}
+
+// CheckFrom is Check with the unit found through r, the resolver of the
+// stream the sample came on (nil: the fleet's map).
+func (s *Store) CheckFrom(r *Resolver, now time.Time, smp *Sample) (res Result, detail string) {
+	u, res, detail := s.precheck(r, now, smp)
 	if res != Accepted {
 		return res, detail
 	}

@@ -56,8 +56,9 @@ type TelemetryOptions struct {
 
 // Log is the durable path of accepted samples (package durable).
 type Log interface {
-	// Check says what would become of smp, without recording it.
-	Check(now time.Time, smp *ingest.Sample) (ingest.Result, string)
+	// Check says what would become of smp, without recording it; units,
+	// when not nil, is the resolver of the stream smp came on.
+	Check(units *ingest.Resolver, now time.Time, smp *ingest.Sample) (ingest.Result, string)
 	// Append starts writing smps to the log; wait returns what applying
 	// each of them from the log gave. Batches appended one after another
 	// enter the log in that order. An error (of either) means the
@@ -118,7 +119,7 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 		}
 	}()
 	if t.log != nil {
-		return t.streamLog(st, reqs, errc)
+		return t.streamLog(st, reqs, errc, free)
 	}
 	var units ingest.Resolver // this stream's units, each resolved once
 	answer := func(req *pb.PushRequest) error {
@@ -167,7 +168,7 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest, units *ingest
 	}
 	now := t.now()
 	if t.log != nil {
-		return t.pushLog(ctx, req, now)
+		return t.pushLog(ctx, req, now, units)
 	}
 	resp := &pb.PushResponse{Sequence: req.Sequence}
 	var tally ingest.Tally
@@ -261,8 +262,8 @@ func answer(resp *pb.PushResponse, i int, res ingest.Result, detail string) {
 // wrote the same unit's samples in between). Results decided before the
 // log are counted here; those of the log by its consumer, on every
 // replica alike.
-func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.Time) (*pb.PushResponse, error) {
-	finish, err := t.startLog(ctx, req, now)
+func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.Time, units *ingest.Resolver) (*pb.PushResponse, error) {
+	finish, err := t.startLog(ctx, req, now, units)
 	if err != nil {
 		return nil, err
 	}
@@ -270,8 +271,11 @@ func (t *Telemetry) pushLog(ctx context.Context, req *pb.PushRequest, now time.T
 }
 
 // startLog checks the batch and starts writing what passes to the log;
-// finish waits for the log and builds the answer.
-func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.Time) (finish func(context.Context) (*pb.PushResponse, error), err error) {
+// finish waits for the log and builds the answer. units, when not nil,
+// is the resolver of the stream req came on. Once startLog has returned,
+// neither finish nor the log holds anything of req: the stream may decode
+// its next request into it.
+func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.Time, units *ingest.Resolver) (finish func(context.Context) (*pb.PushResponse, error), err error) {
 	if err := t.checkSize(req); err != nil {
 		return nil, err
 	}
@@ -289,7 +293,7 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 		smp := &smps[len(smps)-1]
 		res, detail := t.convert(caller, s, smp)
 		if res == ingest.Accepted {
-			res, detail = t.log.Check(now, smp)
+			res, detail = t.log.Check(units, now, smp)
 		}
 		d.note(res, s.UnitId)
 		if res == ingest.Accepted {
@@ -303,20 +307,21 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 	t.store.Commit(&tally)
 	t.report(ctx, &d)
 	wait := func(context.Context) ([]ingest.Result, []string, error) { return nil, nil, nil }
+	seq := req.Sequence
 	if len(smps) > 0 {
 		if wait, err = t.log.Append(ctx, now, smps); err != nil {
-			return nil, unavailable(req, err)
+			return nil, unavailable(seq, err)
 		}
 	}
 	return func(ctx context.Context) (*pb.PushResponse, error) {
 		res, det, err := wait(ctx)
 		if err != nil {
-			return nil, unavailable(req, err)
+			return nil, unavailable(seq, err)
 		}
 		for j, i := range idx {
 			results[i], details[i] = res[j], det[j]
 		}
-		resp := &pb.PushResponse{Sequence: req.Sequence}
+		resp := &pb.PushResponse{Sequence: seq}
 		for i, res := range results {
 			answer(resp, i, res, details[i])
 		}
@@ -324,14 +329,16 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 	}, nil
 }
 
-func unavailable(req *pb.PushRequest, err error) error {
-	return status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", req.Sequence, err)
+func unavailable(seq uint64, err error) error {
+	return status.Errorf(codes.Unavailable, "batch %d not acknowledged: %v; resend it (samples already written count once)", seq, err)
 }
 
 // streamLog is Stream on the durable path: up to streamWindow batches
-// are in the log at once, and answered in order as they are applied.
-func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse], reqs <-chan *pb.PushRequest, errc <-chan error) error {
+// are in the log at once, and answered in order as they are applied. A
+// request goes back to free once the log has what it needs of it.
+func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse], reqs <-chan *pb.PushRequest, errc <-chan error, free chan<- *pb.PushRequest) error {
 	ctx := st.Context()
+	var units ingest.Resolver // this stream's units, each resolved once
 	pending := make(chan func(context.Context) (*pb.PushResponse, error), streamWindow)
 	sendErr := make(chan error, 1)
 	go func() { // answers in order; ends when pending is closed
@@ -366,9 +373,13 @@ func (t *Telemetry) streamLog(st grpc.BidiStreamingServer[pb.PushRequest, pb.Pus
 		return err
 	}
 	start := func(req *pb.PushRequest) error {
-		finish, err := t.startLog(ctx, req, t.now())
+		finish, err := t.startLog(ctx, req, t.now(), &units)
 		if err != nil {
 			return err
+		}
+		select {
+		case free <- req: // startLog kept nothing of it
+		default:
 		}
 		select {
 		case pending <- finish:
