@@ -94,7 +94,7 @@ func BenchmarkStream(b *testing.B) {
 		samples      int
 	}
 	var benches []bench
-	for _, units := range []int{31, 125} {
+	for _, units := range []int{31, 125, 500, 2000} {
 		smps, idx := benchMessage(units)
 		benches = append(benches,
 			bench{fmt.Sprintf("samples2-%d", len(idx)), formatSamples, new(sampleEncoder).encodeSamples(nil, smps, idx), len(idx)},

@@ -148,7 +148,7 @@ type Log struct {
 	seq     uint64             // the last stream sequence applied
 	ledger  map[string]*Ledger // per unit: what has been applied
 	dec     sampleDecoder
-	ledgers []*Ledger // of the decoded message's id table
+	ledgers []*Ledger         // of the decoded message's id table
 	units   []ingest.Resolver // by partition: its units, each resolved once (ingest.Resolver)
 	intern  map[string]string
 
