@@ -70,10 +70,27 @@ func (e *sampleEncoder) encodeSamples(buf []byte, smps []ingest.Sample, idx []in
 	return e.encode(buf, []samplesRef{{smps, idx}})
 }
 
-// samplesRef is the samples smps[idx], in that order.
+// samplesRef is the samples smps[idx], in that order; with idx nil,
+// smps.
 type samplesRef struct {
 	smps []ingest.Sample
 	idx  []int
+}
+
+// len returns the number of samples of r.
+func (r *samplesRef) len() int {
+	if r.idx == nil {
+		return len(r.smps)
+	}
+	return len(r.idx)
+}
+
+// at returns sample j of r.
+func (r *samplesRef) at(j int) *ingest.Sample {
+	if r.idx == nil {
+		return &r.smps[j]
+	}
+	return &r.smps[r.idx[j]]
 }
 
 // encode writes the samples of parts, one after the other, as one
@@ -85,10 +102,11 @@ func (e *sampleEncoder) encode(buf []byte, parts []samplesRef) []byte {
 	clear(e.index)
 	e.ids, e.refs = e.ids[:0], e.refs[:0]
 	n := 0
-	for _, p := range parts {
-		n += len(p.idx)
-		for _, i := range p.idx {
-			id := p.smps[i].UnitID
+	for k := range parts {
+		p := &parts[k]
+		n += p.len()
+		for j := range p.len() {
+			id := p.at(j).UnitID
 			r, ok := e.index[id]
 			if !ok {
 				r = uint64(len(e.ids))
@@ -107,9 +125,10 @@ func (e *sampleEncoder) encode(buf []byte, parts []samplesRef) []byte {
 	buf = binary.AppendUvarint(buf, uint64(n))
 	var prev int64
 	j := 0
-	for _, p := range parts {
-		for _, i := range p.idx {
-			s := &p.smps[i]
+	for k := range parts {
+		p := &parts[k]
+		for i := range p.len() {
+			s := p.at(i)
 			buf = binary.AppendUvarint(buf, e.refs[j])
 			j++
 			t := s.Time.UnixNano()
@@ -121,10 +140,10 @@ func (e *sampleEncoder) encode(buf []byte, parts []samplesRef) []byte {
 	return buf
 }
 
-// encodedBound bounds the encoded size of smps[idx] in a message.
-func encodedBound(smps []ingest.Sample, idx []int) int {
+// encodedBound bounds the encoded size of smps in a message.
+func encodedBound(smps []ingest.Sample) int {
 	n := 0
-	for _, i := range idx {
+	for i := range smps {
 		n += len(smps[i].UnitID) + maxSampleBytes
 	}
 	return n

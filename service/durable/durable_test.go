@@ -251,7 +251,6 @@ func TestChunkSamples(t *testing.T) {
 		smps[i].UnitID = "u" // each counts 1 + maxSampleBytes
 	}
 	per := 1 + maxSampleBytes
-	all := []int{0, 1, 2, 3, 4, 5, 6, 7, 8, 9}
 	for _, tc := range []struct {
 		limit int
 		want  []int // chunk lengths
@@ -263,18 +262,18 @@ func TestChunkSamples(t *testing.T) {
 	} {
 		var got []int
 		n := 0
-		for _, c := range chunkSamples(smps, all, tc.limit) {
-			got = append(got, len(c))
-			n += len(c)
-			if data := new(sampleEncoder).encodeSamples(nil, smps, c); len(c) > 1 && len(data) > tc.limit {
-				t.Errorf("limit %d: a chunk of %d encodes to %d bytes", tc.limit, len(c), len(data))
+		for _, c := range chunkSamples(smps, tc.limit) {
+			got = append(got, c)
+			if data := new(sampleEncoder).encode(nil, []samplesRef{{smps: smps[n : n+c]}}); c > 1 && len(data) > tc.limit {
+				t.Errorf("limit %d: a chunk of %d encodes to %d bytes", tc.limit, c, len(data))
 			}
+			n += c
 		}
-		if !reflect.DeepEqual(got, tc.want) || n != len(all) {
+		if !reflect.DeepEqual(got, tc.want) || n != len(smps) {
 			t.Errorf("limit %d: chunks %v, want %v", tc.limit, got, tc.want)
 		}
 	}
-	if chunkSamples(smps, nil, 100) != nil {
+	if chunkSamples(nil, 100) != nil {
 		t.Error("no samples, yet chunks")
 	}
 }

@@ -361,21 +361,41 @@ func (l *Log) forget(ids []string) {
 // enter each partition of the log in that order, so a stream of batches
 // can be pipelined. wait must be called (with a done ctx to give up).
 func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (func(context.Context) ([]ingest.Result, []string, error), error) {
-	byPart := make([][]int, l.cfg.Partitions)
+	// The samples, copied partition by partition (a counting sort that
+	// keeps their order within a partition): each writer then reads its
+	// segments' samples one after the other in memory, rather than
+	// scattered through the batch.
+	np := l.cfg.Partitions
+	part := make([]int32, len(smps))
+	start := make([]int, np+1)
 	for i := range smps {
-		p := Partition(smps[i].UnitID, l.cfg.Partitions)
-		byPart[p] = append(byPart[p], i)
+		p := Partition(smps[i].UnitID, np)
+		part[i] = int32(p)
+		start[p+1]++
+	}
+	for p := range np {
+		start[p+1] += start[p]
+	}
+	sorted := make([]ingest.Sample, len(smps))
+	pos := make([]int, len(smps)) // sorted[j] is smps[pos[j]]
+	next := make([]int, np)
+	copy(next, start)
+	for i := range smps {
+		j := next[part[i]]
+		next[part[i]]++
+		sorted[j], pos[j] = smps[i], i
 	}
 	var segs []*segment
 	limit := l.messageLimit()
-	for p, part := range byPart {
-		if len(part) == 0 {
+	for p := range np {
+		lo, hi := start[p], start[p+1]
+		if lo == hi {
 			continue
 		}
-		chunks := chunkSamples(smps, part, limit)
-		ps := make([]*segment, len(chunks))
-		for k, idx := range chunks {
-			ps[k] = &segment{smps: smps, idx: idx, boundBytes: encodedBound(smps, idx), pub: make(chan error, 1)}
+		var ps []*segment
+		for _, n := range chunkSamples(sorted[lo:hi], limit) {
+			ps = append(ps, &segment{smps: sorted[lo : lo+n], pos: pos[lo : lo+n], boundBytes: encodedBound(sorted[lo : lo+n]), pub: make(chan error, 1)})
+			lo += n
 		}
 		if err := l.queue(p, ps); err != nil {
 			return nil, err // what was queued is written; the batch is not acknowledged
@@ -409,7 +429,7 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 			case <-ctx.Done():
 				return nil, nil, ctx.Err()
 			}
-			for j, i := range s.idx {
+			for j, i := range s.pos {
 				res[i], det[i] = s.msg.results[s.off+j], s.msg.details[s.off+j]
 			}
 		}
@@ -417,23 +437,23 @@ func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (fu
 	}, nil
 }
 
-// chunkSamples splits idx into runs of at most limit encoded bytes (a
-// single sample larger than that goes alone).
-func chunkSamples(smps []ingest.Sample, idx []int, limit int) [][]int {
-	if len(idx) == 0 {
+// chunkSamples splits smps into runs of at most limit encoded bytes (a
+// single sample larger than that goes alone) and returns their lengths.
+func chunkSamples(smps []ingest.Sample, limit int) []int {
+	if len(smps) == 0 {
 		return nil
 	}
-	var out [][]int
+	var out []int
 	start, size := 0, 0
-	for j, i := range idx {
-		n := len(smps[i].UnitID) + maxSampleBytes
+	for j := range smps {
+		n := len(smps[j].UnitID) + maxSampleBytes
 		if j > start && size+n > limit {
-			out = append(out, idx[start:j])
+			out = append(out, j-start)
 			start, size = j, 0
 		}
 		size += n
 	}
-	return append(out, idx[start:])
+	return append(out, len(smps)-start)
 }
 
 // checkAction refuses, before anything is written to the log, an

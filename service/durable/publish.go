@@ -29,9 +29,9 @@ import (
 // segment is one batch's samples of one partition (or part of them,
 // within the message size limit).
 type segment struct {
-	smps       []ingest.Sample
-	idx        []int
-	boundBytes int // bound of its encoded size
+	smps       []ingest.Sample // copies, in the batch's order
+	pos        []int           // smps[j] is sample pos[j] of the batch
+	boundBytes int             // bound of its encoded size
 
 	// Set by the writer before pub is signalled: the message that
 	// carries the segment and where its samples start in it.
@@ -140,8 +140,8 @@ func (l *Log) write(p int, q *partQueue) {
 			n := 0
 			for _, s := range segs {
 				s.off = n
-				n += len(s.idx)
-				parts = append(parts, samplesRef{s.smps, s.idx})
+				n += len(s.smps)
+				parts = append(parts, samplesRef{smps: s.smps})
 			}
 			id, w := l.register(n)
 			for _, s := range segs {
