@@ -37,3 +37,45 @@ func TestCheckRecordsNothing(t *testing.T) {
 		t.Errorf("Accept after Check: %v", r)
 	}
 }
+
+// TestCheckAfterRestore: Check answers from the unit's accepted
+// timestamps however they came, by Accept or by restoring a snapshot
+// (Check reads the newest without the unit's lock): a restored unit's
+// latest is a duplicate and an older one out of order, in a store that
+// has applied nothing itself; an empty snapshot window leaves every time
+// new.
+func TestCheckAfterRestore(t *testing.T) {
+	now := t0.Add(time.Hour)
+	s1 := NewStore(exampleFleet(t), Options{})
+	for i := range 3 {
+		if r, _ := s1.Accept(now, ptr(good("harrowmere-1", t0.Add(time.Duration(i)*time.Second)))); r != Accepted {
+			t.Fatalf("sample %d: %v", i, r)
+		}
+	}
+	s2 := NewStore(exampleFleet(t), Options{})
+	if _, _, bad := s2.Restore(s1.Snapshot(now)); len(bad) > 0 {
+		t.Fatal(bad)
+	}
+	for _, tc := range []struct {
+		name string
+		at   time.Time
+		want Result
+	}{
+		{"latest again", t0.Add(2 * time.Second), Duplicate},
+		{"first again", t0, Duplicate},
+		{"older than the window", t0.Add(-time.Second), RejectOutOfOrder},
+		{"next", t0.Add(3 * time.Second), Accepted},
+	} {
+		if r, d := s2.Check(now, ptr(good("harrowmere-1", tc.at))); r != tc.want {
+			t.Errorf("%s: Check %v (%s), want %v", tc.name, r, d, tc.want)
+		}
+	}
+	// A unit without samples: a restored empty window takes any time.
+	s3 := NewStore(exampleFleet(t), Options{})
+	if _, _, bad := s3.Restore(NewStore(exampleFleet(t), Options{}).Snapshot(now)); len(bad) > 0 {
+		t.Fatal(bad)
+	}
+	if r, d := s3.Check(now, ptr(good("harrowmere-1", t0))); r != Accepted {
+		t.Errorf("no samples: Check %v (%s), want accepted", r, d)
+	}
+}

@@ -214,6 +214,10 @@ func (s *Store) RestoreUnit(id string, us *UnitSnapshot) (known bool, err error)
 		u.head = (u.head + 1) % ringSize
 		u.n = min(u.n+1, ringSize)
 	}
+	u.newestNS.Store(0)
+	if u.n > 0 {
+		u.newestNS.Store(u.ring[(u.head+ringSize-1)%ringSize])
+	}
 	u.armature.H, u.field.H = us.ArmatureH, us.FieldH
 	u.lim.oel.Used, u.lim.scl.Used = min(1, max(0, us.OELUsed)), min(1, max(0, us.SCLUsed))
 	if us.Latest != nil {
