@@ -172,6 +172,42 @@ func (tl *testLog) ledger(id string) Ledger {
 	return Ledger{}
 }
 
+// TestAppendAnswersByPlace: Append groups a batch's samples by
+// partition (reordering them), and the answers come back in the batch's
+// own order: each sample's, whatever its unit's partition and its place
+// among the others (the consumer's verdicts: accepted, duplicate, out of
+// order).
+func TestAppendAnswersByPlace(t *testing.T) {
+	tl := startTestLog(t)
+	if _, err := tl.append(t, []ingest.Sample{tl.sample(0, 5), tl.sample(1, 5)}); err != nil {
+		t.Fatal(err)
+	}
+	type place struct {
+		u, k int
+		want ingest.Result
+	}
+	batch := []place{
+		{0, 6, ingest.Accepted}, {1, 5, ingest.Duplicate}, {2, 0, ingest.Accepted}, {0, 5, ingest.Duplicate},
+		{1, 6, ingest.Accepted}, {2, 1, ingest.Accepted}, {0, 4, ingest.RejectOutOfOrder}, {2, 1, ingest.Duplicate},
+	}
+	smps := make([]ingest.Sample, len(batch))
+	for i, b := range batch {
+		smps[i] = tl.sample(b.u, b.k)
+	}
+	res, err := tl.append(t, smps)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if len(res) != len(batch) {
+		t.Fatalf("%d answers for %d samples", len(res), len(batch))
+	}
+	for i, b := range batch {
+		if res[i] != b.want {
+			t.Errorf("sample %d (%s at %d s): %v, want %v", i, exampleUnits[b.u].id, b.k, res[i], b.want)
+		}
+	}
+}
+
 // TestBatchAcknowledgedWhenEveryPartitionStored: a batch of three units
 // in three partitions is three messages; it is acknowledged once all
 // three are in the stream, and answered UNAVAILABLE when one of them is

@@ -59,12 +59,13 @@ type Log interface {
 	// Check says what would become of smp, without recording it; units,
 	// when not nil, is the resolver of the stream smp came on.
 	Check(units *ingest.Resolver, now time.Time, smp *ingest.Sample) (ingest.Result, string)
-	// Append starts writing smps to the log; wait returns what applying
-	// each of them from the log gave. Batches appended one after another
-	// enter the log in that order. An error (of either) means the
-	// samples may or may not be in the log: nothing is acknowledged, and
-	// the client resends. wait must be called, with a done ctx to give
-	// up.
+	// Append starts writing smps to the log (it may reorder smps, and
+	// holds them until wait returns); wait returns what applying each of
+	// them from the log gave, by its place in smps as given. Batches
+	// appended one after another enter the log in that order. An error
+	// (of either) means the samples may or may not be in the log:
+	// nothing is acknowledged, and the client resends. wait must be
+	// called, with a done ctx to give up.
 	Append(ctx context.Context, now time.Time, smps []ingest.Sample) (wait func(context.Context) ([]ingest.Result, []string, error), err error)
 }
 
