@@ -204,7 +204,7 @@ func mainRun(args []string, stdout, stderr io.Writer) int {
 	fs.BoolVar(&cfg.State, "state", cfg.State, "give the service a fresh state file in the temporary directory, as in production (when serve has --state); false runs it with none")
 	fs.BoolVar(&cfg.TLS, "tls", false, "serve gRPC over TLS on both the service and the bare sink (certificates made for the run)")
 	fs.BoolVar(&cfg.Pprof, "pprof", false, "run the service with --pprof (implied by -cpuprofile and -heapprofile)")
-	fs.StringVar(&cfg.CPUProfile, "cpuprofile", "", "write a CPU profile of the service, taken during the first full phase, to this file")
+	fs.StringVar(&cfg.CPUProfile, "cpuprofile", "", "write a CPU profile of the service, taken during the first full phase (of the service over JetStream when -servers has nats and not full, e.g. -servers bare,nats), to this file")
 	fs.StringVar(&cfg.NATSCPUProfile, "nats-cpuprofile", "", "write a CPU profile of nats-server (started with --profile), taken during the first nats phase, to this file")
 	fs.IntVar(&cfg.CPUSeconds, "cpuprofile-seconds", cfg.CPUSeconds, "length of the CPU profile, s (at most -duration)")
 	fs.StringVar(&cfg.HeapProfile, "heapprofile", "", "write a heap profile of the service, taken after the phases, to this file")
