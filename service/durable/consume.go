@@ -404,8 +404,7 @@ func (l *Log) applySamples(units *ingest.Resolver, at time.Time, smps []ingest.S
 					l.ledgers[refs[i]] = lg
 				}
 			}
-			lg.Count++
-			lg.Digest += SampleDigest(smp.UnitID, smp.Time.UnixNano())
+			lg.add(smp.UnitID, smp.Time.UnixNano())
 		}
 		if w != nil {
 			w.results[i], w.details[i] = res, detail

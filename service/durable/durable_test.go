@@ -277,3 +277,30 @@ func TestChunkSamples(t *testing.T) {
 		t.Error("no samples, yet chunks")
 	}
 }
+
+// TestLedgerAdd: a ledger's count and digest, with the id hashed once,
+// are those of SampleDigest summed (mod 2^64) over the samples, also for
+// a ledger restored from a checkpoint (not yet hashed).
+func TestLedgerAdd(t *testing.T) {
+	times := []int64{0, 1, -1, 1_780_000_000_000_000_000, 1_780_000_001_000_000_000, -6_000_000_000_000_000_000}
+	for _, id := range []string{"unit-01", "", "syn-00042", "ünit"} {
+		var want Ledger
+		var lg Ledger
+		restored := Ledger{Count: 2, Digest: SampleDigest(id, 5) + SampleDigest(id, 6)}
+		wantRestored := restored
+		for _, ns := range times {
+			want.Count++
+			want.Digest += SampleDigest(id, ns)
+			wantRestored.Count++
+			wantRestored.Digest += SampleDigest(id, ns)
+			lg.add(id, ns)
+			restored.add(id, ns)
+		}
+		if lg.Count != want.Count || lg.Digest != want.Digest {
+			t.Errorf("%q: ledger %d, %#x; SampleDigest summed gives %d, %#x", id, lg.Count, lg.Digest, want.Count, want.Digest)
+		}
+		if restored.Count != wantRestored.Count || restored.Digest != wantRestored.Digest {
+			t.Errorf("%q restored: ledger %d, %#x; want %d, %#x", id, restored.Count, restored.Digest, wantRestored.Count, wantRestored.Digest)
+		}
+	}
+}

@@ -201,21 +201,46 @@ type Log struct {
 type Ledger struct {
 	Count  uint64 `json:"count"`
 	Digest uint64 `json:"digest"`
+
+	idHash uint64 // digestID of the unit's id, once hashed is set
+	hashed bool
 }
 
 // SampleDigest is the 64-bit FNV-1a hash of a sample's identity: the
 // unit id's bytes followed by its time in Unix ns, 8 bytes little endian.
 func SampleDigest(id string, unixNS int64) uint64 {
+	return digestTime(digestID(id), unixNS)
+}
+
+// digestID is FNV-1a 64 over the id's bytes: the state SampleDigest
+// continues from with the time.
+func digestID(id string) uint64 {
 	h := uint64(14695981039346656037)
 	for i := 0; i < len(id); i++ {
 		h ^= uint64(id[i])
 		h *= 1099511628211
 	}
+	return h
+}
+
+// digestTime continues FNV-1a 64 from h over unixNS, 8 bytes little
+// endian.
+func digestTime(h uint64, unixNS int64) uint64 {
 	for i := 0; i < 8; i++ {
 		h ^= uint64(byte(unixNS >> (8 * i)))
 		h *= 1099511628211
 	}
 	return h
+}
+
+// add counts the sample of unit id at unixNS, hashing the id once per
+// ledger.
+func (lg *Ledger) add(id string, unixNS int64) {
+	if !lg.hashed {
+		lg.idHash, lg.hashed = digestID(id), true
+	}
+	lg.Count++
+	lg.Digest += digestTime(lg.idHash, unixNS)
 }
 
 // waiter is a message of this process awaiting its application.
