@@ -54,18 +54,25 @@ func (l *Log) pollLag(ctx context.Context, cons jetstream.Consumer) {
 		if err != nil {
 			continue // not connected: Ready says so
 		}
-		l.notePoll(time.Now(), info.NumPending, info.Delivered.Consumer)
+		l.notePoll(time.Now(), info.NumPending, info.Delivered.Consumer, info.Delivered.Stream)
 	}
 }
 
 // notePoll records the lag the consumer reports at now: pending messages
-// not yet delivered, and the consumer sequence of the last delivered.
-func (l *Log) notePoll(now time.Time, pending, delivered uint64) {
+// not yet delivered, and the consumer and stream sequences of the last
+// delivered. The ordered consumer is recreated, its consumer sequence
+// starting again from 1, when it misses heartbeats (a replica that does
+// not read for a while, or starved of CPU): then the delivered messages
+// not applied are counted as one at least, from the stream sequences.
+func (l *Log) notePoll(now time.Time, pending, delivered, deliveredStream uint64) {
 	applied := l.applied.Load()
 	l.lagMu.Lock()
 	defer l.lagMu.Unlock()
-	if delivered > l.appliedCons {
+	switch {
+	case delivered > l.appliedCons:
 		pending += delivered - l.appliedCons
+	case deliveredStream > applied:
+		pending++
 	}
 	stalled := applied == l.lastPollSeq
 	l.lastPollSeq = applied

@@ -69,6 +69,49 @@ func TestJudgeLag(t *testing.T) {
 	}
 }
 
+// TestNotePoll: the lag in messages from a poll of the consumer is its
+// messages not yet delivered plus those delivered and not applied; a
+// poll with some and nothing applied since the last one is a stall, whose
+// lag in seconds grows from the last message applied. After the ordered
+// consumer was recreated (its sequence starts again from 1, below the
+// one last applied), a message delivered beyond the stream sequence
+// applied still counts.
+func TestNotePoll(t *testing.T) {
+	cfg := Config{MaxLag: 4 * time.Second, MaxLagMessages: 100, LagHold: 2 * time.Second}.withDefaults()
+	t0 := time.Date(2026, 3, 1, 0, 0, 0, 0, time.UTC)
+	type poll struct {
+		atS                                 float64
+		pending, delivered, deliveredStream uint64
+		wantMsgs                            uint64
+		wantLagS                            float64
+	}
+	for _, tc := range []struct {
+		name  string
+		polls []poll
+	}{
+		{"caught up", []poll{{1, 0, 40, 120, 0, 0}, {2, 0, 40, 120, 0, 0}}},
+		{"delivered, not applied", []poll{{1, 0, 43, 125, 3, 1}, {2, 5, 43, 125, 8, 2}}},
+		{"consumer recreated, one delivered", []poll{{1, 0, 1, 121, 1, 1}, {3, 0, 1, 121, 1, 3}, {6, 0, 1, 121, 1, 6}}},
+		{"consumer recreated, nothing delivered", []poll{{1, 2, 0, 0, 2, 1}, {2, 2, 0, 0, 2, 2}}},
+	} {
+		t.Run(tc.name, func(t *testing.T) {
+			// Applied: stream sequence 120, consumer sequence 40, at t0;
+			// the poll before saw 120 applied too, so every poll with
+			// messages waiting is a stall.
+			l := &Log{cfg: cfg, log: slog.New(slog.NewTextHandler(io.Discard, nil))}
+			l.caughtUp.Store(true)
+			l.applied.Store(120)
+			l.appliedAt, l.appliedCons, l.lastPollSeq = t0, 40, 120
+			for _, p := range tc.polls {
+				l.notePoll(t0.Add(time.Duration(p.atS*1e9)), p.pending, p.delivered, p.deliveredStream)
+				if got, lag := l.behind.Load(), float64(l.lagNS.Load())/1e9; got != p.wantMsgs || lag != p.wantLagS {
+					t.Errorf("at %g s: %d messages, %g s behind; want %d, %g s", p.atS, got, lag, p.wantMsgs, p.wantLagS)
+				}
+			}
+		})
+	}
+}
+
 // TestReadinessFollowsLag runs two replicas in this process on a real
 // nats-server; the first stops applying the log (its consumer paused:
 // a replica starved or stuck) while the second takes telemetry. The
