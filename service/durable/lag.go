@@ -82,9 +82,12 @@ func (l *Log) notePoll(now time.Time, pending, delivered, deliveredStream uint64
 		l.lagNS.Store(0)
 	case stalled:
 		l.behind.Store(pending)
-		if !l.appliedAt.IsZero() {
-			l.lagNS.Store(max(l.lagNS.Load(), int64(now.Sub(l.appliedAt))))
+		if l.appliedAt.IsZero() {
+			// Nothing applied since this replica started: the stall counts
+			// from the first poll that finds it.
+			l.appliedAt = now
 		}
+		l.lagNS.Store(max(l.lagNS.Load(), int64(now.Sub(l.appliedAt))))
 	}
 	l.judgeLag(now)
 }

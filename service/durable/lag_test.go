@@ -112,6 +112,28 @@ func TestNotePoll(t *testing.T) {
 	}
 }
 
+// TestNotePollBeforeAnyApplied: a replica stalled before it has applied
+// a single message (paused or stuck from its start) is behind in seconds
+// too, from the first poll that finds it stalled, and so turns not ready.
+func TestNotePollBeforeAnyApplied(t *testing.T) {
+	cfg := Config{MaxLag: 4 * time.Second, MaxLagMessages: 100, LagHold: 2 * time.Second}.withDefaults()
+	t0 := time.Date(2026, 3, 1, 0, 0, 0, 0, time.UTC)
+	l := &Log{cfg: cfg, log: slog.New(slog.NewTextHandler(io.Discard, nil))}
+	l.caughtUp.Store(true) // the stream was empty at start
+	for _, p := range []struct {
+		atS      float64
+		pending  uint64
+		wantLagS float64
+		tooFar   bool
+	}{{1, 3, 0, false}, {3, 7, 2, false}, {6, 12, 5, true}} {
+		l.notePoll(t0.Add(time.Duration(p.atS*1e9)), p.pending, 0, 0)
+		if lag := float64(l.lagNS.Load()) / 1e9; lag != p.wantLagS || l.behind.Load() != p.pending || l.tooFar.Load() != p.tooFar {
+			t.Errorf("at %g s: %d messages, %g s behind, too far %v; want %d, %g s, %v",
+				p.atS, l.behind.Load(), lag, l.tooFar.Load(), p.pending, p.wantLagS, p.tooFar)
+		}
+	}
+}
+
 // TestReadinessFollowsLag runs two replicas in this process on a real
 // nats-server; the first stops applying the log (its consumer paused:
 // a replica starved or stuck) while the second takes telemetry. The

@@ -178,7 +178,7 @@ type Log struct {
 	tooFar      atomic.Bool
 	lastOver    time.Time                     // last time a lag was over its bound
 	underSince  time.Time                     // since when both lags have been within half their bounds
-	appliedAt   time.Time                     // wall clock of the last message applied
+	appliedAt   time.Time                     // wall clock of the last message applied (before any, of the first stalled poll)
 	appliedCons uint64                        // its consumer sequence
 	lastPollSeq uint64                        // the sequence applied at the previous poll
 	paused      atomic.Pointer[chan struct{}] // tests: the consumer waits while set
