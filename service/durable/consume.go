@@ -170,11 +170,58 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func(at ti
 
 // Run applies the log to the store until ctx is done, writing the
 // checkpoint every CheckpointInterval and once more at the end. The
-// server ends it after the last batch has been answered.
+// server ends it after the last batch has been answered. Should the
+// consumer end by itself (nats.go closes an ordered consumer's iterator
+// when it recreates it at the wrong moment, as after the loss of a
+// cluster node), it reads the log again from the message after the last
+// one applied.
 func (l *Log) Run(ctx context.Context) error {
+	var (
+		consMu sync.Mutex
+		cons   jetstream.Consumer // the current one, for pollLag
+	)
+	current := func() jetstream.Consumer {
+		consMu.Lock()
+		defer consMu.Unlock()
+		return cons
+	}
+	var wg sync.WaitGroup
+	wg.Add(2)
+	go func() {
+		defer wg.Done()
+		l.keepCheckpoint(ctx)
+	}()
+	go func() {
+		defer wg.Done()
+		l.pollLag(ctx, current)
+	}()
+	for first := true; ctx.Err() == nil; first = false {
+		c := l.openConsumer(ctx)
+		if c == nil {
+			break // ctx done
+		}
+		consMu.Lock()
+		cons = c
+		consMu.Unlock()
+		if info := c.CachedInfo(); first && info != nil && info.NumPending == 0 {
+			l.caughtUp.Store(true)
+		}
+		l.consume(ctx, c)
+	}
+	wg.Wait()
+	if err := l.writeCheckpoint(); err != nil {
+		l.log.Error("final checkpoint not saved", "err", err)
+	}
+	return nil
+}
+
+// openConsumer makes an ordered consumer of the log from the message
+// after the last one applied, retrying every second; nil once ctx is
+// done.
+func (l *Log) openConsumer(ctx context.Context) jetstream.Consumer {
 	cfg := jetstream.OrderedConsumerConfig{DeliverPolicy: jetstream.DeliverAllPolicy}
-	if l.seq > 0 {
-		cfg.DeliverPolicy, cfg.OptStartSeq = jetstream.DeliverByStartSequencePolicy, l.seq+1
+	if seq := l.applied.Load(); seq > 0 {
+		cfg.DeliverPolicy, cfg.OptStartSeq = jetstream.DeliverByStartSequencePolicy, seq+1
 	}
 	all := true
 	for _, s := range l.serves {
@@ -191,11 +238,13 @@ func (l *Log) Run(ctx context.Context) error {
 		}
 		cfg.FilterSubjects = append(cfg.FilterSubjects, l.cfg.Prefix+".ops")
 	}
-	var cons jetstream.Consumer
 	for {
-		var err error
-		if cons, err = l.stream.OrderedConsumer(ctx, cfg); err == nil {
-			break
+		cons, err := l.stream.OrderedConsumer(ctx, cfg)
+		if err == nil {
+			return cons
+		}
+		if ctx.Err() != nil {
+			return nil
 		}
 		l.log.Error("cannot read the log; retrying", "stream", l.cfg.Stream, "err", err)
 		select {
@@ -204,32 +253,32 @@ func (l *Log) Run(ctx context.Context) error {
 		case <-time.After(time.Second):
 		}
 	}
-	if info := cons.CachedInfo(); info != nil && info.NumPending == 0 {
-		l.caughtUp.Store(true)
-	}
+}
+
+// consume applies what cons delivers until ctx is done or its iterator
+// ends.
+func (l *Log) consume(ctx context.Context, cons jetstream.Consumer) {
 	it, err := cons.Messages()
 	if err != nil {
-		return fmt.Errorf("reading stream %s: %w", l.cfg.Stream, err)
+		l.log.Error("cannot read the log; retrying", "stream", l.cfg.Stream, "err", err)
+		select {
+		case <-ctx.Done():
+		case <-time.After(time.Second):
+		}
+		return
 	}
 	stop := context.AfterFunc(ctx, it.Stop)
 	defer stop()
 	defer it.Stop()
-
-	var wg sync.WaitGroup
-	wg.Add(2)
-	go func() {
-		defer wg.Done()
-		l.keepCheckpoint(ctx)
-	}()
-	go func() {
-		defer wg.Done()
-		l.pollLag(ctx, cons)
-	}()
 	for {
 		msg, err := it.Next()
 		if err != nil {
-			if ctx.Err() != nil || errors.Is(err, jetstream.ErrMsgIteratorClosed) {
-				break
+			if ctx.Err() != nil {
+				return
+			}
+			if errors.Is(err, jetstream.ErrMsgIteratorClosed) {
+				l.log.Warn("the log's consumer ended; reading the log again after the last message applied", "stream_sequence", l.applied.Load())
+				return
 			}
 			l.log.Warn("reading the log", "err", err)
 			continue
@@ -237,11 +286,6 @@ func (l *Log) Run(ctx context.Context) error {
 		l.waitPaused(ctx)
 		l.apply(msg)
 	}
-	wg.Wait()
-	if err := l.writeCheckpoint(); err != nil {
-		l.log.Error("final checkpoint not saved", "err", err)
-	}
-	return nil
 }
 
 // serverAtLeast reports whether a NATS server version "2.10.3" is at

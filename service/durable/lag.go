@@ -39,7 +39,7 @@ func (l *Log) noteApplied(now time.Time, meta *jetstream.MsgMetadata) {
 
 // pollLag asks the consumer how far behind this replica is, once a
 // second until ctx is done.
-func (l *Log) pollLag(ctx context.Context, cons jetstream.Consumer) {
+func (l *Log) pollLag(ctx context.Context, current func() jetstream.Consumer) {
 	t := time.NewTicker(lagPoll)
 	defer t.Stop()
 	for {
@@ -47,6 +47,10 @@ func (l *Log) pollLag(ctx context.Context, cons jetstream.Consumer) {
 		case <-ctx.Done():
 			return
 		case <-t.C:
+		}
+		cons := current()
+		if cons == nil {
+			continue // not reading the log yet
 		}
 		ictx, cancel := context.WithTimeout(ctx, lagPoll)
 		info, err := cons.Info(ictx)

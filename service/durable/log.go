@@ -380,44 +380,36 @@ func (l *Log) forget(ids []string) {
 }
 
 // Append hands smps to the partitions' writers (publish.go) and
-// returns at once (it reorders smps, and holds them until wait has
-// returned); wait waits until the stream has stored every message
+// returns at once; wait waits until the stream has stored every message
 // carrying them and this replica has applied those, and returns what
 // applying gave for each sample. Batches appended one after another
 // enter each partition of the log in that order, so a stream of batches
 // can be pipelined. wait must be called (with a done ctx to give up).
 func (l *Log) Append(ctx context.Context, _ time.Time, smps []ingest.Sample) (func(context.Context) ([]ingest.Result, []string, error), error) {
-	// The samples, put in order of partition in place (a counting sort
-	// that keeps their order within a partition): each writer then reads
-	// its segments' samples one after the other in memory, rather than
+	// The samples, copied partition by partition (a counting sort that
+	// keeps their order within a partition): each writer then reads its
+	// segments' samples one after the other in memory, rather than
 	// scattered through the batch.
 	np := l.cfg.Partitions
+	part := make([]int32, len(smps))
 	start := make([]int, np+1)
-	dst := make([]int, len(smps)) // first the partition of each sample, then where it goes
 	for i := range smps {
 		p := Partition(smps[i].UnitID, np)
-		dst[i] = p
+		part[i] = int32(p)
 		start[p+1]++
 	}
 	for p := range np {
 		start[p+1] += start[p]
 	}
+	sorted := make([]ingest.Sample, len(smps))
+	pos := make([]int, len(smps)) // sorted[j] is smps[pos[j]]
 	next := make([]int, np)
 	copy(next, start)
-	pos := make([]int, len(smps)) // smps[j] is now the batch's sample pos[j]
-	for i, p := range dst {
-		dst[i] = next[p]
-		next[p]++
-		pos[dst[i]] = i
+	for i := range smps {
+		j := next[part[i]]
+		next[part[i]]++
+		sorted[j], pos[j] = smps[i], i
 	}
-	for i := range smps { // the permutation, cycle by cycle
-		for dst[i] != i {
-			j := dst[i]
-			smps[i], smps[j] = smps[j], smps[i]
-			dst[i], dst[j] = dst[j], j
-		}
-	}
-	sorted := smps
 	var segs []*segment
 	limit := l.messageLimit()
 	for p := range np {
