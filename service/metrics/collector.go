@@ -7,7 +7,6 @@ package metrics
 import (
 	"math"
 	"slices"
-	"sync"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -30,6 +29,7 @@ type family struct {
 	desc    *prometheus.Desc
 	index   int  // in Collector.families
 	perUnit bool // its first labels are unit and site
+	text    familyText
 }
 
 // sink receives the series of one scrape.
@@ -77,8 +77,7 @@ type Collector struct {
 
 	rotor rotorModes // rotormode.go
 
-	sizeMu sync.Mutex
-	sizes  []int // each family's series at the last whole scrape (text.go)
+	chunk int // text handed to the writer at a time (chunkSize; less in tests)
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -87,7 +86,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	if now == nil {
 		now = time.Now
 	}
-	c := &Collector{store: store, now: now}
+	c := &Collector{store: store, now: now, chunk: chunkSize}
 	mk := func(name, help string, counter bool, labels ...string) *family {
 		if len(labels) > maxLabels {
 			panic("metrics: more than maxLabels labels") // a programming error, met at start
@@ -98,6 +97,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 			panic("metrics: a family with more labels than a record holds") // a programming error, met at start
 		}
 		f.desc = prometheus.NewDesc(f.name, help, labels, nil)
+		f.text = newFamilyText(f)
 		c.families = append(c.families, f)
 		return f
 	}

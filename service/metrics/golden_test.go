@@ -2,10 +2,13 @@ package metrics
 
 import (
 	"bytes"
+	"errors"
 	"flag"
 	"fmt"
+	"math"
 	"os"
 	"path/filepath"
+	"strconv"
 	"testing"
 	"time"
 
@@ -100,7 +103,10 @@ func TestWriteTextGolden(t *testing.T) {
 	s, later := goldenStore(t)
 	c := NewCollector(s, func() time.Time { return later })
 	path := filepath.Join("testdata", "fleet.prom")
-	for try := range 2 { // the second scrape reuses what the first kept
+	for try := range 3 { // the second scrape reuses what the first kept; the third goes in chunks of 1,000 bytes
+		if try == 2 {
+			c.chunk = 1000
+		}
 		var got bytes.Buffer
 		if err := c.WriteText(&got); err != nil {
 			t.Fatal(err)
@@ -127,4 +133,61 @@ func TestWriteTextGolden(t *testing.T) {
 			t.Fatalf("scrape %d: %d lines, want %d", try+1, len(g), len(w))
 		}
 	}
+}
+
+// appendValue writes what client_golang's text encoder writes for a
+// value: strconv's shortest 'g' form (the library is the reference),
+// with the integer shortcut on both sides of its bounds.
+func TestAppendValue(t *testing.T) {
+	for _, v := range []float64{0, math.Copysign(0, -1), 1, -1, 2, 42, 999999, -999999, 1e6, -1e6, 1e6 + 1, 123456.5,
+		0.5, -0.25, 1e-5, 3e21, 1 << 53, math.MaxInt64, math.SmallestNonzeroFloat64, 299792458, 0.1 + 0.2} {
+		want := strconv.FormatFloat(v, 'g', -1, 64)
+		if got := string(appendValue(nil, v)); got != want {
+			t.Errorf("appendValue(%v) = %s, want %s", v, got, want)
+		}
+	}
+	for v, want := range map[float64]string{math.NaN(): "NaN", math.Inf(1): "+Inf", math.Inf(-1): "-Inf"} {
+		if got := string(appendValue(nil, v)); got != want {
+			t.Errorf("appendValue(%v) = %s, want %s", v, got, want)
+		}
+	}
+}
+
+// A scrape whose writer fails stops and reports the error, and a
+// scrape larger than a chunk arrives whole through the pipe.
+func TestWriteTextWriter(t *testing.T) {
+	s, later := goldenStore(t)
+	c := NewCollector(s, func() time.Time { return later })
+	var whole bytes.Buffer
+	if err := c.WriteText(&whole); err != nil {
+		t.Fatal(err)
+	}
+	c.chunk = 1000
+	for _, n := range []int{0, 100, whole.Len() / 2} {
+		w := &failingWriter{left: n}
+		if err := c.WriteText(w); !errors.Is(err, errWriteFailed) {
+			t.Errorf("writer failing after %d bytes: err %v", n, err)
+		}
+		if !bytes.HasPrefix(whole.Bytes(), w.got.Bytes()) {
+			t.Errorf("writer failing after %d bytes: what was written is not the start of the scrape", n)
+		}
+	}
+}
+
+var errWriteFailed = errors.New("write failed")
+
+type failingWriter struct {
+	left int
+	got  bytes.Buffer
+}
+
+func (w *failingWriter) Write(p []byte) (int, error) {
+	if len(p) > w.left {
+		w.got.Write(p[:w.left])
+		n := w.left
+		w.left = 0
+		return n, errWriteFailed
+	}
+	w.left -= len(p)
+	return w.got.Write(p)
 }
