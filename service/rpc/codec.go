@@ -44,13 +44,19 @@ func (c Codec) Marshal(v any) (mem.BufferSlice, error) { return c.std.Marshal(v)
 
 // Unmarshal decodes data into v, replacing what v held.
 func (c Codec) Unmarshal(data mem.BufferSlice, v any) error {
-	req, ok := v.(*pb.PushRequest)
-	if !ok {
+	var req *pb.PushRequest
+	var ids *StreamIDs
+	switch m := v.(type) {
+	case *pb.PushRequest:
+		req = m
+	case *StreamBatch:
+		req, ids = m.PushRequest, m.IDs
+	default:
 		return c.std.Unmarshal(data, v)
 	}
 	buf := data.MaterializeToBuffer(mem.DefaultBufferPool())
 	defer buf.Free()
-	if b := buf.ReadOnlyData(); !decodePush(b, req) {
+	if b := buf.ReadOnlyData(); !decodePush(b, req, ids) {
 		// Unknown fields or malformed: the generated decoder decides,
 		// into samples all reset (it merges into those it reuses).
 		req.Samples = req.Samples[:cap(req.Samples)]

@@ -21,7 +21,7 @@ import (
 // answer (unknown fields kept, the error) is the one that counts.
 // TestDecodePushAgreesWithGenerated and FuzzDecodePush hold the two to
 // the same result for every input this one takes.
-func decodePush(b []byte, req *pb.PushRequest) bool {
+func decodePush(b []byte, req *pb.PushRequest, ids *StreamIDs) bool {
 	samples := req.Samples[:cap(req.Samples)]
 	n := 0
 	var seq uint64
@@ -48,7 +48,7 @@ func decodePush(b []byte, req *pb.PushRequest) bool {
 			if samples[n] == nil {
 				samples[n] = new(pb.Sample)
 			}
-			if !decodeSample(m, samples[n]) {
+			if !decodeSample(m, samples[n], ids) {
 				return false
 			}
 			n++
@@ -62,8 +62,9 @@ func decodePush(b []byte, req *pb.PushRequest) bool {
 }
 
 // decodeSample decodes a Sample from b into s, reusing s's time and
-// optional values and, when the bytes match, its unit id.
-func decodeSample(b []byte, s *pb.Sample) bool {
+// optional values and, when the bytes match, its unit id, or else the
+// copy in ids (nil: none).
+func decodeSample(b []byte, s *pb.Sample, ids *StreamIDs) bool {
 	id, t, fieldA, freq, coolant := s.UnitId, s.Time, s.FieldA, s.FrequencyHz, s.Coolant
 	s.Reset()
 	timeSeen := false
@@ -79,9 +80,12 @@ func decodeSample(b []byte, s *pb.Sample) bool {
 			if v, i, ok = field(b, i); !ok {
 				return false
 			}
-			if string(v) == id { // compared without a copy
+			switch {
+			case string(v) == id: // compared without a copy
 				s.UnitId = id
-			} else {
+			case ids != nil:
+				s.UnitId = ids.intern(v)
+			default:
 				s.UnitId = string(v)
 			}
 		case 2<<3 | 2: // time, merged with an earlier one in the same sample, as protobuf does
@@ -131,6 +135,59 @@ func decodeSample(b []byte, s *pb.Sample) bool {
 		}
 	}
 	return true
+}
+
+// StreamBatch is what a telemetry stream receives a batch into (its
+// RecvMsg): the request, decoded into again batch after batch, and IDs,
+// the unit ids the stream has sent, which the service's Codec takes a
+// sample's id from instead of making a new string each time. It is the
+// request as a protobuf message (the embedded pointer's methods), so
+// that any other codec decodes into the request as before.
+type StreamBatch struct {
+	*pb.PushRequest
+	IDs *StreamIDs
+}
+
+// StreamIDs are the unit ids one stream has sent, in the order first
+// seen, for the goroutine that receives the stream's batches. Like
+// ingest.Resolver (whose comparisons then find the same strings) it
+// follows a sender going round its units with a cursor: one comparison
+// with the id expected next; out of that order a map of its own ids
+// answers. It keeps at most max ids (the fleet's size when the stream
+// began): ids beyond are new strings every time.
+type StreamIDs struct {
+	ids  []string
+	pos  map[string]int32
+	next int
+	max  int
+}
+
+// NewStreamIDs returns the ids of a new stream, keeping at most max.
+func NewStreamIDs(max int) *StreamIDs { return &StreamIDs{max: max} }
+
+// intern returns the stream's copy of the id b, made now if it has none.
+func (s *StreamIDs) intern(b []byte) string {
+	if s.next == len(s.ids) {
+		s.next = 0 // round again
+	}
+	if s.next < len(s.ids) && s.ids[s.next] == string(b) {
+		s.next++
+		return s.ids[s.next-1]
+	}
+	if i, ok := s.pos[string(b)]; ok {
+		s.next = int(i) + 1
+		return s.ids[i]
+	}
+	id := string(b)
+	if len(s.ids) < s.max {
+		if s.pos == nil {
+			s.pos = map[string]int32{}
+		}
+		s.pos[id] = int32(len(s.ids))
+		s.ids = append(s.ids, id)
+		s.next = len(s.ids)
+	}
+	return id
 }
 
 // reuse stores x in *p, allocating it first when the sample had none.

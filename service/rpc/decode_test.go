@@ -1,8 +1,10 @@
 package rpc
 
 import (
+	"fmt"
 	"math/rand/v2"
 	"testing"
+	"unsafe"
 
 	"google.golang.org/protobuf/proto"
 	"google.golang.org/protobuf/types/known/timestamppb"
@@ -41,9 +43,9 @@ func wireRequest(t testing.TB, r *rand.Rand, n int) []byte {
 // to what the generated decoder makes of the same bytes in a new
 // message: it must take them too and decode the same. (When decodePush
 // refuses, the codec hands the bytes to the generated decoder.)
-func agree(t testing.TB, b []byte, reused *pb.PushRequest) bool {
+func agree(t testing.TB, b []byte, reused *pb.PushRequest, ids *StreamIDs) bool {
 	t.Helper()
-	if !decodePush(b, reused) {
+	if !decodePush(b, reused, ids) {
 		return false
 	}
 	want := new(pb.PushRequest)
@@ -66,8 +68,12 @@ func TestDecodePushAgreesWithGenerated(t *testing.T) {
 	reused := new(pb.PushRequest)
 	taken, mutated := 0, 0
 	for i := range 3000 {
+		var ids *StreamIDs
+		if i%2 == 0 {
+			ids = NewStreamIDs(3) // fewer than the ids sent
+		}
 		b := wireRequest(t, r, 12)
-		if !agree(t, b, reused) {
+		if !agree(t, b, reused, ids) {
 			t.Fatalf("batch %d: decodePush refused a batch of the schema: % x", i, b)
 		}
 		for range 4 {
@@ -87,7 +93,7 @@ func TestDecodePushAgreesWithGenerated(t *testing.T) {
 			default:
 				m = append(m, byte(r.IntN(16)<<3|r.IntN(8)), byte(r.IntN(256)), byte(r.IntN(256)))
 			}
-			if agree(t, m, reused) {
+			if agree(t, m, reused, ids) {
 				mutated++
 			}
 		}
@@ -108,33 +114,65 @@ func FuzzDecodePush(f *testing.F) {
 	}
 	f.Fuzz(func(t *testing.T, b []byte) {
 		reused := new(pb.PushRequest)
-		agree(t, wireRequest(t, rand.New(rand.NewPCG(uint64(len(b)), 4)), 3), reused)
-		agree(t, b, reused)
+		ids := NewStreamIDs(2)
+		agree(t, wireRequest(t, rand.New(rand.NewPCG(uint64(len(b)), 4)), 3), reused, ids)
+		agree(t, b, reused, ids)
 	})
 }
 
-// TestDecodePushReuses: a stream's next batch of the same shape
-// allocates nothing per sample.
+// TestDecodePushReuses: a stream's next batches allocate nothing per
+// sample, also when its 400 units come round in batches of 100 (each
+// sample's id differs from the one decoded into its place before).
 func TestDecodePushReuses(t *testing.T) {
 	x := 1.5
-	req := &pb.PushRequest{Sequence: 1}
-	for i := range 100 {
-		req.Samples = append(req.Samples, &pb.Sample{UnitId: "unit-" + string(rune('a'+i%26)), Time: timestamppb.New(timestamppb.Now().AsTime()),
-			PMw: 1, QMvar: 2, VKv: 3, FieldA: &x, FrequencyHz: &x, Coolant: &x, Quality: pb.Quality_QUALITY_GOOD})
+	var batches [][]byte
+	for k := range 4 {
+		req := &pb.PushRequest{Sequence: uint64(k)}
+		for i := range 100 {
+			req.Samples = append(req.Samples, &pb.Sample{UnitId: fmt.Sprintf("unit-%03d", 100*k+i), Time: timestamppb.Now(),
+				PMw: 1, QMvar: 2, VKv: 3, FieldA: &x, FrequencyHz: &x, Coolant: &x, Quality: pb.Quality_QUALITY_GOOD})
+		}
+		b, err := proto.Marshal(req)
+		if err != nil {
+			t.Fatal(err)
+		}
+		batches = append(batches, b)
 	}
-	b, err := proto.Marshal(req)
-	if err != nil {
-		t.Fatal(err)
-	}
-	reused := new(pb.PushRequest)
-	if !decodePush(b, reused) {
-		t.Fatal("refused")
-	}
-	if n := testing.AllocsPerRun(20, func() {
-		if !decodePush(b, reused) {
+	reused, ids := new(pb.PushRequest), NewStreamIDs(1000)
+	for _, b := range batches { // the first round makes the ids
+		if !decodePush(b, reused, ids) {
 			t.Fatal("refused")
 		}
+	}
+	if n := testing.AllocsPerRun(20, func() {
+		for _, b := range batches {
+			if !decodePush(b, reused, ids) {
+				t.Fatal("refused")
+			}
+		}
 	}); n != 0 {
-		t.Errorf("%v allocations a batch of 100 samples decoded again, want 0", n)
+		t.Errorf("%v allocations a round of 4 batches of 100 samples, want 0", n)
+	}
+}
+
+// StreamIDs gives the same string for the same id, in any order, and
+// keeps no more ids than its bound.
+func TestStreamIDs(t *testing.T) {
+	ids := NewStreamIDs(3)
+	first := map[string]string{}
+	for _, id := range []string{"a", "b", "c", "a", "b", "c", "c", "a", "b", "d", "a"} {
+		got := ids.intern([]byte(id))
+		if got != id {
+			t.Fatalf("intern(%q) = %q", id, got)
+		}
+		if f, ok := first[id]; ok && unsafe.StringData(f) != unsafe.StringData(got) && id != "d" {
+			t.Errorf("intern(%q) made a new string the second time", id)
+		}
+		if _, ok := first[id]; !ok {
+			first[id] = got
+		}
+	}
+	if len(ids.ids) != 3 || len(ids.pos) != 3 {
+		t.Errorf("%d ids kept (%d in the map), want the bound 3", len(ids.ids), len(ids.pos))
 	}
 }

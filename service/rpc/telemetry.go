@@ -99,6 +99,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	// Receive on a goroutine of its own so that a drain can end the
 	// stream while the client is idle; it ends when the stream does.
 	go func() {
+		// The stream's unit ids, so that a sample's id is not a new
+		// string every time (the fleet's size bounds them).
+		batch := StreamBatch{IDs: NewStreamIDs(max(len(t.store.Units()), 1))}
 		for {
 			var req *pb.PushRequest
 			select {
@@ -106,7 +109,8 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 			default:
 				req = new(pb.PushRequest)
 			}
-			if err := st.RecvMsg(req); err != nil {
+			batch.PushRequest = req
+			if err := st.RecvMsg(&batch); err != nil {
 				errc <- err
 				return
 			}
