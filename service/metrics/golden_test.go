@@ -103,9 +103,17 @@ func TestWriteTextGolden(t *testing.T) {
 	s, later := goldenStore(t)
 	c := NewCollector(s, func() time.Time { return later })
 	path := filepath.Join("testdata", "fleet.prom")
-	for try := range 3 { // the second scrape reuses what the first kept; the third goes in chunks of 1,000 bytes
-		if try == 2 {
+	// The second scrape reuses what the first kept; the third goes in
+	// chunks of 1,000 bytes; the fourth and fifth walk the units in 3 and
+	// 24 parallel runs.
+	for try := range 5 {
+		switch try {
+		case 2:
 			c.chunk = 1000
+		case 3:
+			c.runs = 3
+		case 4:
+			c.runs = 24
 		}
 		var got bytes.Buffer
 		if err := c.WriteText(&got); err != nil {
@@ -162,7 +170,7 @@ func TestWriteTextWriter(t *testing.T) {
 	if err := c.WriteText(&whole); err != nil {
 		t.Fatal(err)
 	}
-	c.chunk = 1000
+	c.chunk, c.runs = 1000, 2
 	for _, n := range []int{0, 100, whole.Len() / 2} {
 		w := &failingWriter{left: n}
 		if err := c.WriteText(w); !errors.Is(err, errWriteFailed) {

@@ -3,6 +3,7 @@ package metrics
 import (
 	"io"
 	"math"
+	"runtime"
 	"strconv"
 	"strings"
 	"sync/atomic"
@@ -229,32 +230,54 @@ func (c *Collector) WriteTextOf(w io.Writer, keep func(unitID string) bool) erro
 
 // WriteTextFiltered is WriteText for what f serves.
 func (c *Collector) WriteTextFiltered(w io.Writer, f Filter) error {
-	n := len(c.store.Units()) // a whole scrape's units, room for the identities of most fleets
-	t := &textSink{recs: make([]recList, len(c.families)), strIdx: map[string]uint32{}, current: -1,
-		units: make([]scrapeUnit, 0, n), frag: make([]byte, 0, 40*n)}
-	c.series(t, f)
+	// The units are walked in parallel runs on a large fleet, a sink
+	// each; a family's text is then the runs' records one after the
+	// other, in the store's order as from one walk.
+	n := len(c.store.Units())
+	parts := 1
+	switch {
+	case c.runs > 0:
+		parts = c.runs
+	case n >= parallelUnits:
+		parts = max(1, min(runtime.GOMAXPROCS(0), maxParts))
+	}
+	sinks := make([]*textSink, parts)
+	outs := make([]sink, parts)
+	for i := range sinks {
+		m := n/parts + 1 // room for the identities of most fleets
+		sinks[i] = &textSink{recs: make([]recList, len(c.families)), strIdx: map[string]uint32{}, current: -1,
+			units: make([]scrapeUnit, 0, m), frag: make([]byte, 0, 40*m)}
+		outs[i] = sinks[i]
+	}
+	c.series(f, outs...)
 	p := newPipe(w, c.chunk)
 	b := p.take()
 	for _, fam := range c.families {
-		blocks := t.recs[fam.index].blocks
-		if len(blocks) == 0 {
-			continue
-		}
-		b = append(b, fam.text.header...)
-		for _, recs := range blocks {
-			for i := range recs {
-				b = t.appendSeries(b, fam, &recs[i])
-				if len(b) >= c.chunk {
-					if p.failed.Load() {
-						return p.close(nil)
+		header := false
+		for _, t := range sinks {
+			for _, recs := range t.recs[fam.index].blocks { // a block has a record at least
+				if !header {
+					b = append(b, fam.text.header...)
+					header = true
+				}
+				for i := range recs {
+					b = t.appendSeries(b, fam, &recs[i])
+					if len(b) >= c.chunk {
+						if p.failed.Load() {
+							return p.close(nil)
+						}
+						b = p.swap(b)
 					}
-					b = p.swap(b)
 				}
 			}
 		}
 	}
 	return p.close(b)
 }
+
+// A scrape walks the units in parallel runs from parallelUnits units
+// on, in as many runs as the process has cores, at most maxParts.
+const parallelUnits, maxParts = 1024, 4
 
 // chunkSize is how much text is handed to the writer at a time
 // (Collector.chunk).
