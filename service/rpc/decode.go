@@ -32,7 +32,7 @@ func decodePush(b []byte, req *pb.PushRequest, ids *StreamIDs) bool {
 		}
 		i = j
 		switch tag {
-		case 1<<3 | 0: // sequence
+		case 1 << 3: // sequence (field 1, varint)
 			if seq, i, ok = varint(b, i); !ok {
 				return false
 			}
@@ -124,7 +124,7 @@ func decodeSample(b []byte, s *pb.Sample, ids *StreamIDs) bool {
 			case 8:
 				s.Coolant = reuse(&coolant, x)
 			}
-		case 9<<3 | 0: // quality: the low 32 bits of the varint, as the generated decoder keeps
+		case 9 << 3: // quality (field 9, varint): the low 32 bits of the varint, as the generated decoder keeps
 			var v uint64
 			if v, i, ok = varint(b, i); !ok {
 				return false
@@ -210,10 +210,10 @@ func decodeTimestamp(b []byte, t *timestamppb.Timestamp) bool {
 		if v, i, ok = varint(b, j); !ok {
 			return false
 		}
-		switch tag {
-		case 1<<3 | 0:
+		switch tag { // fields 1 and 2, varints
+		case 1 << 3:
 			t.Seconds = int64(v)
-		case 2<<3 | 0:
+		case 2 << 3:
 			t.Nanos = int32(v)
 		default:
 			return false
