@@ -69,11 +69,13 @@ func decodeSample(b []byte, s *pb.Sample, ids *StreamIDs) bool {
 	s.Reset()
 	timeSeen := false
 	for i := 0; i < len(b); {
-		tag, j, ok := varint(b, i)
-		if !ok {
+		// Every tag of a sample is one byte: read here, the loop only for others.
+		tag, ok := uint64(b[i]), true
+		if tag < 0x80 {
+			i++
+		} else if tag, i, ok = varint(b, i); !ok {
 			return false
 		}
-		i = j
 		switch tag {
 		case 1<<3 | 2: // unit_id
 			var v []byte
@@ -243,8 +245,14 @@ func varint(b []byte, i int) (uint64, int, bool) {
 
 // field reads a length-delimited field's bytes at b[i:].
 func field(b []byte, i int) ([]byte, int, bool) {
-	n, i, ok := varint(b, i)
-	if !ok || n > uint64(len(b)-i) {
+	var n uint64
+	ok := i < len(b)
+	if ok && b[i] < 0x80 { // a length under 128: a sample's, its id's, its time's
+		n, i = uint64(b[i]), i+1
+	} else if n, i, ok = varint(b, i); !ok {
+		return nil, i, false
+	}
+	if n > uint64(len(b)-i) {
 		return nil, i, false
 	}
 	end := i + int(n)
