@@ -47,9 +47,9 @@ type httpGuard struct {
 	hosts     map[string]bool
 	basicAuth bool // the web configuration checks basic-auth users
 	next      http.Handler
-	// hideUnits passes a viewer's read of a unit outside its scope on to
-	// the pages, which answer it as for a unit that does not exist
-	// (false: 403).
+	// hideUnits passes a request about a unit outside the caller's view
+	// (a read or an alarm action) on to the pages, which answer it as for
+	// a unit that does not exist (false: 403).
 	hideUnits bool
 }
 
@@ -121,9 +121,12 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		if !ok {
 			reason := access.DenyReason(c)
 			h.guard.Deny(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.Sanitize(rt.unit, 128), reason)
-			if rt.role == access.Viewer && rt.unit != "" && c.Has(access.Viewer) && h.hideUnits && r.Method == http.MethodGet {
-				// Not revealed: the pages answer it as a unit that does
-				// not exist (their scope excludes it).
+			if rt.unit != "" && h.hideUnits && c.Has(access.Viewer) && !c.May(access.Viewer, rt.unit) {
+				// A unit outside the caller's view, read or acted on, is
+				// not revealed: the pages answer it as a unit that does
+				// not exist (their scope excludes it, so they neither
+				// show nor act on it). One the caller may view but not
+				// act on is answered 403: it knows the unit exists.
 				h.next.ServeHTTP(w, r)
 				return
 			}
