@@ -5,6 +5,7 @@ import (
 	"context"
 	"crypto/tls"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"net"
@@ -13,6 +14,7 @@ import (
 	"regexp"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -76,6 +78,71 @@ func (hc *httpConn) get(path, user, password string) (int, string, error) {
 		return 0, "", err
 	}
 	resp, err := http.ReadResponse(hc.br, req)
+	if err != nil {
+		return 0, "", err
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	return resp.StatusCode, string(b), nil
+}
+
+// h2Conn is one HTTP/2 connection (a real HTTP/2 client, ALPN h2) to a
+// secureServer; closed is closed when the server ends the TCP
+// connection, goAway set when it sent GOAWAY.
+type h2Conn struct {
+	cc     *http2.ClientConn
+	closed chan struct{}
+	goAway *atomic.Bool
+}
+
+func openH2(t *testing.T, p *pki, addr string) *h2Conn {
+	t.Helper()
+	c, err := tls.Dial("tcp", addr, &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost", NextProtos: []string{"h2"}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if proto := c.ConnectionState().NegotiatedProtocol; proto != "h2" {
+		t.Fatalf("negotiated %q, want h2", proto)
+	}
+	pr, pw := io.Pipe()
+	h := &h2Conn{closed: make(chan struct{}), goAway: new(atomic.Bool)}
+	// The frames the server sends, read beside the client (for GOAWAY).
+	go readGoAways(pr, func(*http2.GoAwayFrame) { h.goAway.Store(true) })
+	wc := &watchedConn{teeConn: teeConn{Conn: c, w: pw}, serverClosed: h.closed}
+	t.Cleanup(func() { wc.teeConn.Close() })
+	h.cc, err = (&http2.Transport{}).NewClientConn(wc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return h
+}
+
+// watchedConn closes serverClosed when a read ends because the server
+// closed the connection. It plays a client that ignores GOAWAY: the
+// HTTP/2 client's Close leaves the connection open (the test's cleanup
+// closes it), so that only the server can end it.
+type watchedConn struct {
+	teeConn
+	once         sync.Once
+	serverClosed chan struct{}
+}
+
+func (c *watchedConn) Close() error { return nil }
+
+func (c *watchedConn) Read(b []byte) (int, error) {
+	n, err := c.teeConn.Read(b)
+	if err != nil && !errors.Is(err, net.ErrClosed) {
+		c.once.Do(func() { close(c.serverClosed) })
+	}
+	return n, err
+}
+
+func (h *h2Conn) get(path, user, password string) (int, string, error) {
+	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+	defer cancel()
+	req, _ := http.NewRequestWithContext(ctx, "GET", "https://localhost"+path, nil)
+	req.SetBasicAuth(user, password)
+	resp, err := h.cc.RoundTrip(req)
 	if err != nil {
 		return 0, "", err
 	}
@@ -172,6 +239,38 @@ func TestConnectionsPerCaller(t *testing.T) {
 			_, code, _, err := openHTTP(t, p, r.srv.HTTPAddr(), nil, "/healthz", "viewer-all", reverse("viewer-all"))
 			return err == nil && code == http.StatusOK
 		})
+	})
+	t.Run("http/2 by basic-auth user", func(t *testing.T) {
+		var held []*h2Conn
+		for i := range capN {
+			hc := openH2(t, p, r.srv.HTTPAddr())
+			if code, body, err := hc.get("/healthz", "admin", reverse("admin")); err != nil || code != http.StatusOK {
+				t.Fatalf("HTTP/2 connection %d within the cap: %d %q %v", i+1, code, body, err)
+			}
+			held = append(held, hc)
+		}
+		over := openH2(t, p, r.srv.HTTPAddr())
+		code, body, err := over.get("/healthz", "admin", reverse("admin"))
+		if err != nil || code != http.StatusTooManyRequests || !strings.Contains(body, fmt.Sprintf("admin already has %d HTTP connections open", capN)) {
+			t.Fatalf("HTTP/2 connection over the cap: %d %q %v, want 429 with the reason", code, body, err)
+		}
+		// The server closes it (GOAWAY, then the TCP connection), where it
+		// used to keep it open answering 429.
+		select {
+		case <-over.closed:
+		case <-time.After(10 * time.Second):
+			t.Fatalf("the HTTP/2 connection over the cap was not closed by the server (GOAWAY %v, client state %+v)", over.goAway.Load(), over.cc.State())
+		}
+		if !over.goAway.Load() {
+			t.Error("closed without a GOAWAY")
+		}
+		// The held ones still serve, over HTTP/2.
+		if code, _, err := held[1].get("/healthz", "admin", reverse("admin")); err != nil || code != http.StatusOK {
+			t.Errorf("a held HTTP/2 connection's second request: %d %v", code, err)
+		}
+		if got := denialsBy(audit, "http GET /healthz", access.ReasonLimit); len(got) != 2 || got[1].Identity != "admin" {
+			t.Errorf("audit of the refused connections: %+v, want the HTTP/1 one and admin's", got)
+		}
 	})
 	t.Run("http without valid credentials, by address", func(t *testing.T) {
 		// Refused by the toolkit (401): counted against the address, and
@@ -498,21 +597,11 @@ func framedClient(t *testing.T, addr string, opts ...grpc.DialOption) (*grpc.Cli
 		}
 		pr, pw := io.Pipe()
 		once.Do(func() {
-			go func() {
-				fr := http2.NewFramer(io.Discard, pr)
-				for {
-					f, err := fr.ReadFrame()
-					if err != nil {
-						pr.CloseWithError(err)
-						return
-					}
-					if g, ok := f.(*http2.GoAwayFrame); ok {
-						fl.mu.Lock()
-						fl.goAway = append(fl.goAway, &goAway{ErrCode: g.ErrCode, Debug: string(g.DebugData())})
-						fl.mu.Unlock()
-					}
-				}
-			}()
+			go readGoAways(pr, func(g *http2.GoAwayFrame) {
+				fl.mu.Lock()
+				fl.goAway = append(fl.goAway, &goAway{ErrCode: g.ErrCode, Debug: string(g.DebugData())})
+				fl.mu.Unlock()
+			})
 			t.Cleanup(func() { pw.Close() })
 			c = &teeConn{Conn: c, w: pw}
 		})
@@ -524,6 +613,22 @@ func framedClient(t *testing.T, addr string, opts ...grpc.DialOption) (*grpc.Cli
 	}
 	t.Cleanup(func() { conn.Close() })
 	return conn, fl
+}
+
+// readGoAways parses the HTTP/2 frames a server sent (copied to pr) and
+// calls on for each GOAWAY, until the copy ends.
+func readGoAways(pr *io.PipeReader, on func(*http2.GoAwayFrame)) {
+	fr := http2.NewFramer(io.Discard, pr)
+	for {
+		f, err := fr.ReadFrame()
+		if err != nil {
+			pr.CloseWithError(err)
+			return
+		}
+		if g, ok := f.(*http2.GoAwayFrame); ok {
+			on(g)
+		}
+	}
 }
 
 // teeConn copies what it reads to w (the frame parser); the copy stops

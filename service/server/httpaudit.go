@@ -85,9 +85,7 @@ func (w *refusalWriter) WriteHeader(code int) {
 			host = w.r.RemoteAddr
 		}
 		if ok, max := admit(w.r.Context(), "addr:"+host); !ok {
-			if w.r.ProtoMajor == 1 {
-				w.Header().Set("Connection", "close")
-			}
+			w.Header().Set("Connection", "close") // HTTP/2 too: GOAWAY, then closed (see httpGuard)
 			w.o.guard.DenyGated(w.r.Context(), &access.Caller{Source: w.r.RemoteAddr}, "http connect", access.ReasonLimit,
 				fmt.Sprintf("more than %d HTTP connections without valid credentials", max))
 		}

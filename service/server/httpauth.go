@@ -95,9 +95,11 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	r = r.WithContext(ctx)
 	if ok, max := admit(ctx, limitKey(c)); !ok {
 		h.guard.DenyGated(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.ReasonLimit, fmt.Sprintf("more than %d HTTP connections", max))
-		if r.ProtoMajor == 1 {
-			w.Header().Set("Connection", "close")
-		}
+		// Closes the connection after this answer: HTTP/1 at once; over
+		// HTTP/2 net/http takes the header as its signal to send GOAWAY
+		// and close the connection once its open streams (each answered
+		// 429 like this one) are done.
+		w.Header().Set("Connection", "close")
 		http.Error(w, fmt.Sprintf("genvelope: %s already has %d HTTP connections open, the most allowed for one client; this connection is refused (close one first)", c.Who(), max), http.StatusTooManyRequests)
 		return
 	}
