@@ -327,7 +327,8 @@ func TestConnectionsPerAddress(t *testing.T) {
 // reason) with its source, the identity it claimed and the reason: a
 // wrong password, an unknown user and no credentials on HTTP; no
 // certificate, one from another CA and an expired one on gRPC and on
-// HTTP where the web configuration requires client certificates.
+// HTTP where the web configuration requires client certificates (the
+// refused certificate's subject as the claimed identity on both).
 func TestFailedAuthenticationAudited(t *testing.T) {
 	p := newPKI(t)
 	jpath := filepath.Join(t.TempDir(), "journal.jsonl")
@@ -363,8 +364,8 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 		{"grpc another CA", grpcRefused(t, r, p, foreign), audit, "grpc connect", want{access.ReasonBadCertificate, "viewer-all"}},
 		{"grpc expired", grpcRefused(t, r, p, expired), audit, "grpc connect", want{access.ReasonExpiredCertificate, "viewer-all"}},
 		{"http no certificate", httpRefused(t, p, r2, nil), audit2, "http connect", want{access.ReasonNoCertificate, ""}},
-		{"http another CA", httpRefused(t, p, r2, foreign), audit2, "http connect", want{access.ReasonBadCertificate, ""}},
-		{"http expired", httpRefused(t, p, r2, expired), audit2, "http connect", want{access.ReasonExpiredCertificate, ""}},
+		{"http another CA", httpRefused(t, p, r2, foreign), audit2, "http connect", want{access.ReasonBadCertificate, "viewer-all"}},
+		{"http expired", httpRefused(t, p, r2, expired), audit2, "http connect", want{access.ReasonExpiredCertificate, "viewer-all"}},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			if err := tc.do(); err != nil {
@@ -384,6 +385,13 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 				t.Errorf("entry %+v, want identity %q from 127.0.0.1", e, wantID)
 			}
 		})
+	}
+	// A certificate of the plant's CA is verified and identifies its
+	// holder (genvelope's own TLS handshake on HTTP keeps the verified
+	// chain for the request).
+	if _, code, body, err := openHTTP(t, p, r2.srv.HTTPAddr(), p.clients["viewer-all"], "/", "", ""); err != nil || code != http.StatusOK ||
+		!strings.Contains(body, "Signed in as <strong data-signed-in>viewer-all</strong>") {
+		t.Errorf("a valid client certificate over HTTP: %d %v, want the page signed in as viewer-all", code, err)
 	}
 	fams := scrapeAs(t, p, r)
 	for _, reason := range []string{access.ReasonBadPassword, access.ReasonUnknownUser, access.ReasonNoCredentials, access.ReasonNoCertificate, access.ReasonBadCertificate, access.ReasonExpiredCertificate} {

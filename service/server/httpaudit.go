@@ -28,6 +28,9 @@ type authObserver struct {
 	next  http.Handler // the toolkit's handler
 	guard *access.Guard
 	users *webUsers
+	// before, when set, brings the toolkit's copy of the web
+	// configuration up to date before the toolkit reads it.
+	before *webTLS
 }
 
 type reachedKey struct{}
@@ -40,6 +43,9 @@ func markReached(ctx context.Context) {
 }
 
 func (o *authObserver) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	if o.before != nil {
+		o.before.sync() // a failure removes the copy: the toolkit refuses the request, as without the file
+	}
 	reached := new(bool)
 	r = r.WithContext(context.WithValue(r.Context(), reachedKey{}, reached))
 	rec := &refusalWriter{ResponseWriter: w, status: http.StatusOK, reached: reached, r: r, o: o}

@@ -7,6 +7,7 @@ import (
 	"net"
 	"net/http"
 	"net/http/pprof"
+	"os"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -146,10 +147,26 @@ func pprofMux() *http.ServeMux {
 func (s *Server) serveHTTP(srv *http.Server, ln net.Listener) error {
 	path := s.cfg.Security.WebConfig
 	users := &webUsers{path: path}
+	toolkitPath, log := path, s.log
+	var wt *webTLS
+	if s.webCfg.TLS {
+		// The TLS is ours (webtls.go); the toolkit reads the rest of the
+		// file from a copy without it.
+		dir, err := os.MkdirTemp("", "genvelope-web-")
+		if err != nil {
+			return fmt.Errorf("web config copy: %w", err)
+		}
+		defer os.RemoveAll(dir)
+		if wt, err = newWebTLS(path, dir, s.guard, srv); err != nil {
+			return err
+		}
+		toolkitPath, log = wt.derived, slog.New(quietTLSLog{s.log.Handler()})
+		ln = wt.listen(ln)
+	}
 	ln = &observeListener{Listener: ln, hook: func() {
-		srv.Handler = &authObserver{next: srv.Handler, guard: s.guard, users: users}
+		srv.Handler = &authObserver{next: srv.Handler, guard: s.guard, users: users, before: wt}
 	}}
-	return web.Serve(ln, srv, &web.FlagConfig{WebConfigFile: &path}, s.log)
+	return web.Serve(ln, srv, &web.FlagConfig{WebConfigFile: &toolkitPath}, log)
 }
 
 func outcomeOf(err error) string {
