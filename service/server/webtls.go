@@ -119,7 +119,7 @@ func (w *webTLS) config(*tls.ClientHelloInfo) (*tls.Config, error) {
 		return nil, err
 	}
 	c := web.Config{
-		TLSConfig:  web.TLSConfig{MinVersion: tls.VersionTLS12, MaxVersion: tls.VersionTLS13, PreferServerCipherSuites: true},
+		TLSConfig:  web.TLSConfig{MinVersion: tls.VersionTLS12, MaxVersion: tls.VersionTLS13},
 		HTTPConfig: web.HTTPConfig{HTTP2: true},
 	}
 	dec := yaml.NewDecoder(bytes.NewReader(data))
