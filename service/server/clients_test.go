@@ -304,6 +304,33 @@ func TestConnectionsPerCaller(t *testing.T) {
 	}
 }
 
+// Over HTTP/2 too, a connection whose first answer is the web
+// configuration's 401 counts against its address, and over the cap that
+// 401 ends it (GOAWAY, then closed by the server).
+func TestHTTP2RefusedByAddressClosed(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, func(c *server.Config) { c.Limits = server.Limits{HTTPConnsPerCaller: 1} })
+	first := openH2(t, p, r.srv.HTTPAddr())
+	if code, _, err := first.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+		t.Fatalf("first connection: %d %v, want 401", code, err)
+	}
+	over := openH2(t, p, r.srv.HTTPAddr())
+	if code, _, err := over.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+		t.Fatalf("connection over the cap: %d %v, want 401", code, err)
+	}
+	select {
+	case <-over.closed:
+	case <-time.After(waitLong):
+		t.Fatalf("the HTTP/2 connection over the cap was not closed by the server (GOAWAY %v)", over.goAway.Load())
+	}
+	if !over.goAway.Load() {
+		t.Error("closed without a GOAWAY")
+	}
+	if code, _, err := first.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+		t.Errorf("the first connection's second request: %d %v, want it kept (401)", code, err)
+	}
+}
+
 // Anonymous clients are counted by address: a plaintext loopback
 // service refuses the third gRPC connection from 127.0.0.1.
 func TestConnectionsPerAddress(t *testing.T) {
