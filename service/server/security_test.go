@@ -641,3 +641,36 @@ func TestWebConfigFollowed(t *testing.T) {
 		t.Errorf("with the web configuration gone: %d, want the connection refused", resp.StatusCode)
 	}
 }
+
+// The toolkit's copy of the web configuration lies beside the state file
+// (writable in every install, where a read-only root filesystem has no
+// writable /tmp), in a private directory, without the TLS part and
+// without anything else lost; it is removed when the server stops.
+func TestWebConfigCopyBesideState(t *testing.T) {
+	p := newPKI(t)
+	stateDir := t.TempDir()
+	r, _ := secureServer(t, p, func(c *server.Config) { c.StatePath = filepath.Join(stateDir, "state.bin") })
+	if code, body := httpsDo(t, p, r, "GET", "/healthz", "viewer-all", ""); code != http.StatusOK {
+		t.Fatalf("GET /healthz: %d %s", code, body)
+	}
+	dir := filepath.Join(stateDir, ".genvelope-web")
+	fi, err := os.Stat(dir)
+	if err != nil || fi.Mode().Perm() != 0o700 {
+		t.Fatalf("the copy's directory: %v %v, want mode 0700", fi, err)
+	}
+	copied := readFile(t, filepath.Join(dir, "web-config-http.yml"))
+	if strings.Contains(copied, "tls_server_config") || strings.Contains(copied, "server.key") {
+		t.Errorf("the copy keeps the TLS part:\n%s", copied)
+	}
+	for _, user := range []string{"viewer-all:", "admin:", "viewer-larchwater:", "$2a$"} {
+		if !strings.Contains(copied, user) {
+			t.Errorf("the copy lacks %q:\n%s", user, copied)
+		}
+	}
+	r.cancel()
+	err = <-r.done
+	r.done <- err // for the cleanup
+	if _, err := os.Stat(filepath.Join(dir, "web-config-http.yml")); !os.IsNotExist(err) {
+		t.Errorf("the copy is still there after the stop: %v", err)
+	}
+}

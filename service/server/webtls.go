@@ -42,8 +42,8 @@ type webTLS struct {
 	size    int64
 }
 
-// newWebTLS prepares the copy of path in dir; the caller removes dir.
-func newWebTLS(path, dir string, g *access.Guard, srv *http.Server) (*webTLS, error) {
+// newWebTLS prepares the copy of path at copyPath; the caller removes it.
+func newWebTLS(path, copyPath string, g *access.Guard, srv *http.Server) (*webTLS, error) {
 	// net/http's bound on a handshake: the least of its timeouts.
 	hs := time.Duration(0)
 	for _, v := range []time.Duration{srv.ReadHeaderTimeout, srv.ReadTimeout, srv.WriteTimeout} {
@@ -54,7 +54,7 @@ func newWebTLS(path, dir string, g *access.Guard, srv *http.Server) (*webTLS, er
 	if hs == 0 {
 		hs = 10 * time.Second
 	}
-	w := &webTLS{path: path, derived: filepath.Join(dir, "web-config.yml"), guard: g, handshake: hs}
+	w := &webTLS{path: path, derived: copyPath, guard: g, handshake: hs}
 	if err := w.sync(); err != nil {
 		return nil, err
 	}
