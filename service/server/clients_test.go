@@ -370,6 +370,15 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 	mtlsWeb := testpki.Write(t, p.dir, "web-mtls.yaml", []byte("tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n"+
 		"  client_ca_file: ca.crt\n  client_auth_type: RequireAndVerifyClientCert\n"))
 	r2, audit2 := secureServer(t, p, func(c *server.Config) { c.Security.WebConfig = mtlsWeb })
+	// Client certificates whose chain verifies, but only with SANs the
+	// certificates do not have (the toolkit's client_allowed_sans).
+	sansWeb := testpki.Write(t, p.dir, "web-sans.yaml", []byte("tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n"+
+		"  client_ca_file: ca.crt\n  client_auth_type: RequireAndVerifyClientCert\n  client_allowed_sans: [nobody.example]\n"))
+	r3, audit3 := secureServer(t, p, func(c *server.Config) { c.Security.WebConfig = sansWeb })
+	// Client certificates asked for and not verified, beside users.
+	anyWeb := testpki.Write(t, p.dir, "web-any.yaml", []byte("tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n"+
+		"  client_auth_type: RequireAnyClientCert\nbasic_auth_users:\n  viewer-all: "+bcryptHash(t, reverse("viewer-all"))+"\n"))
+	r4, audit4 := secureServer(t, p, func(c *server.Config) { c.Security.WebConfig = anyWeb })
 
 	type want struct{ reason, claimed string }
 	for _, tc := range []struct {
@@ -397,6 +406,11 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 		{"http no certificate", httpRefused(t, p, r2, nil), audit2, "http connect", want{access.ReasonNoCertificate, ""}},
 		{"http another CA", httpRefused(t, p, r2, foreign), audit2, "http connect", want{access.ReasonBadCertificate, "viewer-all"}},
 		{"http expired", httpRefused(t, p, r2, expired), audit2, "http connect", want{access.ReasonExpiredCertificate, "viewer-all"}},
+		{"http certificate without an allowed SAN", httpRefused(t, p, r3, p.clients["viewer-all"]), audit3, "http connect", want{access.ReasonBadCertificate, "viewer-all"}},
+		{"http unverified certificate, no credentials", func() error {
+			_, code, _, err := openHTTP(t, p, r4.srv.HTTPAddr(), foreign, "/", "", "")
+			return expectCode(code, err, http.StatusUnauthorized)
+		}, audit4, "http GET /", want{access.ReasonNoCredentials, "viewer-all"}},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			if err := tc.do(); err != nil {

@@ -64,7 +64,14 @@ func (o *authObserver) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		case ok:
 			reason = access.ReasonUnknownUser
 		}
-		o.guard.AuthFailed(r.Context(), access.AuthFailure{Source: r.RemoteAddr, Claimed: user, Action: action, Reason: reason})
+		claimed := user
+		if claimed == "" && r.TLS != nil && len(r.TLS.VerifiedChains) == 0 && len(r.TLS.PeerCertificates) > 0 {
+			// A certificate the web configuration asks for but does not
+			// verify (RequestClientCert, RequireAnyClientCert): the name
+			// it claims.
+			claimed = access.CertName(r.TLS.PeerCertificates[0])
+		}
+		o.guard.AuthFailed(r.Context(), access.AuthFailure{Source: r.RemoteAddr, Claimed: claimed, Action: action, Reason: reason})
 	case http.StatusTooManyRequests:
 		o.guard.DenyGated(r.Context(), &access.Caller{Source: r.RemoteAddr}, action, access.ReasonLimit, "the web configuration's rate limit")
 	}

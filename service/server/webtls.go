@@ -4,6 +4,7 @@ import (
 	"bytes"
 	"context"
 	"crypto/tls"
+	"crypto/x509"
 	"errors"
 	"fmt"
 	"io"
@@ -184,7 +185,24 @@ func (l *tlsListener) loop() {
 
 func (l *tlsListener) handshake(c net.Conn) {
 	l.w.sync() // a failure removes the copy: the toolkit then refuses the connection's requests
-	tc := tls.Server(c, &tls.Config{GetConfigForClient: l.w.config})
+	// The certificate a check after the chain's (the toolkit's
+	// client_allowed_sans) refused: its error does not carry it.
+	var refused *x509.Certificate
+	tc := tls.Server(c, &tls.Config{GetConfigForClient: func(hello *tls.ClientHelloInfo) (*tls.Config, error) {
+		cfg, err := l.w.config(hello)
+		if err != nil || cfg.VerifyPeerCertificate == nil {
+			return cfg, err
+		}
+		check := cfg.VerifyPeerCertificate
+		cfg.VerifyPeerCertificate = func(raw [][]byte, chains [][]*x509.Certificate) error {
+			err := check(raw, chains)
+			if err != nil && len(raw) > 0 {
+				refused, _ = x509.ParseCertificate(raw[0])
+			}
+			return err
+		}
+		return cfg, nil
+	}})
 	ctx, cancel := context.WithTimeout(context.Background(), l.w.handshake)
 	err := tc.HandshakeContext(ctx)
 	cancel()
@@ -199,6 +217,9 @@ func (l *tlsListener) handshake(c net.Conn) {
 			return // closed before the handshake: a port probe, no attempt to authenticate
 		}
 		reason, claimed := access.ClassifyTLSError(err)
+		if refused != nil {
+			reason, claimed = access.ReasonBadCertificate, access.CertName(refused)
+		}
 		l.w.guard.AuthFailed(context.Background(), access.AuthFailure{Source: c.RemoteAddr().String(), Claimed: claimed,
 			Action: "http connect", Reason: reason, Detail: err.Error()})
 		return
