@@ -264,3 +264,106 @@ func TestRoundPracticalIsTheRule(t *testing.T) {
 	}
 	t.Logf("near the edge of the margin: %d bands skipped by the scan, %d met", skipped, caught)
 }
+
+// hintMarginUnits are weak-grid units (Xe 0.5 and 0.8 pu) with a
+// practical margin of 0.05 and 0.10, round and salient, on both bases
+// (invented parameters of plausible size, not check values).
+func hintMarginUnits(t testing.TB) []*Unit {
+	round := func(xe, m float64) Params {
+		return roundUnit(t, 1.9, xe, func(p *Params) { p.IfdRated, p.MarginFraction = 2.6, m }).Params()
+	}
+	salient := func(xe, m float64) Params {
+		return Params{Rotor: Salient, Xd: 1.05, Xq: 0.68, Xl: 0.15, Xp: 0.2, PowerFactor: 0.9,
+			FrequencyHz: 50, PMax: 0.9, Xe: xe, IfdRated: 2.2, MarginFraction: m}
+	}
+	avr := func(p Params, ka, ta float64, pss bool) *Unit {
+		p.Basis, p.Td0TransientS, p.InertiaHS, p.XdTransient, p.DampingPU = BasisAVR, 7, 4, 0.3, 1
+		p.Exciter = &Exciter{KA: ka, TAS: ta, TRS: 0.02}
+		if pss {
+			p.Stabilizer = &Stabilizer{K: 10, TWS: 3, T1S: 0.15, T2S: 0.03, T3S: 0.08, T4S: 0.03}
+		}
+		return mustNew(t, p)
+	}
+	return []*Unit{mustNew(t, round(0.5, 0.10)), mustNew(t, round(0.8, 0.05)),
+		mustNew(t, salient(0.5, 0.10)), mustNew(t, salient(0.8, 0.05)),
+		avr(round(0.5, 0.10), 200, 0.02, true), avr(round(0.8, 0.05), 100, 0.03, false),
+		avr(salient(0.5, 0.05), 200, 0.02, true), avr(salient(0.8, 0.10), 50, 0.05, false)}
+}
+
+// With a practical margin the answer does not depend on the hint
+// history: random walks of 100,000 samples in all (12,500 a unit; -short
+// 1,250) over the whole chart of weak-grid units with m = 0.05 and 0.10
+// on both bases, p = 0 included. At every sample Evaluate and
+// EvaluateSample with the walk's hints give the practical limit and
+// q_min of Evaluate with a fresh hint, to 1e-6 pu: the rule is a
+// function of p, v, q_stability and the top (and on the avr basis the
+// per-sample q_stability is the table's, which takes no hint). Against
+// Evaluate without a hint (the direct path): on the manual basis the
+// same, to 1e-6 pu; on the avr basis, every tenth sample, q_stability
+// within the table's 0.002 pu, the practical limit the rule at each
+// path's own q_stability (PracticalLimit, itself checked against an
+// independent scan in TestPracticalRuleIndependent), and the two within
+// 0.002 pu except where the rule jumps between the two q_stability
+// values (counted).
+func TestHintDoesNotChangePractical(t *testing.T) {
+	n := 12_500
+	if testing.Short() {
+		n = 1_250
+	}
+	same := func(a, b Bound, tol float64) bool { return a.OK == b.OK && (!a.OK || math.Abs(a.V-b.V) <= tol) }
+	for ui, u := range hintMarginUnits(t) {
+		var h, hs Hint
+		jumps, direct := 0, 0
+		for i, pt := range walk(n, u.p.PMax, uint64(100+ui)) {
+			warm, sample, fresh := u.Evaluate(pt, &h), u.EvaluateSample(pt, &hs), u.Evaluate(pt, &Hint{})
+			for _, x := range []struct {
+				name string
+				r    Result
+			}{{"Evaluate with the walk's hint", warm}, {"EvaluateSample with the walk's hint", sample}} {
+				if !same(x.r.Practical, fresh.Practical, 1e-6) || !same(x.r.QMin, fresh.QMin, 1e-6) {
+					t.Fatalf("unit %d sample %d %+v: %s: practical %+v, q_min %+v; with a fresh hint %+v, %+v",
+						ui, i, pt, x.name, x.r.Practical, x.r.QMin, fresh.Practical, fresh.QMin)
+				}
+			}
+			if u.p.Basis != BasisAVR {
+				cold := u.Evaluate(pt, nil)
+				if !same(warm.Practical, cold.Practical, 1e-6) || !same(warm.QMin, cold.QMin, 1e-6) {
+					t.Fatalf("unit %d sample %d %+v: practical %+v, q_min %+v; without a hint %+v, %+v",
+						ui, i, pt, warm.Practical, warm.QMin, cold.Practical, cold.QMin)
+				}
+				continue
+			}
+			if i%10 != 0 {
+				continue
+			}
+			direct++
+			d := u.Evaluate(pt, nil)
+			if !same(d.Stability, warm.Stability, 0.002) {
+				t.Fatalf("unit %d sample %d %+v: q_stability direct %+v, per-sample %+v", ui, i, pt, d.Stability, warm.Stability)
+			}
+			for _, r := range []Result{d, warm} {
+				var rule Bound
+				if r.Stability.OK && r.QMax.OK {
+					rule = u.PracticalLimit(pt.P, pt.V, r.Stability.V, r.QMax.V)
+				}
+				if !same(r.Practical, rule, 1e-6) {
+					t.Fatalf("unit %d sample %d %+v: practical %+v, the rule at its q_stability %+v gives %+v", ui, i, pt, r.Practical, r.Stability, rule)
+				}
+			}
+			if same(d.Practical, warm.Practical, 0.002) {
+				continue
+			}
+			var moved Bound
+			if warm.Stability.OK && d.QMax.OK {
+				moved = u.PracticalLimit(pt.P, pt.V, warm.Stability.V, d.QMax.V)
+			}
+			if same(moved, d.Practical, 0.002) {
+				t.Fatalf("unit %d sample %d %+v: practical direct %+v, per-sample %+v, not a jump of the rule", ui, i, pt, d.Practical, warm.Practical)
+			}
+			jumps++
+		}
+		if u.p.Basis == BasisAVR {
+			t.Logf("unit %d (avr): %d of %d direct comparisons on a jump of the practical limit", ui, jumps, direct)
+		}
+	}
+}
