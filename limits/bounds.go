@@ -187,11 +187,15 @@ func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint, fast bool
 	// One evaluation settles it: above lo, i_fd(q_min) within the rating
 	// means the field limit exists and lies above q_min (i_fd rises
 	// without bound); below lo, the field limit exists above lo, and so
-	// above q_min, when i_fd(lo) is within the rating. The practical
-	// scan's last point (s.scanned, at most qTop, the scan's own top) is
-	// checked with q_min: below q_max the scan with q_max as its top looks
-	// at the same points and closes the same bracket.
-	at := max(qMin, s.scanned, -v*v/u.p.Xq)
+	// above q_min, when i_fd(lo) is within the rating. With a margin the
+	// practical scan's last point (s.scanned, at most qTop, the scan's
+	// own top) is checked with q_min: below q_max the scan with q_max as
+	// its top looks at the same points and closes the same bracket
+	// (without one the practical limit is q_stability, below q_min).
+	at := max(qMin, -v*v/u.p.Xq)
+	if u.marginPU > 0 {
+		at = max(at, s.scanned)
+	}
 	if u.field(p, at, v, false).ifd >= ifdMax {
 		return b, false
 	}
@@ -268,7 +272,7 @@ type stabLimits struct {
 	theo, prac Bound   // q_stability and the practical limit
 	top        Bound   // when q_max itself is unstable: the top of the topmost stable interval
 	err        error   // ErrSmallSignal: the avr basis' eigenvalue solver failed
-	scanned    float64 // the highest q the practical limit's rule looked at (see practicalLimit)
+	scanned    float64 // with a margin: the practical limit is the same for every top at or above this q (see practicalLimit)
 }
 
 // stabilityLimits returns the theoretical and the practical steady-state
@@ -296,7 +300,7 @@ type stabLimits struct {
 // On a round rotor (Xq = Xd) the manual curves have closed forms, below.
 func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out *stabLimits) {
 	if u.p.Basis == BasisAVR {
-		*out = u.avrLimits(p, v, qTop, qBot, h, fast)
+		u.avrLimits(p, v, qTop, qBot, fast, out)
 		return
 	}
 	if u.roundStab {
@@ -379,40 +383,57 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out
 }
 
 // avrLimits is stabilityLimits on the avr basis.
-func (u *Unit) avrLimits(p, v, qTop, qBot float64, h *Hint, fast bool) stabLimits {
+func (u *Unit) avrLimits(p, v, qTop, qBot float64, fast bool, res *stabLimits) {
 	var iv interval
 	if fast && u.avrTab != nil {
 		iv = u.fastInterval(p, v, qTop, qBot)
 	} else {
 		iv = u.avrInterval(p, v, qTop, qBot)
 	}
-	res := stabLimits{theo: iv.low, top: iv.top, err: iv.err}
+	*res = stabLimits{theo: iv.low, top: iv.top, err: iv.err}
 	if !iv.low.OK {
-		return res
+		return
 	}
 	if u.marginPU == 0 {
-		res.prac, res.scanned = iv.low, iv.low.V
-		return res
+		res.prac = iv.low
+		return
 	}
 	if iv.top.OK {
 		qTop = iv.top.V
 	}
 	res.prac, res.scanned = u.practicalLimit(p, v, iv.low.V, qTop)
-	return res
 }
 
-// peakExcess returns the function whose root in q is the practical
-// stability limit at active power p >= 0 and voltage v: the peak of
-// P(delta) at the point's own E_f and V_s, less p and the margin m.
-func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
-	pm := p + u.marginPU
-	return func(q float64) float64 {
-		s := u.stab(p, q, v)
-		if s.degen {
-			return -pm
-		}
-		return peakPower(s.a, s.b) - pm
+// peakExcess is the function whose sign the practical limit's rule
+// tests, at active power p >= 0 and voltage v (newPeakExcess): at, the
+// peak of P(delta) at the point's own E_f and V_s, less p and the margin
+// m (pu). It is stab's a and b without the angle (see stab for the
+// equations): with I_d the d-axis current, |E_Q| I_d = Re(I) Im(E_Q) -
+// Im(I) Re(E_Q), so E_f = |E_Q| + (Xd - Xq) I_d needs no unit vector, and
+// the terms that do not depend on q are formed once. (A value with a
+// method rather than a closure, so that it stays on the stack.)
+type peakExcess struct {
+	v, xd, xq, xe, invXdS, kb, pm, iR, eqI, vsI float64
+}
+
+func (u *Unit) newPeakExcess(p, v float64) peakExcess {
+	xd, xq, xe := u.p.Xd, u.p.Xq, u.p.Xe
+	invXdS := 1 / (xd + xe)
+	iR := p / v
+	return peakExcess{v: v, xd: xd, xq: xq, xe: xe, invXdS: invXdS, kb: 0.5 * (1/(xq+xe) - invXdS),
+		pm: p + u.marginPU, iR: iR, eqI: xq * iR, vsI: -xe * iR}
+}
+
+func (e *peakExcess) at(q float64) float64 {
+	iI := -q / e.v
+	eqR, vsR := e.v-e.xq*iI, e.v+e.xe*iI
+	n := math.Sqrt(eqR*eqR + e.eqI*e.eqI)
+	vs := math.Sqrt(vsR*vsR + e.vsI*e.vsI)
+	if n == 0 || vs == 0 {
+		return -e.pm
 	}
+	ef := n + (e.xd-e.xq)*(e.iR*e.eqI-iI*eqR)/n
+	return peakPower(ef*vs*e.invXdS, e.kb*vs*vs) - e.pm
 }
 
 // practicalLimit applies the rule of the practical margin (envelope.md,
@@ -452,7 +473,8 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64) (prac Bound, scanned float
 		// (envelope.md, "Practical margin"), on both bases.
 		return some(qs), qs
 	}
-	return scanRule(u.peakExcess(p, v), qs, qTop)
+	e := u.newPeakExcess(p, v)
+	return scanRule(e.at, qs, qTop)
 }
 
 // scanRule is the scan and bisection of practicalLimit on hf over
@@ -491,7 +513,8 @@ func (u *Unit) PracticalLimit(p, v, qs, qTop float64) Bound {
 	if u.roundStab && u.p.Basis != BasisAVR {
 		x, xe := u.p.Xd, u.p.Xe
 		v2 := v * v
-		return u.roundPractical(p, v2, x*xe, -v2*(x-xe), x*xe*p*p-v2*v2, qs, qTop)
+		prac, _ := u.roundPractical(p, v2, x*xe, -v2*(x-xe), x*xe*p*p-v2*v2, qs, qTop)
+		return prac
 	}
 	prac, _ := u.practicalLimit(p, v, qs, qTop)
 	return prac
@@ -561,8 +584,7 @@ func (u *Unit) roundStability(p, v, qTop, qBot float64, res *stabLimits) {
 		}
 	}
 	res.theo = some(qs)
-	res.prac = u.roundPractical(p, v2, a, b, c, qs, qTop)
-	res.scanned = qTop // the highest q the rule could look at (its closed form looks at none)
+	res.prac, res.scanned = u.roundPractical(p, v2, a, b, c, qs, qTop)
 }
 
 // roundPractical is the rule of practicalLimit in closed form for a
@@ -584,33 +606,61 @@ func (u *Unit) roundStability(p, v, qTop, qBot float64, res *stabLimits) {
 // is still <= r2, and the bracket below it holds r1 alone, so the answer
 // is r1. A region [r1, r2] that falls between two grid points (narrower
 // than scanStep, near the p at which the margin can no longer be met) is
-// skipped by the scan, and so by this too: infeasible.
-func (u *Unit) roundPractical(p, v2, a, b, c, qs, qTop float64) Bound {
+// skipped by the scan, and so by this too: infeasible. scanned is
+// practicalLimit's: the answer is the same for any top at or above it.
+func (u *Unit) roundPractical(p, v2, a, b, c, qs, qTop float64) (prac Bound, scanned float64) {
 	m := u.marginPU
 	if m == 0 {
-		return some(qs)
+		return some(qs), qs
 	}
 	x, xe := u.p.Xd, u.p.Xe
 	c += v2 * (x + xe) * math.Sqrt(m*m+2*p*m)
-	r1, ok := quadLower(a, b, c)
-	if !ok || r1 > qTop {
-		return Bound{}
+	// r1 and the band's width w = r2 - r1, the roots written to avoid
+	// cancellation as in quadLower (which would take the square root again).
+	var r1, w float64
+	if a == 0 {
+		if b == 0 {
+			return Bound{}, qTop
+		}
+		r1, w = -c/b, math.Inf(1)
+	} else {
+		disc := b*b - 4*a*c
+		if disc < 0 {
+			return Bound{}, qTop
+		}
+		sq := math.Sqrt(disc)
+		switch {
+		case b > 0:
+			r1 = (-b - sq) / (2 * a)
+		case sq != b:
+			r1 = 2 * c / (sq - b)
+		}
+		w = sq / a
 	}
-	r2 := math.Inf(1)
-	if a > 0 {
-		r2 = (-b + math.Sqrt(math.Max(b*b-4*a*c, 0))) / (2 * a)
+	if r1 > qTop {
+		return Bound{}, qTop
 	}
 	if r1 <= qs {
 		// At q_stability hf = -m < 0, so r1 > qs but for rounding (or for
 		// a qs given to PracticalLimit off the limit): the rule's first
 		// point, qs, decides.
-		if qs <= r2 {
-			return some(qs)
+		if qs <= r1+w {
+			return some(qs), qs
 		}
-		return Bound{}
+		return Bound{}, qTop
 	}
-	if q := qs + math.Ceil((r1-qs)/scanStep)*scanStep; math.Min(q, qTop) > r2 {
-		return Bound{}
+	if w >= scanStep {
+		// The first of the scan's points at or above r1, or qTop in its
+		// place, lies in the band, whatever the top above r1.
+		return some(r1), r1
 	}
-	return some(r1)
+	// A band narrower than the step: is one of the scan's points in it?
+	q := qs + math.Ceil((r1-qs)/scanStep)*scanStep
+	if q > qTop {
+		q = qTop
+	}
+	if q > r1+w {
+		return Bound{}, qTop
+	}
+	return some(r1), q
 }
