@@ -478,11 +478,16 @@ func (u *Unit) practicalLimit(p, v, qs, qTop float64) (prac Bound, scanned float
 }
 
 // scanRule is the scan and bisection of practicalLimit on hf over
-// [qs, qTop].
+// [qs, qTop]. An interval longer than maxScan steps (or not finite) is
+// no operating chart (nonsense input such as an infinite voltage): the
+// limit is absent rather than scanned without end.
 func scanRule(hf func(float64) float64, qs, qTop float64) (Bound, float64) {
 	lo, fLo := qs, hf(qs)
 	if fLo >= 0 {
 		return some(qs), qs
+	}
+	if !((qTop-qs)/scanStep <= maxScan) {
+		return Bound{}, qTop
 	}
 	for k := 1; lo < qTop; k++ {
 		q := qs + float64(k)*scanStep
@@ -498,6 +503,10 @@ func scanRule(hf func(float64) float64, qs, qTop float64) (Bound, float64) {
 	}
 	return Bound{}, math.Max(qs, qTop)
 }
+
+// maxScan bounds the practical limit's scan: 10,000 steps of scanStep,
+// 200 pu of reactive power, a hundred times any machine's chart.
+const maxScan = 10_000
 
 // PracticalLimit is the practical stability limit by the rule of the
 // practical margin (envelope.md, "Practical margin"; see practicalLimit)

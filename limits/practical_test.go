@@ -367,3 +367,22 @@ func TestHintDoesNotChangePractical(t *testing.T) {
 		}
 	}
 }
+
+// Nonsense operating points with a practical margin end (the scan is
+// bounded), on both bases, and the rule adds no NaN: a present practical
+// limit is NaN only where q_stability is (the round rotor's closed forms
+// at an infinite voltage, like the field limit, are left to the
+// service's input checks).
+func TestPracticalNonsensePoints(t *testing.T) {
+	for ui, u := range practicalUnits(t) {
+		var h Hint
+		for _, pt := range []Point{{P: 0.5, V: math.Inf(1)}, {P: 0.5, V: 1e300}, {P: math.Inf(1), V: 1}, {P: 0.5, Q: math.Inf(1), V: 1},
+			{P: math.NaN(), V: 1}, {P: 0.5, V: math.NaN()}, {P: 0.5, V: 0}, {P: -0.5, V: 1}, {P: 3, V: 1}} {
+			for _, r := range []Result{u.Evaluate(pt, nil), u.Evaluate(pt, &h), u.EvaluateSample(pt, &h)} {
+				if r.Practical.OK && math.IsNaN(r.Practical.V) && !(r.Stability.OK && math.IsNaN(r.Stability.V)) {
+					t.Errorf("unit %d point %+v: the practical limit is NaN: %+v", ui, pt, r.Bounds)
+				}
+			}
+		}
+	}
+}
