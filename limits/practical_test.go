@@ -386,3 +386,38 @@ func TestPracticalNonsensePoints(t *testing.T) {
 		}
 	}
 }
+
+// EvaluateSample followed by Complete is Evaluate with a hint on the
+// weak-grid units with a margin, whose practical limit lies close to
+// q_max: the sample path scans below the armature circle instead of
+// below q_max and must find the same limit (deferredBounds checks the
+// field current at the scan's last point).
+func TestSampleCompletesWithMargin(t *testing.T) {
+	n := 5000
+	if testing.Short() {
+		n = 1000
+	}
+	for ui, u := range hintMarginUnits(t) {
+		var hs, he Hint
+		deferred := 0
+		for i, pt := range walk(n, u.p.PMax, uint64(200+ui)) {
+			a := u.EvaluateSample(pt, &hs)
+			if a.QMaxPending {
+				deferred++
+			}
+			u.Complete(&a, pt)
+			b := u.Evaluate(pt, &he)
+			for _, x := range [][2]Bound{{a.QMax, b.QMax}, {a.QMin, b.QMin}, {a.Stability, b.Stability}, {a.Practical, b.Practical}, {a.StabilityTop, b.StabilityTop}} {
+				if x[0].OK != x[1].OK || math.Abs(x[0].V-x[1].V) > 1e-8 {
+					t.Fatalf("unit %d point %d %+v: sample path %+v, Evaluate %+v", ui, i, pt, x[0], x[1])
+				}
+			}
+			if a.Feasible != b.Feasible || a.Binding != b.Binding || a.QMinLimit != b.QMinLimit {
+				t.Fatalf("unit %d point %d %+v: sample path %+v\nEvaluate %+v", ui, i, pt, a, b)
+			}
+		}
+		if u.p.Basis != BasisAVR && deferred == 0 {
+			t.Errorf("unit %d: the sample path never deferred q_max", ui)
+		}
+	}
+}
