@@ -6,7 +6,9 @@ import (
 	"crypto/x509"
 	"io"
 	"log/slog"
+	"net"
 	"net/http"
+	"os"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -300,10 +302,10 @@ func TestGRPCRights(t *testing.T) {
 			_, err := c.AcknowledgeAlarm(ctx, &pb.AcknowledgeAlarmRequest{UnitId: "harrowmere-1", Limit: "field"})
 			return err
 		}, codes.PermissionDenied},
-		{"operator of harrowmere shelves larchwater", "op-harrowmere", func(ctx context.Context, c pb.AlarmServiceClient) error {
+		{"operator of harrowmere shelves larchwater: answered as a unit not in the fleet", "op-harrowmere", func(ctx context.Context, c pb.AlarmServiceClient) error {
 			_, err := c.ShelveAlarm(ctx, shelve("larchwater-2").(*pb.ShelveAlarmRequest))
 			return err
-		}, codes.PermissionDenied},
+		}, codes.NotFound},
 		{"stranger lists alarms", "stranger", func(ctx context.Context, c pb.AlarmServiceClient) error {
 			_, err := c.ListAlarms(ctx, &pb.ListAlarmsRequest{})
 			return err
@@ -334,7 +336,7 @@ func TestGRPCRights(t *testing.T) {
 				t.Fatalf("got %v, want %v", err, tc.want)
 			}
 			denied := audit.Find("grpc", access.OutcomeDenied)
-			if tc.want == codes.PermissionDenied || tc.want == codes.Unauthenticated {
+			if tc.want == codes.PermissionDenied || tc.want == codes.Unauthenticated || tc.want == codes.NotFound {
 				if len(denied) != before+1 {
 					t.Fatalf("%d new denials audited, want 1", len(denied)-before)
 				}
@@ -579,5 +581,96 @@ func TestAccessFileReload(t *testing.T) {
 	}
 	if got := audit.Find("reload", access.OutcomeFailed); len(got) != 1 {
 		t.Errorf("%d failed reloads audited, want 1", len(got))
+	}
+}
+
+// genvelope terminates the HTTP listener's TLS itself (to audit refused
+// certificates with their subject) and hands the exporter-toolkit a copy
+// of the web configuration without tls_server_config: the copy follows
+// the file (a user added is let in, the file removed refuses requests),
+// HTTP/2 follows http_server_config, and plain HTTP on the TLS port is
+// answered 400 as net/http does.
+func TestWebConfigFollowed(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, nil)
+	webPath := filepath.Join(p.dir, "web.yaml")
+	orig := readFile(t, webPath)
+	if code, _ := httpsDo(t, p, r, "GET", "/healthz", "viewer-lately", ""); code != http.StatusUnauthorized {
+		t.Fatalf("a user the file does not have: %d, want 401", code)
+	}
+	writeFile(t, webPath, orig+"  viewer-lately: "+bcryptHash(t, reverse("viewer-lately"))+"\n")
+	waitFor(t, "the user added to the file let in", func() bool {
+		code, _ := httpsDo(t, p, r, "GET", "/healthz", "viewer-lately", "")
+		return code == http.StatusOK
+	})
+
+	proto := func() string {
+		c, err := tls.Dial("tcp", r.srv.HTTPAddr(), &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost", NextProtos: []string{"h2", "http/1.1"}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer c.Close()
+		return c.ConnectionState().NegotiatedProtocol
+	}
+	if got := proto(); got != "h2" {
+		t.Errorf("negotiated %q, want h2 (the toolkit's default)", got)
+	}
+	writeFile(t, webPath, orig+"http_server_config:\n  http2: false\n")
+	waitFor(t, "HTTP/2 turned off", func() bool { return proto() == "http/1.1" })
+
+	c, err := net.Dial("tcp", r.srv.HTTPAddr())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	c.SetDeadline(time.Now().Add(waitLong))
+	io.WriteString(c, "GET / HTTP/1.1\r\nHost: localhost\r\n\r\n")
+	if b, _ := io.ReadAll(c); !strings.HasPrefix(string(b), "HTTP/1.0 400 Bad Request") {
+		t.Errorf("plain HTTP on the TLS port answered %q", b)
+	}
+
+	if err := os.Remove(webPath); err != nil {
+		t.Fatal(err)
+	}
+	client := &http.Client{Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost"}}}
+	defer client.CloseIdleConnections()
+	req, _ := http.NewRequest("GET", r.base+"/healthz", nil)
+	req.SetBasicAuth("viewer-all", reverse("viewer-all"))
+	if resp, err := client.Do(req); err == nil {
+		resp.Body.Close()
+		t.Errorf("with the web configuration gone: %d, want the connection refused", resp.StatusCode)
+	}
+}
+
+// The toolkit's copy of the web configuration lies beside the state file
+// (writable in every install, where a read-only root filesystem has no
+// writable /tmp), in a private directory, without the TLS part and
+// without anything else lost; it is removed when the server stops.
+func TestWebConfigCopyBesideState(t *testing.T) {
+	p := newPKI(t)
+	stateDir := t.TempDir()
+	r, _ := secureServer(t, p, func(c *server.Config) { c.StatePath = filepath.Join(stateDir, "state.bin") })
+	if code, body := httpsDo(t, p, r, "GET", "/healthz", "viewer-all", ""); code != http.StatusOK {
+		t.Fatalf("GET /healthz: %d %s", code, body)
+	}
+	dir := filepath.Join(stateDir, ".genvelope-web")
+	fi, err := os.Stat(dir)
+	if err != nil || fi.Mode().Perm() != 0o700 {
+		t.Fatalf("the copy's directory: %v %v, want mode 0700", fi, err)
+	}
+	copied := readFile(t, filepath.Join(dir, "web-config-http.yml"))
+	if strings.Contains(copied, "tls_server_config") || strings.Contains(copied, "server.key") {
+		t.Errorf("the copy keeps the TLS part:\n%s", copied)
+	}
+	for _, user := range []string{"viewer-all:", "admin:", "viewer-larchwater:", "$2a$"} {
+		if !strings.Contains(copied, user) {
+			t.Errorf("the copy lacks %q:\n%s", user, copied)
+		}
+	}
+	r.cancel()
+	err = <-r.done
+	r.done <- err // for the cleanup
+	if _, err := os.Stat(filepath.Join(dir, "web-config-http.yml")); !os.IsNotExist(err) {
+		t.Errorf("the copy is still there after the stop: %v", err)
 	}
 }
