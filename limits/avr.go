@@ -186,8 +186,9 @@ func (a poly) mul(b poly) poly {
 // charParts are the q-independent pieces of the characteristic
 // polynomial (see charPoly), formed once per unit.
 type charParts struct {
-	m0c1, m0c2, c1, c2, c3, c4, c5 poly
-	n                              int // the highest degree among them
+	m0c1, m0c2, c1, c2, c3, c5 poly
+	n                          int // the highest degree among them
+	hp                         hpConsts
 }
 
 // charPoly returns the characteristic polynomial of the state matrix of
@@ -228,24 +229,24 @@ func (u *Unit) charParts() charParts {
 	c.c1 = f.mul(ard)
 	c.c2 = pl(k3 * ex.KA).mul(dp)
 	c.c3 = pl(k3 * ex.KA).mul(r).mul(np)
-	c.c4 = c.c2
 	c.c5 = pl(k3).mul(ard)
 	c.m0c1, c.m0c2 = m0.mul(c.c1), m0.mul(c.c2)
-	for _, q := range [...]*poly{&c.m0c1, &c.m0c2, &c.c1, &c.c2, &c.c3, &c.c4, &c.c5} {
+	for _, q := range [...]*poly{&c.m0c1, &c.m0c2, &c.c1, &c.c2, &c.c3, &c.c5} {
 		c.n = max(c.n, q.n)
 	}
+	c.hp = u.hpConsts()
 	return c
 }
 
 // charPoly returns the characteristic polynomial at the constants k (see
-// charParts).
-func (c *charParts) charPoly(k *HeffronPhillips) poly {
-	w0, w1, w2, w3, w4, w5 := k.K6, k.K1, k.K1*k.K6, k.K2, -k.K2*k.K5, -k.K2*k.K4
+// charParts; c2 = c4, so K1 K6 c2 - K2 K5 c4 is one term).
+func (c *charParts) charPoly(k *hpCore) poly {
+	w0, w1, w2, w3, w5 := k.k6, k.k1, k.k1*k.k6-k.k2*k.k5, k.k2, -k.k2*k.k4
 	r := poly{n: c.n}
 	// Every coefficient, those beyond a part's degree being zero: the same
-	// sums as part by part, in the same order, without the loops' control.
+	// sums as part by part, without the loops' control.
 	for i := range r.c {
-		r.c[i] = c.m0c1.c[i] + w0*c.m0c2.c[i] + w1*c.c1.c[i] + w2*c.c2.c[i] + w3*c.c3.c[i] + w4*c.c4.c[i] + w5*c.c5.c[i]
+		r.c[i] = c.m0c1.c[i] + w0*c.m0c2.c[i] + w1*c.c1.c[i] + w2*c.c2.c[i] + w3*c.c3.c[i] + w5*c.c5.c[i]
 	}
 	return r
 }
@@ -256,15 +257,32 @@ func (c *charParts) charPoly(k *HeffronPhillips) poly {
 // cancellation (within 1e-9 of the terms it is formed from), where the
 // verdict is not to be trusted.
 func hurwitz(c poly, sigma float64) (stable, sure bool) {
-	return routh(c, sigma, nil)
+	stable, sure, _, _ = routh(c, sigma, false)
+	return stable, sure
 }
 
-// routh is hurwitz; when col is not nil and the verdict is sure, it also
-// returns the first column of the array, col[0..n], whatever its signs:
-// col[k] = Delta_k/Delta_(k-1), the ratio of successive Hurwitz
-// determinants, and col[n] = a_0 (Gantmacher, The Theory of Matrices,
-// vol. 2, ch. XV, from memory).
-func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure bool) {
+// routh is hurwitz. With margins it goes on past a clearly negative
+// entry of the first column to the end and also returns the Hurwitz
+// determinant Delta_(n-1) and a_0 (both up to the sign that makes the
+// leading coefficient positive); they are NaN where an entry is lost to
+// cancellation, and sure then says whether the verdict is known all the
+// same (an earlier entry was clearly negative: unstable).
+//
+// The array is the fraction-free (Bareiss) form of Routh's: row k is
+// Delta_(k-1) times Routh's row k, so that its first entry is the Hurwitz
+// determinant Delta_k (Delta_0 = 1; Routh's first column is a_n, Delta_1,
+// Delta_2/Delta_1, ..., Delta_n/Delta_(n-1), with Delta_n = a_0
+// Delta_(n-1): Gantmacher, The Theory of Matrices, vol. 2, ch. XV, from
+// memory). Row k+1 = (R_k[0] R_(k-1)[j+1] - R_(k-1)[0] R_k[j+1])/Delta_(k-2)
+// (the divisor 1 for rows 2 and 3), an exact division: the divisor is
+// known three rows ahead, so no division waits on the row before (the
+// rows are a chain, and a division costs several multiplications). Each
+// entry of the first column is checked as Routh's is: its sign, and
+// whether it exceeds 1e-9 of the two products it is the difference of
+// (Routh's entry and terms times the same factor Delta_k/Delta_(k-2)).
+// TestRouthFractionFree holds the verdicts and margins to Routh's own
+// array (written in the test) on random and on the model's polynomials.
+func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 float64) {
 	n := c.n
 	// The array's rows in a ring of three: r0, r1 the rows before, nx the
 	// row formed from them; entries beyond a row's end are zero. The first
@@ -295,41 +313,54 @@ func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure b
 		}
 	}
 	if !(r[0][0] > 0) {
-		return false, false
+		return false, false, math.NaN(), math.NaN()
 	}
-	r0, r1, nx := &r[0], &r[1], &r[2]
-	scale := math.Abs(r1[0])
-	if col != nil {
-		col[0] = r[0][0]
-	}
+	a0, dn1 = r[n&1][n>>1], 1
+	// The rows before, R_(k-1) = x and R_k = y, in registers: five
+	// entries hold every row of a polynomial of degree 8 or less (row 0
+	// is the longest), and y4 is zero from row 2 on.
+	x0, x1, x2, x3, x4 := r[0][0], r[0][1], r[0][2], r[0][3], r[0][4]
+	y0, y1, y2, y3, y4 := r[1][0], r[1][1], r[1][2], r[1][3], r[1][4]
+	// i0, i1, i2 = 1/Delta_(k-2), 1/Delta_(k-1), 1/Delta_k at row k, with
+	// Delta_(-1) = Delta_0 = 1: i0 is the divisor of row k+1.
+	i0, i1, i2 := 1.0, 1.0, 1/y0
+	// The check of row 1 (a_(n-1) > 0) as Routh's: its terms are itself.
+	hi := math.Abs(y0)
 	stable = true
-	for row := 1; row <= n; row++ {
-		if !(r1[0] > 1e-9*scale) {
-			sure = math.Abs(r1[0]) > 1e-9*scale
-			if col == nil || !sure {
-				return false, sure
+	for row := 1; ; row++ {
+		if !(y0 > 1e-9*hi) {
+			sure = math.Abs(y0) > 1e-9*hi
+			if !margins || !sure {
+				return false, !stable || sure && !margins, math.NaN(), math.NaN()
 			}
 			stable = false // clearly negative: on to the rest of the column
 		}
-		if col != nil {
-			col[row] = r1[0]
+		if row == n-1 {
+			dn1 = y0
 		}
 		if row == n {
 			break
 		}
-		f := r0[0] / r1[0]
-		// Row row+1 has (n - row - 1)/2 + 1 entries; the rest come out
-		// zero from the zeros beyond the ends of r0 and r1 (straight-line
-		// code: the loop's control cost more than its arithmetic).
-		nx[0] = r0[1] - f*r1[1]
-		nx[1] = r0[2] - f*r1[2]
-		nx[2] = r0[3] - f*r1[3]
-		nx[3] = r0[4] - f*r1[4]
-		nx[4] = r0[5] - f*r1[5]
-		scale = math.Abs(r0[1]) + math.Abs(f*r1[1])
-		r0, r1, nx = r1, nx, r0
+		// Row row+1: the older row scaled by the divisor first, off the
+		// chain from y. Entries beyond a row's end come out zero from the
+		// zeros beyond the ends of x and y (straight-line code: the loop's
+		// control cost more than its arithmetic).
+		b := x0 * i0
+		t := y0 * (x1 * i0)
+		u := b * y1
+		z0 := t - u
+		z1 := y0*(x2*i0) - b*y2
+		z2 := y0*(x3*i0) - b*y3
+		z3 := y0*(x4*i0) - b*y4
+		hi = math.Abs(t) + math.Abs(u)
+		x0, x1, x2, x3, x4 = y0, y1, y2, y3, y4
+		y0, y1, y2, y3, y4 = z0, z1, z2, z3, 0
+		i0, i1, i2 = i1, i2, 1/z0
 	}
-	return stable, true
+	if !margins {
+		return true, true, 0, 0
+	}
+	return stable, true, dn1, a0
 }
 
 // avrStableFast is avrStable by the Routh-Hurwitz criterion on the
@@ -343,8 +374,8 @@ func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure b
 // which the per-sample checks use (they look 0.0019 pu away from the
 // boundary, where the difference does not show).
 func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error) {
-	k := u.heffronPhillips(p, q, v, false)
-	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+	k := c.hp.core(p, q, v)
+	if k.degener || k.efd < u.p.Exciter.EfdMin {
 		return false, nil
 	}
 	if u.p.ZetaMin == 0 {
@@ -362,8 +393,8 @@ func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error)
 // of a boundary, far inside the table's tolerance. With zeta_min > 0 the
 // criterion decides where it can (see below), the eigenvalues elsewhere.
 func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
-	k := u.heffronPhillips(p, q, v, false)
-	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+	k := c.hp.core(p, q, v)
+	if k.degener || k.efd < u.p.Exciter.EfdMin {
 		return false, nil
 	}
 	if u.p.ZetaMin == 0 {
@@ -1048,33 +1079,39 @@ type tabSample struct {
 }
 
 // tabTest is avrStableTab (the same verdict) with the margins of
-// tabSample. The first column of the Routh array holds them:
-// col[k] = Delta_k/Delta_(k-1), so Delta_(n-1) is the product of
-// col[1..n-1], and col[n] = a_0.
+// tabSample, which the fraction-free Routh array holds (routh): its
+// first column is Delta_1 .. Delta_n, and a_0 is the last coefficient.
 func (u *Unit) tabTest(c *charParts, p, q, v float64) (tabSample, error) {
 	s := tabSample{q: q, f: [3]float64{math.NaN(), math.NaN(), math.NaN()}}
-	k := u.heffronPhillips(p, q, v, false)
-	if k.Degener {
+	k := c.hp.core(p, q, v)
+	if k.degener {
 		return s, nil
 	}
-	efdOK := k.Efd >= u.p.Exciter.EfdMin
-	if u.p.ZetaMin == 0 {
-		var col [maxSSStates + 1]float64
-		cp := c.charPoly(&k)
-		if st, sure := routh(cp, 0, &col); sure {
-			d := 1.0
-			for i := 1; i < cp.n; i++ {
-				d *= col[i]
-			}
-			s.stable = st && efdOK
-			s.f = [3]float64{d, col[cp.n], k.Efd - u.p.Exciter.EfdMin}
+	efdOK := k.efd >= u.p.Exciter.EfdMin
+	if u.p.ZetaMin != 0 {
+		if !efdOK {
 			return s, nil
 		}
+		st, err := u.avrStableTab(c, p, q, v)
+		s.stable = st
+		return s, err
 	}
-	if !efdOK {
+	cp := c.charPoly(&k)
+	st, sure, dn1, a0 := routh(cp, 0, true)
+	switch {
+	case sure && !math.IsNaN(dn1):
+		s.stable = st && efdOK
+		s.f = [3]float64{dn1, a0, k.efd - u.p.Exciter.EfdMin}
+		return s, nil
+	case sure || !efdOK:
+		return s, nil // unstable (an entry clearly negative, or E_fd0 below its minimum); margins unknown
+	}
+	// What avrStableTab does after the criterion at sigma = 0 is not sure.
+	if st, sure := hurwitz(cp, ssGrowth); sure {
+		s.stable = st
 		return s, nil
 	}
-	st, err := u.avrStableTab(c, p, q, v)
+	st, err := u.avrStable(p, q, v)
 	s.stable = st
 	return s, err
 }
