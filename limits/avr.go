@@ -56,7 +56,7 @@ func topIntervalTo(stable func(q float64) (bool, error), qTop, qBot, floor, step
 		found := false
 		for q > qBot {
 			hi := q
-			q = math.Max(q-step, qBot)
+			q = max(q-step, qBot)
 			if s, err = stable(q); err != nil {
 				return interval{err: err}
 			}
@@ -80,7 +80,7 @@ func topIntervalTo(stable func(q float64) (bool, error), qTop, qBot, floor, step
 			return iv
 		}
 		hi := q
-		q = math.Max(q-step, floor)
+		q = max(q-step, floor)
 		if s, err = stable(q); err != nil {
 			return interval{err: err}
 		}
@@ -153,7 +153,7 @@ func confirm(stable func(float64) (bool, error), iv interval, qTop, qBot float64
 		return false
 	}
 	if iv.top.OK {
-		return is(iv.top.V-scanTol, true) && is(math.Min(iv.top.V+scanTol, qTop), false)
+		return is(iv.top.V-scanTol, true) && is(min(iv.top.V+scanTol, qTop), false)
 	}
 	return is(qTop, true)
 }
@@ -284,23 +284,24 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 // array (written in the test) on random and on the model's polynomials.
 func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 float64) {
 	n := c.n
-	// The array's rows in a ring of three: r0, r1 the rows before, nx the
-	// row formed from them; entries beyond a row's end are zero. The first
-	// two rows are the coefficients, descending, alternately, with the
-	// sign that makes the leading one positive.
-	var r [3][maxSSStates/2 + 2]float64
+	if n < 1 || n > maxSSStates {
+		return false, false, math.NaN(), math.NaN()
+	}
+	// The first two rows are the coefficients, descending, alternately,
+	// with the sign that makes the leading one positive: e holds a_k at
+	// e[9+k] and zeros below, so that row 0 is e[9+n], e[7+n], ... and
+	// row 1 e[8+n], e[6+n], ... (straight-line loads, no loop).
+	var e [2*maxSSStates + 2]float64
 	sg := 1.0
 	if c.c[n] < 0 {
 		sg = -1
 	}
 	if sigma == 0 {
-		for i := 0; i <= n; i++ {
-			r[i&1][i>>1] = sg * c.c[n-i]
-		}
+		*(*[maxSSStates + 1]float64)(e[maxSSStates+1:]) = c.c
 	} else {
 		var b [maxSSStates + 1]float64 // descending
 		for i := 0; i <= n; i++ {
-			b[i] = sg * c.c[n-i]
+			b[i] = c.c[n-i]
 		}
 		// Taylor shift: b(z) <- b(z + sigma).
 		for i := 0; i < n; i++ {
@@ -309,20 +310,19 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 			}
 		}
 		for i := 0; i <= n; i++ {
-			r[i&1][i>>1] = b[i]
+			e[maxSSStates+1+n-i] = b[i]
 		}
 	}
-	if !(r[0][0] > 0) {
-		return false, false, math.NaN(), math.NaN()
-	}
-	a0, dn1 = r[n&1][n>>1], 1
+	w := e[n : n+maxSSStates+2]
 	// The rows before, R_(k-1) = x and R_k = y, in registers: five
 	// entries hold every row of a polynomial of degree 8 or less (row 0
 	// is the longest), and y4 is zero from row 2 on.
-	x0, x1, x2, x3, x4 := r[0][0], r[0][1], r[0][2], r[0][3], r[0][4]
-	y0, y1, y2, y3, y4 := r[1][0], r[1][1], r[1][2], r[1][3], r[1][4]
-	// i0, i1, i2 = 1/Delta_(k-2), 1/Delta_(k-1), 1/Delta_k at row k, with
-	// Delta_(-1) = Delta_0 = 1: i0 is the divisor of row k+1.
+	x0, x1, x2, x3, x4 := sg*w[9], sg*w[7], sg*w[5], sg*w[3], sg*w[1]
+	y0, y1, y2, y3, y4 := sg*w[8], sg*w[6], sg*w[4], sg*w[2], sg*w[0]
+	if !(x0 > 0) {
+		return false, false, math.NaN(), math.NaN()
+	}
+	a0, dn1 = sg*w[9-n], 1
 	i0, i1, i2 := 1.0, 1.0, 1/y0
 	// The check of row 1 (a_(n-1) > 0) as Routh's: its terms are itself.
 	hi := math.Abs(y0)
@@ -495,7 +495,7 @@ func (t *stabTable) markScan(island []bool, low, top []float64, moved []bool, at
 			default:
 				d := math.Abs(it.low.V - mLow)
 				if it.top.OK {
-					d = math.Max(d, math.Abs(it.top.V-mTop))
+					d = max(d, math.Abs(it.top.V-mTop))
 				}
 				t.scan[cell] = d > tabNear
 				t.smooth[cell] = t.smooth[cell] && d <= tabSmooth
@@ -515,7 +515,7 @@ const (
 )
 
 func toQ16(q float64) int16 {
-	return int16(math.Round(math.Max(-3.2, math.Min(3.2, q)) / tabQuant))
+	return int16(math.Round(max(-3.2, min(3.2, q)) / tabQuant))
 }
 
 // The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
@@ -556,7 +556,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 		v := tabVLo + float64(iv)*tabVStep
 		for ip := range t.np {
 			p := float64(ip) * tabPStep
-			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+			qArm := math.Sqrt(max(v*v-p*p, 0))
 			stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
 			k := iv*t.np + ip
 			it := u.tabInterval(c, &scratch, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
@@ -575,7 +575,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	}
 	t.markSmooth(low, top, moved)
 	if err := t.markScan(island, low, top, moved, func(p, v float64) (interval, bool) {
-		qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+		qArm := math.Sqrt(max(v*v-p*p, 0))
 		stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
 		it := u.tabInterval(c, &scratch, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
 		return it, it.err == nil && it.low.OK && hasIsland(stable, it.low.V, -qArm-tabDeep-scanFloor)
@@ -812,7 +812,7 @@ func (u *Unit) detectInterval(c *charParts, p, v float64, iv interval, qTop, qBo
 		if a, err = u.tabTest(c, p, iv.top.V-tabCheck, v); err != nil || !a.stable || a.q <= to {
 			return interval{}, false
 		}
-		if s, err := u.avrStableFast(c, p, math.Min(iv.top.V+tabCheck, qTop), v, 0); err != nil || s {
+		if s, err := u.avrStableFast(c, p, min(iv.top.V+tabCheck, qTop), v, 0); err != nil || s {
 			return interval{}, false
 		}
 	}
@@ -924,7 +924,7 @@ func (u *Unit) sampleRule(c *charParts, p, v float64, iv interval, qTop, qBot fl
 	// The direct scan's grid points about b: unstable just below (or
 	// the floor), stable just above (or the top).
 	k := math.Ceil((g0 - b) / scanStep)
-	below, above := math.Max(g0-k*scanStep, floor), g0-(k-1)*scanStep
+	below, above := max(g0-k*scanStep, floor), g0-(k-1)*scanStep
 	if sb, err := u.avrStableFast(c, p, below, v, 0); err != nil || sb {
 		return interval{}, false
 	}
@@ -950,7 +950,7 @@ const fastTol = 1e-8
 // and unstable just below, for a moved top the other way round.
 func bracketHolds(stable func(float64) (bool, error), q, qTop float64, bottom bool) bool {
 	sLo, err1 := stable(q - tabCheck)
-	sHi, err2 := stable(math.Min(q+tabCheck, qTop))
+	sHi, err2 := stable(min(q+tabCheck, qTop))
 	return err1 == nil && err2 == nil && sLo != sHi && sHi == bottom
 }
 
@@ -1204,7 +1204,7 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	}
 	scan := func(a tabSample) (tabSample, tabSample, bool, error) {
 		for a.q > floor {
-			b, err := test(math.Max(a.q-tabCoarseStep, floor))
+			b, err := test(max(a.q-tabCoarseStep, floor))
 			if err != nil {
 				return a, b, false, err
 			}
@@ -1314,7 +1314,7 @@ func suspicious(a, m, b *tabSample) bool {
 			fa, fm, fb = -fa, -fm, -fb
 		}
 		r := (fa / fm) * (fb / fm)
-		if !(r >= tabBendLo && r <= tabBendHi) || fm < tabDipLo*math.Min(fa, fb) {
+		if !(r >= tabBendLo && r <= tabBendHi) || fm < tabDipLo*min(fa, fb) {
 			return true // NaN included (an overflow)
 		}
 	}
@@ -1356,8 +1356,8 @@ func (u *Unit) tabBoundary(c *charParts, p, v float64, st, un tabSample) (float6
 				dir = -dir
 			}
 			q += dir * tabTol / 3
-			lo, hi := math.Min(st.q, un.q), math.Max(st.q, un.q)
-			q = math.Max(lo+tabTol/4, math.Min(hi-tabTol/4, q))
+			lo, hi := min(st.q, un.q), max(st.q, un.q)
+			q = max(lo+tabTol/4, min(hi-tabTol/4, q))
 		}
 		s, err := u.tabTest(c, p, q, v)
 		if err != nil {
