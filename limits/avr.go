@@ -316,7 +316,7 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 	w := e[n : n+maxSSStates+2]
 	// The rows before, R_(k-1) = x and R_k = y, in registers: five
 	// entries hold every row of a polynomial of degree 8 or less (row 0
-	// is the longest), and y4 is zero from row 2 on.
+	// is the longest).
 	x0, x1, x2, x3, x4 := sg*w[9], sg*w[7], sg*w[5], sg*w[3], sg*w[1]
 	y0, y1, y2, y3, y4 := sg*w[8], sg*w[6], sg*w[4], sg*w[2], sg*w[0]
 	if !(x0 > 0) {
@@ -327,7 +327,15 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 	// The check of row 1 (a_(n-1) > 0) as Routh's: its terms are itself.
 	hi := math.Abs(y0)
 	stable = true
-	for row := 1; ; row++ {
+	// Three rows a turn, the registers taking turns as the rows x, y and
+	// z (no copying from one to the next). A row's entries beyond its end
+	// come out zero from the zeros beyond the ends of the rows before
+	// (straight-line code: the loop's control cost more than its
+	// arithmetic); the fifth entry is zero from row 2 on. Row row+1 is
+	// formed with the older row scaled by the divisor first, off the chain
+	// from the newer one.
+	var z0, z1, z2, z3, z4, b, t, u float64
+	for row := 1; ; {
 		if !(y0 > 1e-9*hi) {
 			sure = math.Abs(y0) > 1e-9*hi
 			if !margins || !sure {
@@ -341,21 +349,53 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 		if row == n {
 			break
 		}
-		// Row row+1: the older row scaled by the divisor first, off the
-		// chain from y. Entries beyond a row's end come out zero from the
-		// zeros beyond the ends of x and y (straight-line code: the loop's
-		// control cost more than its arithmetic).
-		b := x0 * i0
-		t := y0 * (x1 * i0)
-		u := b * y1
-		z0 := t - u
-		z1 := y0*(x2*i0) - b*y2
-		z2 := y0*(x3*i0) - b*y3
-		z3 := y0*(x4*i0) - b*y4
+		row++
+		b = x0 * i0
+		t, u = y0*(x1*i0), b*y1
+		z0, z1, z2, z3 = t-u, y0*(x2*i0)-b*y2, y0*(x3*i0)-b*y3, y0*(x4*i0)-b*y4
 		hi = math.Abs(t) + math.Abs(u)
-		x0, x1, x2, x3, x4 = y0, y1, y2, y3, y4
-		y0, y1, y2, y3, y4 = z0, z1, z2, z3, 0
 		i0, i1, i2 = i1, i2, 1/z0
+		z4 = 0
+		if !(z0 > 1e-9*hi) {
+			sure = math.Abs(z0) > 1e-9*hi
+			if !margins || !sure {
+				return false, !stable || sure && !margins, math.NaN(), math.NaN()
+			}
+			stable = false // clearly negative: on to the rest of the column
+		}
+		if row == n-1 {
+			dn1 = z0
+		}
+		if row == n {
+			break
+		}
+		row++
+		b = y0 * i0
+		t, u = z0*(y1*i0), b*z1
+		x0, x1, x2, x3 = t-u, z0*(y2*i0)-b*z2, z0*(y3*i0)-b*z3, z0*(y4*i0)-b*z4
+		hi = math.Abs(t) + math.Abs(u)
+		i0, i1, i2 = i1, i2, 1/x0
+		x4 = 0
+		if !(x0 > 1e-9*hi) {
+			sure = math.Abs(x0) > 1e-9*hi
+			if !margins || !sure {
+				return false, !stable || sure && !margins, math.NaN(), math.NaN()
+			}
+			stable = false // clearly negative: on to the rest of the column
+		}
+		if row == n-1 {
+			dn1 = x0
+		}
+		if row == n {
+			break
+		}
+		row++
+		b = z0 * i0
+		t, u = x0*(z1*i0), b*x1
+		y0, y1, y2, y3 = t-u, x0*(z2*i0)-b*x2, x0*(z3*i0)-b*x3, x0*(z4*i0)-b*x4
+		hi = math.Abs(t) + math.Abs(u)
+		i0, i1, i2 = i1, i2, 1/y0
+		y4 = 0
 	}
 	if !margins {
 		return true, true, 0, 0
