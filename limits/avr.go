@@ -240,9 +240,9 @@ func (u *Unit) charParts() charParts {
 
 // charPoly returns the characteristic polynomial at the constants k (see
 // charParts; c2 = c4, so K1 K6 c2 - K2 K5 c4 is one term).
-func (c *charParts) charPoly(k *hpCore) poly {
+func (c *charParts) charPoly(k *hpCore) (r poly) {
 	w0, w1, w2, w3, w5 := k.k6, k.k1, k.k1*k.k6-k.k2*k.k5, k.k2, -k.k2*k.k4
-	r := poly{n: c.n}
+	r.n = c.n
 	// Every coefficient, those beyond a part's degree being zero: the same
 	// sums as part by part, without the loops' control.
 	for i := range r.c {
@@ -256,7 +256,7 @@ func (c *charParts) charPoly(k *hpCore) poly {
 // text). sure is false when an entry of the first column is lost to
 // cancellation (within 1e-9 of the terms it is formed from), where the
 // verdict is not to be trusted.
-func hurwitz(c poly, sigma float64) (stable, sure bool) {
+func hurwitz(c *poly, sigma float64) (stable, sure bool) {
 	stable, sure, _, _ = routh(c, sigma, false)
 	return stable, sure
 }
@@ -282,7 +282,7 @@ func hurwitz(c poly, sigma float64) (stable, sure bool) {
 // (Routh's entry and terms times the same factor Delta_k/Delta_(k-2)).
 // TestRouthFractionFree holds the verdicts and margins to Routh's own
 // array (written in the test) on random and on the model's polynomials.
-func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 float64) {
+func routh(c *poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 float64) {
 	n := c.n
 	if n < 1 || n > maxSSStates {
 		return false, false, math.NaN(), math.NaN()
@@ -322,7 +322,37 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 	if !(x0 > 0) {
 		return false, false, math.NaN(), math.NaN()
 	}
-	a0, dn1 = sg*w[9-n], 1
+	a0 = sg * w[9-n]
+	switch n {
+	case 8:
+		stable, sure, dn1 = routh8(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	case 7:
+		stable, sure, dn1 = routh7(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	case 5:
+		stable, sure, dn1 = routh5(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	case 4:
+		stable, sure, dn1 = routh4(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	default:
+		stable, sure, dn1 = routhRows(n, x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	}
+	if math.IsNaN(dn1) { // an entry not positive (the verdict) or lost (margins)
+		return false, sure, dn1, dn1
+	}
+	if !margins {
+		return true, true, 0, 0
+	}
+	return stable, true, dn1, a0
+}
+
+// routhRows forms the rows of routh's array after the first two, x and
+// y, for a polynomial of degree n: the verdict, whether it is sure, and
+// Delta_(n-1) (NaN where an entry ends the array early: not positive
+// without margins, lost to cancellation with them). routh4, routh5,
+// routh7 and routh8 are the same for the degrees of the model (4 and 5
+// without a stabilizer, 7 and 8 with one), unrolled with each row only as
+// long as it is: the same arithmetic on the entries that exist.
+func routhRows(n int, x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	dn1 = 1
 	i0, i1, i2 := 1.0, 1.0, 1/y0
 	// The check of row 1 (a_(n-1) > 0) as Routh's: its terms are itself.
 	hi := math.Abs(y0)
@@ -339,7 +369,7 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 		if !(y0 > 1e-9*hi) {
 			sure = math.Abs(y0) > 1e-9*hi
 			if !margins || !sure {
-				return false, !stable || sure && !margins, math.NaN(), math.NaN()
+				return false, !stable || sure && !margins, math.NaN()
 			}
 			stable = false // clearly negative: on to the rest of the column
 		}
@@ -359,7 +389,7 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 		if !(z0 > 1e-9*hi) {
 			sure = math.Abs(z0) > 1e-9*hi
 			if !margins || !sure {
-				return false, !stable || sure && !margins, math.NaN(), math.NaN()
+				return false, !stable || sure && !margins, math.NaN()
 			}
 			stable = false // clearly negative: on to the rest of the column
 		}
@@ -379,7 +409,7 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 		if !(x0 > 1e-9*hi) {
 			sure = math.Abs(x0) > 1e-9*hi
 			if !margins || !sure {
-				return false, !stable || sure && !margins, math.NaN(), math.NaN()
+				return false, !stable || sure && !margins, math.NaN()
 			}
 			stable = false // clearly negative: on to the rest of the column
 		}
@@ -397,10 +427,293 @@ func routh(c poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 floa
 		i0, i1, i2 = i1, i2, 1/y0
 		y4 = 0
 	}
-	if !margins {
-		return true, true, 0, 0
+	return stable, true, dn1
+}
+
+// routh4 is routhRows for a polynomial of degree 4, unrolled.
+func routh4(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
 	}
-	return stable, true, dn1, a0
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0 * x2
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r3_0
+	t, u = r3_0*(r2_1*i1), 0
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
+}
+
+// routh5 is routhRows for a polynomial of degree 5, unrolled.
+func routh5(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0*x2 - b1*y2
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i2 := 1 / r2_0
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r3_1 := r2_0 * y2
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b3 := r2_0 * i1
+	t, u = r3_0*(r2_1*i1), b3*r3_1
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r4_0
+	t, u = r4_0*(r3_1*i2), 0
+	r5_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r5_0 > 1e-9*hi) {
+		if sure = math.Abs(r5_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
+}
+
+// routh7 is routhRows for a polynomial of degree 7, unrolled.
+func routh7(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0*x2 - b1*y2
+	r2_2 := y0*x3 - b1*y3
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i2 := 1 / r2_0
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r3_1 := r2_0*y2 - b2*r2_2
+	r3_2 := r2_0 * y3
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i3 := 1 / r3_0
+	b3 := r2_0 * i1
+	t, u = r3_0*(r2_1*i1), b3*r3_1
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r4_1 := r3_0*(r2_2*i1) - b3*r3_2
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i4 := 1 / r4_0
+	b4 := r3_0 * i2
+	t, u = r4_0*(r3_1*i2), b4*r4_1
+	r5_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r5_1 := r4_0 * (r3_2 * i2)
+	if !(r5_0 > 1e-9*hi) {
+		if sure = math.Abs(r5_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b5 := r4_0 * i3
+	t, u = r5_0*(r4_1*i3), b5*r5_1
+	r6_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r6_0 > 1e-9*hi) {
+		if sure = math.Abs(r6_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r6_0
+	t, u = r6_0*(r5_1*i4), 0
+	r7_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r7_0 > 1e-9*hi) {
+		if sure = math.Abs(r7_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
+}
+
+// routh8 is routhRows for a polynomial of degree 8, unrolled.
+func routh8(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0*x2 - b1*y2
+	r2_2 := y0*x3 - b1*y3
+	r2_3 := y0 * x4
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i2 := 1 / r2_0
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r3_1 := r2_0*y2 - b2*r2_2
+	r3_2 := r2_0*y3 - b2*r2_3
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i3 := 1 / r3_0
+	b3 := r2_0 * i1
+	t, u = r3_0*(r2_1*i1), b3*r3_1
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r4_1 := r3_0*(r2_2*i1) - b3*r3_2
+	r4_2 := r3_0 * (r2_3 * i1)
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i4 := 1 / r4_0
+	b4 := r3_0 * i2
+	t, u = r4_0*(r3_1*i2), b4*r4_1
+	r5_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r5_1 := r4_0*(r3_2*i2) - b4*r4_2
+	if !(r5_0 > 1e-9*hi) {
+		if sure = math.Abs(r5_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i5 := 1 / r5_0
+	b5 := r4_0 * i3
+	t, u = r5_0*(r4_1*i3), b5*r5_1
+	r6_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r6_1 := r5_0 * (r4_2 * i3)
+	if !(r6_0 > 1e-9*hi) {
+		if sure = math.Abs(r6_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b6 := r5_0 * i4
+	t, u = r6_0*(r5_1*i4), b6*r6_1
+	r7_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r7_0 > 1e-9*hi) {
+		if sure = math.Abs(r7_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r7_0
+	t, u = r7_0*(r6_1*i5), 0
+	r8_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r8_0 > 1e-9*hi) {
+		if sure = math.Abs(r8_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
 }
 
 // avrStableFast is avrStable by the Routh-Hurwitz criterion on the
@@ -419,7 +732,8 @@ func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error)
 		return false, nil
 	}
 	if u.p.ZetaMin == 0 {
-		if s, sure := hurwitz(c.charPoly(&k), sigma); sure {
+		cp := c.charPoly(&k)
+		if s, sure := hurwitz(&cp, sigma); sure {
 			return s, nil
 		}
 	}
@@ -439,10 +753,10 @@ func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 	}
 	if u.p.ZetaMin == 0 {
 		cp := c.charPoly(&k)
-		if s, sure := hurwitz(cp, 0); sure {
+		if s, sure := hurwitz(&cp, 0); sure {
 			return s, nil
 		}
-		if s, sure := hurwitz(cp, ssGrowth); sure {
+		if s, sure := hurwitz(&cp, ssGrowth); sure {
 			return s, nil
 		}
 	} else if z := u.p.ZetaMin; z < 1 {
@@ -454,10 +768,10 @@ func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 		// (-Re/|lambda| >= sigma/sqrt(sigma^2 + W^2) = zeta_min) and none
 		// grows. Between the two, the eigenvalues.
 		cp := c.charPoly(&k)
-		if s, sure := hurwitz(cp, ssGrowth); sure && !s {
+		if s, sure := hurwitz(&cp, ssGrowth); sure && !s {
 			return false, nil
 		}
-		if s, sure := hurwitz(cp, -z*emBandHi/math.Sqrt(1-z*z)); sure && s {
+		if s, sure := hurwitz(&cp, -z*emBandHi/math.Sqrt(1-z*z)); sure && s {
 			return true, nil
 		}
 	}
@@ -1137,7 +1451,7 @@ func (u *Unit) tabTest(c *charParts, p, q, v float64) (tabSample, error) {
 		return s, err
 	}
 	cp := c.charPoly(&k)
-	st, sure, dn1, a0 := routh(cp, 0, true)
+	st, sure, dn1, a0 := routh(&cp, 0, true)
 	switch {
 	case sure && !math.IsNaN(dn1):
 		s.stable = st && efdOK
@@ -1147,7 +1461,7 @@ func (u *Unit) tabTest(c *charParts, p, q, v float64) (tabSample, error) {
 		return s, nil // unstable (an entry clearly negative, or E_fd0 below its minimum); margins unknown
 	}
 	// What avrStableTab does after the criterion at sigma = 0 is not sure.
-	if st, sure := hurwitz(cp, ssGrowth); sure {
+	if st, sure := hurwitz(&cp, ssGrowth); sure {
 		s.stable = st
 		return s, nil
 	}

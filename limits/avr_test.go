@@ -320,7 +320,8 @@ func TestRouthAgreesWithEigenvalues(t *testing.T) {
 				top = math.Max(top, real(l))
 			}
 			kc := k.core()
-			s, sure := hurwitz(c.charPoly(&kc), ssGrowth)
+			cp := c.charPoly(&kc)
+			s, sure := hurwitz(&cp, ssGrowth)
 			if sure && math.Abs(top-ssGrowth) > 1e-6 && s != (top <= ssGrowth) {
 				t.Fatalf("p %v q %v v %v: Routh says stable %v, largest real part %v", p, q, v, s, top)
 			}

@@ -240,7 +240,7 @@ func TestRouthFractionFree(t *testing.T) {
 	for _, tc := range routhCases(t) {
 		counts[tc.name]++
 		s0, sure0 := routhClassic(tc.c, tc.sigma, nil)
-		s1, sure1 := hurwitz(tc.c, tc.sigma)
+		s1, sure1 := hurwitz(&tc.c, tc.sigma)
 		if sure0 != sure1 || sure0 && s0 != s1 {
 			if tc.name != "boundary" || tc.eps != 0 {
 				t.Errorf("%s %v sigma %g: verdict %v (sure %v), Routh's %v (sure %v)", tc.name, tc.c, tc.sigma, s1, sure1, s0, sure0)
@@ -259,7 +259,7 @@ func TestRouthFractionFree(t *testing.T) {
 		}
 		var col [maxSSStates + 1]float64
 		s0, sure0 = routhClassic(tc.c, 0, &col)
-		s1, sure1, dn1, a0 := routh(tc.c, 0, true)
+		s1, sure1, dn1, a0 := routh(&tc.c, 0, true)
 		if !sure0 {
 			// Routh's array lost an entry: the margins are unknown, and
 			// the verdict known only where an entry above it was clearly
