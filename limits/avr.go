@@ -287,6 +287,24 @@ func routh(c *poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 flo
 	if n < 1 || n > maxSSStates {
 		return false, false, math.NaN(), math.NaN()
 	}
+	if k := &c.c; sigma == 0 && k[n] > 0 {
+		// The model's polynomials (the leading coefficient positive):
+		// the first two rows straight from the coefficients.
+		switch n {
+		case 8:
+			stable, sure, dn1 = routh8(k[8], k[6], k[4], k[2], k[0], k[7], k[5], k[3], k[1], 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		case 7:
+			stable, sure, dn1 = routh7(k[7], k[5], k[3], k[1], 0, k[6], k[4], k[2], k[0], 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		case 5:
+			stable, sure, dn1 = routh5(k[5], k[3], k[1], 0, 0, k[4], k[2], k[0], 0, 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		case 4:
+			stable, sure, dn1 = routh4(k[4], k[2], k[0], 0, 0, k[3], k[1], 0, 0, 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		}
+	}
 	// The first two rows are the coefficients, descending, alternately,
 	// with the sign that makes the leading one positive: e holds a_k at
 	// e[9+k] and zeros below, so that row 0 is e[9+n], e[7+n], ... and
@@ -335,6 +353,11 @@ func routh(c *poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 flo
 	default:
 		stable, sure, dn1 = routhRows(n, x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
 	}
+	return routhEnd(stable, sure, dn1, a0, margins)
+}
+
+// routhEnd is routh's answer from that of the rows (routhRows).
+func routhEnd(stable, sure bool, dn1, a0 float64, margins bool) (bool, bool, float64, float64) {
 	if math.IsNaN(dn1) { // an entry not positive (the verdict) or lost (margins)
 		return false, sure, dn1, dn1
 	}
