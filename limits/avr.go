@@ -243,9 +243,10 @@ func (u *Unit) charParts() charParts {
 func (c *charParts) charPoly(k *hpCore) (r poly) {
 	w0, w1, w2, w3, w5 := k.k6, k.k1, k.k1*k.k6-k.k2*k.k5, k.k2, -k.k2*k.k4
 	r.n = c.n
-	// Every coefficient, those beyond a part's degree being zero: the same
-	// sums as part by part, without the loops' control.
-	for i := range r.c {
+	// Every coefficient up to the degree, those beyond a part's degree
+	// being zero: the same sums as part by part, without the loops'
+	// control (the rest stay zero, as the sums of zeros were).
+	for i := range r.c[:min(r.n, maxSSStates)+1] {
 		r.c[i] = c.m0c1.c[i] + w0*c.m0c2.c[i] + w1*c.c1.c[i] + w2*c.c2.c[i] + w3*c.c3.c[i] + w5*c.c5.c[i]
 	}
 	return r
