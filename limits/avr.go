@@ -929,7 +929,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	n := t.np * t.nv
 	low, top, moved, island := make([]float64, n), make([]float64, n), make([]bool, n), make([]bool, n)
 	c := &u.avrChar
-	scratch := tabScratch{seen: make([]tabSample, 0, 128), sorted: make([]tabSample, 0, 128)}
+	scratch := tabScratch{seen: make([]tabSample, 0, 128)}
 	for iv := range t.nv {
 		v := tabVLo + float64(iv)*tabVStep
 		for ip := range t.np {
@@ -981,7 +981,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 
 // tabScratch is the build's reusable space for tabScanDown's samples.
 type tabScratch struct {
-	seen, sorted []tabSample
+	seen []tabSample
 }
 
 // tabInterval is the rule at one point of the table's grid (p, v), below
@@ -1199,8 +1199,8 @@ func (u *Unit) detectInterval(c *charParts, p, v float64, iv interval, qTop, qBo
 	} else if s, err := u.avrStableFast(c, p, low-tabCheck, v, 0); err != nil || s {
 		return interval{}, false // the cheap half of the bracket first
 	}
-	var seen, sorted [tabScanCap]tabSample
-	sc := tabScratch{seen: seen[:0], sorted: sorted[:0]}
+	var seen [tabScanCap]tabSample
+	sc := tabScratch{seen: seen[:0]}
 	if _, _, found, err := u.tabScanDown(c, &sc, p, v, a, to); err != nil || found {
 		return interval{}, false
 	}
@@ -1285,8 +1285,8 @@ func (u *Unit) sampleRule(c *charParts, p, v float64, iv interval, qTop, qBot fl
 		}
 		res.top, a, g0 = some(t), lo, t
 	}
-	var seen, sorted [tabScanCap]tabSample
-	sc := tabScratch{seen: seen[:0], sorted: sorted[:0]}
+	var seen [tabScanCap]tabSample
+	sc := tabScratch{seen: seen[:0]}
 	st, un, found, err := u.tabScanDown(c, &sc, p, v, a, floor)
 	if err != nil {
 		return interval{}, false
@@ -1529,10 +1529,10 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	// The scratch is not written back (a slice that outgrows it is
 	// dropped with the call): sc may then live on the caller's stack, as
 	// detectInterval's does.
-	seen := append(sc.seen[:0], a)
+	seen, record := append(sc.seen[:0], a), true
 	test := func(q float64) (tabSample, error) {
 		s, err := u.tabTest(c, p, q, v)
-		if err == nil && s.stable {
+		if err == nil && s.stable && record {
 			seen = append(seen, s)
 			for j := len(seen) - 1; j > 0 && seen[j-1].q < s.q; j-- {
 				seen[j-1], seen[j] = seen[j], seen[j-1]
@@ -1601,7 +1601,10 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	}
 	// A margin's dip below zero narrower than the samples shows as a
 	// local minimum of the margin: probe there.
-	sorted := append(sc.sorted[:0], seen...) // probeMinima's tests add to seen
+	// The samples of the scan are all probeMinima looks at: its tests and
+	// narrow's after it are not recorded (the list is read no more).
+	sorted := seen
+	record = false
 	pr, ok, err := probeMinima(test, sorted)
 	if err != nil || !ok || found && pr.q <= un.q {
 		return st, un, found, err
