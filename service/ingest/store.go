@@ -50,6 +50,14 @@ type Sample struct {
 	Quality Quality
 }
 
+// UnknownUnitDetail is the detail of the rejection of a sample for unit
+// id, which is not in the fleet: the one wording for it, so that a
+// sample answered as for a missing unit (one a writer may not see, see
+// package rpc) cannot be told from one by its words.
+func UnknownUnitDetail(id string) string {
+	return fmt.Sprintf("unit %q is not in the fleet file", ClipID(id))
+}
+
 // ClipID returns a unit id for an answer or a log line: at most 64
 // bytes, cut at a character boundary and marked, so that a huge id is
 // not echoed back whole.
@@ -484,7 +492,7 @@ func (s *Store) precheck(r *Resolver, now time.Time, smp *Sample) (*Unit, Result
 		e = &v
 	}
 	if e == nil {
-		return nil, RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ClipID(smp.UnitID))
+		return nil, RejectUnknownUnit, UnknownUnitDetail(smp.UnitID)
 	}
 	res, d := s.checkSample(e, now, smp)
 	return e.u, res, d

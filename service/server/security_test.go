@@ -239,48 +239,78 @@ func sampleAt(unit string, at time.Time, pMW, qMvar, vKV float64) *pb.Sample {
 	return &pb.Sample{UnitId: unit, Time: timestamppb.New(at), PMw: pMW, QMvar: qMvar, VKv: vKV}
 }
 
-// A writer's sample for a unit of another site is rejected as
-// permission_denied; the good samples beside it are accepted; the
-// denial is counted and audited.
+// A writer's samples for units it may not push for are rejected, the
+// good samples beside them accepted, and the denials counted and
+// audited: for a unit the writer may view, as permission_denied; for one
+// it may not view (another site's, or one not in the fleet), as
+// unknown_unit, the answer of a unit not in the fleet.
 func TestPushPermissionDenied(t *testing.T) {
 	p := newPKI(t)
-	r, audit := secureServer(t, p, func(c *server.Config) { c.JournalPath = filepath.Join(p.dir, "journal.jsonl") })
-	tel := pb.NewTelemetryServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["gw-harrowmere"]))
+	p.clients["gw-seeing"] = p.ca.Client(t, "gw-seeing")
+	accessFile := testAccess + "  - name: gw-seeing\n    grants: [{role: telemetry_writer, sites: [harrowmere]}, {role: viewer}]\n"
+	r, audit := secureServer(t, p, func(c *server.Config) {
+		c.JournalPath = filepath.Join(p.dir, "journal.jsonl")
+		c.Security.AccessFile = testpki.Write(t, p.dir, "access-seeing.yaml", []byte(accessFile))
+	})
 	now := time.Now().Add(-time.Second)
 	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
 	defer cancel()
-	resp, err := tel.Push(ctx, &pb.PushRequest{Sequence: 1, Samples: []*pb.Sample{
-		sampleAt("harrowmere-1", now, 300, 100, 20.4),
-		sampleAt("larchwater-2", now, 60, 10, 13.8),
-		sampleAt("harrowmere-1", now.Add(100*time.Millisecond), 300, 101, 20.4),
-		sampleAt("no-such-unit", now, 1, 1, 1),
-	}})
-	if err != nil {
-		t.Fatalf("Push: %v", err)
-	}
-	if resp.Accepted != 2 || len(resp.Rejected) != 2 {
-		t.Fatalf("accepted %d, rejected %v; want 2 accepted and 2 rejected", resp.Accepted, resp.Rejected)
-	}
-	for i, want := range []uint32{1, 3} {
-		rj := resp.Rejected[i]
-		if rj.Index != want || rj.Reason != pb.RejectReason_REJECT_REASON_PERMISSION_DENIED {
-			t.Errorf("rejection %d: index %d reason %v, want index %d PERMISSION_DENIED", i, rj.Index, rj.Reason, want)
+	for i, tc := range []struct {
+		who  string
+		want pb.RejectReason
+	}{
+		{"gw-harrowmere", pb.RejectReason_REJECT_REASON_UNKNOWN_UNIT},
+		{"gw-seeing", pb.RejectReason_REJECT_REASON_PERMISSION_DENIED},
+	} {
+		tel := pb.NewTelemetryServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients[tc.who]))
+		at := now.Add(time.Duration(i) * 200 * time.Millisecond)
+		resp, err := tel.Push(ctx, &pb.PushRequest{Sequence: 1, Samples: []*pb.Sample{
+			sampleAt("harrowmere-1", at, 300, 100, 20.4),
+			sampleAt("larchwater-2", at, 60, 10, 13.8),
+			sampleAt("harrowmere-1", at.Add(100*time.Millisecond), 300, 101, 20.4),
+			sampleAt("no-such-unit", at, 1, 1, 1),
+		}})
+		if err != nil {
+			t.Fatalf("%s Push: %v", tc.who, err)
+		}
+		if resp.Accepted != 2 || len(resp.Rejected) != 2 {
+			t.Fatalf("%s: accepted %d, rejected %v; want 2 accepted and 2 rejected", tc.who, resp.Accepted, resp.Rejected)
+		}
+		for j, want := range []struct {
+			index  uint32
+			reason pb.RejectReason
+		}{{1, tc.want}, {3, pb.RejectReason_REJECT_REASON_UNKNOWN_UNIT}} {
+			if rj := resp.Rejected[j]; rj.Index != want.index || rj.Reason != want.reason {
+				t.Errorf("%s rejection %d: index %d reason %v, want index %d %v", tc.who, j, rj.Index, rj.Reason, want.index, want.reason)
+			}
 		}
 	}
-	if got := len(audit.Find("grpc push", access.OutcomeDenied)); got != 1 {
-		t.Errorf("%d audit entries for the push, want 1 for the batch", got)
+	if got := len(audit.Find("grpc push", access.OutcomeDenied)); got != 2 {
+		t.Errorf("%d audit entries for the pushes, want 1 for each batch", got)
 	}
-	// The denial is in the durable journal too.
+	// The denials are in the durable journal too.
 	entries, _, err := r.srv.Journal().Matching(journal.Filter{Changes: []string{journal.ChangeDenied}}, 10)
-	if err != nil || len(entries) != 1 || entries[0].Operator != "gw-harrowmere" || !strings.Contains(entries[0].Message, "permission_denied") {
-		t.Errorf("journal denials %+v (%v), want one by gw-harrowmere", entries, err)
+	if err != nil || len(entries) != 2 || !strings.Contains(entries[0].Message, "permission_denied") {
+		t.Errorf("journal denials %+v (%v), want one by each writer", entries, err)
+	}
+	for _, e := range entries {
+		if e.Operator != "gw-harrowmere" && e.Operator != "gw-seeing" {
+			t.Errorf("journal denial by %q, want the writers", e.Operator)
+		}
 	}
 	fams := scrapeAs(t, p, r)
-	if v, _ := metricValue(fams, "genvelope_access_denied_total", map[string]string{"reason": "permission_denied"}); v != 2 {
-		t.Errorf("genvelope_access_denied_total{reason=permission_denied} = %v, want 2", v)
-	}
-	if v, _ := metricValue(fams, "genvelope_samples_total", map[string]string{"result": "permission_denied"}); v != 2 {
-		t.Errorf("genvelope_samples_total{result=permission_denied} = %v, want 2", v)
+	for _, m := range []struct {
+		name, label, value string
+		want               float64
+	}{
+		{"genvelope_access_denied_total", "reason", "permission_denied", 4},
+		{"genvelope_samples_total", "result", "permission_denied", 1},
+		{"genvelope_samples_total", "result", "unknown_unit", 3},
+		{"genvelope_samples_total", "result", "accepted", 4},
+	} {
+		if v, _ := metricValue(fams, m.name, map[string]string{m.label: m.value}); v != m.want {
+			t.Errorf("%s{%s=%s} = %v, want %v", m.name, m.label, m.value, v, m.want)
+		}
 	}
 }
 
