@@ -1,19 +1,30 @@
-// Package deploy holds what an operator installs; its test reads every
-// install file (Kubernetes manifests, the container file, the systemd
-// unit, the compose file) and checks them against the binary's own
-// flags and the hardening they promise.
+// Package deploy holds what an operator installs. Its tests read every
+// install file (the Kubernetes manifests, the container files, the
+// systemd unit, the HA pair's compose file, NATS and Prometheus
+// configurations) and check them against the binary's own flags and
+// flag parser, the containers that run them, and the hardening they
+// promise, with systemd-analyze, nats-server and promtool run for real.
+//
+// This file: the binary and its flags, the genvelope command lines of
+// every install file (one reader per file, one parser of arguments),
+// and the checks every command line gets. files_test.go: what each kind
+// of file promises beyond its command line.
 package deploy
 
 import (
 	"bytes"
 	"encoding/json"
 	"errors"
+	"fmt"
 	"io"
+	"net"
+	"net/url"
 	"os"
 	"os/exec"
 	"path/filepath"
 	"regexp"
 	"slices"
+	"strconv"
 	"strings"
 	"testing"
 
@@ -22,8 +33,11 @@ import (
 	"github.com/genvelope/genvelope/test/testenv"
 )
 
+// stateDir is where every install keeps the state and the journal.
+const stateDir = "/var/lib/genvelope"
+
 // binary is a fresh build of genvelope and the flags `genvelope serve`
-// accepts (from its --help).
+// accepts, read from its help: whether each takes a value.
 type binary struct {
 	path  string
 	flags map[string]bool
@@ -32,74 +46,33 @@ type binary struct {
 func build(t *testing.T) *binary {
 	t.Helper()
 	b := &binary{path: testenv.BuildGenvelope(t, testenv.ModuleRoot(t), t.TempDir()), flags: map[string]bool{}}
-	out, _ := exec.Command(b.path, "serve", "--help").CombinedOutput()
-	for _, m := range regexp.MustCompile(`(?m)^\s+-([a-z0-9-]+)`).FindAllStringSubmatch(string(out), -1) {
-		b.flags[m[1]] = true
+	out, err := exec.Command(b.path, "help", "serve").CombinedOutput()
+	if err != nil {
+		t.Fatalf("genvelope help serve: %v\n%s", err, out)
 	}
-	if len(b.flags) < 10 {
-		t.Fatalf("genvelope serve --help listed almost no flags:\n%s", out)
+	for _, m := range regexp.MustCompile(`(?m)^\s+-([a-z0-9-]+)( \S+)?$`).FindAllStringSubmatch(string(out), -1) {
+		b.flags[m[1]] = m[2] != ""
+	}
+	if len(b.flags) < 20 || !b.flags["nats"] || !b.flags["fleet"] || b.flags["insecure-plaintext"] {
+		t.Fatalf("could not read serve's flags from its help:\n%s", out)
 	}
 	return b
 }
 
-// TestInstallFiles builds the binary once and checks every install file
-// against it.
-func TestInstallFiles(t *testing.T) {
-	b := build(t)
-	t.Run("kubernetes", func(t *testing.T) { testKubernetesManifests(t, b) })
-	t.Run("containerfile", func(t *testing.T) { testContainerfile(t, b) })
-	t.Run("systemd", func(t *testing.T) { testSystemdUnit(t, b) })
-	t.Run("compose", func(t *testing.T) { testComposeCommands(t, b) })
-}
-
-// checkServeArgs checks the arguments of one `genvelope serve` (after
-// the word serve): every flag exists, a listener off loopback has TLS
-// or says --insecure-plaintext, and the state and journal files lie
-// under writable (the state directory).
-func checkServeArgs(t *testing.T, b *binary, where string, args []string, writable string, hardened bool) {
-	t.Helper()
-	flags := b.flags
-	val := map[string]string{}
-	for i := 0; i < len(args); i++ {
-		a := args[i]
-		if !strings.HasPrefix(a, "-") {
-			t.Errorf("%s: stray argument %q (a missing flag, or a subcommand where none belongs)", where, a)
-			continue
-		}
-		name, v, hasV := strings.Cut(strings.TrimLeft(a, "-"), "=")
-		if !flags[name] {
-			t.Errorf("%s: genvelope serve has no flag --%s", where, name)
-			continue
-		}
-		if !hasV && name != "insecure-plaintext" && name != "pprof" && i+1 < len(args) {
-			v = args[i+1]
-			i++
-		}
-		val[name] = v
-	}
-	for _, f := range []string{"fleet", "state", "journal"} {
-		if val[f] == "" {
-			t.Errorf("%s: no --%s", where, f)
-		}
-	}
-	for _, f := range []string{"state", "journal"} {
-		if v := val[f]; v != "" && !strings.HasPrefix(v, writable+"/") {
-			t.Errorf("%s: --%s %s is not under the writable %s", where, f, v, writable)
-		}
-	}
-	_, insecure := val["insecure-plaintext"]
-	if hardened {
-		for _, f := range []string{"grpc-tls-cert", "grpc-tls-key", "grpc-client-ca", "web-config", "access"} {
-			if val[f] == "" {
-				t.Errorf("%s: hardened, but no --%s", where, f)
-			}
-		}
-		if insecure {
-			t.Errorf("%s: hardened, but --insecure-plaintext", where)
-		}
-	} else if !insecure && (val["grpc-tls-cert"] == "" || val["web-config"] == "") {
-		t.Errorf("%s: listens off loopback without TLS and without --insecure-plaintext: the service refuses to start", where)
-	}
+// commandLine is one genvelope command line of an install file, with
+// what its container or unit offers it.
+type commandLine struct {
+	where string   // file and service, container or unit
+	args  []string // after the program: serve ...
+	// hardened: TLS on both listeners, mutual TLS on gRPC, the access
+	// file, no --insecure-plaintext (everything but the plaintext HA
+	// try-out of the compose file).
+	hardened bool
+	mounts   []string // writable or mounted paths: volumes, the unit's StateDirectory
+	ports    []int    // ports published or declared; nil: the install declares none (systemd)
+	// Kubernetes probes: path (or "tcp") by port; nil: no probes.
+	readiness, liveness map[int]string
+	natsNodes           []string // host:port of the NATS nodes the install runs
 }
 
 // docs decodes every YAML document of a file (duplicate keys and syntax
@@ -149,279 +122,390 @@ func list(v any, keys ...string) []any {
 	return l
 }
 
-// The Kubernetes manifests: well-formed objects in the genvelope
-// namespace; the genvelope StatefulSet runs two replicas on NATS with
-// mutual TLS, the web configuration and the access file from Secrets and
-// ConfigMaps, every flag one the binary has; every pod non-root with a
-// read-only root filesystem and no capabilities; every volume mounted
-// exists; every Service selects pods; every pod has a NetworkPolicy.
-func testKubernetesManifests(t *testing.T, b *binary) {
+// strs is a list of scalars as strings.
+func strs(v any, keys ...string) []string {
+	var out []string
+	for _, x := range list(v, keys...) {
+		out = append(out, fmt.Sprint(x))
+	}
+	return out
+}
+
+// kubernetesDocs is every object of deploy/kubernetes, with its file.
+type kubeObject struct {
+	file string
+	d    map[string]any
+}
+
+func kubernetesDocs(t *testing.T) []kubeObject {
+	t.Helper()
 	files, _ := filepath.Glob("kubernetes/*.yaml")
 	if len(files) == 0 {
 		t.Fatal("no manifests in deploy/kubernetes")
 	}
-	type obj struct {
-		file string
-		d    map[string]any
-	}
-	var objs []obj
+	var objs []kubeObject
 	for _, f := range files {
 		for _, d := range docs(t, f) {
-			objs = append(objs, obj{f, d})
+			objs = append(objs, kubeObject{f, d})
 		}
 	}
-	kinds := map[string]int{}
-	podLabels := map[string]bool{}
-	policed := map[string]bool{}
-	var services []obj
-	for _, o := range objs {
-		kind, name := str(o.d, "kind"), str(o.d, "metadata", "name")
-		where := o.file + ": " + kind + " " + name
-		if str(o.d, "apiVersion") == "" || kind == "" || name == "" {
-			t.Errorf("%s: apiVersion, kind and metadata.name are required", where)
-		}
-		kinds[kind]++
-		if kind != "Namespace" && str(o.d, "metadata", "namespace") != "genvelope" {
-			t.Errorf("%s: not in the genvelope namespace", where)
-		}
-		switch kind {
-		case "StatefulSet", "Deployment":
-			pod := get(o.d, "spec", "template", "spec")
-			app := str(o.d, "spec", "template", "metadata", "labels", "app")
-			podLabels[app] = true
-			if sel := str(o.d, "spec", "selector", "matchLabels", "app"); sel != app {
-				t.Errorf("%s: selector app=%q, pods app=%q", where, sel, app)
-			}
-			checkPod(t, where, pod, o.d)
-			if name == "genvelope" {
-				if r, _ := get(o.d, "spec", "replicas").(int); r < 2 {
-					t.Errorf("%s: %d replicas, want the pair", where, r)
-				}
-				c := list(pod, "containers")[0]
-				cmd := list(c, "command")
-				if len(cmd) != 2 || cmd[1] != "serve" {
-					t.Errorf("%s: command %v, want the binary and serve", where, cmd)
-				}
-				var args []string
-				for _, a := range list(c, "args") {
-					args = append(args, a.(string))
-				}
-				checkServeArgs(t, b, where, args, "/var/lib/genvelope", true)
-				if !slices.ContainsFunc(args, func(a string) bool { return strings.HasPrefix(a, "--nats=") }) {
-					t.Errorf("%s: the pair needs --nats", where)
-				}
-				secrets := map[string]bool{}
-				for _, v := range list(pod, "volumes") {
-					if s := str(v, "secret", "secretName"); s != "" {
-						secrets[s] = true
-					}
-				}
-				if !secrets["genvelope-tls"] || !secrets["genvelope-web"] {
-					t.Errorf("%s: certificates and web configuration must come from the Secrets genvelope-tls and genvelope-web, got %v", where, secrets)
-				}
-			}
-		case "Service":
-			services = append(services, o)
-		case "NetworkPolicy":
-			types := list(o.d, "spec", "policyTypes")
-			if !slices.Contains(types, any("Ingress")) || !slices.Contains(types, any("Egress")) {
-				t.Errorf("%s: policyTypes %v, want Ingress and Egress", where, types)
-			}
-			policed[str(o.d, "spec", "podSelector", "matchLabels", "app")] = true
-		}
-	}
-	for _, s := range services {
-		if app := str(s.d, "spec", "selector", "app"); !podLabels[app] {
-			t.Errorf("%s: Service %s selects app=%q, which no workload runs", s.file, str(s.d, "metadata", "name"), app)
-		}
-	}
-	for app := range podLabels {
-		if !policed[app] {
-			t.Errorf("pods app=%s have no NetworkPolicy", app)
-		}
-	}
-	if kinds["Namespace"] != 1 || kinds["NetworkPolicy"] < 2 || kinds["StatefulSet"] != 2 {
-		t.Errorf("kinds %v: want one Namespace, the two StatefulSets (genvelope, NATS) and their NetworkPolicies", kinds)
-	}
+	return objs
 }
 
-// checkPod holds a pod spec to the hardening: non-root, read-only root
-// filesystem, no privilege escalation, no capabilities, every mount a
-// volume, probes on declared ports.
-func checkPod(t *testing.T, where string, pod any, workload map[string]any) {
+// composeFile is the HA try-out's compose file.
+const composeFile = "ha/docker-compose.yml"
+
+// composeImage is the image the compose file builds from ha/Dockerfile.
+const composeImage = "genvelope:local"
+
+// composeLines returns the genvelope command lines of the compose file:
+// the services that run its image.
+func composeLines(t *testing.T) []commandLine {
 	t.Helper()
-	if v, _ := get(pod, "securityContext", "runAsNonRoot").(bool); !v {
-		t.Errorf("%s: pod securityContext.runAsNonRoot is not true", where)
-	}
-	if v, _ := get(pod, "automountServiceAccountToken").(bool); v || get(pod, "automountServiceAccountToken") == nil {
-		t.Errorf("%s: automountServiceAccountToken should be false (genvelope needs no API access)", where)
-	}
-	vols := map[string]bool{}
-	for _, v := range list(pod, "volumes") {
-		vols[str(v, "name")] = true
-	}
-	for _, v := range list(workload, "spec", "volumeClaimTemplates") {
-		vols[str(v, "metadata", "name")] = true
-	}
-	for _, c := range list(pod, "containers") {
-		cw := where + " container " + str(c, "name")
-		if v, _ := get(c, "securityContext", "readOnlyRootFilesystem").(bool); !v {
-			t.Errorf("%s: readOnlyRootFilesystem is not true", cw)
+	services, _ := get(docs(t, composeFile)[0], "services").(map[string]any)
+	var nats []string
+	for name, svc := range services {
+		if strings.HasPrefix(str(svc, "image"), "nats:") {
+			nats = append(nats, name+":4222") // nats.conf: listen 0.0.0.0:4222
 		}
-		if v, ok := get(c, "securityContext", "allowPrivilegeEscalation").(bool); !ok || v {
-			t.Errorf("%s: allowPrivilegeEscalation is not false", cw)
+	}
+	var out []commandLine
+	for name, svc := range services {
+		if str(svc, "image") != composeImage {
+			continue
 		}
-		if !slices.Contains(list(c, "securityContext", "capabilities", "drop"), any("ALL")) {
-			t.Errorf("%s: capabilities do not drop ALL", cw)
+		c := commandLine{where: composeFile + " " + name, args: strs(svc, "command"), natsNodes: nats, ports: []int{}}
+		for _, v := range strs(svc, "volumes") {
+			parts := strings.Split(v, ":")
+			c.mounts = append(c.mounts, parts[1])
 		}
-		for _, m := range list(c, "volumeMounts") {
-			if !vols[str(m, "name")] {
-				t.Errorf("%s: mounts %q, which is no volume", cw, str(m, "name"))
+		for _, p := range strs(svc, "ports") {
+			n, err := strconv.Atoi(p[strings.LastIndexByte(p, ':')+1:])
+			if err != nil {
+				t.Fatalf("%s: port %q", c.where, p)
+			}
+			c.ports = append(c.ports, n)
+		}
+		out = append(out, c)
+	}
+	return out
+}
+
+// kubernetesLines returns the genvelope command lines of the manifests:
+// every container of a genvelope image.
+func kubernetesLines(t *testing.T) []commandLine {
+	t.Helper()
+	objs := kubernetesDocs(t)
+	var nats []string
+	for _, o := range objs {
+		if str(o.d, "kind") == "StatefulSet" && str(o.d, "metadata", "name") == "genvelope-nats" {
+			n, _ := get(o.d, "spec", "replicas").(int)
+			for i := range n {
+				nats = append(nats, fmt.Sprintf("genvelope-nats-%d.%s:4222", i, str(o.d, "spec", "serviceName")))
 			}
 		}
-		ports := map[any]bool{}
-		for _, p := range list(c, "ports") {
-			ports[get(p, "name")], ports[get(p, "containerPort")] = true, true
-		}
-		for _, probe := range []string{"readinessProbe", "livenessProbe"} {
-			for _, via := range []string{"httpGet", "tcpSocket"} {
-				if p := get(c, probe, via, "port"); p != nil && !ports[p] {
-					t.Errorf("%s: %s port %v is not one the container declares", cw, probe, p)
+	}
+	var out []commandLine
+	for _, o := range objs {
+		for _, ct := range list(o.d, "spec", "template", "spec", "containers") {
+			if !strings.HasPrefix(str(ct, "image"), "genvelope") {
+				continue
+			}
+			args := strs(ct, "args")
+			switch cmd := strs(ct, "command"); {
+			case len(cmd) > 0: // the container's own command: after the program
+				args = append(cmd[1:], args...)
+			case str(ct, "image") == "genvelope:latest":
+				// The image of container/Containerfile: its entrypoint
+				// runs serve (TestContainerImages).
+				args = append([]string{"serve"}, args...)
+			}
+			c := commandLine{where: fmt.Sprintf("%s %s %s", o.file, str(o.d, "metadata", "name"), str(ct, "name")), args: args,
+				hardened: true, ports: []int{}, readiness: map[int]string{}, liveness: map[int]string{}, natsNodes: nats}
+			for _, vm := range list(ct, "volumeMounts") {
+				c.mounts = append(c.mounts, str(vm, "mountPath"))
+			}
+			named := map[string]int{}
+			for _, p := range list(ct, "ports") {
+				n, _ := get(p, "containerPort").(int)
+				c.ports = append(c.ports, n)
+				named[str(p, "name")] = n
+			}
+			portOf := func(v any) int { // a number, or a port's name
+				if n, ok := v.(int); ok {
+					return n
+				}
+				return named[fmt.Sprint(v)]
+			}
+			for probe, into := range map[string]map[int]string{"readinessProbe": c.readiness, "livenessProbe": c.liveness} {
+				if g := get(ct, probe, "httpGet"); g != nil {
+					into[portOf(get(g, "port"))] = str(g, "path")
+				}
+				if g := get(ct, probe, "tcpSocket"); g != nil {
+					into[portOf(get(g, "port"))] = "tcp"
 				}
 			}
+			out = append(out, c)
 		}
 	}
+	return out
+}
+
+// containerFile is what a Containerfile or Dockerfile says.
+type containerFile struct {
+	entry, cmd, volumes []string
+	expose              []int
+	user                string
+	stateChowned        bool // the state directory is created owned by 65532
+}
+
+// readContainerFile reads the instructions the tests look at (JSON
+// arrays must be JSON; continued lines are joined).
+func readContainerFile(t *testing.T, path string) containerFile {
+	t.Helper()
+	data, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	var f containerFile
+	for _, line := range strings.Split(continued(string(data)), "\n") {
+		word, rest, _ := strings.Cut(strings.TrimSpace(line), " ")
+		var into *[]string
+		switch word {
+		case "ENTRYPOINT":
+			into = &f.entry
+		case "CMD":
+			into = &f.cmd
+		case "VOLUME":
+			into = &f.volumes
+		case "EXPOSE":
+			for _, p := range strings.Fields(rest) {
+				n, err := strconv.Atoi(p)
+				if err != nil {
+					t.Fatalf("%s: EXPOSE %q", path, p)
+				}
+				f.expose = append(f.expose, n)
+			}
+		case "USER":
+			f.user = rest
+		case "COPY":
+			if strings.Contains(rest, "--chown=65532:65532") && strings.HasSuffix(rest, " "+stateDir) {
+				f.stateChowned = true
+			}
+		}
+		if into != nil {
+			var words []string
+			if err := json.Unmarshal([]byte(rest), &words); err != nil {
+				t.Fatalf("%s: %s is not a JSON array: %v", path, word, err)
+			}
+			*into = append(*into, words...)
+		}
+	}
+	return f
 }
 
 // continued joins lines ending in a backslash.
 func continued(s string) string { return strings.ReplaceAll(s, "\\\n", " ") }
 
-// The container file: a non-root user, the state directory owned by it,
-// and the default command's flags the binary's.
-func testContainerfile(t *testing.T, b *binary) {
-	data, err := os.ReadFile("container/Containerfile")
-	if err != nil {
-		t.Fatal(err)
+// containerfile is the hardened image's file.
+const containerfile = "container/Containerfile"
+
+// containerfileLine returns the command line of the image of
+// container/Containerfile: its ENTRYPOINT and CMD, its VOLUME and the
+// configuration directory its comment mounts, its EXPOSE.
+func containerfileLine(t *testing.T) commandLine {
+	t.Helper()
+	f := readContainerFile(t, containerfile)
+	c := commandLine{where: containerfile, hardened: true, mounts: append([]string{"/etc/genvelope"}, f.volumes...), ports: append([]int{}, f.expose...)}
+	if len(f.entry) > 0 {
+		c.args = append(slices.Clone(f.entry[1:]), f.cmd...) // after the program
 	}
-	text := continued(string(data))
-	var entry, cmd []string
-	user := ""
-	chowned := false
-	for _, line := range strings.Split(text, "\n") {
-		word, rest, _ := strings.Cut(strings.TrimSpace(line), " ")
-		switch word {
-		case "ENTRYPOINT":
-			if err := json.Unmarshal([]byte(rest), &entry); err != nil {
-				t.Fatalf("ENTRYPOINT is not a JSON array: %v", err)
-			}
-		case "CMD":
-			if err := json.Unmarshal([]byte(rest), &cmd); err != nil {
-				t.Fatalf("CMD is not a JSON array: %v", err)
-			}
-		case "USER":
-			user = rest
-		case "COPY":
-			if strings.Contains(rest, "--chown=65532:65532") && strings.HasSuffix(rest, " /var/lib/genvelope") {
-				chowned = true
-			}
-		}
-	}
-	if user == "" || strings.HasPrefix(user, "0") || strings.HasPrefix(user, "root") {
-		t.Errorf("USER %q: want a non-root user", user)
-	}
-	if !chowned {
-		t.Error("the state directory /var/lib/genvelope is not created owned by the image's user")
-	}
-	if len(entry) != 2 || entry[1] != "serve" {
-		t.Fatalf("ENTRYPOINT %v, want the binary and serve", entry)
-	}
-	checkServeArgs(t, b, "Containerfile CMD", cmd, "/var/lib/genvelope", true)
+	return c
 }
 
-// execStart returns the unit's ExecStart arguments after `serve`.
+// systemdUnit is the hardened unit file.
+const systemdUnit = "systemd/genvelope.service"
+
+// execStart returns the unit's ExecStart program and arguments.
 func execStart(t *testing.T, unit string) (bin string, args []string) {
 	t.Helper()
 	for _, line := range strings.Split(continued(unit), "\n") {
 		if rest, ok := strings.CutPrefix(line, "ExecStart="); ok {
 			f := strings.Fields(rest)
-			if len(f) < 2 || f[1] != "serve" {
+			if len(f) < 2 {
 				t.Fatalf("ExecStart %q: want the binary and serve", rest)
 			}
-			return f[0], f[2:]
+			return f[0], f[1:]
 		}
 	}
 	t.Fatal("no ExecStart")
 	return "", nil
 }
 
-// The systemd unit: its flags the binary's, the sandboxing it promises,
-// and `systemd-analyze verify` (with ExecStart pointed at a built
-// binary) finding nothing.
-func testSystemdUnit(t *testing.T, b *binary) {
-	data, err := os.ReadFile("systemd/genvelope.service")
+// systemdLine returns the unit's command line; what it may write is its
+// StateDirectory (ProtectSystem=strict makes the rest read-only).
+func systemdLine(t *testing.T) commandLine {
+	t.Helper()
+	data, err := os.ReadFile(systemdUnit)
 	if err != nil {
 		t.Fatal(err)
 	}
-	unit := string(data)
-	bin, args := execStart(t, unit)
-	checkServeArgs(t, b, "systemd ExecStart", args, "/var/lib/genvelope", true)
-	for _, want := range []string{"User=genvelope", "StateDirectory=genvelope", "NoNewPrivileges=yes", "ProtectSystem=strict",
-		"CapabilityBoundingSet=\n", "PrivateDevices=yes", "SystemCallFilter=@system-service", "RestrictAddressFamilies="} {
-		if !strings.Contains(unit, want) {
-			t.Errorf("the unit lacks %q", strings.TrimSpace(want))
+	_, args := execStart(t, string(data))
+	c := commandLine{where: systemdUnit, args: args, hardened: true}
+	for _, line := range strings.Split(string(data), "\n") {
+		if dirs, ok := strings.CutPrefix(line, "StateDirectory="); ok {
+			for _, d := range strings.Fields(dirs) {
+				c.mounts = append(c.mounts, "/var/lib/"+d)
+			}
 		}
 	}
-	analyze := testenv.NeedTool(t, "systemd-analyze", "apt-get install systemd")
-	built := b.path
-	dir := t.TempDir()
-	path := filepath.Join(dir, "genvelope.service")
-	if err := os.WriteFile(path, []byte(strings.Replace(unit, "ExecStart="+bin, "ExecStart="+built, 1)), 0o644); err != nil {
-		t.Fatal(err)
-	}
-	out, err := exec.Command(analyze, "verify", path).CombinedOutput()
-	// verify prints warnings about the unit on stderr and exits non-zero
-	// on errors; lines about other units of the host are not ours.
-	var ours []string
-	for _, l := range strings.Split(string(out), "\n") {
-		if strings.Contains(l, "genvelope.service") {
-			ours = append(ours, l)
-		}
-	}
-	if err != nil || len(ours) > 0 {
-		t.Errorf("systemd-analyze verify: %v\n%s", err, out)
-	}
-	t.Logf("systemd-analyze verify: %v, %d lines of output", err, strings.Count(string(out), "\n"))
-	// systemd's own exposure score of the sandboxing (0 best, 10 worst;
-	// the threshold is in tenths): the unit promises "OK", at most 2.
-	out, err = exec.Command(analyze, "security", "--offline=true", "--threshold=20", path).CombinedOutput()
-	lines := strings.Split(strings.TrimSpace(string(out)), "\n")
-	if err != nil {
-		t.Errorf("systemd-analyze security: exposure above 2.0 (%v): %s", err, lines[len(lines)-1])
-	}
-	t.Log(lines[len(lines)-1])
+	return c
 }
 
-// The compose file of the HA try-out: its genvelope commands are valid
-// and start (plaintext off loopback needs --insecure-plaintext).
-func testComposeCommands(t *testing.T, b *binary) {
-	d := docs(t, "ha/docker-compose.yml")
-	n := 0
-	for name, svc := range get(d[0], "services").(map[string]any) {
-		if !strings.HasPrefix(name, "genvelope") {
-			continue
-		}
-		var args []string
-		for _, a := range list(svc, "command") {
-			args = append(args, a.(string))
-		}
-		if len(args) == 0 || args[0] != "serve" {
-			t.Errorf("%s: command %v, want serve", name, args)
-			continue
-		}
-		n++
-		checkServeArgs(t, b, "compose "+name, args[1:], "/var/lib/genvelope", false)
+// allLines is every genvelope command line of the install files.
+func allLines(t *testing.T) []commandLine {
+	t.Helper()
+	lines := append(composeLines(t), kubernetesLines(t)...)
+	return append(lines, containerfileLine(t), systemdLine(t))
+}
+
+// TestInstallFiles builds the binary once and checks every genvelope
+// command line of the install files against it, and the systemd unit
+// with systemd-analyze.
+func TestInstallFiles(t *testing.T) {
+	b := build(t)
+	lines := allLines(t)
+	// The two of the compose file, the manifests' pair, the image, the unit.
+	if len(lines) < 5 {
+		t.Fatalf("found %d genvelope command lines; want those of the compose file, the manifests, the Containerfile and the unit", len(lines))
 	}
-	if n != 2 {
-		t.Errorf("%d genvelope services in the compose file, want the pair", n)
+	for _, c := range lines {
+		t.Run(c.where, func(t *testing.T) { checkLine(t, b, c) })
+	}
+	t.Run("systemd-analyze", func(t *testing.T) { testSystemdAnalyze(t, b) })
+}
+
+// checkLine checks one command line: the binary's own flag parser takes
+// it (the line with -h appended); every argument is a flag serve has;
+// the fleet, state and journal are given, the state and journal under
+// the state directory and on something writable that outlives the
+// container; a listener off loopback has TLS or says
+// --insecure-plaintext, and a hardened line has TLS, mutual TLS, the web
+// configuration and the access file; the listen ports are the ones
+// published and probed, /readyz and /healthz are probed on the HTTP
+// port; with --nats the URLs are the NATS nodes deployed, with as many
+// stream replicas as nodes.
+func checkLine(t *testing.T, b *binary, c commandLine) {
+	if len(c.args) == 0 || c.args[0] != "serve" {
+		t.Fatalf("command %q does not run serve", c.args)
+	}
+	out, err := exec.Command(b.path, append(slices.Clone(c.args), "-h")...).CombinedOutput()
+	if err != nil || !strings.Contains(string(out), "Usage: genvelope serve") {
+		t.Errorf("genvelope refuses %q: %v\n%s", c.args, err, out)
+	}
+	val := map[string]string{}
+	for i := 1; i < len(c.args); i++ {
+		a := c.args[i]
+		if !strings.HasPrefix(a, "-") {
+			t.Errorf("stray argument %q (a missing flag, or a subcommand where none belongs)", a)
+			continue
+		}
+		name, v, hasV := strings.Cut(strings.TrimLeft(a, "-"), "=")
+		takes, ok := b.flags[name]
+		if !ok {
+			t.Errorf("genvelope serve has no flag --%s", name)
+			continue
+		}
+		if takes && !hasV && i+1 < len(c.args) {
+			i++
+			v = c.args[i]
+		}
+		val[name] = v
+	}
+
+	for _, f := range []string{"fleet", "state", "journal"} {
+		if val[f] == "" {
+			t.Errorf("no --%s", f)
+		}
+	}
+	// The state (the checkpoint with --nats) and the journal: in the
+	// state directory, on a volume, not at their defaults relative to the
+	// working directory, which is on the image's (read-only, or lost with
+	// the container) root.
+	for _, f := range []string{"state", "journal"} {
+		v := val[f]
+		if v == "" {
+			continue
+		}
+		if !strings.HasPrefix(v, stateDir+"/") {
+			t.Errorf("--%s %s is not under the state directory %s", f, v, stateDir)
+		}
+		onVolume := false
+		for _, mp := range c.mounts {
+			onVolume = onVolume || strings.HasPrefix(v, strings.TrimSuffix(mp, "/")+"/")
+		}
+		if !onVolume {
+			t.Errorf("--%s %q is not on a volume (mounts %v): it must survive the container", f, v, c.mounts)
+		}
+	}
+
+	_, insecure := val["insecure-plaintext"]
+	if c.hardened {
+		for _, f := range []string{"grpc-tls-cert", "grpc-tls-key", "grpc-client-ca", "web-config", "access"} {
+			if val[f] == "" {
+				t.Errorf("hardened, but no --%s", f)
+			}
+		}
+		if insecure {
+			t.Error("hardened, but --insecure-plaintext")
+		}
+	} else if !insecure && (val["grpc-tls-cert"] == "" || val["web-config"] == "") {
+		t.Error("listens off loopback without TLS and without --insecure-plaintext: the service refuses to start")
+	}
+
+	port := func(flag string) int {
+		_, p, err := net.SplitHostPort(val[flag])
+		n, err2 := strconv.Atoi(p)
+		if err != nil || err2 != nil {
+			t.Fatalf("--%s %q is not host:port", flag, val[flag])
+		}
+		return n
+	}
+	grpcPort, httpPort := port("grpc-listen"), port("http-listen")
+	if c.ports != nil {
+		for _, p := range []int{grpcPort, httpPort} {
+			if !slices.Contains(c.ports, p) {
+				t.Errorf("listens on %d but the container's ports are %v", p, c.ports)
+			}
+		}
+	}
+	if c.readiness != nil {
+		if got := c.readiness[httpPort]; got != "/readyz" && got != "tcp" {
+			t.Errorf("readiness probes %v; want /readyz on the HTTP port %d", c.readiness, httpPort)
+		}
+		if got, ok := c.liveness[httpPort]; len(c.liveness) > 0 && (!ok || got != "/healthz" && got != "tcp") {
+			t.Errorf("liveness probes %v; want /healthz on the HTTP port %d", c.liveness, httpPort)
+		}
+	}
+
+	if val["nats"] == "" {
+		return
+	}
+	var hosts []string
+	for _, u := range strings.Split(val["nats"], ",") {
+		pu, err := url.Parse(u)
+		if err != nil || pu.Scheme != "nats" {
+			t.Errorf("--nats URL %q: %v", u, err)
+			continue
+		}
+		hosts = append(hosts, pu.Host)
+	}
+	slices.Sort(hosts)
+	nodes := slices.Sorted(slices.Values(c.natsNodes))
+	if !slices.Equal(hosts, nodes) {
+		t.Errorf("--nats names %v; the install runs NATS nodes %v", hosts, nodes)
+	}
+	if val["nats-replicas"] != strconv.Itoa(len(nodes)) {
+		t.Errorf("--nats-replicas %q with %d NATS nodes", val["nats-replicas"], len(nodes))
 	}
 }

@@ -56,7 +56,7 @@ func topIntervalTo(stable func(q float64) (bool, error), qTop, qBot, floor, step
 		found := false
 		for q > qBot {
 			hi := q
-			q = math.Max(q-step, qBot)
+			q = max(q-step, qBot)
 			if s, err = stable(q); err != nil {
 				return interval{err: err}
 			}
@@ -80,7 +80,7 @@ func topIntervalTo(stable func(q float64) (bool, error), qTop, qBot, floor, step
 			return iv
 		}
 		hi := q
-		q = math.Max(q-step, floor)
+		q = max(q-step, floor)
 		if s, err = stable(q); err != nil {
 			return interval{err: err}
 		}
@@ -153,7 +153,7 @@ func confirm(stable func(float64) (bool, error), iv interval, qTop, qBot float64
 		return false
 	}
 	if iv.top.OK {
-		return is(iv.top.V-scanTol, true) && is(math.Min(iv.top.V+scanTol, qTop), false)
+		return is(iv.top.V-scanTol, true) && is(min(iv.top.V+scanTol, qTop), false)
 	}
 	return is(qTop, true)
 }
@@ -186,8 +186,9 @@ func (a poly) mul(b poly) poly {
 // charParts are the q-independent pieces of the characteristic
 // polynomial (see charPoly), formed once per unit.
 type charParts struct {
-	m0c1, m0c2, c1, c2, c3, c4, c5 poly
-	n                              int // the highest degree among them
+	m0c1, m0c2, c1, c2, c3, c5 poly
+	n                          int // the highest degree among them
+	hp                         hpConsts
 }
 
 // charPoly returns the characteristic polynomial of the state matrix of
@@ -228,24 +229,25 @@ func (u *Unit) charParts() charParts {
 	c.c1 = f.mul(ard)
 	c.c2 = pl(k3 * ex.KA).mul(dp)
 	c.c3 = pl(k3 * ex.KA).mul(r).mul(np)
-	c.c4 = c.c2
 	c.c5 = pl(k3).mul(ard)
 	c.m0c1, c.m0c2 = m0.mul(c.c1), m0.mul(c.c2)
-	for _, q := range [...]*poly{&c.m0c1, &c.m0c2, &c.c1, &c.c2, &c.c3, &c.c4, &c.c5} {
+	for _, q := range [...]*poly{&c.m0c1, &c.m0c2, &c.c1, &c.c2, &c.c3, &c.c5} {
 		c.n = max(c.n, q.n)
 	}
+	c.hp = u.hpConsts()
 	return c
 }
 
 // charPoly returns the characteristic polynomial at the constants k (see
-// charParts).
-func (c *charParts) charPoly(k *HeffronPhillips) poly {
-	w0, w1, w2, w3, w4, w5 := k.K6, k.K1, k.K1*k.K6, k.K2, -k.K2*k.K5, -k.K2*k.K4
-	r := poly{n: c.n}
-	// Every coefficient, those beyond a part's degree being zero: the same
-	// sums as part by part, in the same order, without the loops' control.
-	for i := range r.c {
-		r.c[i] = c.m0c1.c[i] + w0*c.m0c2.c[i] + w1*c.c1.c[i] + w2*c.c2.c[i] + w3*c.c3.c[i] + w4*c.c4.c[i] + w5*c.c5.c[i]
+// charParts; c2 = c4, so K1 K6 c2 - K2 K5 c4 is one term).
+func (c *charParts) charPoly(k *hpCore) (r poly) {
+	w0, w1, w2, w3, w5 := k.k6, k.k1, k.k1*k.k6-k.k2*k.k5, k.k2, -k.k2*k.k4
+	r.n = c.n
+	// Every coefficient up to the degree, those beyond a part's degree
+	// being zero: the same sums as part by part, without the loops'
+	// control (the rest stay zero, as the sums of zeros were).
+	for i := range r.c[:min(r.n, maxSSStates)+1] {
+		r.c[i] = c.m0c1.c[i] + w0*c.m0c2.c[i] + w1*c.c1.c[i] + w2*c.c2.c[i] + w3*c.c3.c[i] + w5*c.c5.c[i]
 	}
 	return r
 }
@@ -255,34 +257,70 @@ func (c *charParts) charPoly(k *HeffronPhillips) poly {
 // text). sure is false when an entry of the first column is lost to
 // cancellation (within 1e-9 of the terms it is formed from), where the
 // verdict is not to be trusted.
-func hurwitz(c poly, sigma float64) (stable, sure bool) {
-	return routh(c, sigma, nil)
+func hurwitz(c *poly, sigma float64) (stable, sure bool) {
+	stable, sure, _, _ = routh(c, sigma, false)
+	return stable, sure
 }
 
-// routh is hurwitz; when col is not nil and the verdict is sure, it also
-// returns the first column of the array, col[0..n], whatever its signs:
-// col[k] = Delta_k/Delta_(k-1), the ratio of successive Hurwitz
-// determinants, and col[n] = a_0 (Gantmacher, The Theory of Matrices,
-// vol. 2, ch. XV, from memory).
-func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure bool) {
+// routh is hurwitz. With margins it goes on past a clearly negative
+// entry of the first column to the end and also returns the Hurwitz
+// determinant Delta_(n-1) and a_0 (both up to the sign that makes the
+// leading coefficient positive); they are NaN where an entry is lost to
+// cancellation, and sure then says whether the verdict is known all the
+// same (an earlier entry was clearly negative: unstable).
+//
+// The array is the fraction-free (Bareiss) form of Routh's: row k is
+// Delta_(k-1) times Routh's row k, so that its first entry is the Hurwitz
+// determinant Delta_k (Delta_0 = 1; Routh's first column is a_n, Delta_1,
+// Delta_2/Delta_1, ..., Delta_n/Delta_(n-1), with Delta_n = a_0
+// Delta_(n-1): Gantmacher, The Theory of Matrices, vol. 2, ch. XV, from
+// memory). Row k+1 = (R_k[0] R_(k-1)[j+1] - R_(k-1)[0] R_k[j+1])/Delta_(k-2)
+// (the divisor 1 for rows 2 and 3), an exact division: the divisor is
+// known three rows ahead, so no division waits on the row before (the
+// rows are a chain, and a division costs several multiplications). Each
+// entry of the first column is checked as Routh's is: its sign, and
+// whether it exceeds 1e-9 of the two products it is the difference of
+// (Routh's entry and terms times the same factor Delta_k/Delta_(k-2)).
+// TestRouthFractionFree holds the verdicts and margins to Routh's own
+// array (written in the test) on random and on the model's polynomials.
+func routh(c *poly, sigma float64, margins bool) (stable, sure bool, dn1, a0 float64) {
 	n := c.n
-	// The array's rows in a ring of three: r0, r1 the rows before, nx the
-	// row formed from them; entries beyond a row's end are zero. The first
-	// two rows are the coefficients, descending, alternately, with the
-	// sign that makes the leading one positive.
-	var r [3][maxSSStates/2 + 2]float64
+	if n < 1 || n > maxSSStates {
+		return false, false, math.NaN(), math.NaN()
+	}
+	if k := &c.c; sigma == 0 && k[n] > 0 {
+		// The model's polynomials (the leading coefficient positive):
+		// the first two rows straight from the coefficients.
+		switch n {
+		case 8:
+			stable, sure, dn1 = routh8(k[8], k[6], k[4], k[2], k[0], k[7], k[5], k[3], k[1], 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		case 7:
+			stable, sure, dn1 = routh7(k[7], k[5], k[3], k[1], 0, k[6], k[4], k[2], k[0], 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		case 5:
+			stable, sure, dn1 = routh5(k[5], k[3], k[1], 0, 0, k[4], k[2], k[0], 0, 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		case 4:
+			stable, sure, dn1 = routh4(k[4], k[2], k[0], 0, 0, k[3], k[1], 0, 0, 0, margins)
+			return routhEnd(stable, sure, dn1, k[0], margins)
+		}
+	}
+	// The first two rows are the coefficients, descending, alternately,
+	// with the sign that makes the leading one positive: e holds a_k at
+	// e[9+k] and zeros below, so that row 0 is e[9+n], e[7+n], ... and
+	// row 1 e[8+n], e[6+n], ... (straight-line loads, no loop).
+	var e [2*maxSSStates + 2]float64
 	sg := 1.0
 	if c.c[n] < 0 {
 		sg = -1
 	}
 	if sigma == 0 {
-		for i := 0; i <= n; i++ {
-			r[i&1][i>>1] = sg * c.c[n-i]
-		}
+		*(*[maxSSStates + 1]float64)(e[maxSSStates+1:]) = c.c
 	} else {
 		var b [maxSSStates + 1]float64 // descending
 		for i := 0; i <= n; i++ {
-			b[i] = sg * c.c[n-i]
+			b[i] = c.c[n-i]
 		}
 		// Taylor shift: b(z) <- b(z + sigma).
 		for i := 0; i < n; i++ {
@@ -291,45 +329,415 @@ func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure b
 			}
 		}
 		for i := 0; i <= n; i++ {
-			r[i&1][i>>1] = b[i]
+			e[maxSSStates+1+n-i] = b[i]
 		}
 	}
-	if !(r[0][0] > 0) {
-		return false, false
+	w := e[n : n+maxSSStates+2]
+	// The rows before, R_(k-1) = x and R_k = y, in registers: five
+	// entries hold every row of a polynomial of degree 8 or less (row 0
+	// is the longest).
+	x0, x1, x2, x3, x4 := sg*w[9], sg*w[7], sg*w[5], sg*w[3], sg*w[1]
+	y0, y1, y2, y3, y4 := sg*w[8], sg*w[6], sg*w[4], sg*w[2], sg*w[0]
+	if !(x0 > 0) {
+		return false, false, math.NaN(), math.NaN()
 	}
-	r0, r1, nx := &r[0], &r[1], &r[2]
-	scale := math.Abs(r1[0])
-	if col != nil {
-		col[0] = r[0][0]
+	a0 = sg * w[9-n]
+	switch n {
+	case 8:
+		stable, sure, dn1 = routh8(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	case 7:
+		stable, sure, dn1 = routh7(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	case 5:
+		stable, sure, dn1 = routh5(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	case 4:
+		stable, sure, dn1 = routh4(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
+	default:
+		stable, sure, dn1 = routhRows(n, x0, x1, x2, x3, x4, y0, y1, y2, y3, y4, margins)
 	}
+	return routhEnd(stable, sure, dn1, a0, margins)
+}
+
+// routhEnd is routh's answer from that of the rows (routhRows).
+func routhEnd(stable, sure bool, dn1, a0 float64, margins bool) (bool, bool, float64, float64) {
+	if math.IsNaN(dn1) { // an entry not positive (the verdict) or lost (margins)
+		return false, sure, dn1, dn1
+	}
+	if !margins {
+		return true, true, 0, 0
+	}
+	return stable, true, dn1, a0
+}
+
+// routhRows forms the rows of routh's array after the first two, x and
+// y, for a polynomial of degree n: the verdict, whether it is sure, and
+// Delta_(n-1) (NaN where an entry ends the array early: not positive
+// without margins, lost to cancellation with them). routh4, routh5,
+// routh7 and routh8 are the same for the degrees of the model (4 and 5
+// without a stabilizer, 7 and 8 with one), unrolled with each row only as
+// long as it is: the same arithmetic on the entries that exist.
+func routhRows(n int, x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	dn1 = 1
+	i0, i1, i2 := 1.0, 1.0, 1/y0
+	// The check of row 1 (a_(n-1) > 0) as Routh's: its terms are itself.
+	hi := math.Abs(y0)
 	stable = true
-	for row := 1; row <= n; row++ {
-		if !(r1[0] > 1e-9*scale) {
-			sure = math.Abs(r1[0]) > 1e-9*scale
-			if col == nil || !sure {
-				return false, sure
+	// Three rows a turn, the registers taking turns as the rows x, y and
+	// z (no copying from one to the next). A row's entries beyond its end
+	// come out zero from the zeros beyond the ends of the rows before
+	// (straight-line code: the loop's control cost more than its
+	// arithmetic); the fifth entry is zero from row 2 on. Row row+1 is
+	// formed with the older row scaled by the divisor first, off the chain
+	// from the newer one.
+	var z0, z1, z2, z3, z4, b, t, u float64
+	for row := 1; ; {
+		if !(y0 > 1e-9*hi) {
+			sure = math.Abs(y0) > 1e-9*hi
+			if !margins || !sure {
+				return false, !stable || sure && !margins, math.NaN()
 			}
 			stable = false // clearly negative: on to the rest of the column
 		}
-		if col != nil {
-			col[row] = r1[0]
+		if row == n-1 {
+			dn1 = y0
 		}
 		if row == n {
 			break
 		}
-		f := r0[0] / r1[0]
-		// Row row+1 has (n - row - 1)/2 + 1 entries; the rest come out
-		// zero from the zeros beyond the ends of r0 and r1 (straight-line
-		// code: the loop's control cost more than its arithmetic).
-		nx[0] = r0[1] - f*r1[1]
-		nx[1] = r0[2] - f*r1[2]
-		nx[2] = r0[3] - f*r1[3]
-		nx[3] = r0[4] - f*r1[4]
-		nx[4] = r0[5] - f*r1[5]
-		scale = math.Abs(r0[1]) + math.Abs(f*r1[1])
-		r0, r1, nx = r1, nx, r0
+		row++
+		b = x0 * i0
+		t, u = y0*(x1*i0), b*y1
+		z0, z1, z2, z3 = t-u, y0*(x2*i0)-b*y2, y0*(x3*i0)-b*y3, y0*(x4*i0)-b*y4
+		hi = math.Abs(t) + math.Abs(u)
+		i0, i1, i2 = i1, i2, 1/z0
+		z4 = 0
+		if !(z0 > 1e-9*hi) {
+			sure = math.Abs(z0) > 1e-9*hi
+			if !margins || !sure {
+				return false, !stable || sure && !margins, math.NaN()
+			}
+			stable = false // clearly negative: on to the rest of the column
+		}
+		if row == n-1 {
+			dn1 = z0
+		}
+		if row == n {
+			break
+		}
+		row++
+		b = y0 * i0
+		t, u = z0*(y1*i0), b*z1
+		x0, x1, x2, x3 = t-u, z0*(y2*i0)-b*z2, z0*(y3*i0)-b*z3, z0*(y4*i0)-b*z4
+		hi = math.Abs(t) + math.Abs(u)
+		i0, i1, i2 = i1, i2, 1/x0
+		x4 = 0
+		if !(x0 > 1e-9*hi) {
+			sure = math.Abs(x0) > 1e-9*hi
+			if !margins || !sure {
+				return false, !stable || sure && !margins, math.NaN()
+			}
+			stable = false // clearly negative: on to the rest of the column
+		}
+		if row == n-1 {
+			dn1 = x0
+		}
+		if row == n {
+			break
+		}
+		row++
+		b = z0 * i0
+		t, u = x0*(z1*i0), b*x1
+		y0, y1, y2, y3 = t-u, x0*(z2*i0)-b*x2, x0*(z3*i0)-b*x3, x0*(z4*i0)-b*x4
+		hi = math.Abs(t) + math.Abs(u)
+		i0, i1, i2 = i1, i2, 1/y0
+		y4 = 0
 	}
-	return stable, true
+	return stable, true, dn1
+}
+
+// routh4 is routhRows for a polynomial of degree 4, unrolled.
+func routh4(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0 * x2
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r3_0
+	t, u = r3_0*(r2_1*i1), 0
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
+}
+
+// routh5 is routhRows for a polynomial of degree 5, unrolled.
+func routh5(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0*x2 - b1*y2
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i2 := 1 / r2_0
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r3_1 := r2_0 * y2
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b3 := r2_0 * i1
+	t, u = r3_0*(r2_1*i1), b3*r3_1
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r4_0
+	t, u = r4_0*(r3_1*i2), 0
+	r5_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r5_0 > 1e-9*hi) {
+		if sure = math.Abs(r5_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
+}
+
+// routh7 is routhRows for a polynomial of degree 7, unrolled.
+func routh7(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0*x2 - b1*y2
+	r2_2 := y0*x3 - b1*y3
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i2 := 1 / r2_0
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r3_1 := r2_0*y2 - b2*r2_2
+	r3_2 := r2_0 * y3
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i3 := 1 / r3_0
+	b3 := r2_0 * i1
+	t, u = r3_0*(r2_1*i1), b3*r3_1
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r4_1 := r3_0*(r2_2*i1) - b3*r3_2
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i4 := 1 / r4_0
+	b4 := r3_0 * i2
+	t, u = r4_0*(r3_1*i2), b4*r4_1
+	r5_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r5_1 := r4_0 * (r3_2 * i2)
+	if !(r5_0 > 1e-9*hi) {
+		if sure = math.Abs(r5_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b5 := r4_0 * i3
+	t, u = r5_0*(r4_1*i3), b5*r5_1
+	r6_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r6_0 > 1e-9*hi) {
+		if sure = math.Abs(r6_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r6_0
+	t, u = r6_0*(r5_1*i4), 0
+	r7_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r7_0 > 1e-9*hi) {
+		if sure = math.Abs(r7_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
+}
+
+// routh8 is routhRows for a polynomial of degree 8, unrolled.
+func routh8(x0, x1, x2, x3, x4, y0, y1, y2, y3, y4 float64, margins bool) (stable, sure bool, dn1 float64) {
+	hi := math.Abs(y0)
+	stable = true
+	var t, u float64
+	if !(y0 > 1e-9*hi) {
+		if sure = math.Abs(y0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i1 := 1 / y0
+	b1 := x0
+	t, u = y0*x1, b1*y1
+	r2_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r2_1 := y0*x2 - b1*y2
+	r2_2 := y0*x3 - b1*y3
+	r2_3 := y0 * x4
+	if !(r2_0 > 1e-9*hi) {
+		if sure = math.Abs(r2_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i2 := 1 / r2_0
+	b2 := y0
+	t, u = r2_0*y1, b2*r2_1
+	r3_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r3_1 := r2_0*y2 - b2*r2_2
+	r3_2 := r2_0*y3 - b2*r2_3
+	if !(r3_0 > 1e-9*hi) {
+		if sure = math.Abs(r3_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i3 := 1 / r3_0
+	b3 := r2_0 * i1
+	t, u = r3_0*(r2_1*i1), b3*r3_1
+	r4_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r4_1 := r3_0*(r2_2*i1) - b3*r3_2
+	r4_2 := r3_0 * (r2_3 * i1)
+	if !(r4_0 > 1e-9*hi) {
+		if sure = math.Abs(r4_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i4 := 1 / r4_0
+	b4 := r3_0 * i2
+	t, u = r4_0*(r3_1*i2), b4*r4_1
+	r5_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r5_1 := r4_0*(r3_2*i2) - b4*r4_2
+	if !(r5_0 > 1e-9*hi) {
+		if sure = math.Abs(r5_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	i5 := 1 / r5_0
+	b5 := r4_0 * i3
+	t, u = r5_0*(r4_1*i3), b5*r5_1
+	r6_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	r6_1 := r5_0 * (r4_2 * i3)
+	if !(r6_0 > 1e-9*hi) {
+		if sure = math.Abs(r6_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	b6 := r5_0 * i4
+	t, u = r6_0*(r5_1*i4), b6*r6_1
+	r7_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r7_0 > 1e-9*hi) {
+		if sure = math.Abs(r7_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	dn1 = r7_0
+	t, u = r7_0*(r6_1*i5), 0
+	r8_0 := t - u
+	hi = math.Abs(t) + math.Abs(u)
+	if !(r8_0 > 1e-9*hi) {
+		if sure = math.Abs(r8_0) > 1e-9*hi; !margins || !sure {
+			return false, !stable || sure && !margins, math.NaN()
+		}
+		stable = false // clearly negative: on to the rest of the column
+	}
+	return stable, true, dn1
 }
 
 // avrStableFast is avrStable by the Routh-Hurwitz criterion on the
@@ -343,12 +751,13 @@ func routh(c poly, sigma float64, col *[maxSSStates + 1]float64) (stable, sure b
 // which the per-sample checks use (they look 0.0019 pu away from the
 // boundary, where the difference does not show).
 func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error) {
-	k := u.heffronPhillips(p, q, v, false)
-	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+	k := c.hp.core(p, q, v)
+	if k.degener || k.efd < u.p.Exciter.EfdMin {
 		return false, nil
 	}
 	if u.p.ZetaMin == 0 {
-		if s, sure := hurwitz(c.charPoly(&k), sigma); sure {
+		cp := c.charPoly(&k)
+		if s, sure := hurwitz(&cp, sigma); sure {
 			return s, nil
 		}
 	}
@@ -362,16 +771,16 @@ func (u *Unit) avrStableFast(c *charParts, p, q, v, sigma float64) (bool, error)
 // of a boundary, far inside the table's tolerance. With zeta_min > 0 the
 // criterion decides where it can (see below), the eigenvalues elsewhere.
 func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
-	k := u.heffronPhillips(p, q, v, false)
-	if k.Degener || k.Efd < u.p.Exciter.EfdMin {
+	k := c.hp.core(p, q, v)
+	if k.degener || k.efd < u.p.Exciter.EfdMin {
 		return false, nil
 	}
 	if u.p.ZetaMin == 0 {
 		cp := c.charPoly(&k)
-		if s, sure := hurwitz(cp, 0); sure {
+		if s, sure := hurwitz(&cp, 0); sure {
 			return s, nil
 		}
-		if s, sure := hurwitz(cp, ssGrowth); sure {
+		if s, sure := hurwitz(&cp, ssGrowth); sure {
 			return s, nil
 		}
 	} else if z := u.p.ZetaMin; z < 1 {
@@ -383,10 +792,10 @@ func (u *Unit) avrStableTab(c *charParts, p, q, v float64) (bool, error) {
 		// (-Re/|lambda| >= sigma/sqrt(sigma^2 + W^2) = zeta_min) and none
 		// grows. Between the two, the eigenvalues.
 		cp := c.charPoly(&k)
-		if s, sure := hurwitz(cp, ssGrowth); sure && !s {
+		if s, sure := hurwitz(&cp, ssGrowth); sure && !s {
 			return false, nil
 		}
-		if s, sure := hurwitz(cp, -z*emBandHi/math.Sqrt(1-z*z)); sure && s {
+		if s, sure := hurwitz(&cp, -z*emBandHi/math.Sqrt(1-z*z)); sure && s {
 			return true, nil
 		}
 	}
@@ -464,7 +873,7 @@ func (t *stabTable) markScan(island []bool, low, top []float64, moved []bool, at
 			default:
 				d := math.Abs(it.low.V - mLow)
 				if it.top.OK {
-					d = math.Max(d, math.Abs(it.top.V-mTop))
+					d = max(d, math.Abs(it.top.V-mTop))
 				}
 				t.scan[cell] = d > tabNear
 				t.smooth[cell] = t.smooth[cell] && d <= tabSmooth
@@ -484,7 +893,7 @@ const (
 )
 
 func toQ16(q float64) int16 {
-	return int16(math.Round(math.Max(-3.2, math.Min(3.2, q)) / tabQuant))
+	return int16(math.Round(max(-3.2, min(3.2, q)) / tabQuant))
 }
 
 // The grid of stabTable: p from 0 to tabPMax, v from tabVLo to tabVHi.
@@ -520,12 +929,12 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	n := t.np * t.nv
 	low, top, moved, island := make([]float64, n), make([]float64, n), make([]bool, n), make([]bool, n)
 	c := &u.avrChar
-	scratch := tabScratch{seen: make([]tabSample, 0, 128), sorted: make([]tabSample, 0, 128)}
+	scratch := tabScratch{seen: make([]tabSample, 0, 128)}
 	for iv := range t.nv {
 		v := tabVLo + float64(iv)*tabVStep
 		for ip := range t.np {
 			p := float64(ip) * tabPStep
-			qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+			qArm := math.Sqrt(max(v*v-p*p, 0))
 			stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
 			k := iv*t.np + ip
 			it := u.tabInterval(c, &scratch, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
@@ -544,7 +953,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 	}
 	t.markSmooth(low, top, moved)
 	if err := t.markScan(island, low, top, moved, func(p, v float64) (interval, bool) {
-		qArm := math.Sqrt(math.Max(v*v-p*p, 0))
+		qArm := math.Sqrt(max(v*v-p*p, 0))
 		stable := func(q float64) (bool, error) { return u.avrStableTab(c, p, q, v) }
 		it := u.tabInterval(c, &scratch, p, v, qArm, -qArm, -qArm-tabDeep-scanFloor)
 		return it, it.err == nil && it.low.OK && hasIsland(stable, it.low.V, -qArm-tabDeep-scanFloor)
@@ -572,7 +981,7 @@ func (u *Unit) buildStabTable() (*stabTable, error) {
 
 // tabScratch is the build's reusable space for tabScanDown's samples.
 type tabScratch struct {
-	seen, sorted []tabSample
+	seen []tabSample
 }
 
 // tabInterval is the rule at one point of the table's grid (p, v), below
@@ -781,7 +1190,7 @@ func (u *Unit) detectInterval(c *charParts, p, v float64, iv interval, qTop, qBo
 		if a, err = u.tabTest(c, p, iv.top.V-tabCheck, v); err != nil || !a.stable || a.q <= to {
 			return interval{}, false
 		}
-		if s, err := u.avrStableFast(c, p, math.Min(iv.top.V+tabCheck, qTop), v, 0); err != nil || s {
+		if s, err := u.avrStableFast(c, p, min(iv.top.V+tabCheck, qTop), v, 0); err != nil || s {
 			return interval{}, false
 		}
 	}
@@ -790,8 +1199,8 @@ func (u *Unit) detectInterval(c *charParts, p, v float64, iv interval, qTop, qBo
 	} else if s, err := u.avrStableFast(c, p, low-tabCheck, v, 0); err != nil || s {
 		return interval{}, false // the cheap half of the bracket first
 	}
-	var seen, sorted [tabScanCap]tabSample
-	sc := tabScratch{seen: seen[:0], sorted: sorted[:0]}
+	var seen [tabScanCap]tabSample
+	sc := tabScratch{seen: seen[:0]}
 	if _, _, found, err := u.tabScanDown(c, &sc, p, v, a, to); err != nil || found {
 		return interval{}, false
 	}
@@ -876,8 +1285,8 @@ func (u *Unit) sampleRule(c *charParts, p, v float64, iv interval, qTop, qBot fl
 		}
 		res.top, a, g0 = some(t), lo, t
 	}
-	var seen, sorted [tabScanCap]tabSample
-	sc := tabScratch{seen: seen[:0], sorted: sorted[:0]}
+	var seen [tabScanCap]tabSample
+	sc := tabScratch{seen: seen[:0]}
 	st, un, found, err := u.tabScanDown(c, &sc, p, v, a, floor)
 	if err != nil {
 		return interval{}, false
@@ -893,7 +1302,7 @@ func (u *Unit) sampleRule(c *charParts, p, v float64, iv interval, qTop, qBot fl
 	// The direct scan's grid points about b: unstable just below (or
 	// the floor), stable just above (or the top).
 	k := math.Ceil((g0 - b) / scanStep)
-	below, above := math.Max(g0-k*scanStep, floor), g0-(k-1)*scanStep
+	below, above := max(g0-k*scanStep, floor), g0-(k-1)*scanStep
 	if sb, err := u.avrStableFast(c, p, below, v, 0); err != nil || sb {
 		return interval{}, false
 	}
@@ -919,7 +1328,7 @@ const fastTol = 1e-8
 // and unstable just below, for a moved top the other way round.
 func bracketHolds(stable func(float64) (bool, error), q, qTop float64, bottom bool) bool {
 	sLo, err1 := stable(q - tabCheck)
-	sHi, err2 := stable(math.Min(q+tabCheck, qTop))
+	sHi, err2 := stable(min(q+tabCheck, qTop))
 	return err1 == nil && err2 == nil && sLo != sHi && sHi == bottom
 }
 
@@ -1048,33 +1457,39 @@ type tabSample struct {
 }
 
 // tabTest is avrStableTab (the same verdict) with the margins of
-// tabSample. The first column of the Routh array holds them:
-// col[k] = Delta_k/Delta_(k-1), so Delta_(n-1) is the product of
-// col[1..n-1], and col[n] = a_0.
+// tabSample, which the fraction-free Routh array holds (routh): its
+// first column is Delta_1 .. Delta_n, and a_0 is the last coefficient.
 func (u *Unit) tabTest(c *charParts, p, q, v float64) (tabSample, error) {
 	s := tabSample{q: q, f: [3]float64{math.NaN(), math.NaN(), math.NaN()}}
-	k := u.heffronPhillips(p, q, v, false)
-	if k.Degener {
+	k := c.hp.core(p, q, v)
+	if k.degener {
 		return s, nil
 	}
-	efdOK := k.Efd >= u.p.Exciter.EfdMin
-	if u.p.ZetaMin == 0 {
-		var col [maxSSStates + 1]float64
-		cp := c.charPoly(&k)
-		if st, sure := routh(cp, 0, &col); sure {
-			d := 1.0
-			for i := 1; i < cp.n; i++ {
-				d *= col[i]
-			}
-			s.stable = st && efdOK
-			s.f = [3]float64{d, col[cp.n], k.Efd - u.p.Exciter.EfdMin}
+	efdOK := k.efd >= u.p.Exciter.EfdMin
+	if u.p.ZetaMin != 0 {
+		if !efdOK {
 			return s, nil
 		}
+		st, err := u.avrStableTab(c, p, q, v)
+		s.stable = st
+		return s, err
 	}
-	if !efdOK {
+	cp := c.charPoly(&k)
+	st, sure, dn1, a0 := routh(&cp, 0, true)
+	switch {
+	case sure && !math.IsNaN(dn1):
+		s.stable = st && efdOK
+		s.f = [3]float64{dn1, a0, k.efd - u.p.Exciter.EfdMin}
+		return s, nil
+	case sure || !efdOK:
+		return s, nil // unstable (an entry clearly negative, or E_fd0 below its minimum); margins unknown
+	}
+	// What avrStableTab does after the criterion at sigma = 0 is not sure.
+	if st, sure := hurwitz(&cp, ssGrowth); sure {
+		s.stable = st
 		return s, nil
 	}
-	st, err := u.avrStableTab(c, p, q, v)
+	st, err := u.avrStable(p, q, v)
 	s.stable = st
 	return s, err
 }
@@ -1114,10 +1529,10 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	// The scratch is not written back (a slice that outgrows it is
 	// dropped with the call): sc may then live on the caller's stack, as
 	// detectInterval's does.
-	seen := append(sc.seen[:0], a)
+	seen, record := append(sc.seen[:0], a), true
 	test := func(q float64) (tabSample, error) {
 		s, err := u.tabTest(c, p, q, v)
-		if err == nil && s.stable {
+		if err == nil && s.stable && record {
 			seen = append(seen, s)
 			for j := len(seen) - 1; j > 0 && seen[j-1].q < s.q; j-- {
 				seen[j-1], seen[j] = seen[j], seen[j-1]
@@ -1167,7 +1582,7 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	}
 	scan := func(a tabSample) (tabSample, tabSample, bool, error) {
 		for a.q > floor {
-			b, err := test(math.Max(a.q-tabCoarseStep, floor))
+			b, err := test(max(a.q-tabCoarseStep, floor))
 			if err != nil {
 				return a, b, false, err
 			}
@@ -1186,7 +1601,10 @@ func (u *Unit) tabScanDown(c *charParts, sc *tabScratch, p, v float64, a tabSamp
 	}
 	// A margin's dip below zero narrower than the samples shows as a
 	// local minimum of the margin: probe there.
-	sorted := append(sc.sorted[:0], seen...) // probeMinima's tests add to seen
+	// The samples of the scan are all probeMinima looks at: its tests and
+	// narrow's after it are not recorded (the list is read no more).
+	sorted := seen
+	record = false
 	pr, ok, err := probeMinima(test, sorted)
 	if err != nil || !ok || found && pr.q <= un.q {
 		return st, un, found, err
@@ -1277,7 +1695,7 @@ func suspicious(a, m, b *tabSample) bool {
 			fa, fm, fb = -fa, -fm, -fb
 		}
 		r := (fa / fm) * (fb / fm)
-		if !(r >= tabBendLo && r <= tabBendHi) || fm < tabDipLo*math.Min(fa, fb) {
+		if !(r >= tabBendLo && r <= tabBendHi) || fm < tabDipLo*min(fa, fb) {
 			return true // NaN included (an overflow)
 		}
 	}
@@ -1319,8 +1737,8 @@ func (u *Unit) tabBoundary(c *charParts, p, v float64, st, un tabSample) (float6
 				dir = -dir
 			}
 			q += dir * tabTol / 3
-			lo, hi := math.Min(st.q, un.q), math.Max(st.q, un.q)
-			q = math.Max(lo+tabTol/4, math.Min(hi-tabTol/4, q))
+			lo, hi := min(st.q, un.q), max(st.q, un.q)
+			q = max(lo+tabTol/4, min(hi-tabTol/4, q))
 		}
 		s, err := u.tabTest(c, p, q, v)
 		if err != nil {

@@ -131,6 +131,18 @@ func benchAVR(tb testing.TB) *Unit {
 
 func BenchmarkEvaluateTrackingAVR(b *testing.B) { benchmarkTracking(b, benchAVR(b)) }
 
+// BenchmarkEvaluateTrackingAVRMargin is benchAVR with a practical margin
+// of 0.1: the table's q_stability and the practical limit's scan.
+func BenchmarkEvaluateTrackingAVRMargin(b *testing.B) {
+	p := benchAVR(b).Params()
+	p.MarginFraction = 0.1
+	u, err := New(p)
+	if err != nil {
+		b.Fatal(err)
+	}
+	benchmarkTracking(b, u)
+}
+
 // BenchmarkNewAVR is the cost of preparing one avr unit (its table);
 // a 10,000-unit fleet pays it 10,000 times at load.
 func BenchmarkNewAVR(b *testing.B) {

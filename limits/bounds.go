@@ -8,11 +8,12 @@ import "math"
 // on the stability limits. The zero Hint is valid and means "no previous
 // solution". A Hint belongs to one unit and one goroutine at a time; it
 // changes only the work done, never the result beyond the root tolerance.
+// (The practical limit with a margin takes nothing from it: its rule is
+// a scan from q_stability, see practicalLimit.)
 type Hint struct {
-	field, stab, prac float64
-	stabSlope         float64 // d/dq of the stability functions at the last roots
-	pracSlope         float64
-	has               uint8 // bit set of hintField, hintStab, hintPrac, hintCoolant
+	field, stab float64
+	stabSlope   float64 // d/dq of the stability functions at the last roots
+	has         uint8   // bit set of hintField, hintStab, hintCoolant
 
 	// The coolant factors of the last coolant value: coolant quantities
 	// change slowly, so most samples repeat the last value.
@@ -23,7 +24,6 @@ type Hint struct {
 const (
 	hintField = 1 << iota
 	hintStab
-	hintPrac
 	hintCoolant
 )
 
@@ -31,13 +31,10 @@ func (h *Hint) get(bit uint8) (float64, bool) {
 	if h == nil || h.has&bit == 0 {
 		return 0, false
 	}
-	switch bit {
-	case hintField:
+	if bit == hintField {
 		return h.field, true
-	case hintStab:
-		return h.stab, true
 	}
-	return h.prac, true
+	return h.stab, true
 }
 
 func (h *Hint) set(bit uint8, b Bound) {
@@ -49,13 +46,10 @@ func (h *Hint) set(bit uint8, b Bound) {
 		return
 	}
 	h.has |= bit
-	switch bit {
-	case hintField:
+	if bit == hintField {
 		h.field = b.V
-	case hintStab:
+	} else {
 		h.stab = b.V
-	default:
-		h.prac = b.V
 	}
 }
 
@@ -167,26 +161,22 @@ func (u *Unit) endRegionAt(p, v float64) Bound {
 // deferredBounds computes the lower side of the envelope without solving
 // the field limit, which a service needs only when someone reads q_max.
 // The stability limits are searched below the armature circle instead of
-// below q_max; that finds the same roots whenever they lie below q_max,
-// which holds exactly when the field current at q_min is within its
-// rating (i_fd rises with q above -v^2/Xq), checked with one evaluation
-// of the field model instead of a root. Whenever a limit reaches the top
-// of its search, or that check fails, ok is false and the caller solves
-// the full envelope, so the result is always Bounds' own.
+// below q_max; that finds the same roots, and the practical limit's scan
+// (practicalLimit) looks at the same grid points, whenever they lie below
+// q_max, which holds exactly when the field current at the highest of
+// q_min and the scan's last point is within its rating (i_fd rises with q
+// above -v^2/Xq), checked with one evaluation of the field model instead
+// of a root. Whenever a limit reaches the top of its search, or that
+// check fails, ok is false and the caller solves the full envelope, so
+// the result is always Bounds' own.
 func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint, fast bool) (Bounds, bool) {
 	qTop := b.ArmatureUp.V
-	if prac, ok := u.warmPractical(math.Abs(p), v, qTop, h); ok {
-		// The theoretical limit is not needed to place the point: leave
-		// it, like the field limit, to Complete.
-		b.Practical = prac
-	} else {
-		var s stabLimits
-		u.stabilityLimits(math.Abs(p), v, qTop, b.ArmatureDown.V, h, fast, &s)
-		if !s.theo.OK || !s.prac.OK || s.theo.V >= qTop || s.top.OK || s.err != nil {
-			return b, false
-		}
-		b.Stability, b.Practical = s.theo, s.prac
+	var s stabLimits
+	u.stabilityLimits(math.Abs(p), v, qTop, b.ArmatureDown.V, h, fast, &s)
+	if !s.theo.OK || !s.prac.OK || s.theo.V >= qTop || s.top.OK || s.err != nil {
+		return b, false
 	}
+	b.Stability, b.Practical = s.theo, s.prac
 	b.EndRegion = u.endRegionAt(p, v)
 	b.UEL = u.UELAt(p, v)
 	b.lowerBound()
@@ -197,8 +187,15 @@ func (u *Unit) deferredBounds(p, v, ifdMax float64, b Bounds, h *Hint, fast bool
 	// One evaluation settles it: above lo, i_fd(q_min) within the rating
 	// means the field limit exists and lies above q_min (i_fd rises
 	// without bound); below lo, the field limit exists above lo, and so
-	// above q_min, when i_fd(lo) is within the rating.
+	// above q_min, when i_fd(lo) is within the rating. With a margin the
+	// practical scan's last point (s.scanned, at most qTop, the scan's
+	// own top) is checked with q_min: below q_max the scan with q_max as
+	// its top looks at the same points and closes the same bracket
+	// (without one the practical limit is q_stability, below q_min).
 	at := max(qMin, -v*v/u.p.Xq)
+	if u.marginPU > 0 {
+		at = max(at, s.scanned)
+	}
 	if u.field(p, at, v, false).ifd >= ifdMax {
 		return b, false
 	}
@@ -272,9 +269,10 @@ func (u *Unit) fieldLimit(p, v, ifdMax float64, h *Hint) Bound {
 
 // stabLimits are the stability curves at one p and v.
 type stabLimits struct {
-	theo, prac Bound // q_stability and the practical limit
-	top        Bound // when q_max itself is unstable: the top of the topmost stable interval
-	err        error // ErrSmallSignal: the avr basis' eigenvalue solver failed
+	theo, prac Bound   // q_stability and the practical limit
+	top        Bound   // when q_max itself is unstable: the top of the topmost stable interval
+	err        error   // ErrSmallSignal: the avr basis' eigenvalue solver failed
+	scanned    float64 // with a margin: the practical limit is the same for every top at or above this q (see practicalLimit)
 }
 
 // stabilityLimits returns the theoretical and the practical steady-state
@@ -294,16 +292,15 @@ type stabLimits struct {
 // Avr basis: the small-signal rule (avrStable), by the direct scan and
 // bisection, or with fast true from the unit's table (stabTable).
 //
-// Practical limit: the lowest q above the theoretical limit at which the
-// peak of P(delta) at the point's own E_f and V_s exceeds p by the margin
-// m = margin_fraction x rated MW; with m = 0 it is the theoretical limit
-// exactly (on the avr basis the point may lie beyond the peak of the
-// manual power-angle curve, which the regulator holds).
+// Practical limit: the rule of practicalLimit, from the theoretical limit
+// up to the top of the same stable interval; with m = 0 it is the
+// theoretical limit exactly (on the avr basis the point may lie beyond
+// the peak of the manual power-angle curve, which the regulator holds).
 //
 // On a round rotor (Xq = Xd) the manual curves have closed forms, below.
 func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out *stabLimits) {
 	if u.p.Basis == BasisAVR {
-		*out = u.avrLimits(p, v, qTop, qBot, h, fast)
+		u.avrLimits(p, v, qTop, qBot, fast, out)
 		return
 	}
 	if u.roundStab {
@@ -323,7 +320,8 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out
 			theo := some(q)
 			h.stabSlope = slope
 			h.set(hintStab, theo)
-			*out = stabLimits{theo: theo, prac: u.practicalLimit(p, v, q, qTop, h)}
+			*out = stabLimits{theo: theo}
+			out.prac, out.scanned = u.practicalLimit(p, v, q, qTop)
 			return
 		}
 	}
@@ -331,10 +329,9 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out
 		// q_max is unstable: the scan of the rule, from the top.
 		iv := topInterval(func(q float64) (bool, error) { return g(q) > 0, nil }, qTop, qBot, scanStep, scanTol)
 		h.set(hintStab, Bound{})
-		h.set(hintPrac, Bound{})
 		*out = stabLimits{theo: iv.low, top: iv.top}
 		if iv.low.OK {
-			out.prac = u.practicalLimit(p, v, iv.low.V, iv.top.V, nil)
+			out.prac, out.scanned = u.practicalLimit(p, v, iv.low.V, iv.top.V)
 		}
 		return
 	}
@@ -369,8 +366,10 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out
 		}
 		if !ok {
 			// Stable all the way down: no theoretical limit exists, and the
-			// practical one is searched from that depth.
-			lo = qTop - 1e3
+			// practical one is looked for from the floor of the rule's
+			// downward scan (scanFloor below the armature lower bound, as
+			// topInterval reports it), not from that depth.
+			lo = math.Min(qBot-scanFloor, qTop)
 		}
 	}
 	if ok {
@@ -379,110 +378,155 @@ func (u *Unit) stabilityLimits(p, v, qTop, qBot float64, h *Hint, fast bool, out
 		lo = q
 	}
 	h.set(hintStab, theo)
-	*out = stabLimits{theo: theo, prac: u.practicalLimit(p, v, lo, qTop, h)}
+	*out = stabLimits{theo: theo}
+	out.prac, out.scanned = u.practicalLimit(p, v, lo, qTop)
 }
 
 // avrLimits is stabilityLimits on the avr basis.
-func (u *Unit) avrLimits(p, v, qTop, qBot float64, h *Hint, fast bool) stabLimits {
+func (u *Unit) avrLimits(p, v, qTop, qBot float64, fast bool, res *stabLimits) {
 	var iv interval
 	if fast && u.avrTab != nil {
 		iv = u.fastInterval(p, v, qTop, qBot)
 	} else {
 		iv = u.avrInterval(p, v, qTop, qBot)
 	}
-	res := stabLimits{theo: iv.low, top: iv.top, err: iv.err}
+	*res = stabLimits{theo: iv.low, top: iv.top, err: iv.err}
 	if !iv.low.OK {
-		return res
+		return
 	}
 	if u.marginPU == 0 {
 		res.prac = iv.low
-		return res
+		return
 	}
 	if iv.top.OK {
 		qTop = iv.top.V
 	}
-	res.prac = u.practicalLimit(p, v, iv.low.V, qTop, h)
-	return res
+	res.prac, res.scanned = u.practicalLimit(p, v, iv.low.V, qTop)
 }
 
-// peakExcess returns the function whose root in q is the practical
-// stability limit at active power p >= 0 and voltage v: the peak of
-// P(delta) at the point's own E_f and V_s, less p and the margin m.
-func (u *Unit) peakExcess(p, v float64) func(q float64) float64 {
-	pm := p + u.marginPU
-	return func(q float64) float64 {
-		s := u.stab(p, q, v)
-		if s.degen {
-			return -pm
-		}
-		return peakPower(s.a, s.b) - pm
+// peakExcess is the function whose sign the practical limit's rule
+// tests, at active power p >= 0 and voltage v (newPeakExcess): at, the
+// peak of P(delta) at the point's own E_f and V_s, less p and the margin
+// m (pu). It is stab's a and b without the angle (see stab for the
+// equations): with I_d the d-axis current, |E_Q| I_d = Re(I) Im(E_Q) -
+// Im(I) Re(E_Q), so E_f = |E_Q| + (Xd - Xq) I_d needs no unit vector, and
+// the terms that do not depend on q are formed once. (A value with a
+// method rather than a closure, so that it stays on the stack.)
+type peakExcess struct {
+	v, xd, xq, xe, invXdS, kb, pm, iR, eqI, vsI float64
+}
+
+func (u *Unit) newPeakExcess(p, v float64) peakExcess {
+	xd, xq, xe := u.p.Xd, u.p.Xq, u.p.Xe
+	invXdS := 1 / (xd + xe)
+	iR := p / v
+	return peakExcess{v: v, xd: xd, xq: xq, xe: xe, invXdS: invXdS, kb: 0.5 * (1/(xq+xe) - invXdS),
+		pm: p + u.marginPU, iR: iR, eqI: xq * iR, vsI: -xe * iR}
+}
+
+func (e *peakExcess) at(q float64) float64 {
+	iI := -q / e.v
+	eqR, vsR := e.v-e.xq*iI, e.v+e.xe*iI
+	n := math.Sqrt(eqR*eqR + e.eqI*e.eqI)
+	vs := math.Sqrt(vsR*vsR + e.vsI*e.vsI)
+	if n == 0 || vs == 0 {
+		return -e.pm
 	}
+	ef := n + (e.xd-e.xq)*(e.iR*e.eqI-iI*eqR)/n
+	return peakPower(ef*vs*e.invXdS, e.kb*vs*vs) - e.pm
 }
 
-// practicalLimit returns the lowest q in [qs, qTop] at which the peak of
-// P(delta) at the point's own E_f and V_s is at least p + m.
+// practicalLimit applies the rule of the practical margin (envelope.md,
+// "Practical margin") at active power p >= 0 and voltage v on the stable
+// interval [qs, qTop] (qs = q_stability, qTop the interval's top): with
+//
+//	hf(q) = P_max(E_f(q), V_s(q)) - p - m,  m = margin_fraction x rated MW (pu),
+//
+// P_max the peak of P(delta) over delta in [0, pi] (peakExcess), the limit
+// is qs when hf(qs) >= 0; else the scan looks at q_k = qs + k scanStep
+// (k = 1, 2, ...; qTop in place of the first q_k at or above it) for the
+// first q_k with hf(q_k) >= 0 and closes the bracket [q_(k-1), q_k] by
+// Brent's method (a safeguarded bisection, to stabTol); no such q_k: the
+// limit is absent (infeasible). The answer is a function of (p, v, qs,
+// qTop) alone, on both bases and both paths; scanned is the highest q
+// the rule looked at (the q_k that met it, qTop, or qs).
+//
+// A search for "a root of hf above qs" is not the rule: hf can cross zero
+// more than once above qs. It is not monotone even on a round rotor on the
+// manual basis (there hf = p/sin(delta) - p - m, and delta falls and
+// rises again along the stable interval, see roundPractical), and on the
+// avr basis q_stability may lie below the manual limit, where hf is
+// V-shaped with its minimum -m at the manual limit (delta = 90 degrees on
+// a round rotor) and positive far below it. Brent on [qs, qTop], or a warm
+// secant from the previous sample's root, converged to whichever root was
+// near, and the answer depended on the path and the hint history. No
+// warm start is taken: one would have to check every grid point below its
+// root, which is the scan itself.
 //
 // With no margin (m = 0, the default) it is qs itself: P_max - p touches
 // zero there without crossing it (P_max >= P(delta) = p at every stable
 // and unstable equilibrium alike), a double root no search finds to
-// better than the square root of its tolerance, which made the warm and
-// cold paths disagree by 1e-7 pu on weak grids.
-func (u *Unit) practicalLimit(p, v, qs, qTop float64, h *Hint) Bound {
+// better than the square root of its tolerance.
+func (u *Unit) practicalLimit(p, v, qs, qTop float64) (prac Bound, scanned float64) {
 	if u.marginPU == 0 {
-		h.set(hintPrac, some(qs))
 		// With m = 0 the practical limit is q_stability exactly
 		// (envelope.md, "Practical margin"), on both bases.
-		return some(qs)
+		return some(qs), qs
 	}
-	hf := u.peakExcess(p, v)
-	if hint, ok := h.get(hintPrac); ok && hint > qs {
-		if q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop); ok && q > qs {
-			h.pracSlope = slope
-			h.set(hintPrac, some(q))
-			return some(q)
-		}
-	}
-	hLo := hf(qs)
-	if hLo >= 0 {
-		h.set(hintPrac, some(qs))
-		return some(qs)
-	}
-	hTop := hf(qTop)
-	if hTop < 0 {
-		h.set(hintPrac, Bound{})
-		return Bound{}
-	}
-	q, _ := brent(hf, qs, qTop, hLo, hTop, stabTol)
-	h.set(hintPrac, some(q))
-	return some(q)
+	e := u.newPeakExcess(p, v)
+	return scanRule(e.at, qs, qTop)
 }
 
-// warmPractical finds the practical stability limit of a salient-pole
-// unit from the previous sample's alone, without the theoretical limit
-// below it: the warm secant root of P_max - p - m, accepted when the point
-// there is stable (K_s > 0 and E_f > 0), which puts it above the
-// theoretical limit. A round rotor has both in closed form and gains
-// nothing from this.
-func (u *Unit) warmPractical(p, v, qTop float64, h *Hint) (Bound, bool) {
-	hint, ok := h.get(hintPrac)
-	if u.roundStab || u.p.Basis == BasisAVR || u.marginPU == 0 || !ok {
-		return Bound{}, false
+// scanRule is the scan and bisection of practicalLimit on hf over
+// [qs, qTop]. An interval longer than maxScan steps (or not finite) is
+// no operating chart (nonsense input such as an infinite voltage): the
+// limit is absent rather than scanned without end.
+func scanRule(hf func(float64) float64, qs, qTop float64) (Bound, float64) {
+	lo, fLo := qs, hf(qs)
+	if fLo >= 0 {
+		return some(qs), qs
 	}
-	if s := u.stab(p, qTop, v); s.degen || !(s.ks > 0 && s.ef > 0) {
-		// q_max itself is unstable: the topmost stable interval lies below it.
-		return Bound{}, false
+	if !((qTop-qs)/scanStep <= maxScan) {
+		return Bound{}, qTop
 	}
-	hf := u.peakExcess(p, v)
-	q, slope, ok := warmRoot(hf, hint, h.pracSlope, qTop)
-	if !ok {
-		return Bound{}, false
+	for k := 1; lo < qTop; k++ {
+		q := qs + float64(k)*scanStep
+		if q >= qTop {
+			q = qTop
+		}
+		f := hf(q)
+		if f >= 0 {
+			r, _ := brent(hf, lo, q, fLo, f, stabTol)
+			return some(r), q
+		}
+		lo, fLo = q, f
 	}
-	if s := u.stab(p, q, v); s.degen || !(s.ks > 0 && s.ef > 0) {
-		return Bound{}, false
+	return Bound{}, math.Max(qs, qTop)
+}
+
+// maxScan bounds the practical limit's scan: 10,000 steps of scanStep,
+// 200 pu of reactive power, a hundred times any machine's chart.
+const maxScan = 10_000
+
+// PracticalLimit is the practical stability limit by the rule of the
+// practical margin (envelope.md, "Practical margin"; see practicalLimit)
+// at active power p and voltage v (pu), from a given q_stability qs up to
+// the top qTop of its stable interval. Bounds and Evaluate apply it to
+// their own q_stability and top (Stability and QMax), so
+// PracticalLimit(p, v, b.Stability.V, b.QMax.V) is b.Practical on every
+// path, to the root tolerance; it lets a check tell which q_stability a
+// practical limit belongs to (the rule jumps where a root of
+// P_max - p - m passes through q_stability).
+func (u *Unit) PracticalLimit(p, v, qs, qTop float64) Bound {
+	p = math.Abs(p)
+	if u.roundStab && u.p.Basis != BasisAVR {
+		x, xe := u.p.Xd, u.p.Xe
+		v2 := v * v
+		prac, _ := u.roundPractical(p, v2, x*xe, -v2*(x-xe), x*xe*p*p-v2*v2, qs, qTop)
+		return prac
 	}
-	h.pracSlope = slope
-	h.set(hintPrac, some(q))
-	return some(q), true
+	prac, _ := u.practicalLimit(p, v, qs, qTop)
+	return prac
 }
 
 // perpendicular returns the q at which E_Q = V + jXq I and V_s = V - jXe I
@@ -522,10 +566,7 @@ func (u *Unit) perpendicular(p, v float64) (float64, bool) {
 // point is stable where Re > 0 (delta below 90 degrees): between the two
 // roots of the quadratic (see perpendicular), the theoretical limit the
 // lower one; when the upper root lies below qTop, q_max moves down to it
-// (the topmost stable interval). The practical margin P_max - p = m
-// holds where sin(delta) = p/(p + m), that is Re = (X + Xe) sqrt(m^2 + 2pm):
-// the same quadratic with its constant term raised by
-// v^2 (X + Xe) sqrt(m^2 + 2pm), lower root.
+// (the topmost stable interval). The practical limit is roundPractical.
 func (u *Unit) roundStability(p, v, qTop, qBot float64, res *stabLimits) {
 	*res = stabLimits{}
 	x, xe := u.p.Xd, u.p.Xe
@@ -552,11 +593,83 @@ func (u *Unit) roundStability(p, v, qTop, qBot float64, res *stabLimits) {
 		}
 	}
 	res.theo = some(qs)
+	res.prac, res.scanned = u.roundPractical(p, v2, a, b, c, qs, qTop)
+}
+
+// roundPractical is the rule of practicalLimit in closed form for a
+// round rotor on the manual basis, with a, b, c the coefficients of
+// roundStability's quadratic at p >= 0 and v2 = v^2, on the stable
+// interval [qs, qTop] between its roots. With b = 0 in P(delta),
+// P_max = E_f V_s/(X + Xe) and p = P_max sin(delta), so
+//
+//	hf = P_max - p - m = p/sin(delta) - p - m >= 0  <=>  sin(delta) <= p/(p + m),
+//
+// and, delta lying below 90 degrees on the stable interval (Re > 0, with
+// Im = p (X + Xe) fixed), that is Re >= (X + Xe) sqrt(m^2 + 2pm): the same
+// concave quadratic with its constant term raised by
+// v^2 (X + Xe) sqrt(m^2 + 2pm), between its roots r1 <= r2 (r2 = +inf
+// when Xe = 0 makes it linear). hf is not monotone (it rises from -m at
+// qs to the vertex of Re and falls back to -m at its upper root), but it
+// is >= 0 exactly on [r1, r2]: the rule's first grid point that meets it
+// is the first q_k at or above r1 when that q_k (or qTop in its place)
+// is still <= r2, and the bracket below it holds r1 alone, so the answer
+// is r1. A region [r1, r2] that falls between two grid points (narrower
+// than scanStep, near the p at which the margin can no longer be met) is
+// skipped by the scan, and so by this too: infeasible. scanned is
+// practicalLimit's: the answer is the same for any top at or above it.
+func (u *Unit) roundPractical(p, v2, a, b, c, qs, qTop float64) (prac Bound, scanned float64) {
 	m := u.marginPU
-	rr := (x + xe) * math.Sqrt(m*m+2*p*m)
-	qp, ok := quadLower(a, b, c+v2*rr)
-	if !ok || qp > qTop {
-		return
+	if m == 0 {
+		return some(qs), qs
 	}
-	res.prac = some(math.Max(qp, qs))
+	x, xe := u.p.Xd, u.p.Xe
+	c += v2 * (x + xe) * math.Sqrt(m*m+2*p*m)
+	// r1 and the band's width w = r2 - r1, the roots written to avoid
+	// cancellation as in quadLower (which would take the square root again).
+	var r1, w float64
+	if a == 0 {
+		if b == 0 {
+			return Bound{}, qTop
+		}
+		r1, w = -c/b, math.Inf(1)
+	} else {
+		disc := b*b - 4*a*c
+		if disc < 0 {
+			return Bound{}, qTop
+		}
+		sq := math.Sqrt(disc)
+		switch {
+		case b > 0:
+			r1 = (-b - sq) / (2 * a)
+		case sq != b:
+			r1 = 2 * c / (sq - b)
+		}
+		w = sq / a
+	}
+	if r1 > qTop {
+		return Bound{}, qTop
+	}
+	if r1 <= qs {
+		// At q_stability hf = -m < 0, so r1 > qs but for rounding (or for
+		// a qs given to PracticalLimit off the limit): the rule's first
+		// point, qs, decides.
+		if qs <= r1+w {
+			return some(qs), qs
+		}
+		return Bound{}, qTop
+	}
+	if w >= scanStep {
+		// The first of the scan's points at or above r1, or qTop in its
+		// place, lies in the band, whatever the top above r1.
+		return some(r1), r1
+	}
+	// A band narrower than the step: is one of the scan's points in it?
+	q := qs + math.Ceil((r1-qs)/scanStep)*scanStep
+	if q > qTop {
+		q = qTop
+	}
+	if q > r1+w {
+		return Bound{}, qTop
+	}
+	return some(r1), q
 }

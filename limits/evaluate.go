@@ -34,8 +34,8 @@ func (u *Unit) Evaluate(pt Point, h *Hint) Result {
 // margins, binding limit, feasibility, lower bound and practical
 // stability limit are Evaluate's; but where nothing else depends on
 // them, it leaves the field-limit curve (and so q_max, its limit and the
-// binding limit) and the theoretical stability limit unsolved and sets QMaxPending. Complete solves them when someone reads them, which is far
-// less often than samples arrive.
+// binding limit) unsolved and sets QMaxPending. Complete solves them
+// when someone reads them, which is far less often than samples arrive.
 func (u *Unit) EvaluateSample(pt Point, h *Hint) Result {
 	return u.evaluate(pt, h, false, h != nil && u.avrTab != nil)
 }
@@ -58,18 +58,6 @@ func (u *Unit) Complete(r *Result, pt Point) {
 	}
 	r.Field = u.fieldLimit(pt.P, pt.V, r.IfdMax, nil)
 	r.upperBound()
-	if !r.Stability.OK && r.QMax.OK {
-		// Left by the warm practical limit; the practical limit is solved
-		// again with it, to the same root.
-		var s stabLimits
-		u.stabilityLimits(math.Abs(pt.P), pt.V, r.QMax.V, r.ArmatureDown.V, nil, false, &s)
-		if s.top.OK || s.err != nil {
-			// q_max itself is unstable: the whole envelope changes.
-			*r = u.evaluate(pt, nil, true, false)
-			return
-		}
-		r.setStability(s)
-	}
 	r.QMaxPending = false
 	u.bind(r, pt)
 }

@@ -179,10 +179,8 @@ func walk(n int, pMax float64, seed uint64) []Point {
 
 // hintUnits are the property units and weak-grid units (Xe up to 0.8 pu
 // on the machine base, where the stability limit lies high and close to
-// q_max), round and salient, with the default practical margin 0. (With a
-// margin of 10 % on a weak grid, P_max - p is not monotone in q at low
-// voltage and the cold search misses the first crossing the warm one
-// finds: the spec's upward scan in the practical-limit search settles it.)
+// q_max), round and salient, with the default practical margin 0 (weak
+// grids with a margin: TestHintDoesNotChangePractical).
 func hintUnits(t testing.TB) []*Unit {
 	us := propUnits(t)
 	for _, xe := range []float64{0.5, 0.8} {

@@ -98,7 +98,7 @@ type Bounds struct {
 	ArmatureDown Bound // -sqrt((v i_max)^2 - p^2)
 	Field        Bound // q at which the field current reaches its limit
 	Stability    Bound // q_stability, the steady-state stability limit on the unit's basis
-	Practical    Bound // practical stability limit (with the margin; = Stability when the margin is 0)
+	Practical    Bound // practical stability limit: the lowest q of the stable interval, scanned up from Stability, where P_max - p >= the margin (PracticalLimit); = Stability when the margin is 0
 
 	// StabilityTop is set where q_max itself is unstable: the top of the
 	// topmost stable interval, to which q_max moves (QMaxLimit stability).

@@ -112,6 +112,62 @@ func (u *Unit) heffronPhillips(p, q, v float64, withDelta bool) HeffronPhillips 
 	return k
 }
 
+// hpCore is what the stability tests take from HeffronPhillips: the
+// constants of the characteristic polynomial other than K3 (a constant
+// of the unit) and E_fd0.
+type hpCore struct {
+	k1, k2, k4, k5, k6, efd float64
+	degener                 bool
+}
+
+// core returns the part of k the stability tests use.
+func (k *HeffronPhillips) core() hpCore {
+	return hpCore{k1: k.K1, k2: k.K2, k4: k.K4, k5: k.K5, k6: k.K6, efd: k.Efd, degener: k.Degener}
+}
+
+// hpConsts are the reactance terms of HeffronPhillips that depend on the
+// unit alone, formed once per unit for hpCore.
+type hpConsts struct {
+	xd, xq, x1, xe float64
+	rq, r1         float64 // 1/(Xq + Xe), 1/(X'd + Xe)
+	k4, a5, b5, k6 float64 // (Xd - X'd)/(X'd + Xe), Xq/(Xq + Xe), X'd/(X'd + Xe), Xe/(X'd + Xe)
+}
+
+func (u *Unit) hpConsts() hpConsts {
+	xd, xq, x1, xe := u.p.Xd, u.p.Xq, u.p.XdTransient, u.p.Xe
+	rq, r1 := 1/(xq+xe), 1/(x1+xe)
+	return hpConsts{xd: xd, xq: xq, x1: x1, xe: xe, rq: rq, r1: r1, k4: (xd - x1) * r1, a5: xq * rq, b5: x1 * r1, k6: xe * r1}
+}
+
+// hpCore is HeffronPhillips reduced to what the stability tests need
+// (the same formulas; a test costs one of these). With E_B e^(j delta) =
+// e^(j theta) conj(V_s), E_B cos(d) and E_B sin(d) come from E_Q and V_s
+// without |V_s|: one square root and one division.
+func (h *hpConsts) core(p, q, v float64) hpCore {
+	invV := 1 / v
+	iR, iI := p*invV, -q*invV
+	eqR, eqI := v-h.xq*iI, h.xq*iR  // E_Q = V + jXq I
+	vsR, vsI := v+h.xe*iI, -h.xe*iR // V_s = V - jXe I
+	n2 := eqR*eqR + eqI*eqI
+	if n2 == 0 || vsR*vsR+vsI*vsI == 0 {
+		return hpCore{degener: true}
+	}
+	invN := 1 / math.Sqrt(n2)
+	c, s := eqR*invN, eqI*invN // e^(j theta)
+	eq, ed := v*c, v*s
+	iq, id := iR*c+iI*s, -(iI*c - iR*s)
+	ebC, ebS := c*vsR+s*vsI, s*vsR-c*vsI // E_B cos(d), E_B sin(d)
+	var k hpCore
+	k.efd = eq + h.xd*id
+	// E'q0 + (Xq - X'd) i_d0 = e_q0 + Xq i_d0.
+	k.k1 = ebC*(eq+h.xq*id)*h.rq + (h.xq-h.x1)*iq*ebS*h.r1
+	k.k2 = ebS * h.r1
+	k.k4 = h.k4 * ebS
+	k.k5 = (ed*h.a5*ebC - eq*h.b5*ebS) * invV
+	k.k6 = eq * invV * h.k6
+	return k
+}
+
 // ssMatrix is the state matrix of the linearized model, row-major in the
 // first n*n entries. States, in order: dw (pu speed), dd (rad), dE'q (pu),
 // dVm (pu, only when T_R > 0), dEfd (pu), and with a stabilizer its

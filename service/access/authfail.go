@@ -68,6 +68,10 @@ func ClassifyTLSText(msg string) (reason, claimed string) {
 	return ReasonHandshake, ""
 }
 
+// CertName is the name a certificate claims (its first CertNames),
+// sanitized; "" for none.
+func CertName(c *x509.Certificate) string { return certName(c) }
+
 func certName(c *x509.Certificate) string {
 	if c == nil {
 		return ""

@@ -96,13 +96,27 @@ func (g *Guard) allow(ctx context.Context, c *Caller, method string, req any) er
 		ok = c.rights.all
 	}
 	if ok {
+		if chk == checkUnit && unit != "" && !c.rights.all && g.fleetKnown {
+			if _, exists := g.opts.SiteOf(unit); !exists {
+				// A unit not in the fleet gets the answer of a unit
+				// outside the scope (below), before the handler reads
+				// anything else of the request: the two cannot be told
+				// apart by what else a request has wrong.
+				if role == Operator {
+					g.recordAction(ctx, c, actionName(req, method), clip(unit), status.Error(codes.NotFound, "not in the fleet"))
+				}
+				return UnknownUnit(c, unit, g.opts.UnitIDs())
+			}
+		}
 		return nil
 	}
 	reason := DenyReason(c)
 	g.Deny(ctx, c, "grpc "+method, clip(unit), reason)
-	if chk == checkUnit && role == Viewer && unit != "" && c.Has(Viewer) {
-		// A unit outside a viewer's scope is answered as one that does
-		// not exist: its existence is not revealed.
+	if chk == checkUnit && unit != "" && c.Has(Viewer) && !c.May(Viewer, unit) {
+		// A unit outside the caller's view, read or acted on, is
+		// answered as one that does not exist: its existence is not
+		// revealed. (One the caller may view but not act on is
+		// answered PERMISSION_DENIED: it knows the unit exists.)
 		return UnknownUnit(c, unit, g.opts.UnitIDs())
 	}
 	if reason == ReasonUnauthenticated {
@@ -128,27 +142,23 @@ func (g *Guard) UnaryInterceptor(ctx context.Context, req any, info *grpc.UnaryS
 	case *pb.AcknowledgeAlarmRequest:
 		r.Operator = operatorName(c, r.Operator)
 		resp, err := handler(ctx, req)
-		g.recordAction(ctx, c, "grpc acknowledge", r.UnitId+"/"+clip(r.Limit), err)
+		g.recordAction(ctx, c, actionName(req, info.FullMethod), r.UnitId+"/"+clip(r.Limit), err)
 		return resp, err
 	case *pb.ShelveAlarmRequest:
 		r.Operator = operatorName(c, r.Operator)
 		r.Reason = Sanitize(r.Reason, 200)
-		action := "grpc shelve"
-		if r.Duration.AsDuration() == 0 {
-			action = "grpc unshelve"
-		}
 		resp, err := handler(ctx, req)
-		g.recordAction(ctx, c, action, r.UnitId+"/"+clip(r.Limit), err)
+		g.recordAction(ctx, c, actionName(req, info.FullMethod), r.UnitId+"/"+clip(r.Limit), err)
 		return resp, err
 	case *pb.ResetThermalRequest:
 		r.Operator, r.Reason = operatorName(c, r.Operator), Sanitize(r.Reason, 200)
 		resp, err := handler(ctx, req)
-		g.recordAction(ctx, c, "grpc reset thermal", clip(r.UnitId), err)
+		g.recordAction(ctx, c, actionName(req, info.FullMethod), clip(r.UnitId), err)
 		return resp, err
 	case *pb.DiscardSampleRequest:
 		r.Operator, r.Reason = operatorName(c, r.Operator), Sanitize(r.Reason, 200)
 		resp, err := handler(ctx, req)
-		g.recordAction(ctx, c, "grpc discard sample", clip(r.UnitId), err)
+		g.recordAction(ctx, c, actionName(req, info.FullMethod), clip(r.UnitId), err)
 		return resp, err
 	}
 	resp, err := handler(ctx, req)
@@ -210,6 +220,24 @@ func visible[T any](c *Caller, items []T, unit func(T) string) []T {
 		}
 	}
 	return kept
+}
+
+// actionName is the audit's name of an operator action.
+func actionName(req any, method string) string {
+	switch r := req.(type) {
+	case *pb.AcknowledgeAlarmRequest:
+		return "grpc acknowledge"
+	case *pb.ShelveAlarmRequest:
+		if r.Duration.AsDuration() == 0 {
+			return "grpc unshelve"
+		}
+		return "grpc shelve"
+	case *pb.ResetThermalRequest:
+		return "grpc reset thermal"
+	case *pb.DiscardSampleRequest:
+		return "grpc discard sample"
+	}
+	return "grpc " + method
 }
 
 func (g *Guard) recordAction(ctx context.Context, c *Caller, action, target string, err error) {

@@ -109,6 +109,9 @@ type Guard struct {
 	denied  *prometheus.CounterVec
 	auditor Auditor
 	gate    gate // bounds the audit of repeated failures (authfail.go)
+	// fleetKnown: Options.SiteOf was given, so that a unit it does not
+	// know is not in the fleet.
+	fleetKnown bool
 }
 
 // NewGuard reads the access file, if any; it fails when the file has
@@ -120,13 +123,14 @@ func NewGuard(o Options) (*Guard, error) {
 	if o.Now == nil {
 		o.Now = time.Now
 	}
-	if o.SiteOf == nil {
+	fleetKnown := o.SiteOf != nil
+	if !fleetKnown {
 		o.SiteOf = func(string) (string, bool) { return "", false }
 	}
 	if o.UnitIDs == nil {
 		o.UnitIDs = func() []string { return nil }
 	}
-	g := &Guard{opts: o, auditor: o.Auditor}
+	g := &Guard{opts: o, auditor: o.Auditor, fleetKnown: fleetKnown}
 	if g.auditor == nil {
 		g.auditor = LogAuditor{Log: o.Logger}
 	}

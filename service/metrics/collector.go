@@ -30,6 +30,7 @@ type family struct {
 	desc    *prometheus.Desc
 	index   int  // in Collector.families
 	perUnit bool // its first labels are unit and site
+	text    familyText
 }
 
 // sink receives the series of one scrape.
@@ -77,8 +78,8 @@ type Collector struct {
 
 	rotor rotorModes // rotormode.go
 
-	sizeMu sync.Mutex
-	sizes  []int // each family's series at the last whole scrape (text.go)
+	chunk int // text handed to the writer at a time (chunkSize; less in tests)
+	runs  int // parallel runs of a scrape's walk (0: by the fleet's size and the cores; set in tests)
 }
 
 // NewCollector returns a collector over store. now is the clock for
@@ -87,7 +88,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 	if now == nil {
 		now = time.Now
 	}
-	c := &Collector{store: store, now: now}
+	c := &Collector{store: store, now: now, chunk: chunkSize}
 	mk := func(name, help string, counter bool, labels ...string) *family {
 		if len(labels) > maxLabels {
 			panic("metrics: more than maxLabels labels") // a programming error, met at start
@@ -98,6 +99,7 @@ func NewCollector(store *ingest.Store, now func() time.Time) *Collector {
 			panic("metrics: a family with more labels than a record holds") // a programming error, met at start
 		}
 		f.desc = prometheus.NewDesc(f.name, help, labels, nil)
+		f.text = newFamilyText(f)
 		c.families = append(c.families, f)
 		return f
 	}
@@ -155,7 +157,7 @@ func (ch constSink) add(f *family, v float64, l labels) {
 }
 
 // Collect builds the metrics from the store as it is now.
-func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(constSink(ch), Filter{}) }
+func (c *Collector) Collect(ch chan<- prometheus.Metric) { c.series(Filter{}, constSink(ch)) }
 
 // Filter chooses what one scrape serves: the fleet-wide families
 // (samples by result, alarm transitions, the number of units) and the
@@ -200,8 +202,13 @@ func (f *Filter) keeps(id, site string) bool {
 	return true
 }
 
-// series walks the store once and hands every series f serves to out.
-func (c *Collector) series(out sink, f Filter) {
+// series walks the store once and hands every series f serves to
+// outs[0], but for the units' series, which go to outs in runs: the
+// units cut into len(outs) runs in order, each walked on a goroutine of
+// its own (the first on the caller's), so that a sink gets them in the
+// store's order.
+func (c *Collector) series(f Filter, outs ...sink) {
+	out := outs[0]
 	c.fleetSeries(out, f)
 	units := c.store.Units()
 	inScope := len(units) // the units the caller may see
@@ -221,15 +228,28 @@ func (c *Collector) series(out sink, f Filter) {
 	}
 	now := c.now()
 	nowNS := now.UnixNano()
-	for _, u := range units {
-		if !f.whole() {
-			cfg := u.Config()
-			if f.Keep != nil && !f.Keep(cfg.ID) || !f.keeps(cfg.ID, cfg.Site) {
-				continue
+	walk := func(out sink, units []*ingest.Unit) {
+		for _, u := range units {
+			if !f.whole() {
+				cfg := u.Config()
+				if f.Keep != nil && !f.Keep(cfg.ID) || !f.keeps(cfg.ID, cfg.Site) {
+					continue
+				}
 			}
+			c.unitSeries(out, u, now, nowNS)
 		}
-		c.unitSeries(out, u, now, nowNS)
 	}
+	n := len(outs)
+	var wg sync.WaitGroup
+	for i := 1; i < n; i++ {
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			walk(outs[i], units[i*len(units)/n:(i+1)*len(units)/n])
+		}()
+	}
+	walk(out, units[:len(units)/n])
+	wg.Wait()
 	if f.whole() {
 		c.rotor.endWhole()
 	}

@@ -26,10 +26,13 @@ type Reading struct {
 
 // Point converts a reading to the engine's per unit on unit u's base. A
 // coolant value is dropped for a unit without a coolant table.
-func Point(u *fleet.Unit, r Reading) limits.Point {
-	b := u.Base
+func Point(u *fleet.Unit, r Reading) limits.Point { return PointOn(u.Base, u.Coolant != nil, r) }
+
+// PointOn is Point for a unit of base b, with a coolant table or not
+// (the per-sample path keeps both beside its hot state).
+func PointOn(b limits.Base, coolantTable bool, r Reading) limits.Point {
 	pt := limits.Point{P: b.PowerPU(r.PMW), Q: b.PowerPU(r.QMvar), V: b.VoltagePU(r.VKV),
-		Ifd: b.FieldPU(r.FieldA), IfdMeasured: r.HasFieldA, Coolant: r.Coolant, HasCoolant: r.HasCoolant && u.Coolant != nil}
+		Ifd: b.FieldPU(r.FieldA), IfdMeasured: r.HasFieldA, Coolant: r.Coolant, HasCoolant: r.HasCoolant && coolantTable}
 	if r.HasFrequency {
 		pt.F = b.FrequencyPU(r.FrequencyHz)
 	}

@@ -13,9 +13,12 @@ import (
 )
 
 // Codec is the gRPC codec of the service: the telemetry requests
-// (PushRequest) are decoded by the code vtprotobuf generates (no
-// reflection), into the message given, whose samples a stream reuses
-// from one batch to the next (see Stream); every other message goes
+// (PushRequest) are decoded into the message given, whose samples a
+// stream reuses from one batch to the next (see Stream), by decodePush
+// (the fields of this schema, reusing each sample's time, optional
+// values and unit id: no allocation per sample) or, for anything else
+// (unknown fields, malformed bytes), by the code vtprotobuf generates
+// (no reflection either); every other message goes
 // through gRPC's protobuf codec. The wire format is protobuf either way
 // (content subtype "proto"), so clients see no difference.
 //
@@ -41,15 +44,26 @@ func (c Codec) Marshal(v any) (mem.BufferSlice, error) { return c.std.Marshal(v)
 
 // Unmarshal decodes data into v, replacing what v held.
 func (c Codec) Unmarshal(data mem.BufferSlice, v any) error {
-	req, ok := v.(*pb.PushRequest)
-	if !ok {
+	var req *pb.PushRequest
+	var ids *StreamIDs
+	switch m := v.(type) {
+	case *pb.PushRequest:
+		req = m
+	case *StreamBatch:
+		req, ids = m.PushRequest, m.IDs
+	default:
 		return c.std.Unmarshal(data, v)
 	}
 	buf := data.MaterializeToBuffer(mem.DefaultBufferPool())
 	defer buf.Free()
-	req.ResetVT() // keeps the samples for reuse
-	if err := req.UnmarshalVT(buf.ReadOnlyData()); err != nil {
-		return err
+	if b := buf.ReadOnlyData(); !decodePush(b, req, ids) {
+		// Unknown fields or malformed: the generated decoder decides,
+		// into samples all reset (it merges into those it reuses).
+		req.Samples = req.Samples[:cap(req.Samples)]
+		req.ResetVT() // keeps the samples for reuse
+		if err := req.UnmarshalVT(b); err != nil {
+			return err
+		}
 	}
 	for i, s := range req.Samples {
 		if !utf8.ValidString(s.UnitId) {

@@ -101,6 +101,9 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 	// Receive on a goroutine of its own so that a drain can end the
 	// stream while the client is idle; it ends when the stream does.
 	go func() {
+		// The stream's unit ids, so that a sample's id is not a new
+		// string every time (the fleet's size bounds them).
+		batch := StreamBatch{IDs: NewStreamIDs(max(len(t.store.Units()), 1))}
 		for {
 			var req *pb.PushRequest
 			select {
@@ -108,7 +111,8 @@ func (t *Telemetry) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushRe
 			default:
 				req = new(pb.PushRequest)
 			}
-			if err := st.RecvMsg(req); err != nil {
+			batch.PushRequest = req
+			if err := st.RecvMsg(&batch); err != nil {
 				errc <- err
 				return
 			}
@@ -177,12 +181,12 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest, units *ingest
 	caller := access.FromContext(ctx) // nil: no access control
 	for i, s := range req.Samples {
 		var smp ingest.Sample // stays on the stack: Accept is called directly
-		res, detail := t.convert(caller, s, &smp)
+		res, detail, denied := t.convert(caller, s, &smp)
 		if res == ingest.Accepted {
 			res, detail = t.store.AcceptFrom(units, now, &smp)
 		}
 		tally[res]++
-		d.note(res, s.UnitId)
+		d.note(denied, s.UnitId)
 		answer(resp, i, res, detail)
 	}
 	t.store.Commit(&tally)
@@ -190,14 +194,15 @@ func (t *Telemetry) push(ctx context.Context, req *pb.PushRequest, units *ingest
 	return resp, nil
 }
 
-// denials counts the samples of one batch refused for want of rights.
+// denials counts the samples of one batch refused for want of rights,
+// whether answered permission_denied or as an unknown unit.
 type denials struct {
 	n    int
 	unit string // the first
 }
 
-func (d *denials) note(res ingest.Result, unitID string) {
-	if res == ingest.RejectPermissionDenied {
+func (d *denials) note(denied bool, unitID string) {
+	if denied {
 		if d.n++; d.n == 1 {
 			d.unit = unitID
 		}
@@ -226,22 +231,30 @@ func (t *Telemetry) checkSize(req *pb.PushRequest) error {
 	return nil
 }
 
-// convert converts s into smp, or returns the reason it cannot be. A
-// caller (nil: no access control) that may not push for the unit is
-// refused first, so that a writer learns nothing of units it may not
-// push for. It takes no checking function: called through a function
-// value or an interface, the sample would move to the heap, one
-// allocation a sample.
-func (t *Telemetry) convert(caller *access.Caller, s *pb.Sample, smp *ingest.Sample) (ingest.Result, string) {
+// convert converts s into smp, or returns the reason it cannot be.
+// denied reports a sample the caller (nil: no access control) may not
+// push for; such a sample is refused first, so that a writer learns
+// nothing of units it may not push for from what else the sample has
+// wrong. A unit the caller may not view is answered exactly as a unit
+// that is not in the fleet (reason, detail and the samples_total label),
+// so that a writer cannot probe which unit ids exist; only a unit it may
+// view (it knows the unit exists) is answered permission_denied. The
+// refusal is still counted and audited as a denial (the Denied hook).
+// It takes no checking function: called through a function value or an
+// interface, the sample would move to the heap, one allocation a sample.
+func (t *Telemetry) convert(caller *access.Caller, s *pb.Sample, smp *ingest.Sample) (res ingest.Result, detail string, denied bool) {
 	if caller != nil && !caller.Allows(s.UnitId) {
-		return ingest.RejectPermissionDenied, "this identity may not push samples for the unit"
+		if caller.May(access.Viewer, s.UnitId) && t.store.Unit(s.UnitId) != nil {
+			return ingest.RejectPermissionDenied, "this identity may not push samples for the unit", true
+		}
+		return ingest.RejectUnknownUnit, ingest.UnknownUnitDetail(s.UnitId), true
 	}
-	res, detail := FromProto(s, smp)
+	res, detail = FromProto(s, smp)
 	if res != ingest.Accepted && t.store.Unit(s.UnitId) == nil {
 		// The unit is the first thing a sample is judged by.
-		return ingest.RejectUnknownUnit, fmt.Sprintf("unit %q is not in the fleet file", ingest.ClipID(s.UnitId))
+		return ingest.RejectUnknownUnit, ingest.UnknownUnitDetail(s.UnitId), false
 	}
-	return res, detail
+	return res, detail, false
 }
 
 // answer adds the result of sample i to resp.
@@ -292,11 +305,11 @@ func (t *Telemetry) startLog(ctx context.Context, req *pb.PushRequest, now time.
 		// interface method, a local sample would move to the heap.
 		smps = append(smps, ingest.Sample{})
 		smp := &smps[len(smps)-1]
-		res, detail := t.convert(caller, s, smp)
+		res, detail, denied := t.convert(caller, s, smp)
 		if res == ingest.Accepted {
 			res, detail = t.log.Check(units, now, smp)
 		}
-		d.note(res, s.UnitId)
+		d.note(denied, s.UnitId)
 		if res == ingest.Accepted {
 			idx = append(idx, i)
 			continue

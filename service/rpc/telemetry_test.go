@@ -227,7 +227,7 @@ func TestDrainIdleStream(t *testing.T) {
 // FuzzPushSamples sends a batch of arbitrary field values through the
 // sample path (proto conversion, the rights check of a writer granted
 // one site, the store) and checks that every sample gets exactly one
-// answer, that samples for other units are refused as permission_denied,
+// answer, that samples for other units are refused (as unknown units),
 // and that the store's counts and latest samples stay consistent.
 func FuzzPushSamples(f *testing.F) {
 	f.Add("harrowmere-1", int64(1_700_000_000), int32(0), 300.0, 120.0, 20.4, 1500.0, 50.0, 310.0, int32(1), true)

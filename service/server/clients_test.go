@@ -5,6 +5,7 @@ import (
 	"context"
 	"crypto/tls"
 	"encoding/json"
+	"errors"
 	"fmt"
 	"io"
 	"net"
@@ -13,6 +14,7 @@ import (
 	"regexp"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"testing"
 	"time"
 
@@ -76,6 +78,75 @@ func (hc *httpConn) get(path, user, password string) (int, string, error) {
 		return 0, "", err
 	}
 	resp, err := http.ReadResponse(hc.br, req)
+	if err != nil {
+		return 0, "", err
+	}
+	defer resp.Body.Close()
+	b, _ := io.ReadAll(resp.Body)
+	return resp.StatusCode, string(b), nil
+}
+
+// h2Conn is one HTTP/2 connection (a real HTTP/2 client, ALPN h2) to a
+// secureServer; closed is closed when the server ends the TCP
+// connection, goAway set when it sent GOAWAY.
+type h2Conn struct {
+	cc     *http2.ClientConn //lint:ignore SA1019 see openH2
+	closed chan struct{}
+	goAway *atomic.Bool
+}
+
+func openH2(t *testing.T, p *pki, addr string) *h2Conn {
+	t.Helper()
+	c, err := tls.Dial("tcp", addr, &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost", NextProtos: []string{"h2"}})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if proto := c.ConnectionState().NegotiatedProtocol; proto != "h2" {
+		t.Fatalf("negotiated %q, want h2", proto)
+	}
+	pr, pw := io.Pipe()
+	h := &h2Conn{closed: make(chan struct{}), goAway: new(atomic.Bool)}
+	// The frames the server sends, read beside the client (for GOAWAY).
+	go readGoAways(pr, func(*http2.GoAwayFrame) { h.goAway.Store(true) })
+	wc := &watchedConn{teeConn: teeConn{Conn: c, w: pw}, serverClosed: h.closed}
+	t.Cleanup(func() { wc.teeConn.Close() })
+	// x/net's HTTP/2 client over a connection the test holds: net/http's
+	// own takes HTTP/2 only over a *tls.Conn it can see, and this one must
+	// be wrapped.
+	//lint:ignore SA1019 see above
+	h.cc, err = (&http2.Transport{}).NewClientConn(wc)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return h
+}
+
+// watchedConn closes serverClosed when a read ends because the server
+// closed the connection. It plays a client that ignores GOAWAY: the
+// HTTP/2 client's Close leaves the connection open (the test's cleanup
+// closes it), so that only the server can end it.
+type watchedConn struct {
+	teeConn
+	once         sync.Once
+	serverClosed chan struct{}
+}
+
+func (c *watchedConn) Close() error { return nil }
+
+func (c *watchedConn) Read(b []byte) (int, error) {
+	n, err := c.teeConn.Read(b)
+	if err != nil && !errors.Is(err, net.ErrClosed) {
+		c.once.Do(func() { close(c.serverClosed) })
+	}
+	return n, err
+}
+
+func (h *h2Conn) get(path, user, password string) (int, string, error) {
+	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
+	defer cancel()
+	req, _ := http.NewRequestWithContext(ctx, "GET", "https://localhost"+path, nil)
+	req.SetBasicAuth(user, password)
+	resp, err := h.cc.RoundTrip(req)
 	if err != nil {
 		return 0, "", err
 	}
@@ -173,6 +244,38 @@ func TestConnectionsPerCaller(t *testing.T) {
 			return err == nil && code == http.StatusOK
 		})
 	})
+	t.Run("http/2 by basic-auth user", func(t *testing.T) {
+		var held []*h2Conn
+		for i := range capN {
+			hc := openH2(t, p, r.srv.HTTPAddr())
+			if code, body, err := hc.get("/healthz", "viewer-larchwater", reverse("viewer-larchwater")); err != nil || code != http.StatusOK {
+				t.Fatalf("HTTP/2 connection %d within the cap: %d %q %v", i+1, code, body, err)
+			}
+			held = append(held, hc)
+		}
+		over := openH2(t, p, r.srv.HTTPAddr())
+		code, body, err := over.get("/healthz", "viewer-larchwater", reverse("viewer-larchwater"))
+		if err != nil || code != http.StatusTooManyRequests || !strings.Contains(body, fmt.Sprintf("viewer-larchwater already has %d HTTP connections open", capN)) {
+			t.Fatalf("HTTP/2 connection over the cap: %d %q %v, want 429 with the reason", code, body, err)
+		}
+		// The server closes it (GOAWAY, then the TCP connection), where it
+		// used to keep it open answering 429.
+		select {
+		case <-over.closed:
+		case <-time.After(10 * time.Second):
+			t.Fatalf("the HTTP/2 connection over the cap was not closed by the server (GOAWAY %v, client %v)", over.goAway.Load(), over.cc.State())
+		}
+		if !over.goAway.Load() {
+			t.Error("closed without a GOAWAY")
+		}
+		// The held ones still serve, over HTTP/2.
+		if code, _, err := held[1].get("/healthz", "viewer-larchwater", reverse("viewer-larchwater")); err != nil || code != http.StatusOK {
+			t.Errorf("a held HTTP/2 connection's second request: %d %v", code, err)
+		}
+		if got := denialsBy(audit, "http GET /healthz", access.ReasonLimit); len(got) != 2 || got[1].Identity != "viewer-larchwater" {
+			t.Errorf("audit of the refused connections: %+v, want the HTTP/1 one and viewer-larchwater's", got)
+		}
+	})
 	t.Run("http without valid credentials, by address", func(t *testing.T) {
 		// Refused by the toolkit (401): counted against the address, and
 		// over the cap the 401 closes the connection.
@@ -198,6 +301,33 @@ func TestConnectionsPerCaller(t *testing.T) {
 	})
 	if v, _ := metricValue(scrapeAs(t, p, r), "genvelope_access_denied_total", map[string]string{"reason": access.ReasonLimit}); v < 2 {
 		t.Errorf("genvelope_access_denied_total{reason=resource_limit} = %v, want at least the 2 refusals", v)
+	}
+}
+
+// Over HTTP/2 too, a connection whose first answer is the web
+// configuration's 401 counts against its address, and over the cap that
+// 401 ends it (GOAWAY, then closed by the server).
+func TestHTTP2RefusedByAddressClosed(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, func(c *server.Config) { c.Limits = server.Limits{HTTPConnsPerCaller: 1} })
+	first := openH2(t, p, r.srv.HTTPAddr())
+	if code, _, err := first.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+		t.Fatalf("first connection: %d %v, want 401", code, err)
+	}
+	over := openH2(t, p, r.srv.HTTPAddr())
+	if code, _, err := over.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+		t.Fatalf("connection over the cap: %d %v, want 401", code, err)
+	}
+	select {
+	case <-over.closed:
+	case <-time.After(waitLong):
+		t.Fatalf("the HTTP/2 connection over the cap was not closed by the server (GOAWAY %v)", over.goAway.Load())
+	}
+	if !over.goAway.Load() {
+		t.Error("closed without a GOAWAY")
+	}
+	if code, _, err := first.get("/metrics", "mallory", "guess"); err != nil || code != http.StatusUnauthorized {
+		t.Errorf("the first connection's second request: %d %v, want it kept (401)", code, err)
 	}
 }
 
@@ -228,7 +358,8 @@ func TestConnectionsPerAddress(t *testing.T) {
 // reason) with its source, the identity it claimed and the reason: a
 // wrong password, an unknown user and no credentials on HTTP; no
 // certificate, one from another CA and an expired one on gRPC and on
-// HTTP where the web configuration requires client certificates.
+// HTTP where the web configuration requires client certificates (the
+// refused certificate's subject as the claimed identity on both).
 func TestFailedAuthenticationAudited(t *testing.T) {
 	p := newPKI(t)
 	jpath := filepath.Join(t.TempDir(), "journal.jsonl")
@@ -239,6 +370,15 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 	mtlsWeb := testpki.Write(t, p.dir, "web-mtls.yaml", []byte("tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n"+
 		"  client_ca_file: ca.crt\n  client_auth_type: RequireAndVerifyClientCert\n"))
 	r2, audit2 := secureServer(t, p, func(c *server.Config) { c.Security.WebConfig = mtlsWeb })
+	// Client certificates whose chain verifies, but only with SANs the
+	// certificates do not have (the toolkit's client_allowed_sans).
+	sansWeb := testpki.Write(t, p.dir, "web-sans.yaml", []byte("tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n"+
+		"  client_ca_file: ca.crt\n  client_auth_type: RequireAndVerifyClientCert\n  client_allowed_sans: [nobody.example]\n"))
+	r3, audit3 := secureServer(t, p, func(c *server.Config) { c.Security.WebConfig = sansWeb })
+	// Client certificates asked for and not verified, beside users.
+	anyWeb := testpki.Write(t, p.dir, "web-any.yaml", []byte("tls_server_config:\n  cert_file: server.crt\n  key_file: server.key\n"+
+		"  client_auth_type: RequireAnyClientCert\nbasic_auth_users:\n  viewer-all: "+bcryptHash(t, reverse("viewer-all"))+"\n"))
+	r4, audit4 := secureServer(t, p, func(c *server.Config) { c.Security.WebConfig = anyWeb })
 
 	type want struct{ reason, claimed string }
 	for _, tc := range []struct {
@@ -264,8 +404,13 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 		{"grpc another CA", grpcRefused(t, r, p, foreign), audit, "grpc connect", want{access.ReasonBadCertificate, "viewer-all"}},
 		{"grpc expired", grpcRefused(t, r, p, expired), audit, "grpc connect", want{access.ReasonExpiredCertificate, "viewer-all"}},
 		{"http no certificate", httpRefused(t, p, r2, nil), audit2, "http connect", want{access.ReasonNoCertificate, ""}},
-		{"http another CA", httpRefused(t, p, r2, foreign), audit2, "http connect", want{access.ReasonBadCertificate, ""}},
-		{"http expired", httpRefused(t, p, r2, expired), audit2, "http connect", want{access.ReasonExpiredCertificate, ""}},
+		{"http another CA", httpRefused(t, p, r2, foreign), audit2, "http connect", want{access.ReasonBadCertificate, "viewer-all"}},
+		{"http expired", httpRefused(t, p, r2, expired), audit2, "http connect", want{access.ReasonExpiredCertificate, "viewer-all"}},
+		{"http certificate without an allowed SAN", httpRefused(t, p, r3, p.clients["viewer-all"]), audit3, "http connect", want{access.ReasonBadCertificate, "viewer-all"}},
+		{"http unverified certificate, no credentials", func() error {
+			_, code, _, err := openHTTP(t, p, r4.srv.HTTPAddr(), foreign, "/", "", "")
+			return expectCode(code, err, http.StatusUnauthorized)
+		}, audit4, "http GET /", want{access.ReasonNoCredentials, "viewer-all"}},
 	} {
 		t.Run(tc.name, func(t *testing.T) {
 			if err := tc.do(); err != nil {
@@ -285,6 +430,13 @@ func TestFailedAuthenticationAudited(t *testing.T) {
 				t.Errorf("entry %+v, want identity %q from 127.0.0.1", e, wantID)
 			}
 		})
+	}
+	// A certificate of the plant's CA is verified and identifies its
+	// holder (genvelope's own TLS handshake on HTTP keeps the verified
+	// chain for the request).
+	if _, code, body, err := openHTTP(t, p, r2.srv.HTTPAddr(), p.clients["viewer-all"], "/", "", ""); err != nil || code != http.StatusOK ||
+		!strings.Contains(body, "Signed in as <strong data-signed-in>viewer-all</strong>") {
+		t.Errorf("a valid client certificate over HTTP: %d %v, want the page signed in as viewer-all", code, err)
 	}
 	fams := scrapeAs(t, p, r)
 	for _, reason := range []string{access.ReasonBadPassword, access.ReasonUnknownUser, access.ReasonNoCredentials, access.ReasonNoCertificate, access.ReasonBadCertificate, access.ReasonExpiredCertificate} {
@@ -498,21 +650,11 @@ func framedClient(t *testing.T, addr string, opts ...grpc.DialOption) (*grpc.Cli
 		}
 		pr, pw := io.Pipe()
 		once.Do(func() {
-			go func() {
-				fr := http2.NewFramer(io.Discard, pr)
-				for {
-					f, err := fr.ReadFrame()
-					if err != nil {
-						pr.CloseWithError(err)
-						return
-					}
-					if g, ok := f.(*http2.GoAwayFrame); ok {
-						fl.mu.Lock()
-						fl.goAway = append(fl.goAway, &goAway{ErrCode: g.ErrCode, Debug: string(g.DebugData())})
-						fl.mu.Unlock()
-					}
-				}
-			}()
+			go readGoAways(pr, func(g *http2.GoAwayFrame) {
+				fl.mu.Lock()
+				fl.goAway = append(fl.goAway, &goAway{ErrCode: g.ErrCode, Debug: string(g.DebugData())})
+				fl.mu.Unlock()
+			})
 			t.Cleanup(func() { pw.Close() })
 			c = &teeConn{Conn: c, w: pw}
 		})
@@ -524,6 +666,22 @@ func framedClient(t *testing.T, addr string, opts ...grpc.DialOption) (*grpc.Cli
 	}
 	t.Cleanup(func() { conn.Close() })
 	return conn, fl
+}
+
+// readGoAways parses the HTTP/2 frames a server sent (copied to pr) and
+// calls on for each GOAWAY, until the copy ends.
+func readGoAways(pr *io.PipeReader, on func(*http2.GoAwayFrame)) {
+	fr := http2.NewFramer(io.Discard, pr)
+	for {
+		f, err := fr.ReadFrame()
+		if err != nil {
+			pr.CloseWithError(err)
+			return
+		}
+		if g, ok := f.(*http2.GoAwayFrame); ok {
+			on(g)
+		}
+	}
 }
 
 // teeConn copies what it reads to w (the frame parser); the copy stops

@@ -150,10 +150,10 @@ func TestThermalActionsThroughTheLog(t *testing.T) {
 			_, err := viewer.DiscardSample(ctx, &pb.DiscardSampleRequest{UnitId: "harrowmere-1", Time: last, Operator: "someone"})
 			return err
 		}, codes.PermissionDenied},
-		{"operator of another site resets", func() error {
+		{"operator of another site resets: answered as a unit not in the fleet", func() error {
 			_, err := op.ResetThermal(ctx, &pb.ResetThermalRequest{UnitId: "larchwater-2", Operator: "someone"})
 			return err
-		}, codes.PermissionDenied},
+		}, codes.NotFound},
 		{"operator discards", func() error {
 			_, err := op.DiscardSample(ctx, &pb.DiscardSampleRequest{UnitId: "harrowmere-1", Time: last, Reason: "spike"})
 			return err

@@ -28,6 +28,9 @@ type authObserver struct {
 	next  http.Handler // the toolkit's handler
 	guard *access.Guard
 	users *webUsers
+	// before, when set, brings the toolkit's copy of the web
+	// configuration up to date before the toolkit reads it.
+	before *webTLS
 }
 
 type reachedKey struct{}
@@ -40,6 +43,9 @@ func markReached(ctx context.Context) {
 }
 
 func (o *authObserver) ServeHTTP(w http.ResponseWriter, r *http.Request) {
+	if o.before != nil {
+		o.before.sync() // a failure removes the copy: the toolkit refuses the request, as without the file
+	}
 	reached := new(bool)
 	r = r.WithContext(context.WithValue(r.Context(), reachedKey{}, reached))
 	rec := &refusalWriter{ResponseWriter: w, status: http.StatusOK, reached: reached, r: r, o: o}
@@ -58,7 +64,14 @@ func (o *authObserver) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		case ok:
 			reason = access.ReasonUnknownUser
 		}
-		o.guard.AuthFailed(r.Context(), access.AuthFailure{Source: r.RemoteAddr, Claimed: user, Action: action, Reason: reason})
+		claimed := user
+		if claimed == "" && r.TLS != nil && len(r.TLS.VerifiedChains) == 0 && len(r.TLS.PeerCertificates) > 0 {
+			// A certificate the web configuration asks for but does not
+			// verify (RequestClientCert, RequireAnyClientCert): the name
+			// it claims.
+			claimed = access.CertName(r.TLS.PeerCertificates[0])
+		}
+		o.guard.AuthFailed(r.Context(), access.AuthFailure{Source: r.RemoteAddr, Claimed: claimed, Action: action, Reason: reason})
 	case http.StatusTooManyRequests:
 		o.guard.DenyGated(r.Context(), &access.Caller{Source: r.RemoteAddr}, action, access.ReasonLimit, "the web configuration's rate limit")
 	}
@@ -85,9 +98,7 @@ func (w *refusalWriter) WriteHeader(code int) {
 			host = w.r.RemoteAddr
 		}
 		if ok, max := admit(w.r.Context(), "addr:"+host); !ok {
-			if w.r.ProtoMajor == 1 {
-				w.Header().Set("Connection", "close")
-			}
+			w.Header().Set("Connection", "close") // HTTP/2 too: GOAWAY, then closed (see httpGuard)
 			w.o.guard.DenyGated(w.r.Context(), &access.Caller{Source: w.r.RemoteAddr}, "http connect", access.ReasonLimit,
 				fmt.Sprintf("more than %d HTTP connections without valid credentials", max))
 		}

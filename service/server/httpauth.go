@@ -47,9 +47,9 @@ type httpGuard struct {
 	hosts     map[string]bool
 	basicAuth bool // the web configuration checks basic-auth users
 	next      http.Handler
-	// hideUnits passes a viewer's read of a unit outside its scope on to
-	// the pages, which answer it as for a unit that does not exist
-	// (false: 403).
+	// hideUnits passes a request about a unit outside the caller's view
+	// (a read or an alarm action) on to the pages, which answer it as for
+	// a unit that does not exist (false: 403).
 	hideUnits bool
 }
 
@@ -95,9 +95,11 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 	r = r.WithContext(ctx)
 	if ok, max := admit(ctx, limitKey(c)); !ok {
 		h.guard.DenyGated(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.ReasonLimit, fmt.Sprintf("more than %d HTTP connections", max))
-		if r.ProtoMajor == 1 {
-			w.Header().Set("Connection", "close")
-		}
+		// Closes the connection after this answer: HTTP/1 at once; over
+		// HTTP/2 net/http takes the header as its signal to send GOAWAY
+		// and close the connection once its open streams (each answered
+		// 429 like this one) are done.
+		w.Header().Set("Connection", "close")
 		http.Error(w, fmt.Sprintf("genvelope: %s already has %d HTTP connections open, the most allowed for one client; this connection is refused (close one first)", c.Who(), max), http.StatusTooManyRequests)
 		return
 	}
@@ -121,9 +123,12 @@ func (h *httpGuard) ServeHTTP(w http.ResponseWriter, r *http.Request) {
 		if !ok {
 			reason := access.DenyReason(c)
 			h.guard.Deny(ctx, c, "http "+r.Method+" "+clipPath(r.URL.Path), access.Sanitize(rt.unit, 128), reason)
-			if rt.role == access.Viewer && rt.unit != "" && c.Has(access.Viewer) && h.hideUnits && r.Method == http.MethodGet {
-				// Not revealed: the pages answer it as a unit that does
-				// not exist (their scope excludes it).
+			if rt.unit != "" && h.hideUnits && c.Has(access.Viewer) && !c.May(access.Viewer, rt.unit) {
+				// A unit outside the caller's view, read or acted on, is
+				// not revealed: the pages answer it as a unit that does
+				// not exist (their scope excludes it, so they neither
+				// show nor act on it). One the caller may view but not
+				// act on is answered 403: it knows the unit exists.
 				h.next.ServeHTTP(w, r)
 				return
 			}

@@ -2,11 +2,14 @@ package server
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"log/slog"
 	"net"
 	"net/http"
 	"net/http/pprof"
+	"os"
+	"path/filepath"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
@@ -146,10 +149,55 @@ func pprofMux() *http.ServeMux {
 func (s *Server) serveHTTP(srv *http.Server, ln net.Listener) error {
 	path := s.cfg.Security.WebConfig
 	users := &webUsers{path: path}
+	toolkitPath, log := path, s.log
+	var wt *webTLS
+	if s.webCfg.TLS {
+		// The TLS is ours (webtls.go); the toolkit reads the rest of the
+		// file from a copy without it.
+		name := "http"
+		if srv == s.pprof {
+			name = "pprof"
+		}
+		copyPath, remove, err := s.webCopyPath(name)
+		if err != nil {
+			return err
+		}
+		defer remove()
+		if wt, err = newWebTLS(path, copyPath, s.guard, srv); err != nil {
+			return err
+		}
+		toolkitPath, log = wt.derived, slog.New(quietTLSLog{s.log.Handler()})
+		ln = wt.listen(ln)
+	}
 	ln = &observeListener{Listener: ln, hook: func() {
-		srv.Handler = &authObserver{next: srv.Handler, guard: s.guard, users: users}
+		srv.Handler = &authObserver{next: srv.Handler, guard: s.guard, users: users, before: wt}
 	}}
-	return web.Serve(ln, srv, &web.FlagConfig{WebConfigFile: &path}, s.log)
+	return web.Serve(ln, srv, &web.FlagConfig{WebConfigFile: &toolkitPath}, log)
+}
+
+// webCopyPath returns where the toolkit's copy of the web configuration
+// is kept, and how to remove it: a private directory (0700) beside the
+// state file, which every install keeps writable (a read-only root
+// filesystem has no writable /tmp), else beside the journal, with a
+// fixed name, so that a copy left by a killed process is replaced; else
+// a directory of its own in the temporary directory.
+func (s *Server) webCopyPath(name string) (path string, remove func(), err error) {
+	for _, base := range []string{s.cfg.StatePath, s.cfg.JournalPath} {
+		if base == "" {
+			continue
+		}
+		dir := filepath.Join(filepath.Dir(base), ".genvelope-web")
+		if err = os.MkdirAll(dir, 0o700); err != nil {
+			continue
+		}
+		path = filepath.Join(dir, "web-config-"+name+".yml")
+		return path, func() { os.Remove(path) }, nil
+	}
+	dir, terr := os.MkdirTemp("", "genvelope-web-")
+	if terr != nil {
+		return "", nil, fmt.Errorf("no writable directory for the copy of the web configuration: %w", errors.Join(err, terr))
+	}
+	return filepath.Join(dir, "web-config-"+name+".yml"), func() { os.RemoveAll(dir) }, nil
 }
 
 func outcomeOf(err error) string {

@@ -6,7 +6,9 @@ import (
 	"crypto/x509"
 	"io"
 	"log/slog"
+	"net"
 	"net/http"
+	"os"
 	"path/filepath"
 	"strings"
 	"testing"
@@ -237,48 +239,78 @@ func sampleAt(unit string, at time.Time, pMW, qMvar, vKV float64) *pb.Sample {
 	return &pb.Sample{UnitId: unit, Time: timestamppb.New(at), PMw: pMW, QMvar: qMvar, VKv: vKV}
 }
 
-// A writer's sample for a unit of another site is rejected as
-// permission_denied; the good samples beside it are accepted; the
-// denial is counted and audited.
+// A writer's samples for units it may not push for are rejected, the
+// good samples beside them accepted, and the denials counted and
+// audited: for a unit the writer may view, as permission_denied; for one
+// it may not view (another site's, or one not in the fleet), as
+// unknown_unit, the answer of a unit not in the fleet.
 func TestPushPermissionDenied(t *testing.T) {
 	p := newPKI(t)
-	r, audit := secureServer(t, p, func(c *server.Config) { c.JournalPath = filepath.Join(p.dir, "journal.jsonl") })
-	tel := pb.NewTelemetryServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients["gw-harrowmere"]))
+	p.clients["gw-seeing"] = p.ca.Client(t, "gw-seeing")
+	accessFile := testAccess + "  - name: gw-seeing\n    grants: [{role: telemetry_writer, sites: [harrowmere]}, {role: viewer}]\n"
+	r, audit := secureServer(t, p, func(c *server.Config) {
+		c.JournalPath = filepath.Join(p.dir, "journal.jsonl")
+		c.Security.AccessFile = testpki.Write(t, p.dir, "access-seeing.yaml", []byte(accessFile))
+	})
 	now := time.Now().Add(-time.Second)
 	ctx, cancel := context.WithTimeout(context.Background(), waitLong)
 	defer cancel()
-	resp, err := tel.Push(ctx, &pb.PushRequest{Sequence: 1, Samples: []*pb.Sample{
-		sampleAt("harrowmere-1", now, 300, 100, 20.4),
-		sampleAt("larchwater-2", now, 60, 10, 13.8),
-		sampleAt("harrowmere-1", now.Add(100*time.Millisecond), 300, 101, 20.4),
-		sampleAt("no-such-unit", now, 1, 1, 1),
-	}})
-	if err != nil {
-		t.Fatalf("Push: %v", err)
-	}
-	if resp.Accepted != 2 || len(resp.Rejected) != 2 {
-		t.Fatalf("accepted %d, rejected %v; want 2 accepted and 2 rejected", resp.Accepted, resp.Rejected)
-	}
-	for i, want := range []uint32{1, 3} {
-		rj := resp.Rejected[i]
-		if rj.Index != want || rj.Reason != pb.RejectReason_REJECT_REASON_PERMISSION_DENIED {
-			t.Errorf("rejection %d: index %d reason %v, want index %d PERMISSION_DENIED", i, rj.Index, rj.Reason, want)
+	for i, tc := range []struct {
+		who  string
+		want pb.RejectReason
+	}{
+		{"gw-harrowmere", pb.RejectReason_REJECT_REASON_UNKNOWN_UNIT},
+		{"gw-seeing", pb.RejectReason_REJECT_REASON_PERMISSION_DENIED},
+	} {
+		tel := pb.NewTelemetryServiceClient(dial(t, r.srv.GRPCAddr(), p.ca.Pool(), p.clients[tc.who]))
+		at := now.Add(time.Duration(i) * 200 * time.Millisecond)
+		resp, err := tel.Push(ctx, &pb.PushRequest{Sequence: 1, Samples: []*pb.Sample{
+			sampleAt("harrowmere-1", at, 300, 100, 20.4),
+			sampleAt("larchwater-2", at, 60, 10, 13.8),
+			sampleAt("harrowmere-1", at.Add(100*time.Millisecond), 300, 101, 20.4),
+			sampleAt("no-such-unit", at, 1, 1, 1),
+		}})
+		if err != nil {
+			t.Fatalf("%s Push: %v", tc.who, err)
+		}
+		if resp.Accepted != 2 || len(resp.Rejected) != 2 {
+			t.Fatalf("%s: accepted %d, rejected %v; want 2 accepted and 2 rejected", tc.who, resp.Accepted, resp.Rejected)
+		}
+		for j, want := range []struct {
+			index  uint32
+			reason pb.RejectReason
+		}{{1, tc.want}, {3, pb.RejectReason_REJECT_REASON_UNKNOWN_UNIT}} {
+			if rj := resp.Rejected[j]; rj.Index != want.index || rj.Reason != want.reason {
+				t.Errorf("%s rejection %d: index %d reason %v, want index %d %v", tc.who, j, rj.Index, rj.Reason, want.index, want.reason)
+			}
 		}
 	}
-	if got := len(audit.Find("grpc push", access.OutcomeDenied)); got != 1 {
-		t.Errorf("%d audit entries for the push, want 1 for the batch", got)
+	if got := len(audit.Find("grpc push", access.OutcomeDenied)); got != 2 {
+		t.Errorf("%d audit entries for the pushes, want 1 for each batch", got)
 	}
-	// The denial is in the durable journal too.
+	// The denials are in the durable journal too.
 	entries, _, err := r.srv.Journal().Matching(journal.Filter{Changes: []string{journal.ChangeDenied}}, 10)
-	if err != nil || len(entries) != 1 || entries[0].Operator != "gw-harrowmere" || !strings.Contains(entries[0].Message, "permission_denied") {
-		t.Errorf("journal denials %+v (%v), want one by gw-harrowmere", entries, err)
+	if err != nil || len(entries) != 2 || !strings.Contains(entries[0].Message, "permission_denied") {
+		t.Errorf("journal denials %+v (%v), want one by each writer", entries, err)
+	}
+	for _, e := range entries {
+		if e.Operator != "gw-harrowmere" && e.Operator != "gw-seeing" {
+			t.Errorf("journal denial by %q, want the writers", e.Operator)
+		}
 	}
 	fams := scrapeAs(t, p, r)
-	if v, _ := metricValue(fams, "genvelope_access_denied_total", map[string]string{"reason": "permission_denied"}); v != 2 {
-		t.Errorf("genvelope_access_denied_total{reason=permission_denied} = %v, want 2", v)
-	}
-	if v, _ := metricValue(fams, "genvelope_samples_total", map[string]string{"result": "permission_denied"}); v != 2 {
-		t.Errorf("genvelope_samples_total{result=permission_denied} = %v, want 2", v)
+	for _, m := range []struct {
+		name, label, value string
+		want               float64
+	}{
+		{"genvelope_access_denied_total", "reason", "permission_denied", 4},
+		{"genvelope_samples_total", "result", "permission_denied", 1},
+		{"genvelope_samples_total", "result", "unknown_unit", 3},
+		{"genvelope_samples_total", "result", "accepted", 4},
+	} {
+		if v, _ := metricValue(fams, m.name, map[string]string{m.label: m.value}); v != m.want {
+			t.Errorf("%s{%s=%s} = %v, want %v", m.name, m.label, m.value, v, m.want)
+		}
 	}
 }
 
@@ -300,10 +332,10 @@ func TestGRPCRights(t *testing.T) {
 			_, err := c.AcknowledgeAlarm(ctx, &pb.AcknowledgeAlarmRequest{UnitId: "harrowmere-1", Limit: "field"})
 			return err
 		}, codes.PermissionDenied},
-		{"operator of harrowmere shelves larchwater", "op-harrowmere", func(ctx context.Context, c pb.AlarmServiceClient) error {
+		{"operator of harrowmere shelves larchwater: answered as a unit not in the fleet", "op-harrowmere", func(ctx context.Context, c pb.AlarmServiceClient) error {
 			_, err := c.ShelveAlarm(ctx, shelve("larchwater-2").(*pb.ShelveAlarmRequest))
 			return err
-		}, codes.PermissionDenied},
+		}, codes.NotFound},
 		{"stranger lists alarms", "stranger", func(ctx context.Context, c pb.AlarmServiceClient) error {
 			_, err := c.ListAlarms(ctx, &pb.ListAlarmsRequest{})
 			return err
@@ -334,7 +366,7 @@ func TestGRPCRights(t *testing.T) {
 				t.Fatalf("got %v, want %v", err, tc.want)
 			}
 			denied := audit.Find("grpc", access.OutcomeDenied)
-			if tc.want == codes.PermissionDenied || tc.want == codes.Unauthenticated {
+			if tc.want == codes.PermissionDenied || tc.want == codes.Unauthenticated || tc.want == codes.NotFound {
 				if len(denied) != before+1 {
 					t.Fatalf("%d new denials audited, want 1", len(denied)-before)
 				}
@@ -579,5 +611,96 @@ func TestAccessFileReload(t *testing.T) {
 	}
 	if got := audit.Find("reload", access.OutcomeFailed); len(got) != 1 {
 		t.Errorf("%d failed reloads audited, want 1", len(got))
+	}
+}
+
+// genvelope terminates the HTTP listener's TLS itself (to audit refused
+// certificates with their subject) and hands the exporter-toolkit a copy
+// of the web configuration without tls_server_config: the copy follows
+// the file (a user added is let in, the file removed refuses requests),
+// HTTP/2 follows http_server_config, and plain HTTP on the TLS port is
+// answered 400 as net/http does.
+func TestWebConfigFollowed(t *testing.T) {
+	p := newPKI(t)
+	r, _ := secureServer(t, p, nil)
+	webPath := filepath.Join(p.dir, "web.yaml")
+	orig := readFile(t, webPath)
+	if code, _ := httpsDo(t, p, r, "GET", "/healthz", "viewer-lately", ""); code != http.StatusUnauthorized {
+		t.Fatalf("a user the file does not have: %d, want 401", code)
+	}
+	writeFile(t, webPath, orig+"  viewer-lately: "+bcryptHash(t, reverse("viewer-lately"))+"\n")
+	waitFor(t, "the user added to the file let in", func() bool {
+		code, _ := httpsDo(t, p, r, "GET", "/healthz", "viewer-lately", "")
+		return code == http.StatusOK
+	})
+
+	proto := func() string {
+		c, err := tls.Dial("tcp", r.srv.HTTPAddr(), &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost", NextProtos: []string{"h2", "http/1.1"}})
+		if err != nil {
+			t.Fatal(err)
+		}
+		defer c.Close()
+		return c.ConnectionState().NegotiatedProtocol
+	}
+	if got := proto(); got != "h2" {
+		t.Errorf("negotiated %q, want h2 (the toolkit's default)", got)
+	}
+	writeFile(t, webPath, orig+"http_server_config:\n  http2: false\n")
+	waitFor(t, "HTTP/2 turned off", func() bool { return proto() == "http/1.1" })
+
+	c, err := net.Dial("tcp", r.srv.HTTPAddr())
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer c.Close()
+	c.SetDeadline(time.Now().Add(waitLong))
+	io.WriteString(c, "GET / HTTP/1.1\r\nHost: localhost\r\n\r\n")
+	if b, _ := io.ReadAll(c); !strings.HasPrefix(string(b), "HTTP/1.0 400 Bad Request") {
+		t.Errorf("plain HTTP on the TLS port answered %q", b)
+	}
+
+	if err := os.Remove(webPath); err != nil {
+		t.Fatal(err)
+	}
+	client := &http.Client{Transport: &http.Transport{TLSClientConfig: &tls.Config{RootCAs: p.ca.Pool(), ServerName: "localhost"}}}
+	defer client.CloseIdleConnections()
+	req, _ := http.NewRequest("GET", r.base+"/healthz", nil)
+	req.SetBasicAuth("viewer-all", reverse("viewer-all"))
+	if resp, err := client.Do(req); err == nil {
+		resp.Body.Close()
+		t.Errorf("with the web configuration gone: %d, want the connection refused", resp.StatusCode)
+	}
+}
+
+// The toolkit's copy of the web configuration lies beside the state file
+// (writable in every install, where a read-only root filesystem has no
+// writable /tmp), in a private directory, without the TLS part and
+// without anything else lost; it is removed when the server stops.
+func TestWebConfigCopyBesideState(t *testing.T) {
+	p := newPKI(t)
+	stateDir := t.TempDir()
+	r, _ := secureServer(t, p, func(c *server.Config) { c.StatePath = filepath.Join(stateDir, "state.bin") })
+	if code, body := httpsDo(t, p, r, "GET", "/healthz", "viewer-all", ""); code != http.StatusOK {
+		t.Fatalf("GET /healthz: %d %s", code, body)
+	}
+	dir := filepath.Join(stateDir, ".genvelope-web")
+	fi, err := os.Stat(dir)
+	if err != nil || fi.Mode().Perm() != 0o700 {
+		t.Fatalf("the copy's directory: %v %v, want mode 0700", fi, err)
+	}
+	copied := readFile(t, filepath.Join(dir, "web-config-http.yml"))
+	if strings.Contains(copied, "tls_server_config") || strings.Contains(copied, "server.key") {
+		t.Errorf("the copy keeps the TLS part:\n%s", copied)
+	}
+	for _, user := range []string{"viewer-all:", "admin:", "viewer-larchwater:", "$2a$"} {
+		if !strings.Contains(copied, user) {
+			t.Errorf("the copy lacks %q:\n%s", user, copied)
+		}
+	}
+	r.cancel()
+	err = <-r.done
+	r.done <- err // for the cleanup
+	if _, err := os.Stat(filepath.Join(dir, "web-config-http.yml")); !os.IsNotExist(err) {
+		t.Errorf("the copy is still there after the stop: %v", err)
 	}
 }

@@ -377,6 +377,12 @@ func TestResendAfterDroppedStream(t *testing.T) {
 			dups, (processed-acked)*perBatch, acked+1, processed)
 	}
 
+	// The cut stream's last batch may still be in its handler: its
+	// samples accepted (so the resend found them duplicates) and its
+	// tally not yet committed. Wait for the counts to settle.
+	for deadline := time.Now().Add(waitLong); r.srv.Store().Counts()[ingest.Accepted] < total && time.Now().Before(deadline); {
+		time.Sleep(5 * time.Millisecond)
+	}
 	c := r.srv.Store().Counts()
 	if c[ingest.Accepted] != total {
 		t.Errorf("store accepted %d samples, want each of the %d exactly once", c[ingest.Accepted], total)

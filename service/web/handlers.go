@@ -249,12 +249,14 @@ func (ui *UI) alarmAction(w http.ResponseWriter, r *http.Request) {
 		}
 		p := ui.newPage("Not done", "", nil)
 		p.Status, p.Message, p.BackHref = status, msg, unitURL(id)
-		if ui.store.Unit(id) == nil {
+		if ui.unitOf(r) == nil {
 			p.BackHref = "/"
 		}
 		ui.render(w, "notfound.html", p)
 	}
-	if ui.store.Unit(id) == nil {
+	// A unit outside the request's scope is answered as one not in the
+	// fleet, before anything else of the request is looked at.
+	if ui.unitOf(r) == nil {
 		fail(http.StatusNotFound, fmt.Sprintf("Unit %q is not in the fleet.", id))
 		return
 	}

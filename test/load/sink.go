@@ -36,10 +36,10 @@ func (sink) Push(_ context.Context, req *pb.PushRequest) (*pb.PushResponse, erro
 }
 
 // Stream decodes as the service does (rpc.Codec, into the request of
-// the batch before), so that the ratio of the two measures the
-// service's own work.
+// the batch before, with the stream's unit ids), so that the ratio of
+// the two measures the service's own work.
 func (sink) Stream(st grpc.BidiStreamingServer[pb.PushRequest, pb.PushResponse]) error {
-	req := new(pb.PushRequest)
+	req := &rpc.StreamBatch{PushRequest: new(pb.PushRequest), IDs: rpc.NewStreamIDs(1 << 20)}
 	for {
 		err := st.RecvMsg(req)
 		if errors.Is(err, io.EOF) {

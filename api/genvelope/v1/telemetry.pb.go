@@ -28,7 +28,10 @@ type RejectReason int32
 const (
 	// Not set. Not used by the server.
 	RejectReason_REJECT_REASON_UNSPECIFIED RejectReason = 0
-	// Sample.unit_id names no unit in the fleet configuration.
+	// Sample.unit_id names no unit in the fleet configuration. Under an
+	// access file, a sample for a unit the caller may neither push for nor
+	// view is answered with this reason and the same detail too, so that
+	// the answer does not reveal whether the unit exists.
 	RejectReason_REJECT_REASON_UNKNOWN_UNIT RejectReason = 1
 	// A measured value is NaN or infinite.
 	RejectReason_REJECT_REASON_NOT_FINITE RejectReason = 2
@@ -55,7 +58,9 @@ const (
 	// mix-up, such as a voltage in pu instead of kV.
 	RejectReason_REJECT_REASON_IMPLAUSIBLE RejectReason = 9
 	// The caller's identity may not push samples for Sample.unit_id (the
-	// access file grants it telemetry_writer for other units only).
+	// access file grants it telemetry_writer for other units only), a
+	// unit it may view (it knows the unit exists). A unit it may not view
+	// is answered REJECT_REASON_UNKNOWN_UNIT, as a unit not in the fleet.
 	RejectReason_REJECT_REASON_PERMISSION_DENIED RejectReason = 10
 )
 
