@@ -11,6 +11,7 @@ import (
 	"strconv"
 	"strings"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	"github.com/nats-io/nats.go/jetstream"
@@ -170,11 +171,19 @@ func (l *Log) Attach(ctx context.Context, store *ingest.Store, reload func(at ti
 
 // Run applies the log to the store until ctx is done, writing the
 // checkpoint every CheckpointInterval and once more at the end. The
-// server ends it after the last batch has been answered. Should the
-// consumer end by itself (nats.go closes an ordered consumer's iterator
-// when it recreates it at the wrong moment, as after the loss of a
-// cluster node), it reads the log again from the message after the last
-// one applied.
+// server ends it after the last batch has been answered.
+//
+// The log is read through an ordered consumer, opened from the message
+// after the last one applied. It is opened again, from there, when its
+// iterator ends by itself, and when the watchdog (watch) finds it
+// stalled: waiting for a message for stallAfter while the stream holds
+// messages for this replica after the last applied. nats.go recreates an
+// ordered consumer that misses heartbeats under the same name, retrying
+// until it is made; after the loss of a cluster node that held it, that
+// retry can go on for good (the creation of the same name is never
+// answered), silently: the replica would go on acknowledging writes and
+// never apply them. A consumer given up is stopped; what it still
+// delivers is not applied (its generation is old).
 func (l *Log) Run(ctx context.Context) error {
 	var (
 		consMu sync.Mutex
@@ -185,14 +194,18 @@ func (l *Log) Run(ctx context.Context) error {
 		defer consMu.Unlock()
 		return cons
 	}
-	var wg sync.WaitGroup
-	wg.Add(2)
+	// readers: the consumers and pollLag, which a consumer nats.go is
+	// recreating can hold up for a while after ctx is done (see watch);
+	// the final checkpoint does not wait for them.
+	var wg, readers sync.WaitGroup
+	wg.Add(1)
 	go func() {
 		defer wg.Done()
 		l.keepCheckpoint(ctx)
 	}()
+	readers.Add(1)
 	go func() {
-		defer wg.Done()
+		defer readers.Done()
 		l.pollLag(ctx, current)
 	}()
 	for first := true; ctx.Err() == nil; first = false {
@@ -206,40 +219,151 @@ func (l *Log) Run(ctx context.Context) error {
 		if info := c.CachedInfo(); first && info != nil && info.NumPending == 0 {
 			l.caughtUp.Store(true)
 		}
-		l.consume(ctx, c)
+		l.applyMu.Lock()
+		l.gen++
+		r := &reader{gen: l.gen}
+		l.applyMu.Unlock()
+		r.waiting.Store(time.Now().UnixNano())
+		cctx, cancel := context.WithCancel(ctx)
+		ended := make(chan struct{})
+		readers.Add(1)
+		go func() {
+			defer readers.Done()
+			defer close(ended)
+			l.consume(cctx, c, r)
+		}()
+		stalled := l.watch(cctx, r, ended)
+		cancel()
+		if stalled {
+			l.restarts.Inc()
+		}
 	}
 	wg.Wait()
+	l.applyMu.Lock()
+	l.gen++ // no consumer applies from here
+	l.applyMu.Unlock()
 	if err := l.writeCheckpoint(); err != nil {
 		l.log.Error("final checkpoint not saved", "err", err)
 	}
+	readers.Wait()
 	return nil
+}
+
+// reader is one consumer of the log: its generation, and since when it
+// has been waiting for a message (Unix ns; 0 while applying one).
+type reader struct {
+	gen     uint64
+	waiting atomic.Int64
+}
+
+// stallAfter is how long a consumer may wait for a message while the
+// stream holds messages for this replica after the last applied before
+// the watchdog gives it up and reads the log again from there.
+const stallAfter = 3 * time.Second
+
+// watch watches the consumer r until ctx is done or its iterator has
+// ended (ended closed), once a lagPoll: it reports true once r has
+// waited stallAfter for a message while the stream holds messages for
+// this replica after the last one applied. Then the replica counts as
+// stalled for readiness (noteStall) until it applies again. The stream
+// is asked only after stallAfter without a message, so an idle log costs
+// nothing; and it answers only once the stream has a leader, so the
+// consumer is given up within a few seconds of the cluster having one
+// again.
+func (l *Log) watch(ctx context.Context, r *reader, ended <-chan struct{}) bool {
+	t := time.NewTicker(lagPoll)
+	defer t.Stop()
+	for {
+		select {
+		case <-ctx.Done():
+			return false
+		case <-ended:
+			return false
+		case <-t.C:
+		}
+		since := r.waiting.Load()
+		if since == 0 || time.Since(time.Unix(0, since)) < stallAfter {
+			continue
+		}
+		pending, err := l.pendingForUs(ctx)
+		if err != nil || pending == 0 {
+			continue // the log unreachable (Ready says so when disconnected), or idle
+		}
+		now := time.Now()
+		l.noteStall(now, pending)
+		l.log.Warn("the log's consumer delivers nothing while the log holds messages for this replica: reading the log again after the last message applied",
+			"stream_sequence", l.applied.Load(), "pending_at_most", pending, "waiting", now.Sub(time.Unix(0, since)).Round(time.Millisecond))
+		return true
+	}
+}
+
+// pendingForUs asks the stream how many messages it holds after the last
+// one applied (at most: of the partitions served, when this replica
+// reads only those, it is 0 or the count of the stream's).
+func (l *Log) pendingForUs(ctx context.Context) (uint64, error) {
+	ictx, cancel := context.WithTimeout(ctx, l.cfg.Timeout)
+	defer cancel()
+	info, err := l.stream.Info(ictx)
+	if err != nil {
+		return 0, err
+	}
+	last, applied := info.State.LastSeq, l.applied.Load()
+	if last > l.lastSeq.Load() {
+		l.lastSeq.Store(last)
+	}
+	if last <= applied {
+		return 0, nil
+	}
+	filter := l.filterSubjects()
+	if len(filter) == 0 {
+		return last - applied, nil
+	}
+	for _, subj := range filter {
+		_, err := l.stream.GetMsg(ictx, applied+1, jetstream.WithGetMsgSubject(subj))
+		switch {
+		case err == nil:
+			return last - applied, nil
+		case !errors.Is(err, jetstream.ErrMsgNotFound):
+			return 0, err
+		}
+	}
+	return 0, nil
+}
+
+// filterSubjects returns the subjects this replica reads: those of the
+// partitions it serves and of the operator actions; none (the whole
+// stream) when it serves every partition, or when the server takes one
+// filter only (older than 2.10: it then reads every partition and skips
+// those of others).
+func (l *Log) filterSubjects() []string {
+	all := true
+	for _, s := range l.serves {
+		all = all && s
+	}
+	if all || !serverAtLeast(l.nc.ConnectedServerVersion(), 2, 10) {
+		return nil
+	}
+	var subjs []string
+	for p, s := range l.serves {
+		if s {
+			subjs = append(subjs, l.subject(p))
+		}
+	}
+	return append(subjs, l.cfg.Prefix+".ops")
 }
 
 // openConsumer makes an ordered consumer of the log from the message
 // after the last one applied, retrying every second; nil once ctx is
 // done.
 func (l *Log) openConsumer(ctx context.Context) jetstream.Consumer {
-	cfg := jetstream.OrderedConsumerConfig{DeliverPolicy: jetstream.DeliverAllPolicy}
+	cfg := jetstream.OrderedConsumerConfig{DeliverPolicy: jetstream.DeliverAllPolicy, FilterSubjects: l.filterSubjects()}
 	if seq := l.applied.Load(); seq > 0 {
 		cfg.DeliverPolicy, cfg.OptStartSeq = jetstream.DeliverByStartSequencePolicy, seq+1
 	}
-	all := true
-	for _, s := range l.serves {
-		all = all && s
-	}
-	if !all && serverAtLeast(l.nc.ConnectedServerVersion(), 2, 10) {
-		// Only the partitions served, and the operator actions; older
-		// servers take one filter only, so this replica reads every
-		// partition and skips those of others.
-		for p, s := range l.serves {
-			if s {
-				cfg.FilterSubjects = append(cfg.FilterSubjects, l.subject(p))
-			}
-		}
-		cfg.FilterSubjects = append(cfg.FilterSubjects, l.cfg.Prefix+".ops")
-	}
 	for {
-		cons, err := l.stream.OrderedConsumer(ctx, cfg)
+		ictx, cancel := context.WithTimeout(ctx, l.cfg.Timeout)
+		cons, err := l.stream.OrderedConsumer(ictx, cfg)
+		cancel()
 		if err == nil {
 			return cons
 		}
@@ -256,8 +380,8 @@ func (l *Log) openConsumer(ctx context.Context) jetstream.Consumer {
 }
 
 // consume applies what cons delivers until ctx is done or its iterator
-// ends.
-func (l *Log) consume(ctx context.Context, cons jetstream.Consumer) {
+// ends, noting in r while it waits for a message.
+func (l *Log) consume(ctx context.Context, cons jetstream.Consumer, r *reader) {
 	it, err := cons.Messages()
 	if err != nil {
 		l.log.Error("cannot read the log; retrying", "stream", l.cfg.Stream, "err", err)
@@ -271,7 +395,9 @@ func (l *Log) consume(ctx context.Context, cons jetstream.Consumer) {
 	defer stop()
 	defer it.Stop()
 	for {
+		r.waiting.Store(time.Now().UnixNano())
 		msg, err := it.Next()
+		r.waiting.Store(0)
 		if err != nil {
 			if ctx.Err() != nil {
 				return
@@ -284,7 +410,9 @@ func (l *Log) consume(ctx context.Context, cons jetstream.Consumer) {
 			continue
 		}
 		l.waitPaused(ctx)
-		l.apply(msg)
+		if !l.apply(msg, r.gen) {
+			return // given up by the watchdog
+		}
 	}
 }
 
@@ -300,19 +428,24 @@ func serverAtLeast(v string, major, minor int) bool {
 	return err1 == nil && err2 == nil && (a > major || a == major && b >= minor)
 }
 
-// apply applies one message of the log.
-func (l *Log) apply(msg jetstream.Msg) {
+// apply applies one message of the log, delivered by the consumer of
+// generation gen; false when that consumer has been given up (the
+// message is not applied: the current consumer delivers it).
+func (l *Log) apply(msg jetstream.Msg, gen uint64) bool {
 	meta, err := msg.Metadata()
 	if err != nil {
 		l.log.Warn("log message without metadata: skipped", "subject", msg.Subject(), "err", err)
 		l.messages.WithLabelValues("foreign").Inc()
-		return
+		return true
 	}
 	l.applyMu.Lock()
 	defer l.applyMu.Unlock()
+	if gen != l.gen {
+		return false
+	}
 	seq := meta.Sequence.Stream
 	if seq <= l.seq {
-		return // already applied
+		return true // already applied
 	}
 	result := "applied"
 	l.store.SetLogSequence(seq)
@@ -336,6 +469,7 @@ func (l *Log) apply(msg jetstream.Msg) {
 		l.caughtUp.Store(true)
 	}
 	l.noteApplied(time.Now(), meta)
+	return true
 }
 
 var errOtherPartition = errors.New("a partition served by another replica")

@@ -38,28 +38,71 @@ func (l *Log) noteApplied(now time.Time, meta *jetstream.MsgMetadata) {
 }
 
 // pollLag asks the consumer how far behind this replica is, once a
-// second until ctx is done.
+// second until ctx is done. The ordered consumer answers only between
+// its recreations (nats.go holds its lock while it recreates it, which
+// can last): a question not answered within lagPoll is left to finish
+// by itself, and no other is asked meanwhile; the watchdog (watch)
+// judges a stalled consumer then.
 func (l *Log) pollLag(ctx context.Context, current func() jetstream.Consumer) {
 	t := time.NewTicker(lagPoll)
 	defer t.Stop()
+	type answer struct {
+		info *jetstream.ConsumerInfo
+		err  error
+	}
+	var asking chan answer // the question not yet answered, if any
+	defer func() {
+		if asking != nil {
+			<-asking
+		}
+	}()
 	for {
 		select {
 		case <-ctx.Done():
 			return
 		case <-t.C:
 		}
-		cons := current()
-		if cons == nil {
-			continue // not reading the log yet
+		if asking == nil {
+			cons := current()
+			if cons == nil {
+				continue // not reading the log yet
+			}
+			asking = make(chan answer, 1)
+			go func(ch chan<- answer) {
+				ictx, cancel := context.WithTimeout(ctx, lagPoll)
+				defer cancel()
+				info, err := cons.Info(ictx)
+				ch <- answer{info, err}
+			}(asking)
 		}
-		ictx, cancel := context.WithTimeout(ctx, lagPoll)
-		info, err := cons.Info(ictx)
-		cancel()
-		if err != nil {
+		var a answer
+		select {
+		case a = <-asking:
+			asking = nil
+		case <-time.After(lagPoll / 2):
+			continue // nats.go busy recreating the consumer
+		case <-ctx.Done():
+			return
+		}
+		if a.err != nil {
 			continue // not connected: Ready says so
 		}
-		l.notePoll(time.Now(), info.NumPending, info.Delivered.Consumer, info.Delivered.Stream)
+		l.notePoll(time.Now(), a.info.NumPending, a.info.Delivered.Consumer, a.info.Delivered.Stream)
 	}
+}
+
+// noteStall records at now a consumer found stalled by the watchdog
+// with up to pending messages for this replica in the stream: the lag
+// in seconds grows from the last message applied.
+func (l *Log) noteStall(now time.Time, pending uint64) {
+	l.lagMu.Lock()
+	defer l.lagMu.Unlock()
+	l.behind.Store(pending)
+	if l.appliedAt.IsZero() {
+		l.appliedAt = now
+	}
+	l.lagNS.Store(max(l.lagNS.Load(), int64(now.Sub(l.appliedAt))))
+	l.judgeLag(now)
 }
 
 // notePoll records the lag the consumer reports at now: pending messages

@@ -146,6 +146,7 @@ type Log struct {
 	// checkpoint sees the state of a whole number of messages.
 	applyMu sync.Mutex
 	seq     uint64             // the last stream sequence applied
+	gen     uint64             // the generation of the current consumer (Run): only it applies
 	ledger  map[string]*Ledger // per unit: what has been applied
 	dec     sampleDecoder
 	ledgers []*Ledger         // of the decoded message's id table
@@ -185,6 +186,7 @@ type Log struct {
 
 	messages   *prometheus.CounterVec
 	pubFailed  prometheus.Counter
+	restarts   prometheus.Counter // consumers given up by the watchdog
 	writtenMsg prometheus.Counter // telemetry messages written
 	writtenSmp prometheus.Counter // and the samples they carry
 	seqGauge   prometheus.GaugeFunc
@@ -634,6 +636,10 @@ func (l *Log) metrics() {
 		Namespace: "genvelope", Name: "log_write_failures_total",
 		Help: "Writes to the log that failed or were not confirmed in time; their batches were answered UNAVAILABLE.",
 	})
+	l.restarts = prometheus.NewCounter(prometheus.CounterOpts{
+		Namespace: "genvelope", Name: "log_consumer_restarts_total",
+		Help: "Times the log's consumer delivered nothing for 3 s while the log held messages for this replica, and was given up for a new one reading from the message after the last applied (a NATS node lost, or its consumer gone).",
+	})
 	l.writtenMsg = prometheus.NewCounter(prometheus.CounterOpts{
 		Namespace: "genvelope", Name: "log_telemetry_messages_written_total",
 		Help: "Telemetry messages written to the log and acknowledged by the stream: each carries a partition's samples of one batch or, under load, of several.",
@@ -670,7 +676,7 @@ func (l *Log) metrics() {
 
 // Collectors returns the log's metrics.
 func (l *Log) Collectors() []prometheus.Collector {
-	return []prometheus.Collector{l.messages, l.pubFailed, l.writtenMsg, l.writtenSmp, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa, l.lagGa, l.tooFarGa}
+	return []prometheus.Collector{l.messages, l.pubFailed, l.restarts, l.writtenMsg, l.writtenSmp, l.seqGauge, l.connected, l.caughtUpGa, l.behindGa, l.lagGa, l.tooFarGa}
 }
 
 func b2f(b bool) float64 {
