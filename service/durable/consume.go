@@ -213,6 +213,9 @@ func (l *Log) Run(ctx context.Context) error {
 		if c == nil {
 			break // ctx done
 		}
+		if l.wrapConsumer != nil {
+			c = l.wrapConsumer(c)
+		}
 		consMu.Lock()
 		cons = c
 		consMu.Unlock()

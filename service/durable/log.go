@@ -184,6 +184,10 @@ type Log struct {
 	lastPollSeq uint64                        // the sequence applied at the previous poll
 	paused      atomic.Pointer[chan struct{}] // tests: the consumer waits while set
 
+	// wrapConsumer, for tests, wraps each consumer Run opens (one that
+	// stops delivering, as after the loss of the node that held it).
+	wrapConsumer func(jetstream.Consumer) jetstream.Consumer
+
 	messages   *prometheus.CounterVec
 	pubFailed  prometheus.Counter
 	restarts   prometheus.Counter // consumers given up by the watchdog

@@ -95,8 +95,18 @@ func openBenchLog(t testing.TB, url string, cfg ...func(*Config)) *Log {
 
 func startTestLog(t *testing.T, cfg ...func(*Config)) *testLog {
 	t.Helper()
+	return startTestLogWith(t, nil, cfg...)
+}
+
+// startTestLogWith is startTestLog with prep (may be nil) called on the
+// Log before it runs.
+func startTestLogWith(t *testing.T, prep func(*Log), cfg ...func(*Config)) *testLog {
+	t.Helper()
 	url, pid := startNATSServer(t)
 	l := openBenchLog(t, url, cfg...)
+	if prep != nil {
+		prep(l)
+	}
 	fl, err := examples.Fleet()
 	if err != nil {
 		t.Fatal(err)

@@ -233,14 +233,23 @@ func TestClusterNodeLoss(t *testing.T) {
 	rng := rand.New(rand.NewPCG(seed, 1))
 	killAt := len(batches)/4 + rng.IntN(len(batches)/2)
 	victim := nodes[rng.IntN(3)]
+	killed := make(chan struct{})
 	for i, b := range batches {
 		if i == killAt {
-			go victim.proc.Kill()
+			go func() {
+				defer close(killed)
+				victim.proc.Kill()
+			}()
 		}
 		pushUntilAnswered(t, r, b)
 	}
+	<-killed // the last batches can be answered before the kill is over
 	if !victim.proc.Exited() {
 		t.Fatal("the node was not killed")
 	}
+	// Ready again (caught up), whichever node held its consumer.
+	r.proc.WaitHTTP(t, "http://"+r.http+"/readyz")
+	t.Logf("node %s killed before batch %d of %d; consumer restarts by the watchdog: %g",
+		victim.name, killAt, len(batches), r.metric(t, "genvelope_log_consumer_restarts_total"))
 	checkLedger(t, r, statePath, ledgerOf(batches))
 }
