@@ -234,11 +234,13 @@ func TestClusterNodeLoss(t *testing.T) {
 	killAt := len(batches)/4 + rng.IntN(len(batches)/2)
 	victim := nodes[rng.IntN(3)]
 	killed := make(chan struct{})
+	var killedAt time.Time
 	for i, b := range batches {
 		if i == killAt {
 			go func() {
 				defer close(killed)
 				victim.proc.Kill()
+				killedAt = time.Now()
 			}()
 		}
 		pushUntilAnswered(t, r, b)
@@ -249,7 +251,12 @@ func TestClusterNodeLoss(t *testing.T) {
 	}
 	// Ready again (caught up), whichever node held its consumer.
 	r.proc.WaitHTTP(t, "http://"+r.http+"/readyz")
-	t.Logf("node %s killed before batch %d of %d; consumer restarts by the watchdog: %g",
-		victim.name, killAt, len(batches), r.metric(t, "genvelope_log_consumer_restarts_total"))
+	t.Logf("node %s killed before batch %d of %d at %s; consumer restarts by the watchdog: %g",
+		victim.name, killAt, len(batches), killedAt.UTC().Format("15:04:05.000"), r.metric(t, "genvelope_log_consumer_restarts_total"))
+	for _, line := range strings.Split(r.proc.Output(200), "\n") {
+		if strings.Contains(line, "consumer") || strings.Contains(line, "NATS connection") {
+			t.Log(strings.TrimSpace(line))
+		}
+	}
 	checkLedger(t, r, statePath, ledgerOf(batches))
 }
