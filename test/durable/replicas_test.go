@@ -254,7 +254,7 @@ func TestClusterNodeLoss(t *testing.T) {
 	t.Logf("node %s killed before batch %d of %d at %s; consumer restarts by the watchdog: %g",
 		victim.name, killAt, len(batches), killedAt.UTC().Format("15:04:05.000"), r.metric(t, "genvelope_log_consumer_restarts_total"))
 	for _, line := range strings.Split(r.proc.Output(200), "\n") {
-		if strings.Contains(line, "consumer") || strings.Contains(line, "NATS connection") {
+		if strings.Contains(line, "level=WARN") || strings.Contains(line, "level=ERROR") || strings.Contains(line, "NATS connection") {
 			t.Log(strings.TrimSpace(line))
 		}
 	}
