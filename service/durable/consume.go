@@ -288,7 +288,7 @@ func (l *Log) watch(ctx context.Context, r *reader, ended <-chan struct{}) bool 
 		if since == 0 || time.Since(time.Unix(0, since)) < stallAfter {
 			continue
 		}
-		pending, err := l.pendingForUs(ctx)
+		pending, err := l.pendingForUs(ctx, l.cfg.Timeout)
 		if err != nil || pending == 0 {
 			continue // the log unreachable (Ready says so when disconnected), or idle
 		}
@@ -303,8 +303,8 @@ func (l *Log) watch(ctx context.Context, r *reader, ended <-chan struct{}) bool 
 // pendingForUs asks the stream how many messages it holds after the last
 // one applied (at most: of the partitions served, when this replica
 // reads only those, it is 0 or the count of the stream's).
-func (l *Log) pendingForUs(ctx context.Context) (uint64, error) {
-	ictx, cancel := context.WithTimeout(ctx, l.cfg.Timeout)
+func (l *Log) pendingForUs(ctx context.Context, timeout time.Duration) (uint64, error) {
+	ictx, cancel := context.WithTimeout(ctx, timeout)
 	defer cancel()
 	info, err := l.stream.Info(ictx)
 	if err != nil {
@@ -374,6 +374,11 @@ func (l *Log) openConsumer(ctx context.Context) jetstream.Consumer {
 			return nil
 		}
 		l.log.Error("cannot read the log; retrying", "stream", l.cfg.Stream, "err", err)
+		// Meanwhile the replica applies nothing: while the stream holds
+		// messages for it, it is stalled for readiness.
+		if pending, err := l.pendingForUs(ctx, lagPoll); err == nil && pending > 0 {
+			l.noteStall(time.Now(), pending)
+		}
 		select {
 		case <-ctx.Done():
 			return nil
