@@ -288,7 +288,9 @@ func (l *Log) watch(ctx context.Context, r *reader, ended <-chan struct{}) bool 
 		if since == 0 || time.Since(time.Unix(0, since)) < stallAfter {
 			continue
 		}
-		pending, err := l.pendingForUs(ctx, l.cfg.Timeout)
+		// A short wait: while the stream has no leader nobody answers, and
+		// the next tick asks again.
+		pending, err := l.pendingForUs(ctx, 2*lagPoll)
 		if err != nil || pending == 0 {
 			continue // the log unreachable (Ready says so when disconnected), or idle
 		}
