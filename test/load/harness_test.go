@@ -182,3 +182,31 @@ func TestHarness(t *testing.T) {
 		}
 	}
 }
+
+// TestTimeLeft checks that a phase is refused once a server's synthetic
+// time would reach the present (the service answers FUTURE_TIME 5 s
+// ahead of its clock), and allowed while a minute or more is left.
+func TestTimeLeft(t *testing.T) {
+	fi, err := writeFleet(t.TempDir(), 4, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	enc := encodeUnits(fi.Fleet, 3)
+	now := time.Unix(1_800_000_000, 0)
+	for _, tc := range []struct {
+		name   string
+		behind time.Duration // of the latest sample made
+		ok     bool
+	}{
+		{"fresh run", loadAge, true},
+		{"two minutes left", 2 * time.Minute, true},
+		{"thirty seconds left", 30 * time.Second, false},
+		{"in the future", -time.Hour, false},
+	} {
+		gens := partition(enc, 2, now.Add(-tc.behind).Unix())
+		err := timeLeft(gens, now)
+		if (err == nil) != tc.ok {
+			t.Errorf("%s: timeLeft = %v, want ok %v", tc.name, err, tc.ok)
+		}
+	}
+}

@@ -27,8 +27,10 @@
 // each) with up to -window batches of -batch samples in flight per
 // stream, as fast as possible or at -rate samples/s in all. The units
 // are split among the streams, and each unit's i-th sample is stamped
-// base + i s with base 30 days ago, so that the service never sees a
-// sample out of order or from the future. Requests are encoded from
+// base + i s with base just under 7 days ago (each server has its own
+// generators), so that the service never sees a sample out of order or
+// from the future; a phase that would run into the present is refused
+// with an error instead. Requests are encoded from
 // samples prepared before the run, so the client spends little CPU on
 // them. For each phase it reports the samples/s acknowledged, the ack
 // latency of a batch (sent to answered) p50/p90/p99/max, the CPU the
@@ -309,8 +311,16 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 	log.Info("synthetic fleet", "units", fi.Units, "avr_basis", fi.AVR, "sites", fi.Sites, "bytes", fi.Bytes, "parse", fi.parse.Round(time.Millisecond))
 
 	enc := encodeUnits(fi.Fleet, cfg.Seed)
-	base := time.Now().Add(-3 * 24 * time.Hour).Truncate(time.Second).Unix() // within the service's 7-day horizon
-	gens := partition(enc, cfg.Streams, base)
+	// Each server has generators of its own, so that a fast bare sink does
+	// not use up the service's time: a unit's k-th round is stamped
+	// base + k s, and at millions of samples a second a shared clock ran
+	// past the service's 5 s future limit within one run of 1,000 units.
+	base := time.Now().Add(-loadAge).Truncate(time.Second).Unix()
+	gensOf := make(map[string][]*generator, len(cfg.Servers))
+	for _, server := range cfg.Servers {
+		gensOf[server] = partition(enc, cfg.Streams, base)
+	}
+	gens := gensOf[cfg.Servers[0]]
 	if err := selfCheck(gens[0], cfg.Batch); err != nil {
 		return nil, fmt.Errorf("the request encoder is broken: %w", err)
 	}
@@ -385,6 +395,11 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 	for r := 1; r <= cfg.Repeat; r++ {
 		rr := &repetition{Run: r}
 		for _, server := range cfg.Servers {
+			gens := gensOf[server]
+			if err := timeLeft(gens, time.Now()); err != nil {
+				rep.Runs = append(rep.Runs, rr)
+				return rep, fmt.Errorf("run %d, %s: %w", r, server, err)
+			}
 			p := sinkProc
 			switch server {
 			case "full":
@@ -439,8 +454,10 @@ func run(ctx context.Context, log *slog.Logger, cfg config) (*report, error) {
 		rep.Runs = append(rep.Runs, rr)
 	}
 	var last int64
-	for _, g := range gens {
-		last = max(last, g.lastTime())
+	for _, gens := range gensOf {
+		for _, g := range gens {
+			last = max(last, g.lastTime())
+		}
 	}
 	rep.LastSampleAgeS = time.Since(time.Unix(last, 0)).Seconds()
 

@@ -1,8 +1,10 @@
 package main
 
 import (
+	"fmt"
 	"math"
 	"math/rand/v2"
+	"time"
 
 	"google.golang.org/protobuf/encoding/protowire"
 
@@ -215,6 +217,24 @@ func (g *generator) appendBatch(b []byte, seq uint64, n int) []byte {
 		b = append(b, rest...)
 	}
 	return b
+}
+
+// loadAge is how far behind the wall clock the first sample of a run is
+// stamped: within the service's 7-day horizon with an hour to spare, so
+// that each server's generators have some 600,000 rounds (s) before they
+// reach the present.
+const loadAge = 7*24*time.Hour - time.Hour
+
+// timeLeft says why the generators may not make another phase: their
+// latest sample is within a minute of now, so the service would soon
+// answer FUTURE_TIME, and the figures would measure rejections.
+func timeLeft(gens []*generator, now time.Time) error {
+	for _, g := range gens {
+		if d := now.Sub(time.Unix(g.lastTime(), 0)); d < time.Minute {
+			return fmt.Errorf("the synthetic time has caught up with the clock (latest sample %s behind it, %d rounds made): run fewer repeats, shorter phases or more units", d.Round(time.Second), g.k/uint64(max(len(g.units), 1)))
+		}
+	}
+	return nil
 }
 
 // lastTime returns the Unix seconds of the latest sample made, or base.
