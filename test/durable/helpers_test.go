@@ -76,7 +76,29 @@ func startNATS(t *testing.T, dir string) *natsNode {
 
 // startNodes starts n JetStream nodes; more than one form a cluster.
 // It returns once JetStream is usable (the cluster has a meta leader).
+// A node that exits at start (a port taken meanwhile by another program
+// on a shared machine: FreePort only finds one free at the moment) makes
+// it start them all again, on other ports, with stores of their own.
 func startNodes(t *testing.T, dir string, n int) []*natsNode {
+	t.Helper()
+	const attempts = 3
+	for a := 1; ; a++ {
+		sub := dir
+		if a > 1 {
+			sub = filepath.Join(dir, fmt.Sprintf("attempt%d", a))
+		}
+		nodes, err := tryStartNodes(t, sub, n)
+		if err == nil {
+			return nodes
+		}
+		if a == attempts {
+			t.Fatal(err)
+		}
+		t.Logf("nodes not started (%v); again on other ports", err)
+	}
+}
+
+func tryStartNodes(t *testing.T, dir string, n int) ([]*natsNode, error) {
 	t.Helper()
 	bin := natsServer(t)
 	nodes := make([]*natsNode, n)
@@ -85,6 +107,9 @@ func startNodes(t *testing.T, dir string, n int) []*natsNode {
 	for i := range nodes {
 		cports[i] = testenv.FreePort(t)
 		routes[i] = fmt.Sprintf("nats-route://127.0.0.1:%d", cports[i])
+	}
+	if err := os.MkdirAll(dir, 0o755); err != nil {
+		t.Fatal(err)
 	}
 	for i := range nodes {
 		nd := &natsNode{name: fmt.Sprintf("n%d", i+1), bin: bin, port: testenv.FreePort(t), mport: testenv.FreePort(t)}
@@ -102,9 +127,14 @@ func startNodes(t *testing.T, dir string, n int) []*natsNode {
 		nd.start(t)
 	}
 	for _, nd := range nodes {
-		nd.waitJetStream(t, n > 1)
+		if err := nd.untilJetStream(n > 1); err != nil {
+			for _, o := range nodes {
+				o.proc.Kill()
+			}
+			return nil, err
+		}
 	}
-	return nodes
+	return nodes, nil
 }
 
 func (n *natsNode) start(t *testing.T) {
@@ -116,6 +146,14 @@ func (n *natsNode) start(t *testing.T) {
 // cluster until it knows the meta leader.
 func (n *natsNode) waitJetStream(t *testing.T, cluster bool) {
 	t.Helper()
+	if err := n.untilJetStream(cluster); err != nil {
+		n.proc.Failf(t, "%v", err)
+	}
+}
+
+// untilJetStream is waitJetStream's wait: an error when the node exits
+// or JetStream is not up within WaitLong.
+func (n *natsNode) untilJetStream(cluster bool) error {
 	deadline := time.Now().Add(testenv.WaitLong)
 	for {
 		_, err := get(fmt.Sprintf("http://127.0.0.1:%d/healthz", n.mport))
@@ -124,13 +162,24 @@ func (n *natsNode) waitJetStream(t *testing.T, cluster bool) {
 			body, err = get(fmt.Sprintf("http://127.0.0.1:%d/jsz", n.mport))
 		}
 		if err == nil && (!cluster || strings.Contains(body, `"leader": "n`)) {
-			return
+			return nil
+		}
+		if n.proc.Exited() {
+			return fmt.Errorf("nats-server %s exited at start: %s", n.name, lastLine(n.proc.Output(1)))
 		}
 		if time.Now().After(deadline) {
-			n.proc.Failf(t, "JetStream not up: %v %s", err, body)
+			return fmt.Errorf("JetStream not up on %s: %v %s", n.name, err, body)
 		}
 		time.Sleep(100 * time.Millisecond)
 	}
+}
+
+func lastLine(s string) string {
+	s = strings.TrimSpace(s)
+	if i := strings.LastIndexByte(s, '\n'); i >= 0 {
+		return s[i+1:]
+	}
+	return s
 }
 
 func get(url string) (string, error) {
