@@ -209,7 +209,7 @@ func (l *Log) Run(ctx context.Context) error {
 		l.pollLag(ctx, current)
 	}()
 	for first := true; ctx.Err() == nil; first = false {
-		c := l.openConsumer(ctx)
+		c := l.openConsumer(ctx, first)
 		if c == nil {
 			break // ctx done
 		}
@@ -263,6 +263,9 @@ type reader struct {
 // stream holds messages for this replica after the last applied before
 // the watchdog gives it up and reads the log again from there.
 const stallAfter = 3 * time.Second
+
+// reopenWait bounds the wait for a consumer opened again (openConsumer).
+const reopenWait = 2 * time.Second
 
 // watch watches the consumer r until ctx is done or its iterator has
 // ended (ended closed), once a lagPoll: it reports true once r has
@@ -359,14 +362,21 @@ func (l *Log) filterSubjects() []string {
 
 // openConsumer makes an ordered consumer of the log from the message
 // after the last one applied, retrying every second; nil once ctx is
-// done.
-func (l *Log) openConsumer(ctx context.Context) jetstream.Consumer {
+// done. The first waits Timeout for the server's answer; the next ones,
+// after the loss of a node, reopenWait: the cluster may place the new
+// consumer on the lost node, which never answers, and each attempt
+// (with a new name) is placed again.
+func (l *Log) openConsumer(ctx context.Context, first bool) jetstream.Consumer {
 	cfg := jetstream.OrderedConsumerConfig{DeliverPolicy: jetstream.DeliverAllPolicy, FilterSubjects: l.filterSubjects()}
 	if seq := l.applied.Load(); seq > 0 {
 		cfg.DeliverPolicy, cfg.OptStartSeq = jetstream.DeliverByStartSequencePolicy, seq+1
 	}
+	wait := l.cfg.Timeout
+	if !first {
+		wait = min(wait, reopenWait)
+	}
 	for {
-		ictx, cancel := context.WithTimeout(ctx, l.cfg.Timeout)
+		ictx, cancel := context.WithTimeout(ctx, wait)
 		cons, err := l.stream.OrderedConsumer(ictx, cfg)
 		cancel()
 		if err == nil {
