@@ -3,6 +3,7 @@ package durable
 import (
 	"bufio"
 	"context"
+	"encoding/json"
 	"fmt"
 	"math"
 	"net/http"
@@ -126,15 +127,59 @@ func tryStartNodes(t *testing.T, dir string, n int) ([]*natsNode, error) {
 		nodes[i] = nd
 		nd.start(t)
 	}
+	var err error
 	for _, nd := range nodes {
-		if err := nd.untilJetStream(n > 1); err != nil {
-			for _, o := range nodes {
-				o.proc.Kill()
-			}
-			return nil, err
+		if err = nd.untilJetStream(n > 1); err != nil {
+			break
 		}
 	}
+	if err == nil && n > 1 {
+		err = untilPeers(nodes)
+	}
+	if err != nil {
+		for _, o := range nodes {
+			o.proc.Kill()
+		}
+		return nil, err
+	}
 	return nodes, nil
+}
+
+// untilPeers waits until the meta leader counts every other node a
+// current peer: before, a stream with as many replicas as nodes is
+// refused ("no suitable peers").
+func untilPeers(nodes []*natsNode) error {
+	deadline := time.Now().Add(testenv.WaitLong)
+	for {
+		for _, nd := range nodes {
+			body, err := get(fmt.Sprintf("http://127.0.0.1:%d/jsz", nd.mport))
+			if err != nil {
+				continue
+			}
+			var jsz struct {
+				Meta struct {
+					Leader   string `json:"leader"`
+					Replicas []struct {
+						Current bool `json:"current"`
+					} `json:"replicas"`
+				} `json:"meta_cluster"`
+			}
+			if json.Unmarshal([]byte(body), &jsz) != nil || jsz.Meta.Leader != nd.name || len(jsz.Meta.Replicas) != len(nodes)-1 {
+				continue
+			}
+			current := true
+			for _, r := range jsz.Meta.Replicas {
+				current = current && r.Current
+			}
+			if current {
+				return nil
+			}
+		}
+		if time.Now().After(deadline) {
+			return fmt.Errorf("the meta leader does not count all %d nodes current peers within %s", len(nodes), testenv.WaitLong)
+		}
+		time.Sleep(100 * time.Millisecond)
+	}
 }
 
 func (n *natsNode) start(t *testing.T) {
